@@ -1,0 +1,25 @@
+//! Pure computation for probity: the model file, the scoring engine, the path from margin to a calibrated,
+//! base-rate-corrected probability, scoring rules and drift statistics.
+//!
+//! This crate does no I/O and has no async runtime, transport or database dependency; the service crate builds on it.
+//!
+//! The usual path: [`Model::from_json_str`] loads and validates a model file, a dense row is built with the help of
+//! [`Schema`], [`Model::margin`] evaluates it, and [`Model::score`] turns it into a [`Scored`] with log-odds,
+//! probability, optional points score and decision.
+
+pub mod calibration;
+pub mod decision;
+pub mod engine;
+pub mod error;
+pub mod link;
+pub mod metrics;
+pub mod model;
+pub mod schema;
+pub mod transform;
+
+pub use calibration::{Calibration, IsotonicInput};
+pub use decision::{Decision, DecisionRule};
+pub use error::{EvalError, ModelError};
+pub use model::{MarginScale, Model, ModelSummary, ReferenceDistribution, ScoreScale, OddsOf, BodyKind};
+pub use schema::{Feature, FeatureKind, Schema};
+pub use transform::{OutputSpec, Scored};
