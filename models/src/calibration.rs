@@ -22,7 +22,11 @@ pub enum Calibration {
     /// Isotonic map by linear interpolation between fitted points, clipped outside them (Zadrozny and Elkan 2002;
     /// the interpolation is that of scikit-learn's `IsotonicRegression.predict`). `x` strictly increasing,
     /// `y` non-decreasing in [0, 1].
-    Isotonic { input: IsotonicInput, x: Vec<f64>, y: Vec<f64> },
+    Isotonic {
+        input: IsotonicInput,
+        x: Vec<f64>,
+        y: Vec<f64>,
+    },
     /// Beta calibration (Kull, Silva Filho and Flach 2017): `a ln p - b ln(1 - p) + c`.
     Beta { a: f64, b: f64, c: f64 },
     /// Temperature scaling (Guo, Pleiss, Sun and Weinberger 2017): `h / t`.
@@ -56,7 +60,8 @@ impl Calibration {
 /// Linear interpolation through `(x, y)`, clipped to the end values outside `[x[0], x[last]]`.
 /// `x` must be strictly increasing and non-empty (the loader guarantees it).
 fn interpolate(x: &[f64], y: &[f64], v: f64) -> f64 {
-    let (Some(&x0), Some(&xn), Some(&y0), Some(&yn)) = (x.first(), x.last(), y.first(), y.last()) else {
+    let (Some(&x0), Some(&xn), Some(&y0), Some(&yn)) = (x.first(), x.last(), y.first(), y.last())
+    else {
         return f64::NAN;
     };
     if v.is_nan() {
@@ -95,10 +100,17 @@ mod tests {
     #[test]
     fn beta_with_a_equal_b_equal_one_is_identity() {
         // a = b = 1, c = 0: ln p - ln(1-p) = logit(p) = h (Kull et al. 2017, the map contains the identity).
-        let m = Calibration::Beta { a: 1.0, b: 1.0, c: 0.0 };
+        let m = Calibration::Beta {
+            a: 1.0,
+            b: 1.0,
+            c: 0.0,
+        };
         for h in [-800.0, -30.0, -1.5, 0.0, 2.0, 40.0, 800.0] {
             let got = m.apply(h);
-            assert!((got - h).abs() <= 1e-12 * h.abs().max(1.0), "h={h} got={got}");
+            assert!(
+                (got - h).abs() <= 1e-12 * h.abs().max(1.0),
+                "h={h} got={got}"
+            );
         }
     }
 }

@@ -7,10 +7,16 @@ pub enum DecisionRule {
     Threshold { threshold: f64 },
     /// Bayes-optimal threshold from misclassification costs with zero cost for correct decisions:
     /// `p* = c_fp / (c_fp + c_fn)` (Elkan 2001, "The foundations of cost-sensitive learning").
-    Costs { false_positive: f64, false_negative: f64 },
+    Costs {
+        false_positive: f64,
+        false_negative: f64,
+    },
     /// Bands: `edges` strictly increasing in (0, 1), `labels` one more than `edges`; a probability `p` falls in band
     /// `i` where `edges[i-1] < p <= edges[i]`.
-    Bands { edges: Vec<f64>, labels: Vec<String> },
+    Bands {
+        edges: Vec<f64>,
+        labels: Vec<String>,
+    },
 }
 
 /// The decision a rule gives for one probability.
@@ -55,7 +61,10 @@ impl DecisionRule {
                     return Err(DecisionRuleError::Threshold(*threshold));
                 }
             }
-            DecisionRule::Costs { false_positive, false_negative } => {
+            DecisionRule::Costs {
+                false_positive,
+                false_negative,
+            } => {
                 let ok = false_positive.is_finite()
                     && false_negative.is_finite()
                     && *false_positive >= 0.0
@@ -80,9 +89,10 @@ impl DecisionRule {
     pub fn threshold(&self) -> Option<f64> {
         match self {
             DecisionRule::Threshold { threshold } => Some(*threshold),
-            DecisionRule::Costs { false_positive, false_negative } => {
-                Some(false_positive / (false_positive + false_negative))
-            }
+            DecisionRule::Costs {
+                false_positive,
+                false_negative,
+            } => Some(false_positive / (false_positive + false_negative)),
             DecisionRule::Bands { .. } => None,
         }
     }
@@ -115,7 +125,10 @@ mod tests {
         // Elkan (2001), section 2: with c10 = cost of a false positive and c01 = cost of a false negative and
         // correct decisions free, the optimal threshold is p* = c10 / (c10 + c01). Fraud example: a missed fraud
         // costs 20 times a needless decline -> p* = 1/21.
-        let rule = DecisionRule::Costs { false_positive: 1.0, false_negative: 20.0 };
+        let rule = DecisionRule::Costs {
+            false_positive: 1.0,
+            false_negative: 20.0,
+        };
         assert!((rule.threshold().unwrap_or(f64::NAN) - 1.0 / 21.0).abs() < 1e-15);
         assert_eq!(rule.decide(0.05), Decision::Positive);
         assert_eq!(rule.decide(0.04), Decision::Negative);
@@ -123,7 +136,10 @@ mod tests {
 
     #[test]
     fn bands_are_closed_on_the_right() {
-        let rule = DecisionRule::Bands { edges: vec![0.1, 0.5], labels: vec!["approve".into(), "review".into(), "decline".into()] };
+        let rule = DecisionRule::Bands {
+            edges: vec![0.1, 0.5],
+            labels: vec!["approve".into(), "review".into(), "decline".into()],
+        };
         assert!(rule.validate().is_ok());
         assert_eq!(rule.decide(0.1).as_str(), "approve");
         assert_eq!(rule.decide(0.1000001).as_str(), "review");
