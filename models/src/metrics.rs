@@ -1,1 +1,0 @@
-//! Scoring rules and drift statistics. PLACEHOLDER: to be completed by the scoring-rules work.
