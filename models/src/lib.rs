@@ -19,7 +19,7 @@ pub mod transform;
 
 pub use calibration::{Calibration, IsotonicInput};
 pub use decision::{Decision, DecisionRule};
-pub use error::{EvalError, ModelError};
+pub use error::{CellError, EvalError, ModelError};
 pub use model::{MarginScale, Model, ModelSummary, ReferenceDistribution, ScoreScale, OddsOf, BodyKind};
-pub use schema::{Feature, FeatureKind, Schema};
+pub use schema::{Feature, FeatureKind, Schema, UNKNOWN_CATEGORY};
 pub use transform::{OutputSpec, Scored};

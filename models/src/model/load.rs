@@ -1,1 +1,225 @@
-//! Parsing and validation of the model file. PLACEHOLDER: to be completed by the model-file work.
+//! Parsing and validation of the model file (`docs/model-format.md`).
+//!
+//! Two passes. The first reads the JSON into [`raw`] structs that refuse unknown keys; `serde_path_to_error`
+//! gives the JSON path of a structural error. The second checks every rule of the format, builds the error's path
+//! in the same style (`ensemble.trees[3].nodes[17].left`), and compiles the body for the engine. Nothing here
+//! recurses on input: trees are walked with an explicit stack.
+
+mod extras;
+mod linear;
+mod raw;
+mod trees;
+
+use crate::engine::Body;
+use crate::error::ModelError;
+use crate::model::{MarginScale, Model};
+use crate::schema::{Feature, FeatureKind, Schema};
+
+use raw::{RawFeatureType, RawMarginScale, RawModel};
+
+/// The only `format` value this reader accepts.
+pub const FORMAT_TAG: &str = "probity.model";
+/// The only `format_version` this reader accepts.
+pub const FORMAT_VERSION: u64 = 1;
+/// Largest document accepted, in bytes.
+pub const MAX_DOCUMENT_BYTES: usize = 256 * 1024 * 1024;
+/// Longest `name` or `version`.
+pub const MAX_NAME_CHARS: usize = 128;
+
+impl Model {
+    /// Parses and validates a model file held in a string.
+    pub fn from_json_str(text: &str) -> Result<Model, ModelError> {
+        Model::from_json_slice(text.as_bytes())
+    }
+
+    /// Parses and validates a model file held in bytes (UTF-8 JSON of at most 256 MiB).
+    pub fn from_json_slice(bytes: &[u8]) -> Result<Model, ModelError> {
+        if bytes.len() > MAX_DOCUMENT_BYTES {
+            return Err(ModelError::TooLarge {
+                path: "$".into(),
+                what: "bytes",
+                got: bytes.len(),
+                limit: MAX_DOCUMENT_BYTES,
+            });
+        }
+        let raw = parse(bytes)?;
+        build(raw)
+    }
+}
+
+/// First pass: JSON into the raw structs, with the path of any structural error.
+fn parse(bytes: &[u8]) -> Result<RawModel, ModelError> {
+    let mut de = serde_json::Deserializer::from_slice(bytes);
+    let raw: RawModel = serde_path_to_error::deserialize(&mut de).map_err(|e| {
+        let path = e.path().to_string();
+        structural(path, e.into_inner())
+    })?;
+    // Trailing characters after the document.
+    de.end().map_err(|e| structural(String::new(), e))?;
+    Ok(raw)
+}
+
+/// Classifies a serde_json error as a syntax error (with position) or a structural one (with path).
+fn structural(path: String, e: serde_json::Error) -> ModelError {
+    let (line, column) = (e.line(), e.column());
+    let mut message = e.to_string();
+    // serde_json appends the position; the path (or our own line/column fields) already says where.
+    let suffix = format!(" at line {line} column {column}");
+    if let Some(stripped) = message.strip_suffix(&suffix) {
+        message = stripped.to_string();
+    }
+    match e.classify() {
+        serde_json::error::Category::Data => ModelError::Structure {
+            path: if path.is_empty() || path == "." {
+                "$".into()
+            } else {
+                path
+            },
+            message,
+        },
+        _ => {
+            // The reader knows where it was in the document, which helps with a truncated file or a number
+            // out of the f64 range.
+            if !path.is_empty() && path != "." {
+                message = format!("{message} (inside {path})");
+            }
+            ModelError::Syntax {
+                line,
+                column,
+                message,
+            }
+        }
+    }
+}
+
+/// Fails unless `v` is finite.
+pub(super) fn finite(v: f64, path: impl FnOnce() -> String) -> Result<f64, ModelError> {
+    if v.is_finite() {
+        Ok(v)
+    } else {
+        Err(ModelError::rule(
+            path(),
+            format!("{v} is not a finite number"),
+        ))
+    }
+}
+
+/// Checks the character rule of `name` and `version`.
+fn identifier(value: &str, path: &str) -> Result<String, ModelError> {
+    let n = value.chars().count();
+    if n == 0 || n > MAX_NAME_CHARS {
+        return Err(ModelError::rule(
+            path,
+            format!("must be 1 to {MAX_NAME_CHARS} characters, got {n}"),
+        ));
+    }
+    if let Some(c) = value
+        .chars()
+        .find(|c| !(c.is_ascii_alphanumeric() || matches!(c, '.' | '_' | '-')))
+    {
+        return Err(ModelError::rule(
+            path,
+            format!("character {c:?} is not allowed (only A-Z a-z 0-9 . _ -)"),
+        ));
+    }
+    Ok(value.to_string())
+}
+
+/// Second pass: every rule, then the compiled model.
+fn build(raw: RawModel) -> Result<Model, ModelError> {
+    if raw.format != FORMAT_TAG {
+        return Err(ModelError::rule(
+            "format",
+            format!("expected \"{FORMAT_TAG}\", got {:?}", raw.format),
+        ));
+    }
+    if raw.format_version != FORMAT_VERSION {
+        return Err(ModelError::rule(
+            "format_version",
+            format!(
+                "unsupported version {}, this reader knows version {FORMAT_VERSION}",
+                raw.format_version
+            ),
+        ));
+    }
+    let name = identifier(&raw.name, "name")?;
+    let version = identifier(&raw.version, "version")?;
+    let metadata = match raw.metadata {
+        None => serde_json::Value::Null,
+        Some(v @ serde_json::Value::Object(_)) => v,
+        Some(_) => return Err(ModelError::rule("metadata", "must be an object")),
+    };
+    let schema = schema(raw.features)?;
+    let margin_scale = match raw.margin_scale {
+        RawMarginScale::LogOdds => MarginScale::LogOdds,
+        RawMarginScale::HalfLogOdds => MarginScale::HalfLogOdds,
+    };
+    let base_rate = finite(raw.base_rate, || "base_rate".into())?;
+    if !(base_rate > 0.0 && base_rate < 1.0) {
+        return Err(ModelError::rule(
+            "base_rate",
+            format!("must be strictly between 0 and 1, got {base_rate}"),
+        ));
+    }
+    let body = match (raw.ensemble, raw.linear) {
+        (Some(e), None) => Body::Ensemble(trees::ensemble(e, &schema)?),
+        (None, Some(l)) => Body::Linear(linear::linear(l, &schema)?),
+        (None, None) => {
+            return Err(ModelError::rule(
+                "$",
+                "the model needs one of `ensemble` and `linear`",
+            ))
+        }
+        (Some(_), Some(_)) => {
+            return Err(ModelError::rule(
+                "linear",
+                "the model has both `ensemble` and `linear`; exactly one is allowed",
+            ))
+        }
+    };
+    let calibration = raw.calibration.map(extras::calibration).transpose()?;
+    let reference = raw
+        .reference_distribution
+        .map(extras::reference)
+        .transpose()?;
+    let score_scale = raw.score_scale.map(extras::score_scale).transpose()?;
+    Ok(Model {
+        name,
+        version,
+        metadata,
+        schema,
+        margin_scale,
+        base_rate,
+        body,
+        calibration,
+        reference,
+        score_scale,
+    })
+}
+
+/// The `features` array as a [`Schema`].
+fn schema(raw: Vec<raw::RawFeature>) -> Result<Schema, ModelError> {
+    let mut features = Vec::with_capacity(raw.len());
+    for (i, f) in raw.into_iter().enumerate() {
+        let kind = match (f.kind, f.categories) {
+            (RawFeatureType::Numeric, None) => FeatureKind::Numeric,
+            (RawFeatureType::Numeric, Some(_)) => {
+                return Err(ModelError::rule(
+                    format!("features[{i}].categories"),
+                    "a numeric feature has no categories",
+                ))
+            }
+            (RawFeatureType::Categorical, Some(categories)) => {
+                FeatureKind::Categorical { categories }
+            }
+            (RawFeatureType::Categorical, None) => {
+                return Err(ModelError::rule(
+                    format!("features[{i}]"),
+                    "a categorical feature needs `categories`",
+                ))
+            }
+        };
+        features.push(Feature { name: f.name, kind });
+    }
+    Schema::new(features)
+}
