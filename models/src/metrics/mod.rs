@@ -7,8 +7,8 @@
 //!
 //! Submodules:
 //! - [`loss`]: log-loss from log-odds, Brier score and its Murphy decomposition;
-//! - [`calibration_table`]: binned reliability table, expected and maximum calibration error;
-//! - [`hosmer_lemeshow`]: the Hosmer-Lemeshow statistic and the chi-square survival function;
+//! - [`calibration_table`](mod@calibration_table): binned reliability table, expected and maximum calibration error;
+//! - [`hosmer_lemeshow`](mod@hosmer_lemeshow): the Hosmer-Lemeshow statistic and the chi-square survival function;
 //! - [`ranking`]: ROC AUC, the two-sample KS statistic, gains and lift, counts at a threshold;
 //! - [`drift`]: population stability index and the binning it uses;
 //! - [`quantile`]: sample quantiles with linear interpolation, shared by the binning rules.
