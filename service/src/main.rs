@@ -1,1 +1,39 @@
-fn main() {}
+//! `probity`: the command-line tool. Offline commands (check a model file, score a CSV file, the demo) live in
+//! [`cli`]; each subcommand is one variant of [`Command`] with its own argument struct.
+
+use std::process::ExitCode;
+
+use clap::{Parser, Subcommand};
+
+mod cli;
+
+/// Serve binary classifiers as calibrated probabilities, and watch them.
+#[derive(Debug, Parser)]
+#[command(name = "probity", version, about)]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+enum Command {
+    /// Write the demo scenario's invented card transactions (Harbourline Card Services) as CSV.
+    GenerateDemoData(cli::demo_data::GenerateArgs),
+}
+
+fn run() -> anyhow::Result<()> {
+    match Cli::parse().command {
+        Command::GenerateDemoData(args) => cli::demo_data::run(&args),
+    }
+}
+
+fn main() -> ExitCode {
+    match run() {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(err) => {
+            // One line: the error and its causes, outermost first.
+            eprintln!("error: {err:#}");
+            ExitCode::FAILURE
+        }
+    }
+}
