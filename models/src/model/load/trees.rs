@@ -25,6 +25,27 @@ fn side(s: RawSide) -> Side {
     }
 }
 
+/// The format's limits on the number of trees and of nodes in all.
+fn limits(trees: usize, nodes: usize) -> Result<(), ModelError> {
+    if trees > MAX_TREES {
+        return Err(ModelError::TooLarge {
+            path: "ensemble.trees".into(),
+            what: "trees",
+            got: trees,
+            limit: MAX_TREES,
+        });
+    }
+    if nodes > MAX_NODES {
+        return Err(ModelError::TooLarge {
+            path: "ensemble.trees".into(),
+            what: "nodes in all",
+            got: nodes,
+            limit: MAX_NODES,
+        });
+    }
+    Ok(())
+}
+
 /// Checks and compiles an ensemble.
 pub(super) fn ensemble(raw: RawEnsemble, schema: &Schema) -> Result<Ensemble, ModelError> {
     let base_margin = finite(raw.base_margin, || "ensemble.base_margin".into())?;
@@ -34,23 +55,8 @@ pub(super) fn ensemble(raw: RawEnsemble, schema: &Schema) -> Result<Ensemble, Mo
             "an ensemble needs at least one tree",
         ));
     }
-    if raw.trees.len() > MAX_TREES {
-        return Err(ModelError::TooLarge {
-            path: "ensemble.trees".into(),
-            what: "trees",
-            got: raw.trees.len(),
-            limit: MAX_TREES,
-        });
-    }
     let total: usize = raw.trees.iter().map(|t| t.nodes.len()).sum();
-    if total > MAX_NODES {
-        return Err(ModelError::TooLarge {
-            path: "ensemble.trees".into(),
-            what: "nodes in all",
-            got: total,
-            limit: MAX_NODES,
-        });
-    }
+    limits(raw.trees.len(), total)?;
     let n_categories: Vec<u32> = schema
         .features()
         .iter()
@@ -302,5 +308,25 @@ impl Walk {
                 self.parent[c]
             ),
         ))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn node_limit() {
+        // A file at the node limit takes gigabytes to build in a test, so the check itself is tested here.
+        assert!(limits(1, MAX_NODES).is_ok());
+        let err = limits(1, MAX_NODES + 1).unwrap_err();
+        assert_eq!(
+            err.to_string(),
+            "ensemble.trees: 10000001 nodes in all, the limit is 10000000"
+        );
+        assert_eq!(
+            limits(MAX_TREES + 1, 5).unwrap_err().path(),
+            Some("ensemble.trees")
+        );
     }
 }
