@@ -19,11 +19,14 @@ struct Cli {
 enum Command {
     /// Write the demo scenario's invented card transactions (Harbourline Card Services) as CSV.
     GenerateDemoData(cli::demo_data::GenerateArgs),
+    /// Run the gRPC scoring service until SIGTERM or SIGINT.
+    Serve(probity::serve::ServeArgs),
 }
 
 fn run() -> anyhow::Result<()> {
     match Cli::parse().command {
         Command::GenerateDemoData(args) => cli::demo_data::run(&args),
+        Command::Serve(args) => Ok(probity::serve::run(&args)?),
     }
 }
 

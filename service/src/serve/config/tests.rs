@@ -1,0 +1,159 @@
+use super::*;
+
+fn write(text: &str) -> (tempfile::TempDir, PathBuf) {
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("probity.toml");
+    std::fs::write(&path, text).unwrap();
+    (dir, path)
+}
+
+fn load(
+    text: &str,
+    env: &[(&str, &str)],
+    overrides: &[(&str, &str)],
+) -> Result<Config, ConfigError> {
+    let (_dir, path) = write(text);
+    Config::load(&Sources {
+        file: Some(path),
+        env: env
+            .iter()
+            .map(|(k, v)| (k.to_string(), v.to_string()))
+            .collect(),
+        overrides: overrides
+            .iter()
+            .map(|(k, v)| (k.to_string(), v.to_string()))
+            .collect(),
+    })
+}
+
+const MINIMAL: &str = "[routes.fraud]\nmodel = \"harbourline-fraud\"\n";
+
+#[test]
+fn defaults_fill_everything_but_routes() {
+    let c = load(MINIMAL, &[], &[]).unwrap();
+    assert_eq!(c.grpc_listen.port(), 50051);
+    assert_eq!(c.limits.max_batch_rows, 1000);
+    let r = &c.routes["fraud"];
+    assert_eq!(r.model, "harbourline-fraud");
+    assert_eq!(r.missing_features, MissingPolicy::RouteAsMissing);
+    assert_eq!(r.unknown_features, UnknownFeaturePolicy::Reject);
+    assert_eq!(r.output.target_base_rate, None);
+}
+
+#[test]
+fn file_then_env_then_flags() {
+    let text = format!("[limits]\nmax_batch_rows = 10\ndefault_deadline_ms = 50\n{MINIMAL}");
+    let c = load(
+        &text,
+        &[
+            ("PROBITY_LIMITS_MAX_BATCH_ROWS", "20"),
+            ("PROBITY_LOGGING_FORMAT", "json"),
+            ("PROBITY_CONFIG", "x"),
+        ],
+        &[("limits.max_batch_rows", "30")],
+    )
+    .unwrap();
+    assert_eq!(c.limits.max_batch_rows, 30, "flag wins over env and file");
+    assert_eq!(
+        c.limits.default_deadline,
+        Duration::from_millis(50),
+        "file wins over default"
+    );
+    assert_eq!(c.logging.format, LogFormat::Json, "env wins over default");
+}
+
+#[test]
+fn errors_name_the_key() {
+    let cases: &[(&str, &str)] = &[
+        (
+            "[routes.fraud]\nmodel = \"m\"\ntarget_base_rate = 1.5\n",
+            "routes.fraud.target_base_rate: must be in (0, 1), got 1.5",
+        ),
+        (
+            "[routes.fraud]\ntarget_base_rate = 0.5\n",
+            "routes.fraud.model: is required",
+        ),
+        (
+            "[limits]\nmax_batch_rows = 0\n[routes.a]\nmodel = \"m\"\n",
+            "limits.max_batch_rows: must be in [1, 1000000], got 0",
+        ),
+        (
+            "[limits]\nmax_batch_row = 5\n[routes.a]\nmodel = \"m\"\n",
+            "limits.max_batch_row: unknown field `max_batch_row`",
+        ),
+        (
+            "[server]\ngrpc_listen = \"nowhere\"\n[routes.a]\nmodel = \"m\"\n",
+            "server.grpc_listen: must be HOST:PORT",
+        ),
+        (
+            "[routes.a]\nmodel = \"m\"\ndecision = { threshold = 1.2 }\n",
+            "routes.a.decision: threshold must be in [0, 1]",
+        ),
+        (
+            "[routes.a]\nmodel = \"m\"\ndecision = { threshold = 0.2, false_positive = 1.0 }\n",
+            "routes.a.decision: give exactly one",
+        ),
+        (
+            "[routes.a]\nmodel = \"m\"\nmissing_features = \"skip\"\n",
+            "routes.a.missing_features: must be",
+        ),
+        (
+            "[logging]\nformat = \"xml\"\n[routes.a]\nmodel = \"m\"\n",
+            "logging.format: must be `text` or `json`",
+        ),
+        (
+            "[limits]\nmax_batch_rows = \"many\"\n[routes.a]\nmodel = \"m\"\n",
+            "limits.max_batch_rows: invalid type",
+        ),
+        ("", "routes: at least one route is needed"),
+    ];
+    for (text, expected) in cases {
+        let err = load(text, &[], &[]).unwrap_err().to_string();
+        assert!(
+            err.starts_with(expected),
+            "config {text:?}\n  expected: {expected}\n  actual:   {err}"
+        );
+    }
+}
+
+#[test]
+fn env_errors_name_the_key_too() {
+    let err = load(
+        MINIMAL,
+        &[("PROBITY_LIMITS_MAX_CONCURRENT_REQUESTS", "0")],
+        &[],
+    )
+    .unwrap_err();
+    assert!(
+        err.to_string()
+            .starts_with("limits.max_concurrent_requests: must be in [1,"),
+        "{err}"
+    );
+}
+
+#[test]
+fn decisions_of_each_form() {
+    let text = "[routes.a]\nmodel = \"m\"\ndecision = { false_positive = 1.0, false_negative = 20.0 }\n\
+                [routes.b]\nmodel = \"m\"\ndecision = { edges = [0.1, 0.5], labels = [\"approve\", \"review\", \"decline\"] }\n";
+    let c = load(text, &[], &[]).unwrap();
+    assert_eq!(
+        c.routes["a"].output.decision,
+        Some(DecisionRule::Costs {
+            false_positive: 1.0,
+            false_negative: 20.0
+        })
+    );
+    assert!(matches!(
+        c.routes["b"].output.decision,
+        Some(DecisionRule::Bands { .. })
+    ));
+}
+
+#[test]
+fn overrides_parse() {
+    assert_eq!(
+        parse_override("a.b=1").unwrap(),
+        ("a.b".to_string(), "1".to_string())
+    );
+    assert!(parse_override("novalue").is_err());
+}

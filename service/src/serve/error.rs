@@ -1,0 +1,74 @@
+//! What can go wrong while serving a request, in domain terms. [`crate::serve::status`] turns each case into a
+//! gRPC status; nothing else does.
+
+use probity_models::EvalError;
+
+/// Why a request was not answered.
+#[derive(Debug, thiserror::Error)]
+pub enum ServeError {
+    /// A request field is malformed, out of range or breaks the route's policy. `field` is a path into the request
+    /// such as `rows[3].named.values["amount"]`.
+    #[error("{field}: {message}")]
+    InvalidField {
+        /// Path of the offending field.
+        field: String,
+        /// What is wrong with it.
+        message: String,
+    },
+    /// The request names a route the configuration does not have.
+    #[error("route `{route}` is not configured (configured: {known})")]
+    RouteNotFound {
+        /// The route asked for.
+        route: String,
+        /// The configured route names, comma-separated.
+        known: String,
+    },
+    /// The route exists but the model it serves is not loaded.
+    #[error("route `{route}` is not ready: model `{model}` is not loaded")]
+    RouteNotReady {
+        /// The route asked for.
+        route: String,
+        /// The model it serves.
+        model: String,
+    },
+    /// No loaded model has this name.
+    #[error("model `{model}` is not loaded")]
+    ModelNotFound {
+        /// The model asked for.
+        model: String,
+    },
+    /// The engine refused a row; `field` names the row (`row` or `rows[i]`).
+    #[error("{field}: {error}")]
+    Eval {
+        /// Path of the row in the request.
+        field: String,
+        /// The engine's error.
+        error: EvalError,
+    },
+    /// The deadline passed before all rows were scored.
+    #[error("deadline exceeded after {rows_done} of {rows} rows")]
+    DeadlineExceeded {
+        /// Rows scored before the deadline.
+        rows_done: usize,
+        /// Rows asked for.
+        rows: usize,
+    },
+    /// The model directory could not be listed during a reload.
+    #[error("cannot read the model directory {dir}: {error}")]
+    ModelDirectory {
+        /// The directory.
+        dir: String,
+        /// The I/O error text.
+        error: String,
+    },
+}
+
+impl ServeError {
+    /// An [`ServeError::InvalidField`].
+    pub fn invalid(field: impl Into<String>, message: impl Into<String>) -> Self {
+        ServeError::InvalidField {
+            field: field.into(),
+            message: message.into(),
+        }
+    }
+}

@@ -1,0 +1,270 @@
+//! The gRPC handlers: take the request apart, call the core, record the call, hand back the answer or the status.
+
+use std::pin::Pin;
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+use tokio_stream::Stream;
+use tonic::{Request, Response, Status, Streaming};
+
+use crate::serve::conversions::{feature_infos, model_info, route_info, row_error, ModelTarget};
+use crate::serve::error::ServeError;
+use crate::serve::metrics;
+use crate::serve::proto as pb;
+use crate::serve::scoring::Scorer;
+use crate::serve::server::Reloader;
+
+/// Responses queued per stream before the reader waits for the client to read.
+const STREAM_BUFFER: usize = 64;
+
+/// Records a finished call and turns the domain result into the gRPC one.
+fn finish<T>(
+    method: &'static str,
+    route: &str,
+    started: Instant,
+    result: Result<T, ServeError>,
+) -> Result<Response<T>, Status> {
+    let result = result.map_err(Status::from);
+    let code = match &result {
+        Ok(_) => tonic::Code::Ok,
+        Err(status) => status.code(),
+    };
+    metrics::request(method, route, code, started.elapsed().as_secs_f64());
+    result.map(Response::new)
+}
+
+/// The deadline of a call: the caller's `grpc-timeout` if it sent one, capped by the configured default.
+fn deadline_of<T>(request: &Request<T>, default: Duration) -> Instant {
+    let asked = request
+        .metadata()
+        .get("grpc-timeout")
+        .and_then(|v| v.to_str().ok())
+        .and_then(parse_grpc_timeout);
+    Instant::now() + asked.map_or(default, |a| a.min(default))
+}
+
+/// `grpc-timeout` per the gRPC over HTTP/2 protocol document: up to 8 digits and a unit (H, M, S, m, u, n).
+fn parse_grpc_timeout(text: &str) -> Option<Duration> {
+    if text.len() < 2 || text.len() > 9 {
+        return None;
+    }
+    let (digits, unit) = text.split_at(text.len() - 1);
+    let n: u64 = digits.parse().ok()?;
+    Some(match unit {
+        "H" => Duration::from_secs(n.saturating_mul(3600)),
+        "M" => Duration::from_secs(n.saturating_mul(60)),
+        "S" => Duration::from_secs(n),
+        "m" => Duration::from_millis(n),
+        "u" => Duration::from_micros(n),
+        "n" => Duration::from_nanos(n),
+        _ => return None,
+    })
+}
+
+/// The `probity.v1.Scoring` service.
+pub struct ScoringApi {
+    scorer: Arc<Scorer>,
+    default_deadline: Duration,
+}
+
+impl ScoringApi {
+    /// A scoring service over `scorer`.
+    pub fn new(scorer: Arc<Scorer>, default_deadline: Duration) -> ScoringApi {
+        ScoringApi {
+            scorer,
+            default_deadline,
+        }
+    }
+}
+
+#[tonic::async_trait]
+impl pb::scoring_server::Scoring for ScoringApi {
+    async fn score(
+        &self,
+        request: Request<pb::ScoreRequest>,
+    ) -> Result<Response<pb::ScoreResponse>, Status> {
+        let started = Instant::now();
+        let route = self.scorer.route_label(&request.get_ref().route);
+        let result = self.scorer.score(request.into_inner());
+        finish("Score", &route, started, result)
+    }
+
+    async fn score_batch(
+        &self,
+        request: Request<pb::ScoreBatchRequest>,
+    ) -> Result<Response<pb::ScoreBatchResponse>, Status> {
+        let started = Instant::now();
+        let deadline = deadline_of(&request, self.default_deadline);
+        let route = self.scorer.route_label(&request.get_ref().route);
+        let result = self.scorer.score_batch(request.into_inner(), deadline);
+        finish("ScoreBatch", &route, started, result)
+    }
+
+    type ScoreStreamStream =
+        Pin<Box<dyn Stream<Item = Result<pb::ScoreStreamResponse, Status>> + Send>>;
+
+    async fn score_stream(
+        &self,
+        request: Request<Streaming<pb::ScoreRequest>>,
+    ) -> Result<Response<Self::ScoreStreamStream>, Status> {
+        let mut inbound = request.into_inner();
+        let (tx, rx) = tokio::sync::mpsc::channel(STREAM_BUFFER);
+        let scorer = Arc::clone(&self.scorer);
+        tokio::spawn(async move {
+            let mut sequence = 0u64;
+            loop {
+                let message = match inbound.message().await {
+                    Ok(Some(message)) => message,
+                    Ok(None) => break,
+                    Err(status) => {
+                        // A frame we could not decode (or a reset): end the stream with that status.
+                        let _ = tx.send(Err(status)).await;
+                        break;
+                    }
+                };
+                let started = Instant::now();
+                let route = scorer.route_label(&message.route);
+                let outcome = match scorer.score(message) {
+                    Ok(response) => {
+                        metrics::request(
+                            "ScoreStream",
+                            &route,
+                            tonic::Code::Ok,
+                            started.elapsed().as_secs_f64(),
+                        );
+                        pb::score_stream_response::Outcome::Result(response)
+                    }
+                    Err(error) => {
+                        let status = Status::from(error);
+                        metrics::request(
+                            "ScoreStream",
+                            &route,
+                            status.code(),
+                            started.elapsed().as_secs_f64(),
+                        );
+                        pb::score_stream_response::Outcome::Error(row_error(&status))
+                    }
+                };
+                let answer = pb::ScoreStreamResponse {
+                    sequence,
+                    outcome: Some(outcome),
+                };
+                if tx.send(Ok(answer)).await.is_err() {
+                    break; // the client went away
+                }
+                sequence += 1;
+            }
+        });
+        Ok(Response::new(Box::pin(
+            tokio_stream::wrappers::ReceiverStream::new(rx),
+        )))
+    }
+}
+
+/// The `probity.v1.Models` service.
+pub struct ModelsApi {
+    scorer: Arc<Scorer>,
+    reloader: Arc<Reloader>,
+}
+
+impl ModelsApi {
+    /// A model management service.
+    pub fn new(scorer: Arc<Scorer>, reloader: Arc<Reloader>) -> ModelsApi {
+        ModelsApi { scorer, reloader }
+    }
+}
+
+#[tonic::async_trait]
+impl pb::models_server::Models for ModelsApi {
+    async fn list_routes(
+        &self,
+        _request: Request<pb::ListRoutesRequest>,
+    ) -> Result<Response<pb::ListRoutesResponse>, Status> {
+        let started = Instant::now();
+        let snapshot = self.scorer.registry().snapshot();
+        let routes = self
+            .scorer
+            .routes()
+            .values()
+            .map(|r| route_info(r, snapshot.models.get(&r.model).map(|m| m.as_ref())))
+            .collect();
+        let models = snapshot.models.values().map(|m| model_info(m)).collect();
+        let problems = snapshot
+            .problems
+            .iter()
+            .map(pb::FileProblem::from)
+            .collect();
+        finish(
+            "ListRoutes",
+            "",
+            started,
+            Ok(pb::ListRoutesResponse {
+                routes,
+                models,
+                problems,
+            }),
+        )
+    }
+
+    async fn describe_model(
+        &self,
+        request: Request<pb::DescribeModelRequest>,
+    ) -> Result<Response<pb::DescribeModelResponse>, Status> {
+        let started = Instant::now();
+        let result = ModelTarget::try_from(request.into_inner()).and_then(|target| {
+            let loaded = match target {
+                ModelTarget::Route(route) => self.scorer.resolve(&route)?.1,
+                ModelTarget::Model(model) => self
+                    .scorer
+                    .registry()
+                    .snapshot()
+                    .models
+                    .get(&model)
+                    .cloned()
+                    .ok_or(ServeError::ModelNotFound {
+                        model: model.chars().take(128).collect(),
+                    })?,
+            };
+            let features = feature_infos(loaded.model.schema());
+            Ok(pb::DescribeModelResponse {
+                model: Some(model_info(&loaded)),
+                features,
+            })
+        });
+        finish("DescribeModel", "", started, result)
+    }
+
+    async fn reload(
+        &self,
+        _request: Request<pb::ReloadRequest>,
+    ) -> Result<Response<pb::ReloadResponse>, Status> {
+        let started = Instant::now();
+        let result = self
+            .reloader
+            .reload("rpc")
+            .await
+            .map(|files| pb::ReloadResponse {
+                files: files.into_iter().map(pb::FileReload::from).collect(),
+            });
+        finish("Reload", "", started, result)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn grpc_timeout_units() {
+        // Units from the gRPC over HTTP/2 protocol document (grpc/grpc, doc/PROTOCOL-HTTP2.md).
+        assert_eq!(parse_grpc_timeout("1H"), Some(Duration::from_secs(3600)));
+        assert_eq!(parse_grpc_timeout("250m"), Some(Duration::from_millis(250)));
+        assert_eq!(
+            parse_grpc_timeout("99999999n"),
+            Some(Duration::from_nanos(99_999_999))
+        );
+        assert_eq!(parse_grpc_timeout("123456789S"), None, "more than 8 digits");
+        assert_eq!(parse_grpc_timeout("5x"), None);
+        assert_eq!(parse_grpc_timeout("S"), None);
+    }
+}

@@ -1,0 +1,236 @@
+//! Monitoring: metric names, the recorder, and the HTTP endpoint with `/metrics` (Prometheus text exposition),
+//! `/livez` and `/readyz`.
+//!
+//! Names follow the Prometheus conventions (prometheus.io, "Metric and label naming"): a `probity_` prefix, base
+//! units (seconds), `_total` on counters, `_info` on a constant-1 gauge that carries labels. The recorder is
+//! process-wide (the `metrics` facade has one global recorder), so several servers in one process, as in the
+//! tests, share it.
+
+use std::collections::BTreeMap;
+use std::sync::{Arc, OnceLock};
+
+use axum::http::{header, StatusCode};
+use axum::response::IntoResponse;
+use axum::routing::get;
+use metrics_exporter_prometheus::{Matcher, PrometheusBuilder, PrometheusHandle};
+
+use crate::serve::registry::LoadedModel;
+
+/// Calls by method, route and gRPC status code; for `ScoreStream`, one per streamed message.
+pub const REQUESTS: &str = "probity_grpc_requests_total";
+/// Call latency by method, route and code, in seconds.
+pub const REQUEST_DURATION: &str = "probity_grpc_request_duration_seconds";
+/// Rows scored by route, model and version.
+pub const PREDICTIONS: &str = "probity_predictions_total";
+/// Distribution of the returned probability by route, model and version.
+pub const PROBABILITY: &str = "probity_prediction_probability";
+/// Distribution of the adjusted log-odds by route, model and version.
+pub const LOG_ODDS: &str = "probity_prediction_log_odds";
+/// Warnings in responses, by route and kind.
+pub const WARNINGS: &str = "probity_prediction_warnings_total";
+/// Model versions loaded, by model and version.
+pub const MODEL_LOADS: &str = "probity_model_loads_total";
+/// Model files that failed to load, by file.
+pub const MODEL_LOAD_FAILURES: &str = "probity_model_load_failures_total";
+/// 1 for each model version serving, 0 for one that was replaced or removed.
+pub const MODEL_INFO: &str = "probity_model_info";
+/// 1 when the route's model is loaded, else 0.
+pub const ROUTE_READY: &str = "probity_route_ready";
+/// Constant 1 with the build's version.
+pub const BUILD_INFO: &str = "probity_build_info";
+
+/// Latency buckets in seconds: scoring is expected well under a millisecond, batches and queueing above.
+const LATENCY_BUCKETS: [f64; 14] = [
+    0.000_05, 0.000_1, 0.000_25, 0.000_5, 0.001, 0.002_5, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5,
+    1.0,
+];
+/// Probability buckets, finer near 0 where fraud and default rates live.
+const PROBABILITY_BUCKETS: [f64; 14] = [
+    0.001, 0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.3, 0.4, 0.5, 0.7, 0.9, 1.0,
+];
+/// Log-odds buckets, one per unit from -10 to 10.
+const LOG_ODDS_BUCKETS: [f64; 21] = [
+    -10.0, -9.0, -8.0, -7.0, -6.0, -5.0, -4.0, -3.0, -2.0, -1.0, 0.0, 1.0, 2.0, 3.0, 4.0, 5.0, 6.0,
+    7.0, 8.0, 9.0, 10.0,
+];
+
+static HANDLE: OnceLock<PrometheusHandle> = OnceLock::new();
+
+/// Installs the process-wide recorder on first use and returns its handle.
+pub fn install() -> Result<PrometheusHandle, String> {
+    if let Some(handle) = HANDLE.get() {
+        return Ok(handle.clone());
+    }
+    let builder = PrometheusBuilder::new()
+        .set_buckets_for_metric(Matcher::Full(REQUEST_DURATION.into()), &LATENCY_BUCKETS)
+        .and_then(|b| {
+            b.set_buckets_for_metric(Matcher::Full(PROBABILITY.into()), &PROBABILITY_BUCKETS)
+        })
+        .and_then(|b| b.set_buckets_for_metric(Matcher::Full(LOG_ODDS.into()), &LOG_ODDS_BUCKETS))
+        .map_err(|e| e.to_string())?;
+    let recorder = builder.build_recorder();
+    let handle = recorder.handle();
+    // Another thread may have won the race; its recorder is the one in place, so use its handle.
+    if metrics::set_global_recorder(recorder).is_err() {
+        return HANDLE
+            .get()
+            .cloned()
+            .ok_or_else(|| "another metrics recorder is installed".to_string());
+    }
+    let handle = HANDLE.get_or_init(|| handle).clone();
+    describe();
+    metrics::gauge!(BUILD_INFO, "version" => env!("CARGO_PKG_VERSION")).set(1.0);
+    Ok(handle)
+}
+
+fn describe() {
+    metrics::describe_counter!(
+        REQUESTS,
+        "gRPC calls by method, route and status code (ScoreStream: per message)."
+    );
+    metrics::describe_histogram!(
+        REQUEST_DURATION,
+        metrics::Unit::Seconds,
+        "gRPC call latency."
+    );
+    metrics::describe_counter!(PREDICTIONS, "Rows scored.");
+    metrics::describe_histogram!(PROBABILITY, "Returned probability of the positive class.");
+    metrics::describe_histogram!(
+        LOG_ODDS,
+        "Adjusted (calibrated, base-rate-corrected) log-odds."
+    );
+    metrics::describe_counter!(WARNINGS, "Warnings returned with scored rows.");
+    metrics::describe_counter!(
+        MODEL_LOADS,
+        "Model versions loaded from the model directory."
+    );
+    metrics::describe_counter!(MODEL_LOAD_FAILURES, "Model files that failed to load.");
+    metrics::describe_gauge!(
+        MODEL_INFO,
+        "1 for each model version serving, 0 once replaced."
+    );
+    metrics::describe_gauge!(ROUTE_READY, "1 when the route's model is loaded.");
+    metrics::describe_gauge!(BUILD_INFO, "Constant 1, labelled with the build version.");
+}
+
+/// Records one finished call.
+pub fn request(method: &'static str, route: &str, code: tonic::Code, seconds: f64) {
+    let code = code_name(code);
+    metrics::counter!(REQUESTS, "method" => method, "route" => route.to_string(), "code" => code)
+        .increment(1);
+    metrics::histogram!(REQUEST_DURATION, "method" => method, "route" => route.to_string(), "code" => code)
+        .record(seconds);
+}
+
+/// Records one scored row.
+pub fn prediction(route: &str, model: &str, version: &str, probability: f64, log_odds: f64) {
+    let labels = [
+        ("route", route.to_string()),
+        ("model", model.to_string()),
+        ("version", version.to_string()),
+    ];
+    metrics::counter!(PREDICTIONS, &labels).increment(1);
+    metrics::histogram!(PROBABILITY, &labels).record(probability);
+    metrics::histogram!(LOG_ODDS, &labels).record(log_odds);
+}
+
+/// Records one warning returned with a row.
+pub fn warning(route: &str, kind: &'static str) {
+    metrics::counter!(WARNINGS, "route" => route.to_string(), "kind" => kind).increment(1);
+}
+
+/// Records a model version loaded.
+pub fn model_loaded(model: &str, version: &str) {
+    metrics::counter!(MODEL_LOADS, "model" => model.to_string(), "version" => version.to_string())
+        .increment(1);
+}
+
+/// Records a model file that failed to load.
+pub fn model_load_failed(file: &str) {
+    metrics::counter!(MODEL_LOAD_FAILURES, "file" => file.to_string()).increment(1);
+}
+
+/// Updates the serving-model gauges after a snapshot swap.
+pub fn models_published(
+    old: &BTreeMap<String, Arc<LoadedModel>>,
+    new: &BTreeMap<String, Arc<LoadedModel>>,
+) {
+    let info = |m: &LoadedModel, v: f64| {
+        metrics::gauge!(MODEL_INFO, "model" => m.model.name().to_string(),
+            "version" => m.model.version().to_string(), "file" => m.file.clone())
+        .set(v);
+    };
+    for m in old.values() {
+        info(m, 0.0);
+    }
+    for m in new.values() {
+        info(m, 1.0);
+    }
+}
+
+/// Sets a route's readiness gauge.
+pub fn route_ready(route: &str, ready: bool) {
+    metrics::gauge!(ROUTE_READY, "route" => route.to_string()).set(if ready { 1.0 } else { 0.0 });
+}
+
+/// The canonical upper-case name of a gRPC code, as in the gRPC status code documentation.
+pub fn code_name(code: tonic::Code) -> &'static str {
+    match code {
+        tonic::Code::Ok => "OK",
+        tonic::Code::Cancelled => "CANCELLED",
+        tonic::Code::Unknown => "UNKNOWN",
+        tonic::Code::InvalidArgument => "INVALID_ARGUMENT",
+        tonic::Code::DeadlineExceeded => "DEADLINE_EXCEEDED",
+        tonic::Code::NotFound => "NOT_FOUND",
+        tonic::Code::AlreadyExists => "ALREADY_EXISTS",
+        tonic::Code::PermissionDenied => "PERMISSION_DENIED",
+        tonic::Code::ResourceExhausted => "RESOURCE_EXHAUSTED",
+        tonic::Code::FailedPrecondition => "FAILED_PRECONDITION",
+        tonic::Code::Aborted => "ABORTED",
+        tonic::Code::OutOfRange => "OUT_OF_RANGE",
+        tonic::Code::Unimplemented => "UNIMPLEMENTED",
+        tonic::Code::Internal => "INTERNAL",
+        tonic::Code::Unavailable => "UNAVAILABLE",
+        tonic::Code::DataLoss => "DATA_LOSS",
+        tonic::Code::Unauthenticated => "UNAUTHENTICATED",
+    }
+}
+
+/// Readiness as the HTTP endpoint reports it: the routes that are not ready (empty when all are).
+pub type ReadinessFn = Arc<dyn Fn() -> Vec<String> + Send + Sync>;
+
+/// The monitoring HTTP app: `/metrics`, `/livez`, `/readyz`.
+pub fn http_app(handle: PrometheusHandle, not_ready: ReadinessFn) -> axum::Router {
+    axum::Router::new()
+        .route(
+            "/metrics",
+            get(move || {
+                let handle = handle.clone();
+                async move {
+                    handle.run_upkeep();
+                    (
+                        [(
+                            header::CONTENT_TYPE,
+                            "text/plain; version=0.0.4; charset=utf-8",
+                        )],
+                        handle.render(),
+                    )
+                }
+            }),
+        )
+        .route("/livez", get(|| async { "ok\n" }))
+        .route(
+            "/readyz",
+            get(move || {
+                let not_ready = not_ready();
+                async move {
+                    if not_ready.is_empty() {
+                        (StatusCode::OK, "ready\n".to_string()).into_response()
+                    } else {
+                        let body = format!("not ready: {}\n", not_ready.join(", "));
+                        (StatusCode::SERVICE_UNAVAILABLE, body).into_response()
+                    }
+                }
+            }),
+        )
+}

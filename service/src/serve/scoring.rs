@@ -1,0 +1,234 @@
+//! The scoring core behind the gRPC handlers: resolve the route, take one snapshot of the model, convert the rows,
+//! score them, record the prediction metrics.
+//!
+//! Everything here is synchronous; a batch checks its deadline between chunks of rows, since a running
+//! computation cannot be interrupted from outside.
+
+use std::collections::BTreeMap;
+use std::sync::Arc;
+use std::time::Instant;
+
+use probity_models::EvalError;
+
+use crate::serve::config::{Limits, Route};
+use crate::serve::conversions::{prepare_row, score_response};
+use crate::serve::error::ServeError;
+use crate::serve::metrics;
+use crate::serve::proto as pb;
+use crate::serve::registry::{LoadedModel, Registry};
+
+/// Rows scored between two deadline checks in a batch.
+const CHUNK_ROWS: usize = 256;
+
+/// A row converted for the engine.
+#[derive(Debug)]
+pub struct PreparedRow {
+    /// The caller's id, or a server-made UUID version 7.
+    pub prediction_id: String,
+    /// The dense row in the model's feature order.
+    pub values: Vec<f64>,
+    /// What the caller should know about the row.
+    pub warnings: Vec<RowWarning>,
+}
+
+/// A warning attached to a scored row.
+#[derive(Debug, Clone, PartialEq)]
+pub struct RowWarning {
+    /// What it is about.
+    pub kind: WarningKind,
+    /// The feature concerned.
+    pub feature: String,
+    /// A plain description.
+    pub message: String,
+}
+
+/// The kinds of row warning.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum WarningKind {
+    /// No value; routed as missing.
+    MissingFeature,
+    /// A NaN or infinite number; routed as missing.
+    NonFiniteValue,
+    /// A category the model does not know; routed as unknown.
+    UnknownCategory,
+    /// A named feature the model does not have; ignored.
+    IgnoredFeature,
+}
+
+impl WarningKind {
+    /// The metric label value.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            WarningKind::MissingFeature => "missing_feature",
+            WarningKind::NonFiniteValue => "non_finite_value",
+            WarningKind::UnknownCategory => "unknown_category",
+            WarningKind::IgnoredFeature => "ignored_feature",
+        }
+    }
+}
+
+/// Scores requests against the registry's current models.
+pub struct Scorer {
+    registry: Arc<Registry>,
+    routes: BTreeMap<String, Route>,
+    limits: Limits,
+}
+
+impl Scorer {
+    /// A scorer over `registry` for the configured routes.
+    pub fn new(registry: Arc<Registry>, routes: BTreeMap<String, Route>, limits: Limits) -> Scorer {
+        Scorer {
+            registry,
+            routes,
+            limits,
+        }
+    }
+
+    /// The configured routes.
+    pub fn routes(&self) -> &BTreeMap<String, Route> {
+        &self.routes
+    }
+
+    /// The registry.
+    pub fn registry(&self) -> &Arc<Registry> {
+        &self.registry
+    }
+
+    /// The configured route name to use as a metric label: unknown names collapse into one value, so a client
+    /// cannot grow the label set.
+    pub fn route_label(&self, route: &str) -> String {
+        if self.routes.contains_key(route) {
+            route.to_string()
+        } else {
+            "(unknown)".to_string()
+        }
+    }
+
+    /// The route and the model serving it now.
+    pub fn resolve(&self, route: &str) -> Result<(&Route, Arc<LoadedModel>), ServeError> {
+        if route.is_empty() {
+            return Err(ServeError::invalid("route", "is empty"));
+        }
+        let Some(config) = self.routes.get(route) else {
+            let known = self.routes.keys().cloned().collect::<Vec<_>>().join(", ");
+            return Err(ServeError::RouteNotFound {
+                route: route.chars().take(128).collect(),
+                known,
+            });
+        };
+        let snapshot = self.registry.snapshot();
+        match snapshot.models.get(&config.model) {
+            Some(model) => Ok((config, Arc::clone(model))),
+            None => Err(ServeError::RouteNotReady {
+                route: route.to_string(),
+                model: config.model.clone(),
+            }),
+        }
+    }
+
+    /// Scores one row.
+    pub fn score(&self, request: pb::ScoreRequest) -> Result<pb::ScoreResponse, ServeError> {
+        let pb::ScoreRequest { route, row } = request;
+        let (config, loaded) = self.resolve(&route)?;
+        let row = row.ok_or_else(|| ServeError::invalid("row", "is required"))?;
+        let prepared = prepare_row(row, "row", loaded.model.schema(), config)?;
+        let scored = loaded
+            .model
+            .score(&prepared.values, &config.output)
+            .map_err(|error| ServeError::Eval {
+                field: "row".into(),
+                error,
+            })?;
+        Ok(self.respond(config, &loaded, prepared, scored))
+    }
+
+    /// Scores many rows with one model version; fails as a whole on the first bad row, naming it.
+    pub fn score_batch(
+        &self,
+        request: pb::ScoreBatchRequest,
+        deadline: Instant,
+    ) -> Result<pb::ScoreBatchResponse, ServeError> {
+        let pb::ScoreBatchRequest { route, rows } = request;
+        let (config, loaded) = self.resolve(&route)?;
+        if rows.is_empty() {
+            return Err(ServeError::invalid(
+                "rows",
+                "is empty; send at least one row",
+            ));
+        }
+        if rows.len() > self.limits.max_batch_rows {
+            return Err(ServeError::invalid(
+                "rows",
+                format!(
+                    "has {} rows, the limit is {} (limits.max_batch_rows)",
+                    rows.len(),
+                    self.limits.max_batch_rows
+                ),
+            ));
+        }
+        let schema = loaded.model.schema();
+        let total = rows.len();
+        let prepared = rows
+            .into_iter()
+            .enumerate()
+            .map(|(i, row)| prepare_row(row, &format!("rows[{i}]"), schema, config))
+            .collect::<Result<Vec<_>, _>>()?;
+        let mut flat = Vec::with_capacity(total * schema.len());
+        for row in &prepared {
+            flat.extend_from_slice(&row.values);
+        }
+        let mut margins = vec![0.0; total];
+        let width = schema.len();
+        for start in (0..total).step_by(CHUNK_ROWS) {
+            if Instant::now() >= deadline {
+                return Err(ServeError::DeadlineExceeded {
+                    rows_done: start,
+                    rows: total,
+                });
+            }
+            let end = (start + CHUNK_ROWS).min(total);
+            loaded
+                .model
+                .margins(&flat[start * width..end * width], &mut margins[start..end])
+                .map_err(|error| match error {
+                    EvalError::InRow { row, error } => ServeError::Eval {
+                        field: format!("rows[{}]", start + row),
+                        error: *error,
+                    },
+                    other => ServeError::Eval {
+                        field: "rows".into(),
+                        error: other,
+                    },
+                })?;
+        }
+        let results = prepared
+            .into_iter()
+            .zip(margins)
+            .map(|(row, margin)| {
+                let scored = loaded.model.finish(margin, &config.output);
+                self.respond(config, &loaded, row, scored)
+            })
+            .collect();
+        Ok(pb::ScoreBatchResponse { results })
+    }
+
+    fn respond(
+        &self,
+        config: &Route,
+        loaded: &LoadedModel,
+        row: PreparedRow,
+        scored: probity_models::Scored,
+    ) -> pb::ScoreResponse {
+        metrics::prediction(
+            &config.name,
+            loaded.model.name(),
+            loaded.model.version(),
+            scored.probability,
+            scored.adjusted_log_odds,
+        );
+        for w in &row.warnings {
+            metrics::warning(&config.name, w.kind.as_str());
+        }
+        score_response(&config.name, loaded, row, scored)
+    }
+}

@@ -1,0 +1,381 @@
+//! Building and running the server: the one function, [`start`], that both `probity serve` and the tests use.
+//!
+//! Cross-cutting concerns are stacked once, read top to bottom: the per-call timeout (the caller's `grpc-timeout`
+//! or the configured default), then a process-wide concurrency limit (further calls wait for a slot within their
+//! deadline), then the services with their message size limits.
+
+use std::future::IntoFuture;
+use std::net::SocketAddr;
+use std::path::PathBuf;
+use std::sync::Arc;
+use std::time::Duration;
+
+use notify::Watcher;
+use tokio::net::TcpListener;
+use tokio::sync::watch;
+use tokio::task::JoinHandle;
+use tonic_health::server::HealthReporter;
+use tonic_health::ServingStatus;
+
+use crate::serve::config::Config;
+use crate::serve::error::ServeError;
+use crate::serve::grpc::{ModelsApi, ScoringApi};
+use crate::serve::metrics;
+use crate::serve::proto as pb;
+use crate::serve::registry::{FileReport, Outcome, Registry};
+use crate::serve::scoring::Scorer;
+
+/// Why the server did not start.
+#[derive(Debug, thiserror::Error)]
+pub enum StartError {
+    /// The metrics recorder could not be installed.
+    #[error("metrics: {0}")]
+    Metrics(String),
+    /// The model directory could not be read.
+    #[error("models.directory: {0}")]
+    ModelDirectory(ServeError),
+    /// A listener could not be bound.
+    #[error("{key}: cannot listen on {addr}: {source}")]
+    Bind {
+        /// The configuration key of the address.
+        key: &'static str,
+        /// The address.
+        addr: SocketAddr,
+        /// The error.
+        source: std::io::Error,
+    },
+    /// The reflection service could not be built.
+    #[error("reflection: {0}")]
+    Reflection(String),
+    /// The model directory could not be watched.
+    #[error("models.watch: cannot watch {dir}: {source}")]
+    Watch {
+        /// The directory.
+        dir: PathBuf,
+        /// The error.
+        source: notify::Error,
+    },
+}
+
+/// Reloads the registry and keeps health, readiness and route gauges in step with it.
+pub struct Reloader {
+    registry: Arc<Registry>,
+    routes: Vec<(String, String)>,
+    health: HealthReporter,
+}
+
+impl Reloader {
+    /// Scans the model directory (`trigger` says why, for the log) and updates health.
+    pub async fn reload(&self, trigger: &'static str) -> Result<Vec<FileReport>, ServeError> {
+        let result = self.registry.reload().await;
+        match &result {
+            Ok(report) => {
+                let count = |o: Outcome| report.iter().filter(|r| r.outcome == o).count();
+                tracing::info!(
+                    trigger,
+                    loaded = count(Outcome::Loaded),
+                    unchanged = count(Outcome::Unchanged),
+                    failed = count(Outcome::Failed),
+                    removed = count(Outcome::Removed),
+                    "model directory scanned"
+                );
+            }
+            Err(error) => tracing::warn!(trigger, %error, "model directory scan failed"),
+        }
+        self.refresh_health().await;
+        result
+    }
+
+    /// Routes whose model is not loaded.
+    pub fn not_ready(&self) -> Vec<String> {
+        let snapshot = self.registry.snapshot();
+        self.routes
+            .iter()
+            .filter(|(_, model)| !snapshot.models.contains_key(model))
+            .map(|(r, _)| r.clone())
+            .collect()
+    }
+
+    async fn refresh_health(&self) {
+        let not_ready = self.not_ready();
+        for (route, _) in &self.routes {
+            metrics::route_ready(route, !not_ready.contains(route));
+        }
+        let status = if not_ready.is_empty() {
+            ServingStatus::Serving
+        } else {
+            ServingStatus::NotServing
+        };
+        self.health.set_service_status("", status).await;
+        self.health
+            .set_service_status("probity.v1.Scoring", status)
+            .await;
+        self.health
+            .set_service_status("probity.v1.Models", ServingStatus::Serving)
+            .await;
+    }
+}
+
+/// A started server.
+pub struct RunningServer {
+    grpc_addr: SocketAddr,
+    metrics_addr: SocketAddr,
+    shutdown: watch::Sender<bool>,
+    grpc: JoinHandle<Result<(), tonic::transport::Error>>,
+    http: JoinHandle<std::io::Result<()>>,
+    background: Vec<JoinHandle<()>>,
+    watcher: Option<notify::RecommendedWatcher>,
+    grace: Duration,
+    reloader: Arc<Reloader>,
+}
+
+impl RunningServer {
+    /// The bound gRPC address (the real port when the configuration asked for port 0).
+    pub fn grpc_addr(&self) -> SocketAddr {
+        self.grpc_addr
+    }
+
+    /// The bound monitoring HTTP address.
+    pub fn metrics_addr(&self) -> SocketAddr {
+        self.metrics_addr
+    }
+
+    /// Reloads the model directory now, as the Reload call and SIGHUP do.
+    pub async fn reload(&self) -> Result<Vec<FileReport>, ServeError> {
+        self.reloader.reload("api").await
+    }
+
+    /// Stops accepting, lets in-flight calls finish within the grace period, then closes what is left.
+    pub async fn shutdown(self) {
+        let RunningServer {
+            shutdown,
+            mut grpc,
+            mut http,
+            background,
+            watcher,
+            grace,
+            ..
+        } = self;
+        drop(watcher);
+        for task in &background {
+            task.abort();
+        }
+        let _ = shutdown.send(true);
+        match tokio::time::timeout(grace, &mut grpc).await {
+            Ok(Ok(Ok(()))) => tracing::info!("gRPC server drained"),
+            Ok(Ok(Err(error))) => tracing::error!(%error, "gRPC server ended with an error"),
+            Ok(Err(join)) => tracing::error!(error = %join, "gRPC server task failed"),
+            Err(_) => {
+                tracing::warn!(
+                    grace_ms = grace.as_millis() as u64,
+                    "calls still open after the grace period; closing"
+                );
+                grpc.abort();
+            }
+        }
+        if tokio::time::timeout(Duration::from_secs(1), &mut http)
+            .await
+            .is_err()
+        {
+            http.abort();
+        }
+    }
+}
+
+/// Loads the models, binds both listeners and starts serving.
+pub async fn start(config: Config) -> Result<RunningServer, StartError> {
+    let Config {
+        grpc_listen,
+        metrics_listen,
+        reflection,
+        shutdown_grace,
+        model_dir,
+        watch: watch_dir,
+        watch_debounce,
+        limits,
+        logging: _,
+        routes,
+    } = config;
+    let handle = metrics::install().map_err(StartError::Metrics)?;
+    let registry = Arc::new(Registry::new(model_dir.clone()));
+    let (health, health_service) = tonic_health::server::health_reporter();
+    let reloader = Arc::new(Reloader {
+        registry: Arc::clone(&registry),
+        routes: routes
+            .values()
+            .map(|r| (r.name.clone(), r.model.clone()))
+            .collect(),
+        health,
+    });
+    reloader
+        .reload("start")
+        .await
+        .map_err(StartError::ModelDirectory)?;
+    for problem in &registry.snapshot().problems {
+        tracing::error!(file = %problem.file, error = %problem.error, "model file not loaded at start");
+    }
+    for route in reloader.not_ready() {
+        tracing::error!(%route, "route not ready at start: its model is not loaded");
+    }
+
+    let scorer = Arc::new(Scorer::new(Arc::clone(&registry), routes, limits));
+    let scoring = pb::scoring_server::ScoringServer::new(ScoringApi::new(
+        Arc::clone(&scorer),
+        limits.default_deadline,
+    ))
+    .max_decoding_message_size(limits.max_message_bytes)
+    .max_encoding_message_size(limits.max_message_bytes);
+    let models = pb::models_server::ModelsServer::new(ModelsApi::new(
+        Arc::clone(&scorer),
+        Arc::clone(&reloader),
+    ))
+    .max_decoding_message_size(limits.max_message_bytes)
+    .max_encoding_message_size(limits.max_message_bytes);
+    let (reflection_v1, reflection_v1alpha) = if reflection {
+        let builder = || {
+            tonic_reflection::server::Builder::configure()
+                .register_encoded_file_descriptor_set(pb::FILE_DESCRIPTOR_SET)
+                .register_encoded_file_descriptor_set(tonic_health::pb::FILE_DESCRIPTOR_SET)
+        };
+        let v1 = builder()
+            .build_v1()
+            .map_err(|e| StartError::Reflection(e.to_string()))?;
+        let v1alpha = builder()
+            .build_v1alpha()
+            .map_err(|e| StartError::Reflection(e.to_string()))?;
+        (Some(v1), Some(v1alpha))
+    } else {
+        (None, None)
+    };
+
+    let grpc_listener =
+        TcpListener::bind(grpc_listen)
+            .await
+            .map_err(|source| StartError::Bind {
+                key: "server.grpc_listen",
+                addr: grpc_listen,
+                source,
+            })?;
+    let grpc_addr = grpc_listener.local_addr().unwrap_or(grpc_listen);
+    let http_listener =
+        TcpListener::bind(metrics_listen)
+            .await
+            .map_err(|source| StartError::Bind {
+                key: "server.metrics_listen",
+                addr: metrics_listen,
+                source,
+            })?;
+    let metrics_addr = http_listener.local_addr().unwrap_or(metrics_listen);
+
+    let (shutdown, shutdown_rx) = watch::channel(false);
+    let router = tonic::transport::Server::builder()
+        .timeout(limits.default_deadline)
+        .layer(tower::limit::GlobalConcurrencyLimitLayer::new(
+            limits.max_concurrent_requests,
+        ))
+        .add_service(health_service)
+        .add_service(scoring)
+        .add_service(models)
+        .add_optional_service(reflection_v1)
+        .add_optional_service(reflection_v1alpha);
+    let incoming =
+        tonic::transport::server::TcpIncoming::from(grpc_listener).with_nodelay(Some(true));
+    let grpc =
+        tokio::spawn(router.serve_with_incoming_shutdown(incoming, stopped(shutdown_rx.clone())));
+
+    let ready = Arc::clone(&reloader);
+    let app = metrics::http_app(handle, Arc::new(move || ready.not_ready()));
+    let http = tokio::spawn(
+        axum::serve(http_listener, app)
+            .with_graceful_shutdown(stopped(shutdown_rx))
+            .into_future(),
+    );
+
+    let mut background = vec![hangup_task(Arc::clone(&reloader))];
+    let watcher = if watch_dir {
+        let (watcher, task) = watch_task(model_dir, watch_debounce, Arc::clone(&reloader))?;
+        background.push(task);
+        Some(watcher)
+    } else {
+        None
+    };
+    tracing::info!(%grpc_addr, %metrics_addr, "probity serving");
+    Ok(RunningServer {
+        grpc_addr,
+        metrics_addr,
+        shutdown,
+        grpc,
+        http,
+        background,
+        watcher,
+        grace: shutdown_grace,
+        reloader,
+    })
+}
+
+async fn stopped(mut rx: watch::Receiver<bool>) {
+    let _ = rx.wait_for(|stop| *stop).await;
+}
+
+/// Reloads on SIGHUP.
+fn hangup_task(reloader: Arc<Reloader>) -> JoinHandle<()> {
+    tokio::spawn(async move {
+        let mut hangup = match tokio::signal::unix::signal(tokio::signal::unix::SignalKind::hangup())
+        {
+            Ok(s) => s,
+            Err(error) => {
+                tracing::warn!(%error, "cannot listen for SIGHUP; reload by file watch or the Reload call");
+                return;
+            }
+        };
+        while hangup.recv().await.is_some() {
+            let _ = reloader.reload("sighup").await;
+        }
+    })
+}
+
+/// Watches the model directory; a burst of events becomes one reload after `debounce` of quiet.
+fn watch_task(
+    dir: PathBuf,
+    debounce: Duration,
+    reloader: Arc<Reloader>,
+) -> Result<(notify::RecommendedWatcher, JoinHandle<()>), StartError> {
+    let wake = Arc::new(tokio::sync::Notify::new());
+    let waker = Arc::clone(&wake);
+    let mut watcher =
+        notify::recommended_watcher(move |event: notify::Result<notify::Event>| match event {
+            // Reads (our own scans among them) must not trigger a scan; a write being closed must.
+            Ok(event) => match event.kind {
+                notify::EventKind::Access(notify::event::AccessKind::Close(
+                    notify::event::AccessMode::Write,
+                )) => waker.notify_one(),
+                notify::EventKind::Access(_) => {}
+                _ => waker.notify_one(),
+            },
+            Err(error) => tracing::warn!(%error, "model directory watch error"),
+        })
+        .map_err(|source| StartError::Watch {
+            dir: dir.clone(),
+            source,
+        })?;
+    watcher
+        .watch(&dir, notify::RecursiveMode::NonRecursive)
+        .map_err(|source| StartError::Watch {
+            dir: dir.clone(),
+            source,
+        })?;
+    let task = tokio::spawn(async move {
+        loop {
+            wake.notified().await;
+            // Let the burst settle: events during the sleep leave one stored wake-up, consumed here.
+            loop {
+                tokio::select! {
+                    _ = wake.notified() => continue,
+                    _ = tokio::time::sleep(debounce) => break,
+                }
+            }
+            let _ = reloader.reload("watch").await;
+        }
+    });
+    Ok((watcher, task))
+}

@@ -1,0 +1,106 @@
+//! The one mapping from [`ServeError`] to a gRPC [`Status`]. Every match is exhaustive with no wildcard arm, so a
+//! new error case breaks the build here until it is given a code. Details that would only help an attacker or
+//! confuse a caller (file system paths, I/O errors, engine invariants) are logged, and the caller gets a plain
+//! message.
+
+use probity_models::EvalError;
+use tonic::{Code, Status};
+
+use crate::serve::error::ServeError;
+
+impl From<ServeError> for Status {
+    fn from(error: ServeError) -> Status {
+        let code = code_of(&error);
+        let message = match &error {
+            ServeError::ModelDirectory { dir, error: io } => {
+                tracing::error!(%dir, error = %io, "model directory unreadable");
+                "the model directory cannot be read; the server log has the details".to_string()
+            }
+            ServeError::Eval { field, error: eval } if code == Code::Internal => {
+                tracing::error!(%field, error = %eval, "engine refused a row the service had checked");
+                format!("{field}: internal error while scoring")
+            }
+            ServeError::Eval { .. }
+            | ServeError::InvalidField { .. }
+            | ServeError::RouteNotFound { .. }
+            | ServeError::RouteNotReady { .. }
+            | ServeError::ModelNotFound { .. }
+            | ServeError::DeadlineExceeded { .. } => error.to_string(),
+        };
+        Status::new(code, message)
+    }
+}
+
+/// The gRPC code of a serving error.
+pub fn code_of(error: &ServeError) -> Code {
+    match error {
+        ServeError::InvalidField {
+            field: _,
+            message: _,
+        } => Code::InvalidArgument,
+        ServeError::RouteNotFound { route: _, known: _ } => Code::NotFound,
+        ServeError::RouteNotReady { route: _, model: _ } => Code::Unavailable,
+        ServeError::ModelNotFound { model: _ } => Code::NotFound,
+        ServeError::Eval { field: _, error } => eval_code(error),
+        ServeError::DeadlineExceeded {
+            rows_done: _,
+            rows: _,
+        } => Code::DeadlineExceeded,
+        ServeError::ModelDirectory { dir: _, error: _ } => Code::FailedPrecondition,
+    }
+}
+
+/// Engine errors: a value the model cannot handle is the caller's; a shape error means the service built a bad
+/// row, which is ours.
+fn eval_code(error: &EvalError) -> Code {
+    match error {
+        EvalError::MissingValue { feature: _ } => Code::InvalidArgument,
+        EvalError::UnknownCategory { feature: _ } => Code::InvalidArgument,
+        EvalError::InRow { row: _, error } => eval_code(error),
+        EvalError::RowLength {
+            expected: _,
+            got: _,
+        } => Code::Internal,
+        EvalError::BatchShape {
+            values: _,
+            out: _,
+            features: _,
+        } => Code::Internal,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn engine_value_errors_are_the_callers_and_shape_errors_ours() {
+        let missing = ServeError::Eval {
+            field: "rows[2]".into(),
+            error: EvalError::InRow {
+                row: 2,
+                error: Box::new(EvalError::MissingValue {
+                    feature: "amount".into(),
+                }),
+            },
+        };
+        let status = Status::from(missing);
+        assert_eq!(status.code(), Code::InvalidArgument);
+        assert!(status.message().contains("amount"), "{}", status.message());
+
+        let shape = ServeError::Eval {
+            field: "row".into(),
+            error: EvalError::RowLength {
+                expected: 3,
+                got: 2,
+            },
+        };
+        let status = Status::from(shape);
+        assert_eq!(status.code(), Code::Internal);
+        assert!(
+            !status.message().contains("3 features"),
+            "internal detail leaked: {}",
+            status.message()
+        );
+    }
+}
