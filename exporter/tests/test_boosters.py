@@ -113,3 +113,23 @@ def test_xgboost_dart_refused(cancer):
     b = xgb.train({"objective": "binary:logistic", "booster": "dart", "nthread": 1}, xgb.DMatrix(c["x"], c["y"]), 3)
     with pytest.raises(ExportError, match="dart"):
         probity_export.export(b, name="xgb", version="1", base_rate=0.3)
+
+
+def test_lightgbm_category_names(cancer):
+    """Integer codes named by the caller: code k is names[k]; a name never seen in training is still a category."""
+    c = cancer
+    b = _lgb(c, c["x_cat"], min_data_per_group=5, cat_smooth=1.0, max_cat_to_onehot=2)
+    names = ["low", "mid", "high", "top", "spare"]
+    doc = probity_export.export(b, name="lgb", version="1", feature_names=c["names"], y=c["y"][c["tr"]],
+                                category_names={c["names"][2]: names})
+    assert doc["features"][2]["categories"] == names
+    xt = c["x_cat"][c["te"]]
+    rows = []
+    for r in xt:
+        cells = {n: ("" if np.isnan(v) else repr(float(v))) for n, v in zip(c["names"], r)}
+        cells[c["names"][2]] = names[int(r[2])]
+        rows.append(evaluate.encode_row(doc, cells))
+    np.testing.assert_array_equal([evaluate.margin(doc, r) for r in rows], b.predict(xt, raw_score=True))
+    with pytest.raises(ExportError, match="category_names"):
+        probity_export.export(b, name="lgb", version="1", base_rate=0.3, feature_names=c["names"],
+                              category_names={c["names"][2]: ["low", "mid"]})

@@ -98,12 +98,14 @@ def export_lightgbm(
     calibration: dict | None = None,
     reference_distribution: dict | None = None,
     score_scale: dict | None = None,
+    category_names: dict[str, list[str]] | None = None,
 ) -> dict:
     """A LightGBM binary model (`Booster` or fitted `LGBMClassifier`) as a model document.
 
-    Categorical features must be integer-coded (LightGBM's own `categorical_feature`); their category names are
-    the integer codes as strings. `pandas` categorical input is refused, since the code-to-label map lives
-    outside the booster's trees.
+    Categorical features must be integer-coded (LightGBM's own `categorical_feature`). Their category names are
+    the integer codes as strings, unless `category_names` maps the feature's name to a list of names indexed by
+    code (code `k` is `names[k]`; every name becomes a category, seen in training or not). `pandas` categorical
+    input is refused, since its code-to-label map lives outside the booster's trees.
     """
     import lightgbm as lgb
 
@@ -140,6 +142,16 @@ def export_lightgbm(
         if (infos.get(fname) or {}).get("values"):
             cat_used.setdefault(i, set())
     codes = {i: _categories(infos.get(lib_names[i]), used) for i, used in cat_used.items()}
+    names = feature_names(feature_names_, lib_names, n)
+    labels = {i: [str(c) for c in cs] for i, cs in codes.items()}
+    for fname, given in (category_names or {}).items():
+        if fname not in names or names.index(fname) not in codes:
+            raise ExportError(f"category_names: {fname!r} is not a categorical feature of this model")
+        i = names.index(fname)
+        if codes[i] and codes[i][-1] >= len(given):
+            raise ExportError(f"category_names[{fname!r}]: the model uses code {codes[i][-1]}, only {len(given)} names")
+        codes[i] = list(range(len(given)))
+        labels[i] = [str(g) for g in given]
     index_of = {i: {c: k for k, c in enumerate(cs)} for i, cs in codes.items()}
 
     trees = []
@@ -165,11 +177,7 @@ def export_lightgbm(
             return ("split", "numeric", split, node["left_child"], node["right_child"])
 
         trees.append({"nodes": flatten_tree(tree["tree_structure"], visit)})
-    names = feature_names(feature_names_, lib_names, n)
-    features = [
-        categorical_feature(x, [str(c) for c in codes[i]]) if i in codes else numeric_feature(x)
-        for i, x in enumerate(names)
-    ]
+    features = [categorical_feature(x, labels[i]) if i in codes else numeric_feature(x) for i, x in enumerate(names)]
     meta = {"library": "lightgbm", "library_version": lgb.__version__, "objective": dump.get("objective", "")}
     meta.update(metadata or {})
     return build_document(
