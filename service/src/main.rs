@@ -17,15 +17,24 @@ struct Cli {
 
 #[derive(Debug, Subcommand)]
 enum Command {
+    /// Load and validate a model file, then print a summary of it.
+    Check(cli::check::CheckArgs),
+    /// Score every row of a CSV file with a model and write the results as CSV.
+    Score(cli::score::ScoreArgs),
     /// Write the demo scenario's invented card transactions (Harbourline Card Services) as CSV.
     GenerateDemoData(cli::demo_data::GenerateArgs),
+    /// Run the demo: generate transactions, score them with both demo models, show how well each does.
+    Demo(cli::demo::DemoArgs),
     /// Run the gRPC scoring service until SIGTERM or SIGINT.
     Serve(probity::serve::ServeArgs),
 }
 
 fn run() -> anyhow::Result<()> {
     match Cli::parse().command {
+        Command::Check(args) => cli::check::run(&args),
+        Command::Score(args) => cli::score::run(&args),
         Command::GenerateDemoData(args) => cli::demo_data::run(&args),
+        Command::Demo(args) => cli::demo::run(&args),
         Command::Serve(args) => Ok(probity::serve::run(&args)?),
     }
 }

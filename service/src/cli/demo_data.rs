@@ -64,7 +64,7 @@ pub struct GenerateArgs {
     pub with_true_probability: bool,
 }
 
-/// The seed used by `probity demo` and by default here.
+/// The default seed; the demo models in `service/demo/` were trained on data drawn from it.
 pub const DEFAULT_SEED: u64 = 20_240_917;
 
 /// Runs `probity generate-demo-data`.
@@ -295,6 +295,16 @@ pub fn write_csv<W: Write>(
     seed: u64,
     with_probability: bool,
 ) -> anyhow::Result<u64> {
+    let rows = usize::try_from(rows).context("row count too large")?;
+    write_transactions(out, Generator::new(seed)?.take(rows), with_probability)
+}
+
+/// Writes `transactions` as CSV, as [`write_csv`] does; returns the number of frauds written.
+pub fn write_transactions<W: Write>(
+    out: W,
+    transactions: impl Iterator<Item = Transaction>,
+    with_probability: bool,
+) -> anyhow::Result<u64> {
     let mut w = csv::Writer::from_writer(out);
     let mut header: Vec<&str> = COLUMNS.to_vec();
     if with_probability {
@@ -302,7 +312,7 @@ pub fn write_csv<W: Write>(
     }
     w.write_record(&header)?;
     let mut frauds = 0;
-    for t in Generator::new(seed)?.take(usize::try_from(rows).context("row count too large")?) {
+    for t in transactions {
         frauds += u64::from(t.fraud);
         let mut record = vec![
             t.id(),

@@ -1,0 +1,174 @@
+//! `probity check`: load and validate a model file, then print what it holds.
+
+use std::path::PathBuf;
+
+use probity_models::model::DistributionScale;
+use probity_models::{BodyKind, Calibration, FeatureKind, IsotonicInput, Model, OddsOf};
+use serde_json::{json, Value};
+
+use super::score::load_model;
+
+/// Arguments of `probity check`.
+#[derive(Debug, clap::Args)]
+pub struct CheckArgs {
+    /// The model file.
+    pub model_file: PathBuf,
+    /// Print the summary as one JSON object.
+    #[arg(long)]
+    pub json: bool,
+}
+
+/// Runs `probity check`.
+pub fn run(args: &CheckArgs) -> anyhow::Result<()> {
+    let model = load_model(&args.model_file)?;
+    let summary = summary_json(&model);
+    if args.json {
+        println!("{}", serde_json::to_string_pretty(&summary)?);
+    } else {
+        print!("{}", summary_text(&model));
+    }
+    Ok(())
+}
+
+/// The summary as JSON: the same facts as the text form.
+pub fn summary_json(model: &Model) -> Value {
+    let s = model.summary();
+    let body = match s.kind {
+        BodyKind::Ensemble => json!({
+            "kind": "ensemble", "trees": s.trees, "nodes": s.nodes, "leaves": s.leaves, "max_depth": s.max_depth,
+        }),
+        BodyKind::Linear => json!({"kind": "linear", "terms": s.terms}),
+    };
+    let features: Vec<Value> = model
+        .schema()
+        .features()
+        .iter()
+        .map(|f| match &f.kind {
+            FeatureKind::Numeric => json!({"name": f.name, "type": "numeric"}),
+            FeatureKind::Categorical { categories } => {
+                json!({"name": f.name, "type": "categorical", "categories": categories.len()})
+            }
+        })
+        .collect();
+    let calibration = model.calibration().map(|c| match c {
+        Calibration::Platt { a, b } => json!({"kind": "platt", "a": a, "b": b}),
+        Calibration::Temperature { t } => json!({"kind": "temperature", "t": t}),
+        Calibration::Beta { a, b, c } => json!({"kind": "beta", "a": a, "b": b, "c": c}),
+        Calibration::Isotonic { input, x, .. } => json!({
+            "kind": "isotonic", "input": isotonic_input(*input), "points": x.len(),
+        }),
+    });
+    let reference = model.reference_distribution().map(|r| {
+        json!({
+            "on": distribution_scale(r.on), "bins": r.fractions.len(), "edges": r.edges, "fractions": r.fractions,
+        })
+    });
+    let score_scale = model.score_scale().map(|s| {
+        json!({"points": s.points, "at_odds": s.at_odds, "pdo": s.pdo, "odds_of": odds_of(s.odds_of)})
+    });
+    json!({
+        "name": model.name(),
+        "version": model.version(),
+        "body": body,
+        "features": features,
+        "margin_scale": model.margin_scale().as_str(),
+        "base_rate": model.base_rate(),
+        "calibration": calibration,
+        "reference_distribution": reference,
+        "score_scale": score_scale,
+        "metadata": model.metadata(),
+    })
+}
+
+/// The summary for a person to read.
+pub fn summary_text(model: &Model) -> String {
+    let s = model.summary();
+    let mut out = format!("model          {} {}\n", model.name(), model.version());
+    out += &match s.kind {
+        BodyKind::Ensemble => format!(
+            "body           tree ensemble: {} trees, {} nodes, {} leaves, max depth {}\n",
+            s.trees, s.nodes, s.leaves, s.max_depth
+        ),
+        BodyKind::Linear => format!("body           linear: {} terms\n", s.terms),
+    };
+    let features = model.schema().features();
+    out += &format!("features       {}\n", features.len());
+    let width = features.iter().map(|f| f.name.len()).max().unwrap_or(0);
+    for f in features {
+        let kind = match &f.kind {
+            FeatureKind::Numeric => "numeric".to_string(),
+            FeatureKind::Categorical { categories } => {
+                format!("categorical, {} categories", categories.len())
+            }
+        };
+        out += &format!("  {:width$}  {kind}\n", f.name);
+    }
+    out += &format!("margin scale   {}\n", model.margin_scale().as_str());
+    out += &format!("base rate      {}\n", model.base_rate());
+    out += &format!(
+        "calibration    {}\n",
+        match model.calibration() {
+            None => "none".to_string(),
+            Some(Calibration::Platt { a, b }) => format!("platt, a = {a}, b = {b}"),
+            Some(Calibration::Temperature { t }) => format!("temperature, t = {t}"),
+            Some(Calibration::Beta { a, b, c }) => format!("beta, a = {a}, b = {b}, c = {c}"),
+            Some(Calibration::Isotonic { input, x, .. }) => {
+                format!(
+                    "isotonic on the {}, {} points",
+                    isotonic_input(*input).replace('_', "-"),
+                    x.len()
+                )
+            }
+        }
+    );
+    out += &format!(
+        "reference      {}\n",
+        match model.reference_distribution() {
+            None => "none".to_string(),
+            Some(r) => format!(
+                "{} bins on the {}",
+                r.fractions.len(),
+                distribution_scale(r.on).replace('_', "-")
+            ),
+        }
+    );
+    out += &format!(
+        "score scale    {}\n",
+        match model.score_scale() {
+            None => "none".to_string(),
+            Some(s) => format!(
+                "{} points at odds {} of the {} class, {} points to double the odds",
+                s.points,
+                s.at_odds,
+                odds_of(s.odds_of),
+                s.pdo
+            ),
+        }
+    );
+    let metadata = model.metadata();
+    if !metadata.is_null() {
+        out += &format!("metadata       {metadata}\n");
+    }
+    out
+}
+
+fn isotonic_input(i: IsotonicInput) -> &'static str {
+    match i {
+        IsotonicInput::LogOdds => "log_odds",
+        IsotonicInput::Probability => "probability",
+    }
+}
+
+fn distribution_scale(d: DistributionScale) -> &'static str {
+    match d {
+        DistributionScale::Probability => "probability",
+        DistributionScale::LogOdds => "log_odds",
+    }
+}
+
+fn odds_of(o: OddsOf) -> &'static str {
+    match o {
+        OddsOf::Negative => "negative",
+        OddsOf::Positive => "positive",
+    }
+}
