@@ -11,6 +11,7 @@ pub mod calibration;
 pub mod decision;
 pub mod engine;
 pub mod error;
+pub mod fit;
 pub mod link;
 pub mod metrics;
 pub mod model;
