@@ -157,3 +157,11 @@ fn overrides_parse() {
     );
     assert!(parse_override("novalue").is_err());
 }
+
+#[test]
+fn deploy_example_is_valid() {
+    let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("../deploy/probity.toml");
+    let c = Config::load(&Sources { file: Some(path), ..Sources::default() }).unwrap();
+    assert_eq!(c.routes["card-auth"].model, "harbourline-fraud-trees");
+    assert_eq!(c.routes["card-auth"].output.decision.as_ref().and_then(|d| d.threshold()), Some(1.0 / 41.0));
+}

@@ -1,0 +1,298 @@
+//! A table of bad requests: each gets the right status code and a message naming the field at fault, and the
+//! server goes on serving afterwards.
+
+use probity::serve::proto as pb;
+use tonic::Code;
+
+use crate::fixtures::*;
+
+enum Call {
+    Score(pb::ScoreRequest),
+    Batch(pb::ScoreBatchRequest),
+    Describe(pb::DescribeModelRequest),
+}
+
+fn with<F: FnOnce(&mut pb::Row)>(mut row: pb::Row, f: F) -> pb::Row {
+    f(&mut row);
+    row
+}
+
+fn table() -> Vec<(&'static str, Call, Code, &'static str)> {
+    use Value::*;
+    let strict = |row| Call::Score(score_request("fraud-strict", row));
+    let fraud = |row| Call::Score(score_request("fraud", row));
+    let batch = |rows| {
+        Call::Batch(pb::ScoreBatchRequest {
+            route: "fraud".into(),
+            rows,
+        })
+    };
+    let describe = |target| Call::Describe(pb::DescribeModelRequest { target });
+    vec![
+        (
+            "unknown route",
+            Call::Score(score_request("nope", fraud_row(""))),
+            Code::NotFound,
+            "route `nope`",
+        ),
+        (
+            "empty route",
+            Call::Score(score_request("", fraud_row(""))),
+            Code::InvalidArgument,
+            "route: is empty",
+        ),
+        (
+            "route without model",
+            Call::Score(score_request("orphan", fraud_row(""))),
+            Code::Unavailable,
+            "route `orphan`",
+        ),
+        (
+            "no row",
+            Call::Score(pb::ScoreRequest {
+                route: "fraud".into(),
+                row: None,
+            }),
+            Code::InvalidArgument,
+            "row: is required",
+        ),
+        (
+            "no features",
+            fraud(pb::Row::default()),
+            Code::InvalidArgument,
+            "row.features",
+        ),
+        (
+            "dense too short",
+            fraud(dense(&[1.0, 2.0])),
+            Code::InvalidArgument,
+            "row.dense.values: has 2 values",
+        ),
+        (
+            "dense missing, rejecting",
+            strict(dense(&[f64::NAN, 1.0, 3.0])),
+            Code::InvalidArgument,
+            "row.dense.values[0] (amount)",
+        ),
+        (
+            "dense infinite, rejecting",
+            strict(dense(&[1.0, 1.0, f64::INFINITY])),
+            Code::InvalidArgument,
+            "row.dense.values[2] (hour)",
+        ),
+        (
+            "dense unknown category, rejecting",
+            strict(dense(&[1.0, 7.0, 3.0])),
+            Code::InvalidArgument,
+            "row.dense.values[1] (channel)",
+        ),
+        (
+            "named missing, rejecting",
+            strict(named("", &[("amount", Num(1.0)), ("channel", Cat("pos"))])),
+            Code::InvalidArgument,
+            "row.named.values[\"hour\"]",
+        ),
+        (
+            "named value unset, rejecting",
+            strict(named(
+                "",
+                &[
+                    ("amount", Unset),
+                    ("channel", Cat("pos")),
+                    ("hour", Num(3.0)),
+                ],
+            )),
+            Code::InvalidArgument,
+            "row.named.values[\"amount\"]",
+        ),
+        (
+            "named NaN, rejecting",
+            strict(named(
+                "",
+                &[
+                    ("amount", Num(f64::NAN)),
+                    ("channel", Cat("pos")),
+                    ("hour", Num(3.0)),
+                ],
+            )),
+            Code::InvalidArgument,
+            "row.named.values[\"amount\"]: is not a finite number",
+        ),
+        (
+            "named unknown category, rejecting",
+            strict(named(
+                "",
+                &[
+                    ("amount", Num(1.0)),
+                    ("channel", Cat("phone")),
+                    ("hour", Num(3.0)),
+                ],
+            )),
+            Code::InvalidArgument,
+            "row.named.values[\"channel\"]: category \"phone\"",
+        ),
+        (
+            "unknown feature name",
+            fraud(named(
+                "",
+                &[
+                    ("amout", Num(1.0)),
+                    ("amount", Num(1.0)),
+                    ("channel", Cat("pos")),
+                    ("hour", Num(3.0)),
+                ],
+            )),
+            Code::InvalidArgument,
+            "row.named.values[\"amout\"]",
+        ),
+        (
+            "category for a numeric feature",
+            fraud(named(
+                "",
+                &[
+                    ("amount", Cat("high")),
+                    ("channel", Cat("pos")),
+                    ("hour", Num(3.0)),
+                ],
+            )),
+            Code::InvalidArgument,
+            "row.named.values[\"amount\"]: is a numeric feature",
+        ),
+        (
+            "number for a categorical feature",
+            fraud(named(
+                "",
+                &[
+                    ("amount", Num(1.0)),
+                    ("channel", Num(1.0)),
+                    ("hour", Num(3.0)),
+                ],
+            )),
+            Code::InvalidArgument,
+            "row.named.values[\"channel\"]: is a categorical feature",
+        ),
+        (
+            "model has no rule for a missing value",
+            Call::Score(score_request(
+                "credit",
+                named("", &[("region", Cat("north"))]),
+            )),
+            Code::InvalidArgument,
+            "feature `income` is missing",
+        ),
+        (
+            "prediction id too long",
+            fraud(fraud_row(&"x".repeat(129))),
+            Code::InvalidArgument,
+            "row.prediction_id",
+        ),
+        (
+            "prediction id with a space",
+            fraud(fraud_row("a b")),
+            Code::InvalidArgument,
+            "row.prediction_id",
+        ),
+        (
+            "entity key too long",
+            fraud(with(fraud_row(""), |r| r.entity_key = "k".repeat(257))),
+            Code::InvalidArgument,
+            "row.entity_key",
+        ),
+        (
+            "too many tags",
+            fraud(with(fraud_row(""), |r| {
+                r.tags = (0..33).map(|i| (format!("t{i}"), "v".into())).collect()
+            })),
+            Code::InvalidArgument,
+            "row.tags: has 33 entries",
+        ),
+        (
+            "empty batch",
+            batch(vec![]),
+            Code::InvalidArgument,
+            "rows: is empty",
+        ),
+        (
+            "too many rows",
+            batch((0..101).map(|_| fraud_row("")).collect()),
+            Code::InvalidArgument,
+            "rows: has 101 rows, the limit is 100",
+        ),
+        (
+            "bad row in a batch",
+            batch(vec![fraud_row(""), fraud_row(""), dense(&[1.0])]),
+            Code::InvalidArgument,
+            "rows[2].dense.values",
+        ),
+        (
+            "engine error in a batch row",
+            Call::Batch(pb::ScoreBatchRequest {
+                route: "credit".into(),
+                rows: vec![
+                    named("", &[("income", Num(1.0)), ("region", Cat("north"))]),
+                    named("", &[("region", Cat("north"))]),
+                ],
+            }),
+            Code::InvalidArgument,
+            "rows[1]: feature `income` is missing",
+        ),
+        (
+            "describe: no target",
+            describe(None),
+            Code::InvalidArgument,
+            "target: is required",
+        ),
+        (
+            "describe: unknown model",
+            describe(Some(pb::describe_model_request::Target::Model(
+                "ghost".into(),
+            ))),
+            Code::NotFound,
+            "model `ghost`",
+        ),
+    ]
+}
+
+#[tokio::test]
+async fn bad_requests_get_the_right_status_and_the_server_keeps_serving() {
+    let t = TestServer::start(false).await;
+    let mut scoring = t.scoring().await;
+    let mut models = t.models_client().await;
+    let cases = table();
+    assert!(cases.len() >= 15);
+    let mut failures = Vec::new();
+    for (name, call, code, needle) in cases {
+        let status = match call {
+            Call::Score(r) => scoring.score(r).await.map(|_| ()),
+            Call::Batch(r) => scoring.score_batch(r).await.map(|_| ()),
+            Call::Describe(r) => models.describe_model(r).await.map(|_| ()),
+        };
+        match status {
+            Ok(()) => failures.push(format!("{name}: succeeded")),
+            Err(s) if s.code() != code || !s.message().contains(needle) => failures.push(format!(
+                "{name}:\n  expected: {code:?} containing {needle:?}\n  actual:   {:?} {:?}",
+                s.code(),
+                s.message()
+            )),
+            Err(_) => {}
+        }
+    }
+    assert!(failures.is_empty(), "{}", failures.join("\n"));
+
+    // A message above limits.max_message_bytes is refused by the transport, not by a crash.
+    let huge = dense(&vec![1.0; 600_000]);
+    let status = scoring
+        .score(score_request("fraud", huge))
+        .await
+        .unwrap_err();
+    assert_ne!(status.code(), Code::Ok);
+
+    let good = scoring
+        .score(score_request("fraud", fraud_row("after")))
+        .await
+        .unwrap()
+        .into_inner();
+    assert_eq!(good.prediction_id, "after");
+    assert!(good.probability > 0.0 && good.probability < 1.0);
+    t.server.shutdown().await;
+}
