@@ -161,7 +161,18 @@ fn overrides_parse() {
 #[test]
 fn deploy_example_is_valid() {
     let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("../deploy/probity.toml");
-    let c = Config::load(&Sources { file: Some(path), ..Sources::default() }).unwrap();
+    let c = Config::load(&Sources {
+        file: Some(path),
+        ..Sources::default()
+    })
+    .unwrap();
     assert_eq!(c.routes["card-auth"].model, "harbourline-fraud-trees");
-    assert_eq!(c.routes["card-auth"].output.decision.as_ref().and_then(|d| d.threshold()), Some(1.0 / 41.0));
+    assert_eq!(
+        c.routes["card-auth"]
+            .output
+            .decision
+            .as_ref()
+            .and_then(|d| d.threshold()),
+        Some(1.0 / 41.0)
+    );
 }
