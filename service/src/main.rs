@@ -25,6 +25,8 @@ enum Command {
     GenerateDemoData(cli::demo_data::GenerateArgs),
     /// Run the demo: generate transactions, score them with both demo models, show how well each does.
     Demo(cli::demo::DemoArgs),
+    /// Fit a calibration map from a labelled holdout CSV and write a new model file version carrying it.
+    Calibrate(cli::calibrate::CalibrateArgs),
     /// Run the gRPC scoring service until SIGTERM or SIGINT.
     Serve(probity::serve::ServeArgs),
 }
@@ -35,6 +37,7 @@ fn run() -> anyhow::Result<()> {
         Command::Score(args) => cli::score::run(&args),
         Command::GenerateDemoData(args) => cli::demo_data::run(&args),
         Command::Demo(args) => cli::demo::run(&args),
+        Command::Calibrate(args) => cli::calibrate::run(&args),
         Command::Serve(args) => Ok(probity::serve::run(&args)?),
     }
 }

@@ -1,8 +1,10 @@
 //! The offline subcommands of `probity`. Each module holds one command's arguments and a thin `run`; the shared
 //! CSV scoring pipeline is in [`pipeline`].
 
+pub mod calibrate;
 pub mod check;
 pub mod demo;
 pub mod demo_data;
 pub mod pipeline;
+pub mod reliability;
 pub mod score;
