@@ -1,4 +1,5 @@
 //! The probity service crate as a library, so that the binary and the integration tests build the server the
 //! same way. [`serve`] is the gRPC scoring service (`probity serve`).
+#![warn(clippy::unwrap_used, clippy::expect_used)]
 
 pub mod serve;

@@ -1,5 +1,6 @@
 //! `probity`: the command-line tool. Offline commands (check a model file, score a CSV file, the demo) live in
 //! [`cli`]; each subcommand is one variant of [`Command`] with its own argument struct.
+#![warn(clippy::unwrap_used, clippy::expect_used)]
 
 use std::process::ExitCode;
 
