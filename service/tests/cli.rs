@@ -623,3 +623,80 @@ fn demo_runs_with_given_models_and_reports_metrics() {
     }
     assert!(sh.iter().any(|c| c == "test-card-trees.probability"));
 }
+
+#[test]
+fn demo_with_the_embedded_models_corrects_the_base_rate() {
+    let o = ok(&["demo", "--rows", "20000"]);
+    let text = stdout(&o);
+    for want in [
+        "harbourline-fraud-trees",
+        "harbourline-fraud-scorecard",
+        "the generating model itself",
+    ] {
+        assert!(text.contains(want), "missing {want:?} in:\n{text}");
+    }
+    // The models were fitted on re-sampled data (a base rate near 23%); after the prior shift of Elkan (2001),
+    // Theorem 2, a calibrated model's mean probability on the live data should sit near the live base rate. A 25%
+    // relative band is common practice, no single source.
+    let percent = |line: &str, key: &str| -> f64 {
+        let at = line.find(key).unwrap() + key.len();
+        line[at..]
+            .trim_start()
+            .split('%')
+            .next()
+            .unwrap()
+            .parse()
+            .unwrap()
+    };
+    let live = text
+        .lines()
+        .find(|l| l.starts_with("live base rate"))
+        .unwrap();
+    let live = percent(live, "live base rate");
+    let means: Vec<f64> = text
+        .lines()
+        .filter(|l| l.contains("mean predicted"))
+        .map(|l| percent(l, "mean predicted"))
+        .collect();
+    assert_eq!(means.len(), 2, "{text}");
+    for m in means {
+        assert!(
+            (m - live).abs() < 0.25 * live,
+            "mean predicted {m}% vs live {live}%"
+        );
+    }
+}
+
+#[test]
+fn an_explicit_id_column_must_exist() {
+    let dir = tempfile::tempdir().unwrap();
+    let input = demo_csv(dir.path(), 10, 1, &[]);
+    let out = dir.path().join("out.csv");
+    let o = probity(&[
+        "score",
+        "--model",
+        s(&data("small-trees.json")),
+        "--input",
+        s(&input),
+        "--output",
+        s(&out),
+        "--id-column",
+        "txn_ref",
+    ]);
+    assert_eq!(o.status.code(), Some(1));
+    assert!(stderr(&o).contains("txn_ref"), "{}", stderr(&o));
+    ok(&[
+        "score",
+        "-q",
+        "--model",
+        s(&data("small-trees.json")),
+        "--input",
+        s(&input),
+        "--output",
+        s(&out),
+        "--id-column",
+        "channel",
+    ]);
+    let (h, _) = read_csv(&out);
+    assert_eq!(&h[0], "channel");
+}
