@@ -28,6 +28,9 @@ const SET_IS_LIST: u8 = 32;
 /// block's rows stay in cache too.
 const BLOCK_ROWS: usize = 64;
 
+/// Rows walked through one tree in lockstep in a batch.
+const LANES: usize = 8;
+
 /// Bitsets up to this many words are always used; beyond, only when no longer than the index list.
 const SMALL_BITSET_WORDS: usize = 8;
 
@@ -121,15 +124,18 @@ impl EnsembleBuilder {
         self.e.max_depth = self.e.max_depth.max(depth);
     }
 
-    pub(crate) fn push_leaf(&mut self, value: f64) {
+    pub(crate) fn push_leaf(&mut self, value: f64) -> Result<(), ModelError> {
+        // A leaf is its own right child, so a lockstep walk can step it without changing it.
+        let here = self.next_index()?;
         self.e.leaves += 1;
         self.e.nodes.push(Node {
             value,
             feature: 0,
-            right: 0,
+            right: here,
             aux: 0,
             flags: LEAF,
         });
+        Ok(())
     }
 
     /// Pushes a numeric split; its right child is set later with [`Self::set_right`].
@@ -268,11 +274,52 @@ impl Ensemble {
             let first = b * BLOCK_ROWS;
             block.fill(self.base_margin);
             for &root in &self.roots {
-                for (k, o) in block.iter_mut().enumerate() {
-                    let start = (first + k) * n;
-                    *o += self.leaf::<F32>(root, &rows[start..start + n]);
+                for (g, lanes) in block.chunks_mut(LANES).enumerate() {
+                    let row0 = first + g * LANES;
+                    if let Ok(full) = <&mut [f64; LANES]>::try_from(&mut *lanes) {
+                        self.add_leaves_of_lanes::<F32>(root, rows, row0, n, full);
+                    } else {
+                        for (k, o) in lanes.iter_mut().enumerate() {
+                            let start = (row0 + k) * n;
+                            *o += self.leaf::<F32>(root, &rows[start..start + n]);
+                        }
+                    }
                 }
             }
+        }
+    }
+
+    /// Walks one tree for [`LANES`] rows in lockstep and adds each row's leaf value to its output. The rows'
+    /// walks are independent, so the processor overlaps their memory loads and comparisons instead of waiting
+    /// on one dependent chain.
+    #[inline]
+    fn add_leaves_of_lanes<const F32: bool>(
+        &self,
+        root: u32,
+        rows: &[f64],
+        row0: usize,
+        n: usize,
+        out: &mut [f64; LANES],
+    ) {
+        let mut at = [root as usize; LANES];
+        loop {
+            let mut moving = false;
+            for (k, i) in at.iter_mut().enumerate() {
+                let node = &self.nodes[*i];
+                // No branch on the lane's state: a leaf reads a harmless value and, being its own right child,
+                // stays where it is.
+                let inner = node.flags & LEAF == 0;
+                let x = rows[(row0 + k) * n + node.feature as usize];
+                let left = inner & self.goes_left::<F32>(node, x);
+                *i = if left { *i + 1 } else { node.right as usize };
+                moving |= inner;
+            }
+            if !moving {
+                break;
+            }
+        }
+        for (o, &i) in out.iter_mut().zip(&at) {
+            *o += self.nodes[i].value;
         }
     }
 
@@ -282,29 +329,38 @@ impl Ensemble {
         let mut i = root as usize;
         loop {
             let node = &self.nodes[i];
-            let flags = node.flags;
-            if flags & LEAF != 0 {
+            if node.flags & LEAF != 0 {
                 return node.value;
             }
             let x = row[node.feature as usize];
-            let left = if x.is_nan() {
-                flags & MISSING_LEFT != 0
-            } else if flags & CATEGORICAL == 0 {
-                // Training libraries that store features as f32 compare the rounded value with the threshold.
-                let x = if F32 { x as f32 as f64 } else { x };
-                if flags & OP_LE != 0 {
-                    x <= node.value
-                } else {
-                    x < node.value
-                }
+            i = if self.goes_left::<F32>(node, x) {
+                i + 1
             } else {
-                let n = self.n_categories[node.feature as usize] as usize;
-                match known_category(x, n) {
-                    Some(c) => self.in_left_set(node, c),
-                    None => flags & UNKNOWN_LEFT != 0,
-                }
+                node.right as usize
             };
-            i = if left { i + 1 } else { node.right as usize };
+        }
+    }
+
+    /// Whether split `node` sends value `x` left.
+    #[inline(always)]
+    fn goes_left<const F32: bool>(&self, node: &Node, x: f64) -> bool {
+        let flags = node.flags;
+        if x.is_nan() {
+            flags & MISSING_LEFT != 0
+        } else if flags & CATEGORICAL == 0 {
+            // Training libraries that store features as f32 compare the rounded value with the threshold.
+            let x = if F32 { x as f32 as f64 } else { x };
+            if flags & OP_LE != 0 {
+                x <= node.value
+            } else {
+                x < node.value
+            }
+        } else {
+            let n = self.n_categories[node.feature as usize] as usize;
+            match known_category(x, n) {
+                Some(c) => self.in_left_set(node, c),
+                None => flags & UNKNOWN_LEFT != 0,
+            }
         }
     }
 
@@ -334,10 +390,16 @@ mod tests {
         b.start_tree().unwrap();
         b.push_categorical(0, left, Side::Right, Side::Left)
             .unwrap();
-        b.push_leaf(-1.0);
+        b.push_leaf(-1.0).unwrap();
         b.set_right(0, 2);
-        b.push_leaf(1.0);
+        b.push_leaf(1.0).unwrap();
         b.finish()
+    }
+
+    #[test]
+    fn node_is_compact() {
+        // The layout the module overview promises: 8 (value) + 3 * 4 (feature, right, aux) + 1 (flags), padded.
+        assert_eq!(std::mem::size_of::<Node>(), 24);
     }
 
     #[test]

@@ -17,6 +17,9 @@ use crate::schema::{Feature, FeatureKind, Schema};
 
 use raw::{RawFeatureType, RawMarginScale, RawModel};
 
+pub use linear::MAX_TERMS;
+pub use trees::{MAX_NODES, MAX_TREES};
+
 /// The only `format` value this reader accepts.
 pub const FORMAT_TAG: &str = "probity.model";
 /// The only `format_version` this reader accepts.

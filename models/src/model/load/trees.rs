@@ -243,7 +243,7 @@ impl Walk {
             }
             let node = &nodes[i as usize];
             if let Some(v) = node.leaf {
-                b.push_leaf(v);
+                b.push_leaf(v)?;
                 b.note_depth(depth);
                 continue;
             }
