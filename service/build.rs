@@ -14,6 +14,7 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
     let files = [
         root.join("probity/v1/scoring.proto"),
         root.join("probity/v1/models.proto"),
+        root.join("probity/v1/outcomes.proto"),
     ];
     let out_dir = PathBuf::from(std::env::var("OUT_DIR")?);
     tonic_prost_build::configure()

@@ -1,5 +1,8 @@
 //! The probity service crate as a library, so that the binary and the integration tests build the server the
-//! same way. [`serve`] is the gRPC scoring service (`probity serve`).
+//! same way. [`serve`] is the gRPC scoring service (`probity serve`); [`store`] the prediction log and outcome
+//! matching; [`report`] the exact reports from the log.
 #![warn(clippy::unwrap_used, clippy::expect_used)]
 
+pub mod report;
 pub mod serve;
+pub mod store;

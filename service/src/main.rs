@@ -28,6 +28,8 @@ enum Command {
     Demo(cli::demo::DemoArgs),
     /// Fit a calibration map from a labelled holdout CSV and write a new model file version carrying it.
     Calibrate(cli::calibrate::CalibrateArgs),
+    /// Report from a prediction log: calibration, log-loss, Brier, AUC, KS, gains, PSI (table, JSON, SVG).
+    Report(cli::report::ReportArgs),
     /// Run the gRPC scoring service until SIGTERM or SIGINT.
     Serve(probity::serve::ServeArgs),
 }
@@ -39,6 +41,7 @@ fn run() -> anyhow::Result<()> {
         Command::GenerateDemoData(args) => cli::demo_data::run(&args),
         Command::Demo(args) => cli::demo::run(&args),
         Command::Calibrate(args) => cli::calibrate::run(&args),
+        Command::Report(args) => cli::report::run(&args),
         Command::Serve(args) => Ok(probity::serve::run(&args)?),
     }
 }

@@ -7,4 +7,5 @@ pub mod demo;
 pub mod demo_data;
 pub mod pipeline;
 pub mod reliability;
+pub mod report;
 pub mod score;

@@ -16,7 +16,7 @@ use serde::Deserialize;
 
 /// Sections whose scalar keys environment variables may set (`PROBITY_LIMITS_MAX_BATCH_ROWS` sets
 /// `limits.max_batch_rows`). Routes are set in the file only.
-const ENV_SECTIONS: [&str; 4] = ["server", "models", "limits", "logging"];
+const ENV_SECTIONS: [&str; 5] = ["server", "models", "limits", "logging", "log"];
 
 /// Why the configuration was refused.
 #[derive(Debug, thiserror::Error)]
@@ -70,6 +70,7 @@ pub struct RawConfig {
     models: RawModels,
     limits: RawLimits,
     logging: RawLogging,
+    log: crate::store::config::RawLog,
     routes: BTreeMap<String, RawRoute>,
 }
 
@@ -189,6 +190,8 @@ pub struct Config {
     pub limits: Limits,
     /// Log format and level.
     pub logging: Logging,
+    /// The prediction log (`[log]`); off without `log.directory`.
+    pub log: crate::store::LogConfig,
     /// Routes by name.
     pub routes: BTreeMap<String, Route>,
 }
@@ -347,6 +350,7 @@ impl Config {
             models,
             limits,
             logging,
+            log,
             routes,
         } = raw;
         let RawServer {
@@ -373,6 +377,9 @@ impl Config {
             .into_iter()
             .map(|(name, raw)| Ok((name.clone(), route(&name, raw)?)))
             .collect::<Result<BTreeMap<_, _>, ConfigError>>()?;
+        let names = routes.keys().cloned().collect();
+        let log = crate::store::LogConfig::from_raw(log, &names)
+            .map_err(|(key, message)| invalid(key, message))?;
         Ok(Config {
             grpc_listen: socket_addr("server.grpc_listen", &grpc_listen)?,
             metrics_listen: socket_addr("server.metrics_listen", &metrics_listen)?,
@@ -388,6 +395,7 @@ impl Config {
             )?),
             limits: self::limits(limits)?,
             logging: self::logging(logging)?,
+            log,
             routes,
         })
     }

@@ -62,6 +62,8 @@ pub fn prepare_row(
     };
     Ok(PreparedRow {
         prediction_id,
+        entity_key,
+        tags,
         values,
         warnings,
     })
@@ -321,6 +323,8 @@ pub fn score_response(
     } = scored;
     let PreparedRow {
         prediction_id,
+        entity_key: _,
+        tags: _,
         values: _,
         warnings,
     } = row;

@@ -53,6 +53,12 @@ pub enum ServeError {
         /// Rows asked for.
         rows: usize,
     },
+    /// The prediction log is not configured (`log.directory`), so outcomes and reports are not available.
+    #[error("the prediction log is off on this server (set log.directory)")]
+    LogDisabled,
+    /// The prediction log failed.
+    #[error("prediction log: {0}")]
+    Log(#[from] crate::store::StoreError),
     /// The model directory could not be listed during a reload.
     #[error("cannot read the model directory {dir}: {error}")]
     ModelDirectory {

@@ -67,6 +67,7 @@ pub fn install() -> Result<PrometheusHandle, String> {
             b.set_buckets_for_metric(Matcher::Full(PROBABILITY.into()), &PROBABILITY_BUCKETS)
         })
         .and_then(|b| b.set_buckets_for_metric(Matcher::Full(LOG_ODDS.into()), &LOG_ODDS_BUCKETS))
+        .and_then(crate::store::running::buckets)
         .map_err(|e| e.to_string())?;
     let recorder = builder.build_recorder();
     let handle = recorder.handle();

@@ -6,6 +6,7 @@
 //! - [`scoring`]: route resolution and scoring; [`conversions`]: every wire/domain conversion;
 //! - [`grpc`]: the handlers; [`status`]: the one mapping from [`error::ServeError`] to gRPC status;
 //! - [`metrics`]: Prometheus metrics and the monitoring HTTP endpoint;
+//! - [`outcomes`]: the prediction log in the server (what a scored row logs, the Outcomes service, the sweeps);
 //! - [`server`]: [`server::start`], the one function that builds the server for `main` and the tests.
 
 pub mod config;
@@ -13,6 +14,7 @@ pub mod conversions;
 pub mod error;
 pub mod grpc;
 pub mod metrics;
+pub mod outcomes;
 pub mod proto;
 pub mod registry;
 pub mod scoring;

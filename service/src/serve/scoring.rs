@@ -16,6 +16,7 @@ use crate::serve::error::ServeError;
 use crate::serve::metrics;
 use crate::serve::proto as pb;
 use crate::serve::registry::{LoadedModel, Registry};
+use crate::store::PredictionLog;
 
 /// Rows scored between two deadline checks in a batch.
 const CHUNK_ROWS: usize = 256;
@@ -25,6 +26,10 @@ const CHUNK_ROWS: usize = 256;
 pub struct PreparedRow {
     /// The caller's id, or a server-made UUID version 7.
     pub prediction_id: String,
+    /// The caller's entity key (may be empty), kept in the prediction log.
+    pub entity_key: String,
+    /// The caller's tags, kept in the prediction log.
+    pub tags: std::collections::HashMap<String, String>,
     /// The dense row in the model's feature order.
     pub values: Vec<f64>,
     /// What the caller should know about the row.
@@ -72,6 +77,7 @@ pub struct Scorer {
     registry: Arc<Registry>,
     routes: BTreeMap<String, Route>,
     limits: Limits,
+    log: Option<Arc<PredictionLog>>,
 }
 
 impl Scorer {
@@ -81,7 +87,19 @@ impl Scorer {
             registry,
             routes,
             limits,
+            log: None,
         }
+    }
+
+    /// The same scorer, also queueing every answer to the prediction log.
+    pub fn with_log(mut self, log: Option<Arc<PredictionLog>>) -> Scorer {
+        self.log = log;
+        self
+    }
+
+    /// The prediction log, when it is on.
+    pub fn log(&self) -> Option<&Arc<PredictionLog>> {
+        self.log.as_ref()
     }
 
     /// The configured routes.
@@ -215,10 +233,15 @@ impl Scorer {
     fn respond(
         &self,
         config: &Route,
-        loaded: &LoadedModel,
-        row: PreparedRow,
+        loaded: &Arc<LoadedModel>,
+        mut row: PreparedRow,
         scored: probity_models::Scored,
     ) -> pb::ScoreResponse {
+        if let Some(log) = &self.log {
+            log.log(crate::serve::outcomes::queued(
+                config, loaded, &mut row, &scored,
+            ));
+        }
         metrics::prediction(
             &config.name,
             loaded.model.name(),

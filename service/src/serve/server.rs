@@ -21,9 +21,11 @@ use crate::serve::config::Config;
 use crate::serve::error::ServeError;
 use crate::serve::grpc::{ModelsApi, ScoringApi};
 use crate::serve::metrics;
+use crate::serve::outcomes::{sweep_task, OutcomesApi};
 use crate::serve::proto as pb;
 use crate::serve::registry::{FileReport, Outcome, Registry};
 use crate::serve::scoring::Scorer;
+use crate::store::{Clock, PredictionLog, SqliteStore};
 
 /// Why the server did not start.
 #[derive(Debug, thiserror::Error)]
@@ -44,6 +46,9 @@ pub enum StartError {
         /// The error.
         source: std::io::Error,
     },
+    /// The prediction log could not be opened.
+    #[error("log.directory: {0}")]
+    Log(crate::store::StoreError),
     /// The reflection service could not be built.
     #[error("reflection: {0}")]
     Reflection(String),
@@ -127,6 +132,7 @@ pub struct RunningServer {
     watcher: Option<notify::RecommendedWatcher>,
     grace: Duration,
     reloader: Arc<Reloader>,
+    log: Option<Arc<PredictionLog>>,
 }
 
 impl RunningServer {
@@ -145,6 +151,11 @@ impl RunningServer {
         self.reloader.reload("api").await
     }
 
+    /// The prediction log, when it is on.
+    pub fn log(&self) -> Option<&Arc<PredictionLog>> {
+        self.log.as_ref()
+    }
+
     /// Stops accepting, lets in-flight calls finish within the grace period, then closes what is left.
     pub async fn shutdown(self) {
         let RunningServer {
@@ -154,6 +165,7 @@ impl RunningServer {
             background,
             watcher,
             grace,
+            log,
             ..
         } = self;
         drop(watcher);
@@ -179,6 +191,15 @@ impl RunningServer {
         {
             http.abort();
         }
+        // The calls are done: write what the log still has queued.
+        if let Some(log) = log {
+            if tokio::task::spawn_blocking(move || log.close())
+                .await
+                .is_err()
+            {
+                tracing::error!("prediction log writer did not stop cleanly");
+            }
+        }
     }
 }
 
@@ -194,6 +215,7 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
         watch_debounce,
         limits,
         logging: _,
+        log: log_config,
         routes,
     } = config;
     let handle = metrics::install().map_err(StartError::Metrics)?;
@@ -218,7 +240,22 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
         tracing::error!(%route, "route not ready at start: its model is not loaded");
     }
 
-    let scorer = Arc::new(Scorer::new(Arc::clone(&registry), routes, limits));
+    let log = match &log_config.directory {
+        Some(dir) => {
+            let store = SqliteStore::open(dir, log_config.durability).map_err(StartError::Log)?;
+            tracing::info!(dir = %dir.display(), durability = log_config.durability.as_str(), "prediction log open");
+            Some(PredictionLog::start(
+                Box::new(store),
+                log_config.clone(),
+                Clock::system(),
+            ))
+        }
+        None => None,
+    };
+    let scorer = Arc::new(Scorer::new(Arc::clone(&registry), routes, limits).with_log(log.clone()));
+    let outcomes = pb::outcomes_server::OutcomesServer::new(OutcomesApi::new(log.clone()))
+        .max_decoding_message_size(limits.max_message_bytes)
+        .max_encoding_message_size(limits.max_message_bytes);
     let scoring = pb::scoring_server::ScoringServer::new(ScoringApi::new(
         Arc::clone(&scorer),
         limits.default_deadline,
@@ -276,6 +313,7 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
         .add_service(health_service)
         .add_service(scoring)
         .add_service(models)
+        .add_service(outcomes)
         .add_optional_service(reflection_v1)
         .add_optional_service(reflection_v1alpha);
     let incoming =
@@ -292,6 +330,9 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
     );
 
     let mut background = vec![hangup_task(Arc::clone(&reloader))];
+    if let Some(log) = &log {
+        background.push(sweep_task(Arc::clone(log)));
+    }
     let watcher = if watch_dir {
         let (watcher, task) = watch_task(model_dir, watch_debounce, Arc::clone(&reloader))?;
         background.push(task);
@@ -310,6 +351,7 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
         watcher,
         grace: shutdown_grace,
         reloader,
+        log,
     })
 }
 

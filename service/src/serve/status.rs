@@ -20,6 +20,11 @@ impl From<ServeError> for Status {
                 tracing::error!(%field, error = %eval, "engine refused a row the service had checked");
                 format!("{field}: internal error while scoring")
             }
+            ServeError::Log(store) if code == Code::Internal => {
+                tracing::error!(error = %store, "prediction log failed");
+                "the prediction log failed; the server log has the details".to_string()
+            }
+            ServeError::Log(_) | ServeError::LogDisabled => error.to_string(),
             ServeError::Eval { .. }
             | ServeError::InvalidField { .. }
             | ServeError::RouteNotFound { .. }
@@ -47,6 +52,22 @@ pub fn code_of(error: &ServeError) -> Code {
             rows: _,
         } => Code::DeadlineExceeded,
         ServeError::ModelDirectory { dir: _, error: _ } => Code::FailedPrecondition,
+        ServeError::LogDisabled => Code::FailedPrecondition,
+        ServeError::Log(error) => log_code(error),
+    }
+}
+
+/// Prediction log errors: a log that is shutting down is unavailable; anything else is ours.
+fn log_code(error: &crate::store::StoreError) -> Code {
+    use crate::store::StoreError;
+    match error {
+        StoreError::Closed => Code::Unavailable,
+        StoreError::Database { what: _, source: _ } => Code::Internal,
+        StoreError::Directory { dir: _, source: _ } => Code::Internal,
+        StoreError::Schema {
+            found: _,
+            supported: _,
+        } => Code::Internal,
     }
 }
 

@@ -1,0 +1,391 @@
+//! Exact reports from the prediction log over any time range, route, model and version: one section per route,
+//! model, version and role found.
+//!
+//! Every figure is computed by `probity_models::metrics` on the matched (prediction, latest label) pairs, so the
+//! report agrees with the references those functions are tested against (scikit-learn, SciPy; see
+//! `tests/tests/metrics_reference.rs`). The choices are fixed and stated in the output: log-loss from the final
+//! log-odds; Brier decomposition and calibration table over ten equal-width bins (as
+//! `sklearn.calibration.calibration_curve(strategy="uniform")`); Hosmer-Lemeshow over ten groups cut by rank;
+//! AUC, KS and gains by decile on the final log-odds; PSI of all predictions in the range (with or without
+//! outcome) against the model file's reference distribution, empty bins floored at 1e-4.
+//!
+//! [`text`] renders the terminal table, [`svg`] the pictures; the JSON is this module's types through serde.
+
+pub mod svg;
+pub mod text;
+
+use std::collections::BTreeMap;
+
+use probity_models::metrics::{
+    brier_decomposition, brier_score, calibration_table, gains_lift, hosmer_lemeshow, ks_statistic,
+    log_loss_from_log_odds, psi_from_fractions, roc_auc, BinStrategy, EmptyBinRule, HlGrouping,
+};
+use serde::Serialize;
+
+use crate::store::{LoggedPrediction, OutcomeCounts, ReportFilter, Store, StoreError};
+
+/// Bins of the calibration table and the Brier decomposition.
+pub const CALIBRATION_BINS: usize = 10;
+/// Hosmer-Lemeshow groups (by rank).
+pub const HL_GROUPS: usize = 10;
+/// Gains and lift groups.
+pub const GAINS_GROUPS: usize = 10;
+/// Empty-bin rule of the PSI.
+pub const PSI_FLOOR: f64 = 1e-4;
+/// Bins of the class-conditional score histograms.
+pub const HISTOGRAM_BINS: usize = 20;
+
+/// A whole report.
+#[derive(Debug, Clone, Serialize)]
+pub struct Report {
+    /// The time range and filters asked for (ms since the epoch).
+    pub from_ms: Option<i64>,
+    /// End of the range (exclusive).
+    pub to_ms: Option<i64>,
+    /// Route filter.
+    pub route: Option<String>,
+    /// Model filter.
+    pub model: Option<String>,
+    /// Version filter.
+    pub version: Option<String>,
+    /// Outcomes waiting for their prediction, and outcomes that never matched (whole log).
+    pub outcomes: OutcomeCounts,
+    /// One section per route, model, version and role.
+    pub series: Vec<SeriesReport>,
+}
+
+/// The figures of one route, model, version and role.
+#[derive(Debug, Clone, Serialize)]
+pub struct SeriesReport {
+    /// Route.
+    pub route: String,
+    /// Model name.
+    pub model: String,
+    /// Model version.
+    pub version: String,
+    /// Role (`champion`, ...).
+    pub role: String,
+    /// Predictions in the range.
+    pub predictions: usize,
+    /// Predictions with a known outcome (the pairs every figure below is computed on).
+    pub with_outcome: usize,
+    /// Predictions still waiting for their outcome (immature).
+    pub immature: usize,
+    /// Outcomes settled as negatives by the maturity rule.
+    pub settled_by_maturity: usize,
+    /// Outcomes whose label was corrected at least once (the latest label is used).
+    pub corrected: usize,
+    /// Mean probability over all predictions in the range.
+    pub mean_probability: f64,
+    /// Mean probability over the pairs with an outcome (the predicted base rate).
+    pub predicted_base_rate: Option<f64>,
+    /// Share of positives among them (the observed base rate).
+    pub observed_base_rate: Option<f64>,
+    /// Mean log-loss (nats) from the final log-odds.
+    pub log_loss: Option<f64>,
+    /// Brier score.
+    pub brier: Option<f64>,
+    /// Brier decomposition over the calibration bins.
+    pub brier_decomposition: Option<Decomposition>,
+    /// ROC AUC.
+    pub roc_auc: Option<f64>,
+    /// KS statistic between the classes' score distributions.
+    pub ks: Option<f64>,
+    /// Calibration table.
+    pub calibration: Option<Calibration>,
+    /// Hosmer-Lemeshow test.
+    pub hosmer_lemeshow: Option<HosmerLemeshow>,
+    /// Gains and lift by decile.
+    pub gains: Vec<Gains>,
+    /// PSI against the reference distribution.
+    pub psi: Option<Psi>,
+    /// Probability histograms of the pairs by class: counts per equal-width bin.
+    pub histogram_negative: Vec<u64>,
+    /// Same for positives.
+    pub histogram_positive: Vec<u64>,
+    /// Why a figure is missing.
+    pub notes: Vec<String>,
+}
+
+/// Murphy's decomposition with the two within-bin terms.
+#[derive(Debug, Clone, Serialize)]
+pub struct Decomposition {
+    /// Reliability.
+    pub reliability: f64,
+    /// Resolution.
+    pub resolution: f64,
+    /// Uncertainty.
+    pub uncertainty: f64,
+    /// Within-bin variance.
+    pub within_bin_variance: f64,
+    /// Within-bin covariance (times two).
+    pub within_bin_covariance: f64,
+}
+
+/// The calibration table.
+#[derive(Debug, Clone, Serialize)]
+pub struct Calibration {
+    /// Non-empty bins.
+    pub bins: Vec<CalibrationBin>,
+    /// Expected calibration error.
+    pub ece: f64,
+    /// Maximum calibration error.
+    pub mce: f64,
+}
+
+/// One bin.
+#[derive(Debug, Clone, Serialize)]
+pub struct CalibrationBin {
+    /// Lower edge (excluded except for the first bin).
+    pub lower: f64,
+    /// Upper edge (included).
+    pub upper: f64,
+    /// Pairs.
+    pub count: usize,
+    /// Positives.
+    pub positives: usize,
+    /// Mean predicted probability.
+    pub mean_predicted: f64,
+    /// Observed share of positives.
+    pub fraction_positive: f64,
+}
+
+/// Hosmer-Lemeshow.
+#[derive(Debug, Clone, Serialize)]
+pub struct HosmerLemeshow {
+    /// The statistic.
+    pub statistic: f64,
+    /// Degrees of freedom.
+    pub degrees_of_freedom: usize,
+    /// Chi-square tail probability.
+    pub p_value: f64,
+}
+
+/// One gains row.
+#[derive(Debug, Clone, Serialize)]
+pub struct Gains {
+    /// Group, 0 = highest scores.
+    pub group: usize,
+    /// Pairs.
+    pub count: usize,
+    /// Positives.
+    pub positives: usize,
+    /// Share of all positives in this and higher groups.
+    pub cumulative_gain: f64,
+    /// Lift of the group.
+    pub lift: f64,
+    /// Cumulative lift.
+    pub cumulative_lift: f64,
+}
+
+/// PSI and its bins.
+#[derive(Debug, Clone, Serialize)]
+pub struct Psi {
+    /// The index.
+    pub value: f64,
+    /// What the bins are on.
+    pub on: String,
+    /// The empty-bin rule.
+    pub rule: String,
+    /// Reference shares.
+    pub expected: Vec<f64>,
+    /// Counts in the range.
+    pub actual: Vec<u64>,
+}
+
+/// Builds the report of `filter` from a store.
+pub fn build(store: &mut dyn Store, filter: &ReportFilter) -> Result<Report, StoreError> {
+    let rows = store.load(filter)?;
+    let mut groups: BTreeMap<(String, String, String, String), Vec<LoggedPrediction>> =
+        BTreeMap::new();
+    for r in rows {
+        let key = (
+            r.route.clone(),
+            r.model.clone(),
+            r.version.clone(),
+            r.role.clone(),
+        );
+        groups.entry(key).or_default().push(r);
+    }
+    let mut series = Vec::new();
+    for ((route, model, version, role), rows) in groups {
+        let reference = store
+            .model_version(&model, &version)?
+            .and_then(|i| i.reference);
+        series.push(section(
+            route,
+            model,
+            version,
+            role,
+            &rows,
+            reference.as_ref(),
+        ));
+    }
+    Ok(Report {
+        from_ms: filter.from_ms,
+        to_ms: filter.to_ms,
+        route: filter.route.clone(),
+        model: filter.model.clone(),
+        version: filter.version.clone(),
+        outcomes: store.outcome_counts()?,
+        series,
+    })
+}
+
+/// The value, or `None` with the reason noted.
+fn keep<T>(
+    notes: &mut Vec<String>,
+    what: &str,
+    result: Result<T, probity_models::metrics::MetricsError>,
+) -> Option<T> {
+    match result {
+        Ok(v) => Some(v),
+        Err(e) => {
+            notes.push(format!("{what}: {e}"));
+            None
+        }
+    }
+}
+
+/// The figures of one series; `rows` in the order they were written.
+pub fn section(
+    route: String,
+    model: String,
+    version: String,
+    role: String,
+    rows: &[LoggedPrediction],
+    reference: Option<&crate::store::Reference>,
+) -> SeriesReport {
+    let mut notes = Vec::new();
+    let pairs: Vec<&LoggedPrediction> = rows.iter().filter(|r| r.label.is_some()).collect();
+    let p: Vec<f64> = pairs.iter().map(|r| r.probability).collect();
+    let h: Vec<f64> = pairs.iter().map(|r| r.adjusted_log_odds).collect();
+    let y: Vec<bool> = pairs.iter().map(|r| r.label == Some(true)).collect();
+    let n = pairs.len();
+    let mean = |xs: &[f64]| (!xs.is_empty()).then(|| xs.iter().sum::<f64>() / xs.len() as f64);
+    let log_loss = keep(&mut notes, "log-loss", log_loss_from_log_odds(&h, &y));
+    let brier = keep(&mut notes, "Brier", brier_score(&p, &y));
+    let roc = keep(&mut notes, "AUC", roc_auc(&h, &y));
+    let ks = keep(&mut notes, "KS", ks_statistic(&h, &y));
+    let decomposition = brier_decomposition(&p, &y, BinStrategy::Uniform(CALIBRATION_BINS))
+        .ok()
+        .map(|d| Decomposition {
+            reliability: d.reliability,
+            resolution: d.resolution,
+            uncertainty: d.uncertainty,
+            within_bin_variance: d.within_bin_variance,
+            within_bin_covariance: d.within_bin_covariance,
+        });
+    let calibration = calibration_table(&p, &y, BinStrategy::Uniform(CALIBRATION_BINS))
+        .ok()
+        .map(|t| Calibration {
+            bins: t
+                .bins
+                .iter()
+                .map(|b| CalibrationBin {
+                    lower: b.lower,
+                    upper: b.upper,
+                    count: b.count,
+                    positives: b.positives,
+                    mean_predicted: b.mean_predicted,
+                    fraction_positive: b.fraction_positive,
+                })
+                .collect(),
+            ece: t.ece,
+            mce: t.mce,
+        });
+    let hl = keep(
+        &mut notes,
+        "Hosmer-Lemeshow",
+        hosmer_lemeshow(&p, &y, HlGrouping::ByRank(HL_GROUPS)).map(|t| HosmerLemeshow {
+            statistic: t.statistic,
+            degrees_of_freedom: t.degrees_of_freedom,
+            p_value: t.p_value,
+        }),
+    );
+    let gains = if n >= GAINS_GROUPS {
+        keep(&mut notes, "gains", gains_lift(&h, &y, GAINS_GROUPS))
+            .unwrap_or_default()
+            .into_iter()
+            .map(|g| Gains {
+                group: g.group,
+                count: g.count,
+                positives: g.positives,
+                cumulative_gain: g.cumulative_gain,
+                lift: g.lift,
+                cumulative_lift: g.cumulative_lift,
+            })
+            .collect()
+    } else {
+        notes.push(format!(
+            "gains: {n} pairs, fewer than the {GAINS_GROUPS} groups"
+        ));
+        Vec::new()
+    };
+    let psi = match reference {
+        None => {
+            notes.push("PSI: the model file has no reference distribution".into());
+            None
+        }
+        Some(r) => {
+            let mut actual = vec![0u64; r.fractions.len()];
+            for row in rows {
+                if let Some(c) =
+                    actual.get_mut(r.bin_of(r.value_of(row.probability, row.adjusted_log_odds)))
+                {
+                    *c += 1;
+                }
+            }
+            match psi_from_fractions(&r.fractions, &actual, EmptyBinRule::Floor(PSI_FLOOR)) {
+                Ok(value) => Some(Psi {
+                    value,
+                    on: r.on.clone(),
+                    rule: format!("shares below {PSI_FLOOR} floored to {PSI_FLOOR}"),
+                    expected: r.fractions.clone(),
+                    actual,
+                }),
+                Err(e) => {
+                    notes.push(format!("PSI: {e}"));
+                    None
+                }
+            }
+        }
+    };
+    let mut histogram_negative = vec![0u64; HISTOGRAM_BINS];
+    let mut histogram_positive = vec![0u64; HISTOGRAM_BINS];
+    for (&pi, &yi) in p.iter().zip(&y) {
+        let bin = ((pi * HISTOGRAM_BINS as f64) as usize).min(HISTOGRAM_BINS - 1);
+        if yi {
+            histogram_positive[bin] += 1;
+        } else {
+            histogram_negative[bin] += 1;
+        }
+    }
+    let all_p: Vec<f64> = rows.iter().map(|r| r.probability).collect();
+    SeriesReport {
+        route,
+        model,
+        version,
+        role,
+        predictions: rows.len(),
+        with_outcome: n,
+        immature: rows.len() - n,
+        settled_by_maturity: pairs.iter().filter(|r| r.by_maturity).count(),
+        corrected: pairs.iter().filter(|r| r.corrected).count(),
+        mean_probability: mean(&all_p).unwrap_or(0.0),
+        predicted_base_rate: mean(&p),
+        observed_base_rate: (n > 0).then(|| y.iter().filter(|&&b| b).count() as f64 / n as f64),
+        log_loss,
+        brier,
+        brier_decomposition: decomposition,
+        roc_auc: roc,
+        ks,
+        calibration,
+        hosmer_lemeshow: hl,
+        gains,
+        psi,
+        histogram_negative,
+        histogram_positive,
+        notes,
+    }
+}

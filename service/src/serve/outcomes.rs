@@ -1,0 +1,350 @@
+//! The prediction log inside the server: what a scored row becomes in the log, the `probity.v1.Outcomes`
+//! handlers (outcome batches and streams, reports), and the background sweep task.
+
+use std::pin::Pin;
+use std::sync::Arc;
+use std::time::Instant;
+
+use tokio_stream::Stream;
+use tonic::{Request, Response, Status, Streaming};
+
+use crate::report::{self, Report};
+use crate::serve::config::Route;
+use crate::serve::error::ServeError;
+use crate::serve::metrics;
+use crate::serve::proto as pb;
+use crate::serve::registry::LoadedModel;
+use crate::serve::scoring::PreparedRow;
+use crate::store::writer::{ModelFacts, Queued};
+use crate::store::{
+    ModelVersionInfo, OutcomeInput, OutcomeResult, OutcomeStatus, PredictionLog, PredictionRecord,
+    Reference, ReportFilter,
+};
+
+/// Most outcomes in one `RecordOutcomes` call.
+pub const MAX_OUTCOMES_PER_CALL: usize = 10_000;
+/// Outcomes read from a stream before they are written together.
+const STREAM_CHUNK: usize = 256;
+
+impl ModelFacts for LoadedModel {
+    fn version_info(&self) -> ModelVersionInfo {
+        ModelVersionInfo {
+            model: self.model.name().to_string(),
+            version: self.model.version().to_string(),
+            base_rate: self.model.base_rate(),
+            reference: self.model.reference_distribution().map(Reference::of),
+        }
+    }
+}
+
+/// The log entry of a scored row (the entity key and tags are moved out of the row; the response does not carry
+/// them).
+pub fn queued(
+    route: &Route,
+    loaded: &Arc<LoadedModel>,
+    row: &mut PreparedRow,
+    scored: &probity_models::Scored,
+) -> Queued {
+    Queued {
+        record: PredictionRecord {
+            prediction_id: row.prediction_id.clone(),
+            route: route.name.clone(),
+            model: loaded.model.name().to_string(),
+            version: loaded.model.version().to_string(),
+            role: "champion".into(),
+            time_ms: crate::store::clock::system_now_ms(),
+            margin: scored.margin,
+            log_odds: scored.log_odds,
+            adjusted_log_odds: scored.adjusted_log_odds,
+            probability: scored.probability,
+            entity_key: std::mem::take(&mut row.entity_key),
+            tags: std::mem::take(&mut row.tags).into_iter().collect(),
+        },
+        prior: route
+            .output
+            .target_base_rate
+            .unwrap_or_else(|| loaded.model.base_rate()),
+        facts: Arc::clone(loaded) as Arc<dyn ModelFacts>,
+    }
+}
+
+fn status_of(status: OutcomeStatus) -> pb::OutcomeStatus {
+    match status {
+        OutcomeStatus::Matched => pb::OutcomeStatus::Matched,
+        OutcomeStatus::Duplicate => pb::OutcomeStatus::Duplicate,
+        OutcomeStatus::Corrected => pb::OutcomeStatus::Corrected,
+        OutcomeStatus::Pending => pb::OutcomeStatus::Pending,
+        OutcomeStatus::Invalid => pb::OutcomeStatus::Invalid,
+    }
+}
+
+fn input(outcome: pb::Outcome) -> OutcomeInput {
+    let pb::Outcome {
+        prediction_id,
+        label,
+        outcome_time_unix_ms,
+    } = outcome;
+    OutcomeInput {
+        prediction_id,
+        label,
+        time_ms: (outcome_time_unix_ms != 0).then_some(outcome_time_unix_ms),
+    }
+}
+
+fn result(index: usize, id: String, r: OutcomeResult) -> pb::OutcomeResult {
+    pb::OutcomeResult {
+        index: index as u64,
+        prediction_id: id,
+        status: status_of(r.status) as i32,
+        predictions_matched: u32::try_from(r.predictions_matched).unwrap_or(u32::MAX),
+        message: r.message,
+    }
+}
+
+/// Records outcomes off the async runtime.
+async fn record(
+    log: Arc<PredictionLog>,
+    inputs: Vec<OutcomeInput>,
+) -> Result<Vec<OutcomeResult>, ServeError> {
+    tokio::task::spawn_blocking(move || log.record_outcomes(&inputs))
+        .await
+        .map_err(|_| ServeError::Log(crate::store::StoreError::Closed))?
+        .map_err(ServeError::from)
+}
+
+/// The report as its wire message.
+pub fn report_response(report: &Report) -> pb::ReportResponse {
+    let series = report
+        .series
+        .iter()
+        .map(|s| pb::ReportSeries {
+            route: s.route.clone(),
+            model: s.model.clone(),
+            version: s.version.clone(),
+            role: s.role.clone(),
+            predictions: s.predictions as u64,
+            with_outcome: s.with_outcome as u64,
+            immature: s.immature as u64,
+            settled_by_maturity: s.settled_by_maturity as u64,
+            corrected: s.corrected as u64,
+            observed_base_rate: s.observed_base_rate,
+            predicted_base_rate: s.predicted_base_rate,
+            log_loss: s.log_loss,
+            brier: s.brier,
+            roc_auc: s.roc_auc,
+            ks: s.ks,
+            ece: s.calibration.as_ref().map(|c| c.ece),
+            hosmer_lemeshow_statistic: s.hosmer_lemeshow.as_ref().map(|h| h.statistic),
+            hosmer_lemeshow_p_value: s.hosmer_lemeshow.as_ref().map(|h| h.p_value),
+            psi: s.psi.as_ref().map(|p| p.value),
+        })
+        .collect();
+    pb::ReportResponse {
+        series,
+        pending_outcomes: report.outcomes.pending,
+        unmatched_outcomes: report.outcomes.unmatched,
+        json: serde_json::to_string(report).unwrap_or_default(),
+    }
+}
+
+fn filter_of(request: pb::ReportRequest) -> ReportFilter {
+    let pb::ReportRequest {
+        from_unix_ms,
+        to_unix_ms,
+        route,
+        model,
+        version,
+    } = request;
+    let text = |s: String| (!s.is_empty()).then_some(s);
+    ReportFilter {
+        from_ms: (from_unix_ms != 0).then_some(from_unix_ms),
+        to_ms: (to_unix_ms != 0).then_some(to_unix_ms),
+        route: text(route),
+        model: text(model),
+        version: text(version),
+    }
+}
+
+/// The `probity.v1.Outcomes` service.
+pub struct OutcomesApi {
+    log: Option<Arc<PredictionLog>>,
+}
+
+impl OutcomesApi {
+    /// The service over the log (calls fail with FAILED_PRECONDITION when the log is off).
+    pub fn new(log: Option<Arc<PredictionLog>>) -> OutcomesApi {
+        OutcomesApi { log }
+    }
+
+    fn log(&self) -> Result<Arc<PredictionLog>, ServeError> {
+        self.log.clone().ok_or(ServeError::LogDisabled)
+    }
+}
+
+fn finish<T>(
+    method: &'static str,
+    started: Instant,
+    result: Result<T, ServeError>,
+) -> Result<Response<T>, Status> {
+    let result = result.map_err(Status::from);
+    let code = result
+        .as_ref()
+        .map_or_else(|s| s.code(), |_| tonic::Code::Ok);
+    metrics::request(method, "", code, started.elapsed().as_secs_f64());
+    result.map(Response::new)
+}
+
+#[tonic::async_trait]
+impl pb::outcomes_server::Outcomes for OutcomesApi {
+    async fn record_outcomes(
+        &self,
+        request: Request<pb::RecordOutcomesRequest>,
+    ) -> Result<Response<pb::RecordOutcomesResponse>, Status> {
+        let started = Instant::now();
+        let outcomes = request.into_inner().outcomes;
+        let result = async {
+            let log = self.log()?;
+            if outcomes.len() > MAX_OUTCOMES_PER_CALL {
+                return Err(ServeError::invalid(
+                    "outcomes",
+                    format!(
+                        "has {} outcomes, the limit is {MAX_OUTCOMES_PER_CALL}",
+                        outcomes.len()
+                    ),
+                ));
+            }
+            let ids: Vec<String> = outcomes.iter().map(|o| o.prediction_id.clone()).collect();
+            let results = record(log, outcomes.into_iter().map(input).collect()).await?;
+            Ok(pb::RecordOutcomesResponse {
+                results: results
+                    .into_iter()
+                    .zip(ids)
+                    .enumerate()
+                    .map(|(i, (r, id))| result(i, id, r))
+                    .collect(),
+            })
+        }
+        .await;
+        finish("RecordOutcomes", started, result)
+    }
+
+    type RecordOutcomeStreamStream =
+        Pin<Box<dyn Stream<Item = Result<pb::OutcomeResult, Status>> + Send>>;
+
+    async fn record_outcome_stream(
+        &self,
+        request: Request<Streaming<pb::Outcome>>,
+    ) -> Result<Response<Self::RecordOutcomeStreamStream>, Status> {
+        let log = self.log().map_err(Status::from)?;
+        let mut inbound = request.into_inner();
+        let (tx, rx) = tokio::sync::mpsc::channel(STREAM_CHUNK);
+        tokio::spawn(async move {
+            let mut index = 0usize;
+            let mut open = true;
+            while open {
+                // Take what has arrived (at least one), write it in one transaction, answer each.
+                let mut chunk = Vec::new();
+                match inbound.message().await {
+                    Ok(Some(m)) => chunk.push(m),
+                    Ok(None) => break,
+                    Err(status) => {
+                        let _ = tx.send(Err(status)).await;
+                        break;
+                    }
+                }
+                while chunk.len() < STREAM_CHUNK {
+                    match futures_now(&mut inbound).await {
+                        Some(Ok(Some(m))) => chunk.push(m),
+                        Some(Ok(None)) => {
+                            open = false;
+                            break;
+                        }
+                        Some(Err(_)) | None => break,
+                    }
+                }
+                let started = Instant::now();
+                let ids: Vec<String> = chunk.iter().map(|o| o.prediction_id.clone()).collect();
+                let written =
+                    record(Arc::clone(&log), chunk.into_iter().map(input).collect()).await;
+                let code = written
+                    .as_ref()
+                    .map_or_else(crate::serve::status::code_of, |_| tonic::Code::Ok);
+                metrics::request(
+                    "RecordOutcomeStream",
+                    "",
+                    code,
+                    started.elapsed().as_secs_f64(),
+                );
+                match written {
+                    Ok(results) => {
+                        for (r, id) in results.into_iter().zip(ids) {
+                            if tx.send(Ok(result(index, id, r))).await.is_err() {
+                                return;
+                            }
+                            index += 1;
+                        }
+                    }
+                    Err(error) => {
+                        let _ = tx.send(Err(Status::from(error))).await;
+                        return;
+                    }
+                }
+            }
+        });
+        Ok(Response::new(Box::pin(
+            tokio_stream::wrappers::ReceiverStream::new(rx),
+        )))
+    }
+
+    async fn report(
+        &self,
+        request: Request<pb::ReportRequest>,
+    ) -> Result<Response<pb::ReportResponse>, Status> {
+        let started = Instant::now();
+        let filter = filter_of(request.into_inner());
+        let result = async {
+            let log = self.log()?;
+            let report = tokio::task::spawn_blocking(move || {
+                log.with_store(|store| report::build(store, &filter))
+            })
+            .await
+            .map_err(|_| ServeError::Log(crate::store::StoreError::Closed))??;
+            Ok(report_response(&report))
+        }
+        .await;
+        finish("Report", started, result)
+    }
+}
+
+/// The next stream message if one is ready now, without waiting (`None` when none is).
+async fn futures_now(
+    inbound: &mut Streaming<pb::Outcome>,
+) -> Option<Result<Option<pb::Outcome>, Status>> {
+    tokio::select! {
+        biased;
+        m = inbound.message() => Some(m),
+        () = std::future::ready(()) => None,
+    }
+}
+
+/// Applies maturity, the outcome hold and retention every `log.sweep_interval`, first at start (so a restart picks
+/// up where the last run stopped: the sweep works from what the log holds).
+pub fn sweep_task(log: Arc<PredictionLog>) -> tokio::task::JoinHandle<()> {
+    tokio::spawn(async move {
+        let mut tick = tokio::time::interval(log.config().sweep_interval);
+        tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
+        loop {
+            tick.tick().await;
+            let l = Arc::clone(&log);
+            match tokio::task::spawn_blocking(move || l.sweep()).await {
+                Ok(Ok((matured, unmatched, removed))) => {
+                    if matured + unmatched as usize + removed as usize > 0 {
+                        tracing::info!(matured, unmatched, removed, "prediction log swept");
+                    }
+                }
+                Ok(Err(error)) => tracing::warn!(%error, "prediction log sweep failed"),
+                Err(_) => return,
+            }
+        }
+    })
+}

@@ -1,0 +1,247 @@
+//! The `[log]` section of the server configuration: where the prediction log lives and how it is written, swept
+//! and monitored. Without `log.directory` the log is off and nothing is written.
+//!
+//! ```toml
+//! [log]
+//! directory = "/var/lib/probity"   # predictions.db goes here
+//! durability = "normal"            # or "full" (see DEVELOPERS.md, "Prediction log")
+//! queue_size = 65536               # predictions waiting for the writer; when full, new ones are dropped and counted
+//! batch_size = 1000                # most predictions per transaction
+//! flush_interval = "200ms"         # longest a prediction waits in the queue
+//! outcome_hold = "1h"              # how long an outcome waits for its prediction
+//! retention = "400d"               # predictions older than this are removed
+//! sweep_interval = "60s"           # how often maturity, hold and retention are applied
+//! psi_window = 10000               # recent predictions per route/model/version in the PSI gauge
+//! prior_window = 10000             # recent predictions per route in the base-rate estimate
+//! [log.maturity]                   # per route; off unless given
+//! fraud = "90d"
+//! ```
+
+use std::collections::{BTreeMap, BTreeSet};
+use std::path::PathBuf;
+use std::time::Duration;
+
+use serde::Deserialize;
+
+use super::sqlite::Durability;
+
+/// The section as written.
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct RawLog {
+    directory: Option<PathBuf>,
+    durability: String,
+    queue_size: u64,
+    batch_size: u64,
+    flush_interval: String,
+    outcome_hold: String,
+    retention: String,
+    sweep_interval: String,
+    psi_window: u64,
+    prior_window: u64,
+    maturity: BTreeMap<String, String>,
+}
+
+impl Default for RawLog {
+    fn default() -> Self {
+        RawLog {
+            directory: None,
+            durability: "normal".into(),
+            queue_size: 65_536,
+            batch_size: 1_000,
+            flush_interval: "200ms".into(),
+            outcome_hold: "1h".into(),
+            retention: "400d".into(),
+            sweep_interval: "60s".into(),
+            psi_window: 10_000,
+            prior_window: 10_000,
+            maturity: BTreeMap::new(),
+        }
+    }
+}
+
+/// The validated section.
+#[derive(Debug, Clone, PartialEq)]
+pub struct LogConfig {
+    /// The data directory; `None` turns the log off.
+    pub directory: Option<PathBuf>,
+    /// Disk flush policy.
+    pub durability: Durability,
+    /// Queue capacity in predictions.
+    pub queue_size: usize,
+    /// Most predictions per transaction.
+    pub batch_size: usize,
+    /// Longest wait before a partial batch is written.
+    pub flush_interval: Duration,
+    /// How long an outcome waits for its prediction before it is counted unmatched.
+    pub outcome_hold: Duration,
+    /// Age after which predictions are removed.
+    pub retention: Duration,
+    /// Period of the background sweeps.
+    pub sweep_interval: Duration,
+    /// Predictions per series in the PSI gauge.
+    pub psi_window: usize,
+    /// Predictions per route in the base-rate estimate.
+    pub prior_window: usize,
+    /// Route -> maturity period.
+    pub maturity: BTreeMap<String, Duration>,
+}
+
+impl Default for LogConfig {
+    fn default() -> Self {
+        // The raw defaults always validate.
+        LogConfig::from_raw(RawLog::default(), &BTreeSet::new()).unwrap_or(LogConfig {
+            directory: None,
+            durability: Durability::Normal,
+            queue_size: 65_536,
+            batch_size: 1_000,
+            flush_interval: Duration::from_millis(200),
+            outcome_hold: Duration::from_secs(3600),
+            retention: Duration::from_secs(400 * 86_400),
+            sweep_interval: Duration::from_secs(60),
+            psi_window: 10_000,
+            prior_window: 10_000,
+            maturity: BTreeMap::new(),
+        })
+    }
+}
+
+/// A refused key: `(dotted key, message)`.
+pub type KeyError = (String, String);
+
+fn range(key: &str, v: u64, low: u64, high: u64) -> Result<usize, KeyError> {
+    if (low..=high).contains(&v) {
+        Ok(usize::try_from(v).unwrap_or(usize::MAX))
+    } else {
+        Err((key.into(), format!("must be in [{low}, {high}], got {v}")))
+    }
+}
+
+/// Parses `500ms`, `30s`, `15m`, `12h`, `90d` (a whole number and a unit).
+pub fn parse_duration(text: &str) -> Option<Duration> {
+    let text = text.trim();
+    let split = text.find(|c: char| !c.is_ascii_digit())?;
+    let (digits, unit) = text.split_at(split);
+    let n: u64 = digits.parse().ok()?;
+    let ms = match unit {
+        "ms" => 1,
+        "s" => 1_000,
+        "m" => 60_000,
+        "h" => 3_600_000,
+        "d" => 86_400_000,
+        _ => return None,
+    };
+    Some(Duration::from_millis(n.checked_mul(ms)?))
+}
+
+fn duration(key: &str, text: &str, min: Duration) -> Result<Duration, KeyError> {
+    match parse_duration(text) {
+        Some(d) if d >= min => Ok(d),
+        Some(_) => Err((
+            key.into(),
+            format!("must be at least {min:?}, got `{text}`"),
+        )),
+        None => Err((
+            key.into(),
+            format!(
+                "must be a whole number and a unit (ms, s, m, h, d) such as `90d`, got `{text}`"
+            ),
+        )),
+    }
+}
+
+impl LogConfig {
+    /// Validates the section; maturity keys must be configured routes.
+    pub fn from_raw(raw: RawLog, routes: &BTreeSet<String>) -> Result<LogConfig, KeyError> {
+        let RawLog {
+            directory,
+            durability,
+            queue_size,
+            batch_size,
+            flush_interval,
+            outcome_hold,
+            retention,
+            sweep_interval,
+            psi_window,
+            prior_window,
+            maturity,
+        } = raw;
+        if directory.as_ref().is_some_and(|d| d.as_os_str().is_empty()) {
+            return Err((
+                "log.directory".into(),
+                "must not be empty (leave it out to turn the log off)".into(),
+            ));
+        }
+        let durability = match durability.as_str() {
+            "normal" => Durability::Normal,
+            "full" => Durability::Full,
+            other => {
+                return Err((
+                    "log.durability".into(),
+                    format!("must be `normal` or `full`, got `{other}`"),
+                ))
+            }
+        };
+        let mut by_route = BTreeMap::new();
+        for (route, text) in maturity {
+            let key = format!("log.maturity.{route}");
+            if !routes.contains(&route) {
+                return Err((key, "is not a configured route".into()));
+            }
+            by_route.insert(route, duration(&key, &text, Duration::from_millis(1))?);
+        }
+        Ok(LogConfig {
+            directory,
+            durability,
+            queue_size: range("log.queue_size", queue_size, 1, 100_000_000)?,
+            batch_size: range("log.batch_size", batch_size, 1, 1_000_000)?,
+            flush_interval: duration(
+                "log.flush_interval",
+                &flush_interval,
+                Duration::from_millis(1),
+            )?,
+            outcome_hold: duration("log.outcome_hold", &outcome_hold, Duration::ZERO)?,
+            retention: duration("log.retention", &retention, Duration::from_secs(1))?,
+            sweep_interval: duration(
+                "log.sweep_interval",
+                &sweep_interval,
+                Duration::from_millis(10),
+            )?,
+            psi_window: range("log.psi_window", psi_window, 1, 10_000_000)?,
+            prior_window: range("log.prior_window", prior_window, 1, 10_000_000)?,
+            maturity: by_route,
+        })
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn durations_and_refusals() {
+        assert_eq!(
+            parse_duration("90d"),
+            Some(Duration::from_secs(90 * 86_400))
+        );
+        assert_eq!(parse_duration("250ms"), Some(Duration::from_millis(250)));
+        assert_eq!(parse_duration("5"), None);
+        assert_eq!(parse_duration("d"), None);
+        let routes: BTreeSet<String> = ["fraud".to_string()].into();
+        let raw = RawLog {
+            maturity: [("credit".to_string(), "1d".to_string())].into(),
+            ..RawLog::default()
+        };
+        let (key, _) = LogConfig::from_raw(raw, &routes).unwrap_err();
+        assert_eq!(key, "log.maturity.credit");
+        let raw = RawLog {
+            durability: "sometimes".into(),
+            ..RawLog::default()
+        };
+        assert_eq!(
+            LogConfig::from_raw(raw, &routes).unwrap_err().0,
+            "log.durability"
+        );
+        assert_eq!(LogConfig::default().maturity.len(), 0);
+    }
+}

@@ -1,0 +1,319 @@
+//! The prediction log: every prediction kept until its outcome arrives or its retention ends, outcomes matched to
+//! it by prediction id, and the sweeps that settle matured predictions and remove old ones.
+//!
+//! - [`Store`]: the storage interface. [`sqlite::SqliteStore`] is the embedded implementation (one file under the
+//!   data directory); a shared SQL database server for several replicas implements the same trait with the same
+//!   tables (see DEVELOPERS.md, "Prediction log").
+//! - [`writer::PredictionLog`]: the bounded queue that takes predictions off the request path and commits them in
+//!   batches on a writer thread, the outcome calls, and the background sweeps.
+//! - [`running`]: the running figures exported through the `metrics` facade (sums and counts).
+//! - [`config`]: the `[log]` section of the server configuration.
+//!
+//! Matching rules, shared by every implementation of [`Store`]:
+//! - an outcome is kept once per prediction id; every prediction logged under that id (a champion and its
+//!   challengers) gets its label;
+//! - the same outcome sent twice changes nothing ([`OutcomeStatus::Duplicate`]);
+//! - a different label for an id that already has one replaces it, the old one is kept in the history, and
+//!   reports use the latest ([`OutcomeStatus::Corrected`]);
+//! - an outcome whose prediction is not in the log yet is held ([`OutcomeStatus::Pending`]) and matched when the
+//!   prediction is written; after the hold period it is marked unmatched and counted;
+//! - a prediction still without an outcome when its route's maturity period has passed is settled as a negative.
+
+pub mod clock;
+pub mod config;
+pub mod running;
+pub mod sqlite;
+pub mod writer;
+
+use std::collections::BTreeMap;
+
+pub use clock::Clock;
+pub use config::LogConfig;
+pub use sqlite::SqliteStore;
+pub use writer::PredictionLog;
+
+/// One logged prediction.
+#[derive(Debug, Clone, PartialEq)]
+pub struct PredictionRecord {
+    /// The caller's id, or the server-made one.
+    pub prediction_id: String,
+    /// The route asked.
+    pub route: String,
+    /// Model name and version that scored it.
+    pub model: String,
+    /// The model version.
+    pub version: String,
+    /// `champion` for the answer given; challengers (later issue) log theirs under the same id.
+    pub role: String,
+    /// When it was scored, milliseconds since the Unix epoch.
+    pub time_ms: i64,
+    /// The model body's raw output.
+    pub margin: f64,
+    /// The margin on the log-odds scale.
+    pub log_odds: f64,
+    /// The final (calibrated, base-rate-corrected) log-odds; `probability = sigmoid(adjusted_log_odds)`.
+    pub adjusted_log_odds: f64,
+    /// The probability returned.
+    pub probability: f64,
+    /// The entity key, empty when none.
+    pub entity_key: String,
+    /// Free-form tags.
+    pub tags: BTreeMap<String, String>,
+}
+
+/// What the log keeps about a model version, so that a report needs nothing but the log file.
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct ModelVersionInfo {
+    /// Model name.
+    pub model: String,
+    /// Model version.
+    pub version: String,
+    /// The base rate the model (or its calibration) was fitted on.
+    pub base_rate: f64,
+    /// The reference score distribution of the model file, if it has one.
+    pub reference: Option<Reference>,
+}
+
+/// A model file's reference distribution (`docs/model-format.md`).
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct Reference {
+    /// `probability` or `log_odds` (the adjusted log-odds).
+    pub on: String,
+    /// Interior edges; bin `i` is `(edges[i-1], edges[i]]`.
+    pub edges: Vec<f64>,
+    /// Expected share per bin.
+    pub fractions: Vec<f64>,
+}
+
+impl Reference {
+    /// From the model crate's type.
+    pub fn of(reference: &probity_models::ReferenceDistribution) -> Reference {
+        Reference {
+            on: match reference.on {
+                probity_models::model::DistributionScale::Probability => "probability".into(),
+                probity_models::model::DistributionScale::LogOdds => "log_odds".into(),
+            },
+            edges: reference.edges.clone(),
+            fractions: reference.fractions.clone(),
+        }
+    }
+
+    /// The value of a prediction on this reference's scale.
+    pub fn value_of(&self, probability: f64, adjusted_log_odds: f64) -> f64 {
+        if self.on == "log_odds" {
+            adjusted_log_odds
+        } else {
+            probability
+        }
+    }
+
+    /// The bin of `value`: the number of edges strictly below it.
+    pub fn bin_of(&self, value: f64) -> usize {
+        probity_models::metrics::bin_index(value, &self.edges)
+    }
+}
+
+/// One outcome as sent by a client.
+#[derive(Debug, Clone, PartialEq)]
+pub struct OutcomeInput {
+    /// The prediction id it belongs to.
+    pub prediction_id: String,
+    /// True for the positive class.
+    pub label: bool,
+    /// When the outcome happened (ms since the epoch); `None` means when it was received.
+    pub time_ms: Option<i64>,
+}
+
+/// What happened to one outcome.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum OutcomeStatus {
+    /// Matched to the predictions with its id, first time.
+    Matched,
+    /// The same label was already recorded; nothing changed.
+    Duplicate,
+    /// A different label replaced the recorded one (kept in the history).
+    Corrected,
+    /// No prediction with this id yet; held for the hold period.
+    Pending,
+    /// Refused: the message says why.
+    Invalid,
+}
+
+impl OutcomeStatus {
+    /// Lower-case name, used as a metric label.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            OutcomeStatus::Matched => "matched",
+            OutcomeStatus::Duplicate => "duplicate",
+            OutcomeStatus::Corrected => "corrected",
+            OutcomeStatus::Pending => "pending",
+            OutcomeStatus::Invalid => "invalid",
+        }
+    }
+}
+
+/// The result for one outcome of a call.
+#[derive(Debug, Clone, PartialEq)]
+pub struct OutcomeResult {
+    /// What happened.
+    pub status: OutcomeStatus,
+    /// How many predictions got (or changed) their label.
+    pub predictions_matched: usize,
+    /// Why an outcome was refused; empty otherwise.
+    pub message: String,
+}
+
+/// A (prediction, label) pair that was just settled or re-labelled: what the running figures add.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Settled {
+    /// Route, model, version of the prediction.
+    pub route: String,
+    /// Model name.
+    pub model: String,
+    /// Model version.
+    pub version: String,
+    /// The probability returned.
+    pub probability: f64,
+    /// Its adjusted log-odds.
+    pub adjusted_log_odds: f64,
+    /// The label now recorded.
+    pub label: bool,
+    /// The label it replaces, for a correction (its contribution is retracted).
+    pub previous: Option<bool>,
+    /// Outcome time minus prediction time, in seconds (negative when the client's clocks disagree).
+    pub delay_seconds: f64,
+}
+
+/// Which predictions a report covers.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct ReportFilter {
+    /// Earliest prediction time included (ms since the epoch).
+    pub from_ms: Option<i64>,
+    /// Prediction times strictly before this are included.
+    pub to_ms: Option<i64>,
+    /// Only this route.
+    pub route: Option<String>,
+    /// Only this model.
+    pub model: Option<String>,
+    /// Only this version.
+    pub version: Option<String>,
+}
+
+/// One prediction read back for a report, with its outcome if it has one.
+#[derive(Debug, Clone, PartialEq)]
+pub struct LoggedPrediction {
+    /// Route, model, version and role.
+    pub route: String,
+    /// Model name.
+    pub model: String,
+    /// Model version.
+    pub version: String,
+    /// Role.
+    pub role: String,
+    /// Prediction time (ms).
+    pub time_ms: i64,
+    /// Final log-odds.
+    pub adjusted_log_odds: f64,
+    /// Probability returned.
+    pub probability: f64,
+    /// The latest label, if the outcome is known.
+    pub label: Option<bool>,
+    /// Whether that label came from the maturity rule rather than a client.
+    pub by_maturity: bool,
+    /// Whether the label was corrected at least once.
+    pub corrected: bool,
+}
+
+/// Counts of the outcome table, for reports and gauges.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, serde::Serialize)]
+pub struct OutcomeCounts {
+    /// Outcomes held, waiting for their prediction.
+    pub pending: u64,
+    /// Outcomes whose prediction never came within the hold period.
+    pub unmatched: u64,
+}
+
+/// Why the store failed.
+#[derive(Debug, thiserror::Error)]
+pub enum StoreError {
+    /// The database refused an operation.
+    #[error("prediction log database ({what}): {source}")]
+    Database {
+        /// What was being done.
+        what: &'static str,
+        /// The database error.
+        source: rusqlite::Error,
+    },
+    /// The data directory could not be created or opened.
+    #[error("prediction log directory {dir}: {source}")]
+    Directory {
+        /// The directory.
+        dir: String,
+        /// The I/O error.
+        source: std::io::Error,
+    },
+    /// The log file was written by a newer probity with a different layout.
+    #[error(
+        "prediction log schema version {found} is not supported (this build reads {supported})"
+    )]
+    Schema {
+        /// Version found in the file.
+        found: i64,
+        /// Version this build writes.
+        supported: i64,
+    },
+    /// The writer thread is gone (the server is stopping).
+    #[error("the prediction log is closed")]
+    Closed,
+}
+
+/// The storage interface of the prediction log. Every method is one transaction: it either happens whole or not
+/// at all, so the running figures (emitted from the returned [`Settled`] pairs after the commit) count each
+/// settlement exactly once.
+pub trait Store: Send {
+    /// Writes predictions (a record whose (id, route, model, role) is already logged is skipped) and matches any
+    /// held or recorded outcome for their ids. Returns, per record, whether it was written, and the pairs settled.
+    fn insert_predictions(
+        &mut self,
+        records: &[PredictionRecord],
+    ) -> Result<(Vec<bool>, Vec<Settled>), StoreError>;
+
+    /// Records a model version's facts (once; later calls for the same version change nothing).
+    fn register_model(&mut self, info: &ModelVersionInfo) -> Result<(), StoreError>;
+
+    /// Applies outcomes in order; one result per input, and the pairs settled or re-labelled.
+    fn record_outcomes(
+        &mut self,
+        outcomes: &[OutcomeInput],
+        now_ms: i64,
+    ) -> Result<(Vec<OutcomeResult>, Vec<Settled>), StoreError>;
+
+    /// Settles as negatives the predictions of each route (route -> maturity in ms) that are at least that old and
+    /// have no outcome; at most `limit` prediction ids per call.
+    fn settle_matured(
+        &mut self,
+        maturity_ms: &BTreeMap<String, i64>,
+        now_ms: i64,
+        limit: usize,
+    ) -> Result<Vec<Settled>, StoreError>;
+
+    /// Marks outcomes held longer than `hold_ms` as unmatched; returns how many.
+    fn expire_pending(&mut self, hold_ms: i64, now_ms: i64) -> Result<u64, StoreError>;
+
+    /// Removes predictions older than `retention_ms` (and outcomes left with no prediction); returns how many
+    /// predictions were removed.
+    fn remove_expired(&mut self, retention_ms: i64, now_ms: i64) -> Result<u64, StoreError>;
+
+    /// The predictions a report covers, in the order they were written, with their outcomes.
+    fn load(&mut self, filter: &ReportFilter) -> Result<Vec<LoggedPrediction>, StoreError>;
+
+    /// The facts recorded for a model version.
+    fn model_version(
+        &mut self,
+        model: &str,
+        version: &str,
+    ) -> Result<Option<ModelVersionInfo>, StoreError>;
+
+    /// Pending and unmatched outcome counts.
+    fn outcome_counts(&mut self) -> Result<OutcomeCounts, StoreError>;
+}

@@ -1,0 +1,587 @@
+//! [`Store`] on an embedded SQLite database: one file, `predictions.db`, in the data directory.
+//!
+//! The journal is write-ahead (WAL): a commit appends to the `-wal` file beside the database, so a process killed
+//! at any instant leaves every committed transaction readable at the next open. [`Durability`] sets how often the
+//! log is flushed to the disk itself, which only matters for a power loss or an operating system crash.
+//!
+//! The tables are plain SQL (no SQLite-only types beyond `INTEGER`, `REAL`, `TEXT`), so that a shared SQL
+//! database server can hold the same rows for several replicas.
+
+use std::collections::BTreeMap;
+use std::path::Path;
+
+use rusqlite::{params, Connection, OptionalExtension};
+
+use super::{
+    LoggedPrediction, ModelVersionInfo, OutcomeCounts, OutcomeInput, OutcomeResult, OutcomeStatus,
+    PredictionRecord, ReportFilter, Settled, Store, StoreError,
+};
+
+/// The table layout this build writes; kept in `PRAGMA user_version`.
+const SCHEMA_VERSION: i64 = 1;
+
+/// The database file name inside the data directory.
+pub const FILE_NAME: &str = "predictions.db";
+
+const SCHEMA: &str = "
+CREATE TABLE IF NOT EXISTS predictions (
+    seq INTEGER PRIMARY KEY,
+    prediction_id TEXT NOT NULL,
+    route TEXT NOT NULL,
+    model TEXT NOT NULL,
+    version TEXT NOT NULL,
+    role TEXT NOT NULL,
+    time_ms INTEGER NOT NULL,
+    margin REAL NOT NULL,
+    log_odds REAL NOT NULL,
+    adjusted_log_odds REAL NOT NULL,
+    probability REAL NOT NULL,
+    entity_key TEXT NOT NULL,
+    tags TEXT NOT NULL,
+    UNIQUE (prediction_id, route, model, role)
+);
+CREATE INDEX IF NOT EXISTS predictions_time ON predictions (time_ms);
+CREATE INDEX IF NOT EXISTS predictions_route_time ON predictions (route, time_ms);
+CREATE TABLE IF NOT EXISTS outcomes (
+    prediction_id TEXT PRIMARY KEY,
+    label INTEGER NOT NULL,
+    outcome_time_ms INTEGER NOT NULL,
+    received_ms INTEGER NOT NULL,
+    source TEXT NOT NULL,
+    revision INTEGER NOT NULL,
+    state TEXT NOT NULL
+);
+CREATE INDEX IF NOT EXISTS outcomes_state ON outcomes (state, received_ms);
+CREATE TABLE IF NOT EXISTS outcome_history (
+    prediction_id TEXT NOT NULL,
+    label INTEGER NOT NULL,
+    outcome_time_ms INTEGER NOT NULL,
+    received_ms INTEGER NOT NULL,
+    source TEXT NOT NULL,
+    revision INTEGER NOT NULL
+);
+CREATE TABLE IF NOT EXISTS model_versions (
+    model TEXT NOT NULL,
+    version TEXT NOT NULL,
+    info TEXT NOT NULL,
+    PRIMARY KEY (model, version)
+);
+";
+
+/// How often committed transactions reach the disk.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Durability {
+    /// `synchronous = NORMAL` in WAL mode: the log is flushed at checkpoints, not at every commit. A killed process
+    /// loses nothing committed; a power loss or OS crash may lose the transactions committed since the last
+    /// checkpoint (the database itself stays consistent).
+    Normal,
+    /// `synchronous = FULL`: every commit is flushed before it returns; a power loss loses nothing committed, at
+    /// the cost of one disk flush per batch.
+    Full,
+}
+
+impl Durability {
+    /// The configuration word.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Durability::Normal => "normal",
+            Durability::Full => "full",
+        }
+    }
+}
+
+/// The embedded prediction log.
+pub struct SqliteStore {
+    conn: Connection,
+}
+
+fn db(what: &'static str) -> impl Fn(rusqlite::Error) -> StoreError {
+    move |source| StoreError::Database { what, source }
+}
+
+impl SqliteStore {
+    /// Opens (creating if needed) `predictions.db` in `dir`.
+    pub fn open(dir: &Path, durability: Durability) -> Result<SqliteStore, StoreError> {
+        std::fs::create_dir_all(dir).map_err(|source| StoreError::Directory {
+            dir: dir.display().to_string(),
+            source,
+        })?;
+        let conn = Connection::open(dir.join(FILE_NAME)).map_err(db("open"))?;
+        Self::init(conn, durability)
+    }
+
+    /// Opens an existing log read-only-in-spirit for a report (it still may replay the WAL).
+    pub fn open_existing(file: &Path) -> Result<SqliteStore, StoreError> {
+        let conn = Connection::open_with_flags(
+            file,
+            rusqlite::OpenFlags::SQLITE_OPEN_READ_WRITE | rusqlite::OpenFlags::SQLITE_OPEN_NO_MUTEX,
+        )
+        .map_err(db("open"))?;
+        Self::init(conn, Durability::Normal)
+    }
+
+    fn init(conn: Connection, durability: Durability) -> Result<SqliteStore, StoreError> {
+        conn.pragma_update(None, "journal_mode", "WAL")
+            .map_err(db("journal mode"))?;
+        conn.pragma_update(None, "synchronous", durability.as_str())
+            .map_err(db("synchronous"))?;
+        conn.busy_timeout(std::time::Duration::from_secs(5))
+            .map_err(db("busy timeout"))?;
+        let found: i64 = conn
+            .pragma_query_value(None, "user_version", |r| r.get(0))
+            .map_err(db("schema version"))?;
+        if found > SCHEMA_VERSION {
+            return Err(StoreError::Schema {
+                found,
+                supported: SCHEMA_VERSION,
+            });
+        }
+        conn.execute_batch(SCHEMA).map_err(db("create tables"))?;
+        conn.pragma_update(None, "user_version", SCHEMA_VERSION)
+            .map_err(db("schema version"))?;
+        Ok(SqliteStore { conn })
+    }
+}
+
+/// A prediction's facts needed to settle it.
+struct Row {
+    route: String,
+    model: String,
+    version: String,
+    time_ms: i64,
+    adjusted_log_odds: f64,
+    probability: f64,
+}
+
+fn settled(row: Row, label: bool, previous: Option<bool>, outcome_time_ms: i64) -> Settled {
+    Settled {
+        delay_seconds: (outcome_time_ms - row.time_ms) as f64 / 1000.0,
+        route: row.route,
+        model: row.model,
+        version: row.version,
+        probability: row.probability,
+        adjusted_log_odds: row.adjusted_log_odds,
+        label,
+        previous,
+    }
+}
+
+fn predictions_of(tx: &rusqlite::Transaction<'_>, id: &str) -> Result<Vec<Row>, StoreError> {
+    let mut stmt = tx
+        .prepare_cached(
+            "SELECT route, model, version, time_ms, adjusted_log_odds, probability
+             FROM predictions WHERE prediction_id = ?1 ORDER BY seq",
+        )
+        .map_err(db("read predictions"))?;
+    let rows = stmt
+        .query_map([id], |r| {
+            Ok(Row {
+                route: r.get(0)?,
+                model: r.get(1)?,
+                version: r.get(2)?,
+                time_ms: r.get(3)?,
+                adjusted_log_odds: r.get(4)?,
+                probability: r.get(5)?,
+            })
+        })
+        .map_err(db("read predictions"))?
+        .collect::<Result<Vec<_>, _>>()
+        .map_err(db("read predictions"))?;
+    Ok(rows)
+}
+
+/// The recorded outcome of an id: label, state, outcome time.
+fn outcome_of(
+    tx: &rusqlite::Transaction<'_>,
+    id: &str,
+) -> Result<Option<(bool, String, i64)>, StoreError> {
+    tx.prepare_cached("SELECT label, state, outcome_time_ms FROM outcomes WHERE prediction_id = ?1")
+        .map_err(db("read outcome"))?
+        .query_row([id], |r| {
+            Ok((r.get::<_, i64>(0)? != 0, r.get(1)?, r.get(2)?))
+        })
+        .optional()
+        .map_err(db("read outcome"))
+}
+
+fn history(tx: &rusqlite::Transaction<'_>, id: &str) -> Result<(), StoreError> {
+    tx.prepare_cached(
+        "INSERT INTO outcome_history SELECT prediction_id, label, outcome_time_ms, received_ms, source, revision
+         FROM outcomes WHERE prediction_id = ?1",
+    )
+    .map_err(db("outcome history"))?
+    .execute([id])
+    .map_err(db("outcome history"))?;
+    Ok(())
+}
+
+impl Store for SqliteStore {
+    fn insert_predictions(
+        &mut self,
+        records: &[PredictionRecord],
+    ) -> Result<(Vec<bool>, Vec<Settled>), StoreError> {
+        let tx = self.conn.transaction().map_err(db("begin"))?;
+        let mut written = Vec::with_capacity(records.len());
+        let mut pairs = Vec::new();
+        {
+            let mut insert = tx
+                .prepare_cached(
+                    "INSERT OR IGNORE INTO predictions (prediction_id, route, model, version, role, time_ms,
+                     margin, log_odds, adjusted_log_odds, probability, entity_key, tags)
+                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12)",
+                )
+                .map_err(db("insert prediction"))?;
+            let mut matched = tx
+                .prepare_cached(
+                    "UPDATE outcomes SET state = 'matched' WHERE prediction_id = ?1 AND state != 'matched'",
+                )
+                .map_err(db("match outcome"))?;
+            for r in records {
+                let tags = serde_json::to_string(&r.tags).unwrap_or_else(|_| "{}".into());
+                let n = insert
+                    .execute(params![
+                        r.prediction_id,
+                        r.route,
+                        r.model,
+                        r.version,
+                        r.role,
+                        r.time_ms,
+                        r.margin,
+                        r.log_odds,
+                        r.adjusted_log_odds,
+                        r.probability,
+                        r.entity_key,
+                        tags
+                    ])
+                    .map_err(db("insert prediction"))?;
+                written.push(n > 0);
+                if n == 0 {
+                    continue; // already logged under this id, route, model and role
+                }
+                // A held outcome (or one already matched to another prediction with this id) settles it now.
+                let outcome = outcome_of(&tx, &r.prediction_id)?;
+                if let Some((label, _, outcome_time)) = outcome.filter(|o| o.1 != "unmatched") {
+                    matched
+                        .execute([&r.prediction_id])
+                        .map_err(db("match outcome"))?;
+                    let row = Row {
+                        route: r.route.clone(),
+                        model: r.model.clone(),
+                        version: r.version.clone(),
+                        time_ms: r.time_ms,
+                        adjusted_log_odds: r.adjusted_log_odds,
+                        probability: r.probability,
+                    };
+                    pairs.push(settled(row, label, None, outcome_time));
+                }
+            }
+        }
+        tx.commit().map_err(db("commit predictions"))?;
+        Ok((written, pairs))
+    }
+
+    fn register_model(&mut self, info: &ModelVersionInfo) -> Result<(), StoreError> {
+        let text = serde_json::to_string(info).unwrap_or_else(|_| "{}".into());
+        self.conn
+            .execute(
+                "INSERT OR IGNORE INTO model_versions (model, version, info) VALUES (?1, ?2, ?3)",
+                params![info.model, info.version, text],
+            )
+            .map_err(db("register model"))?;
+        Ok(())
+    }
+
+    fn record_outcomes(
+        &mut self,
+        outcomes: &[OutcomeInput],
+        now_ms: i64,
+    ) -> Result<(Vec<OutcomeResult>, Vec<Settled>), StoreError> {
+        let tx = self.conn.transaction().map_err(db("begin"))?;
+        let mut results = Vec::with_capacity(outcomes.len());
+        let mut pairs = Vec::new();
+        for o in outcomes {
+            if let Some(message) = invalid_outcome(o) {
+                results.push(OutcomeResult {
+                    status: OutcomeStatus::Invalid,
+                    predictions_matched: 0,
+                    message,
+                });
+                continue;
+            }
+            let id = o.prediction_id.as_str();
+            let time = o.time_ms.unwrap_or(now_ms);
+            let label = i64::from(o.label);
+            let existing = outcome_of(&tx, id)?;
+            let rows = predictions_of(&tx, id)?;
+            let state = if rows.is_empty() {
+                "pending"
+            } else {
+                "matched"
+            };
+            let (status, previous) = match &existing {
+                None => {
+                    tx.execute(
+                        "INSERT INTO outcomes VALUES (?1, ?2, ?3, ?4, 'reported', 0, ?5)",
+                        params![id, label, time, now_ms, state],
+                    )
+                    .map_err(db("insert outcome"))?;
+                    let status = if rows.is_empty() {
+                        OutcomeStatus::Pending
+                    } else {
+                        OutcomeStatus::Matched
+                    };
+                    (status, None)
+                }
+                Some((_, old_state, _)) if old_state == "unmatched" => {
+                    // Sent again after its hold ran out: a fresh start, not a correction.
+                    tx.execute(
+                        "UPDATE outcomes SET label = ?2, outcome_time_ms = ?3, received_ms = ?4,
+                         source = 'reported', state = ?5 WHERE prediction_id = ?1",
+                        params![id, label, time, now_ms, state],
+                    )
+                    .map_err(db("update outcome"))?;
+                    let status = if rows.is_empty() {
+                        OutcomeStatus::Pending
+                    } else {
+                        OutcomeStatus::Matched
+                    };
+                    (status, None)
+                }
+                Some((old, old_state, _)) => {
+                    let was_matched = old_state == "matched";
+                    if *old == o.label {
+                        // Same label: a maturity-settled negative now confirmed by the client is kept as reported.
+                        tx.execute(
+                            "UPDATE outcomes SET source = 'reported' WHERE prediction_id = ?1",
+                            [id],
+                        )
+                        .map_err(db("update outcome"))?;
+                        let status = if was_matched {
+                            OutcomeStatus::Duplicate
+                        } else {
+                            OutcomeStatus::Pending
+                        };
+                        results.push(OutcomeResult {
+                            status,
+                            predictions_matched: 0,
+                            message: String::new(),
+                        });
+                        continue;
+                    }
+                    history(&tx, id)?;
+                    tx.execute(
+                        "UPDATE outcomes SET label = ?2, outcome_time_ms = ?3, received_ms = ?4,
+                         source = 'reported', revision = revision + 1, state = ?5 WHERE prediction_id = ?1",
+                        params![id, label, time, now_ms, state],
+                    )
+                    .map_err(db("update outcome"))?;
+                    match (was_matched, rows.is_empty()) {
+                        (true, _) => (OutcomeStatus::Corrected, Some(*old)),
+                        (false, true) => (OutcomeStatus::Pending, None),
+                        (false, false) => (OutcomeStatus::Matched, None),
+                    }
+                }
+            };
+            let n = if status == OutcomeStatus::Pending {
+                0
+            } else {
+                rows.len()
+            };
+            for row in rows {
+                pairs.push(settled(row, o.label, previous, time));
+            }
+            results.push(OutcomeResult {
+                status,
+                predictions_matched: n,
+                message: String::new(),
+            });
+        }
+        tx.commit().map_err(db("commit outcomes"))?;
+        Ok((results, pairs))
+    }
+
+    fn settle_matured(
+        &mut self,
+        maturity_ms: &BTreeMap<String, i64>,
+        now_ms: i64,
+        limit: usize,
+    ) -> Result<Vec<Settled>, StoreError> {
+        let tx = self.conn.transaction().map_err(db("begin"))?;
+        let mut pairs = Vec::new();
+        let mut left = limit;
+        for (route, &maturity) in maturity_ms {
+            if left == 0 {
+                break;
+            }
+            let due: Vec<(String, i64)> = {
+                let mut stmt = tx
+                    .prepare_cached(
+                        "SELECT p.prediction_id, MIN(p.time_ms) FROM predictions p
+                         WHERE p.route = ?1 AND p.time_ms <= ?2 AND NOT EXISTS
+                           (SELECT 1 FROM outcomes o WHERE o.prediction_id = p.prediction_id AND o.state = 'matched')
+                         GROUP BY p.prediction_id LIMIT ?3",
+                    )
+                    .map_err(db("find matured"))?;
+                let rows = stmt
+                    .query_map(
+                        params![
+                            route,
+                            now_ms - maturity,
+                            i64::try_from(left).unwrap_or(i64::MAX)
+                        ],
+                        |r| Ok((r.get(0)?, r.get(1)?)),
+                    )
+                    .map_err(db("find matured"))?
+                    .collect::<Result<Vec<_>, _>>()
+                    .map_err(db("find matured"))?;
+                rows
+            };
+            left = left.saturating_sub(due.len());
+            for (id, first_time) in due {
+                let outcome_time = first_time + maturity;
+                tx.execute(
+                    "INSERT INTO outcomes VALUES (?1, 0, ?2, ?3, 'maturity', 0, 'matched')
+                     ON CONFLICT (prediction_id) DO UPDATE SET label = 0, outcome_time_ms = ?2, received_ms = ?3,
+                     source = 'maturity', state = 'matched'",
+                    params![id, outcome_time, now_ms],
+                )
+                .map_err(db("settle matured"))?;
+                for row in predictions_of(&tx, &id)? {
+                    pairs.push(settled(row, false, None, outcome_time));
+                }
+            }
+        }
+        tx.commit().map_err(db("commit matured"))?;
+        Ok(pairs)
+    }
+
+    fn expire_pending(&mut self, hold_ms: i64, now_ms: i64) -> Result<u64, StoreError> {
+        let n = self
+            .conn
+            .execute(
+                "UPDATE outcomes SET state = 'unmatched' WHERE state = 'pending' AND received_ms <= ?1",
+                [now_ms - hold_ms],
+            )
+            .map_err(db("expire pending"))?;
+        Ok(n as u64)
+    }
+
+    fn remove_expired(&mut self, retention_ms: i64, now_ms: i64) -> Result<u64, StoreError> {
+        let tx = self.conn.transaction().map_err(db("begin"))?;
+        let cutoff = now_ms - retention_ms;
+        let n = tx
+            .execute("DELETE FROM predictions WHERE time_ms < ?1", [cutoff])
+            .map_err(db("remove predictions"))?;
+        // Outcomes that no prediction refers to any more, and that are not waiting for one.
+        tx.execute(
+            "DELETE FROM outcomes WHERE state != 'pending' AND received_ms < ?1 AND NOT EXISTS
+             (SELECT 1 FROM predictions p WHERE p.prediction_id = outcomes.prediction_id)",
+            [cutoff],
+        )
+        .map_err(db("remove outcomes"))?;
+        tx.execute(
+            "DELETE FROM outcome_history WHERE received_ms < ?1",
+            [cutoff],
+        )
+        .map_err(db("remove history"))?;
+        tx.commit().map_err(db("commit retention"))?;
+        Ok(n as u64)
+    }
+
+    fn load(&mut self, filter: &ReportFilter) -> Result<Vec<LoggedPrediction>, StoreError> {
+        let mut stmt = self
+            .conn
+            .prepare(
+                "SELECT p.route, p.model, p.version, p.role, p.time_ms, p.adjusted_log_odds, p.probability,
+                        o.label, o.source, o.revision
+                 FROM predictions p
+                 LEFT JOIN outcomes o ON o.prediction_id = p.prediction_id AND o.state = 'matched'
+                 WHERE (?1 IS NULL OR p.time_ms >= ?1) AND (?2 IS NULL OR p.time_ms < ?2)
+                   AND (?3 IS NULL OR p.route = ?3) AND (?4 IS NULL OR p.model = ?4)
+                   AND (?5 IS NULL OR p.version = ?5)
+                 ORDER BY p.seq",
+            )
+            .map_err(db("report query"))?;
+        let rows = stmt
+            .query_map(
+                params![
+                    filter.from_ms,
+                    filter.to_ms,
+                    filter.route,
+                    filter.model,
+                    filter.version
+                ],
+                |r| {
+                    let label: Option<i64> = r.get(7)?;
+                    let source: Option<String> = r.get(8)?;
+                    let revision: Option<i64> = r.get(9)?;
+                    Ok(LoggedPrediction {
+                        route: r.get(0)?,
+                        model: r.get(1)?,
+                        version: r.get(2)?,
+                        role: r.get(3)?,
+                        time_ms: r.get(4)?,
+                        adjusted_log_odds: r.get(5)?,
+                        probability: r.get(6)?,
+                        label: label.map(|l| l != 0),
+                        by_maturity: source.as_deref() == Some("maturity"),
+                        corrected: revision.unwrap_or(0) > 0,
+                    })
+                },
+            )
+            .map_err(db("report query"))?
+            .collect::<Result<Vec<_>, _>>()
+            .map_err(db("report query"))?;
+        Ok(rows)
+    }
+
+    fn model_version(
+        &mut self,
+        model: &str,
+        version: &str,
+    ) -> Result<Option<ModelVersionInfo>, StoreError> {
+        let text: Option<String> = self
+            .conn
+            .query_row(
+                "SELECT info FROM model_versions WHERE model = ?1 AND version = ?2",
+                params![model, version],
+                |r| r.get(0),
+            )
+            .optional()
+            .map_err(db("read model version"))?;
+        Ok(text.and_then(|t| serde_json::from_str(&t).ok()))
+    }
+
+    fn outcome_counts(&mut self) -> Result<OutcomeCounts, StoreError> {
+        let count = |state: &str| -> Result<u64, StoreError> {
+            let n: i64 = self
+                .conn
+                .query_row(
+                    "SELECT COUNT(*) FROM outcomes WHERE state = ?1",
+                    [state],
+                    |r| r.get(0),
+                )
+                .map_err(db("count outcomes"))?;
+            Ok(u64::try_from(n).unwrap_or(0))
+        };
+        Ok(OutcomeCounts {
+            pending: count("pending")?,
+            unmatched: count("unmatched")?,
+        })
+    }
+}
+
+/// Why an outcome is refused, or `None`.
+fn invalid_outcome(o: &OutcomeInput) -> Option<String> {
+    let id = &o.prediction_id;
+    if id.is_empty() {
+        return Some("prediction_id: is empty".into());
+    }
+    if id.len() > 128 || !id.bytes().all(|b| (0x21..=0x7e).contains(&b)) {
+        return Some("prediction_id: must be 1 to 128 printable ASCII characters".into());
+    }
+    if o.time_ms.is_some_and(|t| t < 0) {
+        return Some("outcome_time: must not be before 1970".into());
+    }
+    None
+}

@@ -1,0 +1,339 @@
+//! [`PredictionLog`]: the bounded queue between the request path and the store, the writer thread that commits
+//! predictions in batches, the outcome and report calls, and the background sweeps.
+//!
+//! The request path only calls [`PredictionLog::log`], which never blocks: when the queue is full the prediction
+//! is dropped and counted (`probity_log_predictions_dropped_total{reason="queue_full"}`), so a slow disk slows
+//! nothing but the log. Outcome calls write synchronously (their answer says what was recorded), and reports read
+//! the store; both share it with the writer thread behind one lock.
+
+use std::collections::{BTreeMap, HashSet};
+use std::sync::atomic::{AtomicUsize, Ordering};
+use std::sync::mpsc::{self, Receiver, RecvTimeoutError, SyncSender, TrySendError};
+use std::sync::{Arc, Mutex, MutexGuard};
+use std::thread::JoinHandle;
+use std::time::{Duration, Instant};
+
+use super::running::{self, Windows};
+use super::{
+    Clock, LogConfig, ModelVersionInfo, OutcomeInput, OutcomeResult, PredictionRecord, Store,
+    StoreError,
+};
+
+/// How often the PSI and base-rate gauges are recomputed at most.
+const PUBLISH_EVERY: Duration = Duration::from_secs(1);
+/// Most prediction ids settled by maturity in one transaction.
+const MATURITY_CHUNK: usize = 10_000;
+
+/// What the log needs to know about the model that scored a prediction. Read on the writer thread, the first time
+/// a model version is seen.
+pub trait ModelFacts: Send + Sync {
+    /// The facts recorded in the log.
+    fn version_info(&self) -> ModelVersionInfo;
+}
+
+/// A prediction waiting for the writer.
+pub struct Queued {
+    /// The record.
+    pub record: PredictionRecord,
+    /// The base rate its probability is calibrated to (the route's target, else the model's).
+    pub prior: f64,
+    /// The model that scored it.
+    pub facts: Arc<dyn ModelFacts>,
+}
+
+enum Message {
+    Record(Box<Queued>),
+    /// Write everything queued before this, then answer.
+    Flush(mpsc::Sender<()>),
+}
+
+/// The prediction log as the server uses it.
+pub struct PredictionLog {
+    sender: Mutex<Option<SyncSender<Message>>>,
+    store: Arc<Mutex<Box<dyn Store>>>,
+    config: LogConfig,
+    clock: Clock,
+    depth: Arc<AtomicUsize>,
+    writer: Mutex<Option<JoinHandle<()>>>,
+}
+
+fn lock(store: &Mutex<Box<dyn Store>>) -> MutexGuard<'_, Box<dyn Store>> {
+    // A panic while holding the lock leaves the store as its last committed transaction left it.
+    store.lock().unwrap_or_else(|e| e.into_inner())
+}
+
+impl PredictionLog {
+    /// Starts the writer thread over `store`.
+    pub fn start(store: Box<dyn Store>, config: LogConfig, clock: Clock) -> Arc<PredictionLog> {
+        let (sender, receiver) = mpsc::sync_channel(config.queue_size);
+        let store = Arc::new(Mutex::new(store));
+        let depth = Arc::new(AtomicUsize::new(0));
+        let writer = Writer {
+            store: Arc::clone(&store),
+            receiver,
+            depth: Arc::clone(&depth),
+            batch_size: config.batch_size,
+            flush_interval: config.flush_interval,
+            windows: Windows::new(config.psi_window, config.prior_window),
+            registered: HashSet::new(),
+            last_publish: Instant::now(),
+        };
+        let handle = std::thread::Builder::new()
+            .name("probity-log-writer".into())
+            .spawn(move || writer.run())
+            .ok();
+        running::describe();
+        Arc::new(PredictionLog {
+            sender: Mutex::new(Some(sender)),
+            store,
+            config,
+            clock,
+            depth,
+            writer: Mutex::new(handle),
+        })
+    }
+
+    /// The configuration it runs with.
+    pub fn config(&self) -> &LogConfig {
+        &self.config
+    }
+
+    /// The clock it runs on.
+    pub fn now_ms(&self) -> i64 {
+        self.clock.now_ms()
+    }
+
+    /// Queues a prediction; never blocks. A prediction that cannot be queued is counted as dropped.
+    pub fn log(&self, queued: Queued) {
+        let guard = self.sender.lock().unwrap_or_else(|e| e.into_inner());
+        let Some(sender) = guard.as_ref() else {
+            running::dropped(&queued.record.route, "closed", 1);
+            return;
+        };
+        let route = queued.record.route.clone();
+        self.depth.fetch_add(1, Ordering::Relaxed);
+        match sender.try_send(Message::Record(Box::new(queued))) {
+            Ok(()) => {}
+            Err(TrySendError::Full(_)) => {
+                self.depth.fetch_sub(1, Ordering::Relaxed);
+                running::dropped(&route, "queue_full", 1);
+            }
+            Err(TrySendError::Disconnected(_)) => {
+                self.depth.fetch_sub(1, Ordering::Relaxed);
+                running::dropped(&route, "closed", 1);
+            }
+        }
+    }
+
+    /// Waits until every prediction queued before the call is committed (blocking; call off the async runtime).
+    pub fn flush(&self) -> Result<(), StoreError> {
+        let sender = self
+            .sender
+            .lock()
+            .unwrap_or_else(|e| e.into_inner())
+            .clone()
+            .ok_or(StoreError::Closed)?;
+        let (tx, rx) = mpsc::channel();
+        sender
+            .send(Message::Flush(tx))
+            .map_err(|_| StoreError::Closed)?;
+        rx.recv().map_err(|_| StoreError::Closed)
+    }
+
+    /// Records outcomes (blocking; call off the async runtime). The results are committed when this returns.
+    pub fn record_outcomes(
+        &self,
+        outcomes: &[OutcomeInput],
+    ) -> Result<Vec<OutcomeResult>, StoreError> {
+        let now = self.clock.now_ms();
+        let (results, pairs) = lock(&self.store).record_outcomes(outcomes, now)?;
+        for r in &results {
+            running::received(r.status);
+        }
+        running::settled(&pairs);
+        Ok(results)
+    }
+
+    /// Runs the store function `f` under the lock (reports, counts).
+    pub fn with_store<T>(
+        &self,
+        f: impl FnOnce(&mut dyn Store) -> Result<T, StoreError>,
+    ) -> Result<T, StoreError> {
+        let mut guard = lock(&self.store);
+        f(guard.as_mut())
+    }
+
+    /// Applies maturity, the outcome hold and retention now, at the clock's time. Returns (settled by maturity,
+    /// outcomes marked unmatched, predictions removed).
+    pub fn sweep(&self) -> Result<(usize, u64, u64), StoreError> {
+        let now = self.clock.now_ms();
+        let ms = |d: Duration| i64::try_from(d.as_millis()).unwrap_or(i64::MAX);
+        let maturity: BTreeMap<String, i64> = self
+            .config
+            .maturity
+            .iter()
+            .map(|(r, d)| (r.clone(), ms(*d)))
+            .collect();
+        let mut matured = 0;
+        if !maturity.is_empty() {
+            loop {
+                let pairs = lock(&self.store).settle_matured(&maturity, now, MATURITY_CHUNK)?;
+                running::swept(&pairs, 0, 0);
+                running::settled(&pairs);
+                matured += pairs.len();
+                if pairs.is_empty() {
+                    break;
+                }
+            }
+        }
+        let unmatched = lock(&self.store).expire_pending(ms(self.config.outcome_hold), now)?;
+        let removed = lock(&self.store).remove_expired(ms(self.config.retention), now)?;
+        running::swept(&[], unmatched, removed);
+        Ok((matured, unmatched, removed))
+    }
+
+    /// Stops taking predictions, writes what is queued and stops the writer thread (blocking).
+    pub fn close(&self) {
+        let sender = self.sender.lock().unwrap_or_else(|e| e.into_inner()).take();
+        drop(sender);
+        if let Some(handle) = self.writer.lock().unwrap_or_else(|e| e.into_inner()).take() {
+            let _ = handle.join();
+        }
+    }
+}
+
+/// The writer thread's state.
+struct Writer {
+    store: Arc<Mutex<Box<dyn Store>>>,
+    receiver: Receiver<Message>,
+    depth: Arc<AtomicUsize>,
+    batch_size: usize,
+    flush_interval: Duration,
+    windows: Windows,
+    registered: HashSet<(String, String)>,
+    last_publish: Instant,
+}
+
+impl Writer {
+    fn run(mut self) {
+        let mut batch: Vec<Queued> = Vec::with_capacity(self.batch_size);
+        let mut waiters: Vec<mpsc::Sender<()>> = Vec::new();
+        loop {
+            // Block for the first message, then gather until the batch is full or the flush interval ends.
+            let first = match self.receiver.recv_timeout(PUBLISH_EVERY) {
+                Ok(m) => m,
+                Err(RecvTimeoutError::Timeout) => {
+                    self.publish();
+                    continue;
+                }
+                Err(RecvTimeoutError::Disconnected) => break,
+            };
+            let deadline = Instant::now() + self.flush_interval;
+            let mut open = true;
+            let mut next = Some(first);
+            while let Some(message) = next.take() {
+                match message {
+                    Message::Record(q) => batch.push(*q),
+                    Message::Flush(w) => {
+                        waiters.push(w);
+                        break;
+                    }
+                }
+                if batch.len() >= self.batch_size {
+                    break;
+                }
+                let left = deadline.saturating_duration_since(Instant::now());
+                match self.receiver.recv_timeout(left) {
+                    Ok(m) => next = Some(m),
+                    Err(RecvTimeoutError::Timeout) => {}
+                    Err(RecvTimeoutError::Disconnected) => open = false,
+                }
+            }
+            self.write(&mut batch);
+            for w in waiters.drain(..) {
+                let _ = w.send(());
+            }
+            if !open {
+                break;
+            }
+        }
+        // The senders are gone: write what is left.
+        while let Ok(message) = self.receiver.try_recv() {
+            match message {
+                Message::Record(q) => batch.push(*q),
+                Message::Flush(w) => waiters.push(w),
+            }
+        }
+        self.write(&mut batch);
+        for w in waiters.drain(..) {
+            let _ = w.send(());
+        }
+        self.publish();
+    }
+
+    fn write(&mut self, batch: &mut Vec<Queued>) {
+        if batch.is_empty() {
+            return;
+        }
+        self.depth.fetch_sub(batch.len(), Ordering::Relaxed);
+        running::queue_depth(self.depth.load(Ordering::Relaxed));
+        let mut store = lock(&self.store);
+        for q in batch.iter() {
+            let key = (q.record.model.clone(), q.record.version.clone());
+            if !self.registered.contains(&key) {
+                match store.register_model(&q.facts.version_info()) {
+                    Ok(()) => {
+                        self.registered.insert(key);
+                    }
+                    Err(error) => {
+                        tracing::warn!(%error, "cannot record a model version in the log")
+                    }
+                }
+            }
+        }
+        let records: Vec<PredictionRecord> = batch.iter().map(|q| q.record.clone()).collect();
+        match store.insert_predictions(&records) {
+            Ok((written, pairs)) => {
+                drop(store);
+                let mut by_route: BTreeMap<(&str, bool), u64> = BTreeMap::new();
+                for (r, w) in records.iter().zip(&written) {
+                    *by_route.entry((r.route.as_str(), *w)).or_default() += 1;
+                }
+                for ((route, w), n) in by_route {
+                    if w {
+                        running::written(route, n);
+                    } else {
+                        running::dropped(route, "duplicate_id", n);
+                    }
+                }
+                running::settled(&pairs);
+            }
+            Err(error) => {
+                drop(store);
+                tracing::error!(%error, rows = records.len(), "prediction log write failed; batch dropped");
+                for r in &records {
+                    running::dropped(&r.route, "write_error", 1);
+                }
+            }
+        }
+        for q in batch.drain(..) {
+            let facts = &q.facts;
+            let r = &q.record;
+            self.windows.add(
+                (&r.route, &r.model, &r.version),
+                r.probability,
+                r.adjusted_log_odds,
+                || facts.version_info().reference,
+                q.prior,
+            );
+        }
+        if self.last_publish.elapsed() >= PUBLISH_EVERY {
+            self.publish();
+        }
+    }
+
+    fn publish(&mut self) {
+        self.last_publish = Instant::now();
+        self.windows.publish();
+    }
+}
