@@ -6,6 +6,7 @@
 //! The usual path: [`Model::from_json_str`] loads and validates a model file, a dense row is built with the help of
 //! [`Schema`], [`Model::margin`] evaluates it, and [`Model::score`] turns it into a [`Scored`] with log-odds,
 //! probability, optional points score and decision.
+#![warn(clippy::unwrap_used, clippy::expect_used)]
 
 pub mod calibration;
 pub mod decision;
@@ -21,6 +22,8 @@ pub mod transform;
 pub use calibration::{Calibration, IsotonicInput};
 pub use decision::{Decision, DecisionRule};
 pub use error::{CellError, EvalError, ModelError};
-pub use model::{MarginScale, Model, ModelSummary, ReferenceDistribution, ScoreScale, OddsOf, BodyKind};
+pub use model::{
+    BodyKind, MarginScale, Model, ModelSummary, OddsOf, ReferenceDistribution, ScoreScale,
+};
 pub use schema::{Feature, FeatureKind, Schema, UNKNOWN_CATEGORY};
 pub use transform::{OutputSpec, Scored};

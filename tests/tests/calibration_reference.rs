@@ -11,7 +11,9 @@ use serde_json::{json, Value};
 use std::path::PathBuf;
 
 fn fixture(name: &str) -> Value {
-    let path = PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("fixtures/calibration").join(format!("{name}.json"));
+    let path = PathBuf::from(env!("CARGO_MANIFEST_DIR"))
+        .join("fixtures/calibration")
+        .join(format!("{name}.json"));
     let text = std::fs::read_to_string(&path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
     serde_json::from_str(&text).unwrap()
 }
@@ -40,10 +42,16 @@ fn max_difference(name: &str) -> f64 {
     assert_eq!(h.len(), expected.len());
     let mut worst: f64 = 0.0;
     for (i, (h, want)) in h.iter().zip(expected).enumerate() {
-        let got = model.score(&[h.as_f64().unwrap()], &OutputSpec::default()).unwrap().probability;
+        let got = model
+            .score(&[h.as_f64().unwrap()], &OutputSpec::default())
+            .unwrap()
+            .probability;
         let want = want.as_f64().unwrap();
         let d = (got - want).abs();
-        assert!(d <= 1e-12, "{name} row {i}: probity {got:e}, scikit-learn {want:e}, difference {d:e}");
+        assert!(
+            d <= 1e-12,
+            "{name} row {i}: probity {got:e}, scikit-learn {want:e}, difference {d:e}"
+        );
         worst = worst.max(d);
     }
     worst
