@@ -585,6 +585,7 @@ fn demo_runs_with_given_models_and_reports_metrics() {
     let scored = dir.path().join("scored.csv");
     let o = ok(&[
         "demo",
+        "--offline",
         "--rows",
         "3000",
         "--seed",
@@ -626,7 +627,7 @@ fn demo_runs_with_given_models_and_reports_metrics() {
 
 #[test]
 fn demo_with_the_embedded_models_corrects_the_base_rate() {
-    let o = ok(&["demo", "--rows", "20000"]);
+    let o = ok(&["demo", "--offline", "--rows", "20000"]);
     let text = stdout(&o);
     for want in [
         "harbourline-fraud-trees",
