@@ -250,6 +250,10 @@ impl Writer {
                 }
             }
             self.write(&mut batch);
+            if !waiters.is_empty() {
+                // A flush brings the gauges up to date too.
+                self.publish();
+            }
             for w in waiters.drain(..) {
                 let _ = w.send(());
             }
