@@ -9,6 +9,7 @@
 #![warn(clippy::unwrap_used, clippy::expect_used)]
 
 pub mod calibration;
+pub mod compare;
 pub mod decision;
 pub mod engine;
 pub mod error;
