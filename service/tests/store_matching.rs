@@ -278,3 +278,42 @@ fn store_rejects_nothing_silently_on_duplicate_prediction_ids() {
         "the second record with the same id, route, model and role is skipped"
     );
 }
+
+/// A measurement, not a check (run with `cargo test --release -p probity --test store_matching -- --ignored
+/// --nocapture`): predictions per second through the queue and writer, and the file size per million.
+#[test]
+#[ignore]
+fn measure_log_throughput_and_size() {
+    let dir = tempfile::tempdir().unwrap();
+    let clock = Arc::new(AtomicI64::new(T0));
+    let store = SqliteStore::open(dir.path(), Durability::Normal).unwrap();
+    let cfg = LogConfig {
+        queue_size: 1 << 20,
+        ..config(dir.path())
+    };
+    let log = PredictionLog::start(Box::new(store), cfg, Clock::manual(clock));
+    let n = 500_000;
+    let started = std::time::Instant::now();
+    for i in 0..n {
+        let mut r = record(
+            &format!("0190b3c2-7d4e-7000-8000-{i:012}"),
+            "fraud",
+            T0 + i as i64,
+            0.1,
+        );
+        r.entity_key = format!("card-{}", i % 10_000);
+        log.log(queued(r));
+    }
+    log.flush().unwrap();
+    let seconds = started.elapsed().as_secs_f64();
+    log.close();
+    let bytes: u64 = std::fs::read_dir(dir.path())
+        .unwrap()
+        .map(|e| e.unwrap().metadata().unwrap().len())
+        .sum();
+    println!(
+        "{n} predictions in {seconds:.2} s: {:.0} per second; {:.0} MB per million",
+        n as f64 / seconds,
+        bytes as f64 / n as f64 * 1e6 / 1e6
+    );
+}
