@@ -3,6 +3,7 @@
 //! matching; [`report`] the exact reports from the log.
 #![warn(clippy::unwrap_used, clippy::expect_used)]
 
+pub mod compare;
 pub mod report;
 pub mod serve;
 pub mod store;

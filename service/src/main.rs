@@ -30,6 +30,8 @@ enum Command {
     Calibrate(cli::calibrate::CalibrateArgs),
     /// Report from a prediction log: calibration, log-loss, Brier, AUC, KS, gains, PSI (table, JSON, SVG).
     Report(cli::report::ReportArgs),
+    /// Champion against challenger on one route, from a prediction log (table, JSON, SVG).
+    Compare(cli::compare::CompareArgs),
     /// Run the gRPC scoring service until SIGTERM or SIGINT.
     Serve(probity::serve::ServeArgs),
 }
@@ -42,6 +44,7 @@ fn run() -> anyhow::Result<()> {
         Command::Demo(args) => cli::demo::run(&args),
         Command::Calibrate(args) => cli::calibrate::run(&args),
         Command::Report(args) => cli::report::run(&args),
+        Command::Compare(args) => cli::compare::run(&args),
         Command::Serve(args) => Ok(probity::serve::run(&args)?),
     }
 }

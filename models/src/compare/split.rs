@@ -94,6 +94,16 @@ pub struct SplitPlan {
     cumulative: Vec<f64>,
 }
 
+impl Default for SplitPlan {
+    /// No challenger: the champion answers everyone.
+    fn default() -> Self {
+        SplitPlan {
+            names: Vec::new(),
+            cumulative: Vec::new(),
+        }
+    }
+}
+
 impl SplitPlan {
     /// A plan from `(challenger name, fraction)` pairs. Errors: a fraction outside [0, 1] or NaN, a sum above 1.
     pub fn new<S: Into<String>>(

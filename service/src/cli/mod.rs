@@ -3,6 +3,7 @@
 
 pub mod calibrate;
 pub mod check;
+pub mod compare;
 pub mod demo;
 pub mod demo_data;
 pub mod pipeline;

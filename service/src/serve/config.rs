@@ -157,6 +157,7 @@ struct RawRoute {
     missing_features: Option<String>,
     unknown_categories: Option<String>,
     unknown_features: Option<String>,
+    challengers: Vec<crate::serve::challenger::RawChallenger>,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -242,6 +243,8 @@ pub struct Route {
     pub unknown_categories: UnknownCategoryPolicy,
     /// What to do with a named feature the model does not have.
     pub unknown_features: UnknownFeaturePolicy,
+    /// Challengers beside the champion (`model`), mirrored or split.
+    pub challengers: crate::serve::challenger::Challengers,
 }
 
 /// Missing-feature policy.
@@ -576,6 +579,7 @@ fn route(name: &str, raw: RawRoute) -> Result<Route, ConfigError> {
         missing_features,
         unknown_categories,
         unknown_features,
+        challengers,
     } = raw;
     let model = model.ok_or_else(|| {
         invalid(
@@ -630,6 +634,8 @@ fn route(name: &str, raw: RawRoute) -> Result<Route, ConfigError> {
             ))
         }
     };
+    let challengers = crate::serve::challenger::challengers(name, &model, challengers, valid_name)
+        .map_err(|(key, message)| invalid(key, message))?;
     Ok(Route {
         name: name.to_string(),
         model,
@@ -640,6 +646,7 @@ fn route(name: &str, raw: RawRoute) -> Result<Route, ConfigError> {
         missing_features,
         unknown_categories,
         unknown_features,
+        challengers,
     })
 }
 

@@ -309,6 +309,7 @@ fn dense_row(
 pub fn score_response(
     route: &str,
     loaded: &LoadedModel,
+    role: &str,
     row: PreparedRow,
     scored: Scored,
 ) -> pb::ScoreResponse {
@@ -341,6 +342,7 @@ pub fn score_response(
         score,
         decision: decision.map(|d| d.as_str().to_string()),
         warnings: warnings.into_iter().map(pb::Warning::from).collect(),
+        role: role.to_string(),
     }
 }
 
@@ -428,6 +430,7 @@ pub fn route_info(route: &Route, serving: Option<&LoadedModel>) -> pb::RouteInfo
         missing_features,
         unknown_categories,
         unknown_features,
+        challengers,
     } = route;
     let decision = match &output.decision {
         None => String::new(),
@@ -456,6 +459,7 @@ pub fn route_info(route: &Route, serving: Option<&LoadedModel>) -> pb::RouteInfo
         missing_features: missing_features.as_str().to_string(),
         unknown_categories: unknown_categories.as_str().to_string(),
         unknown_features: unknown_features.as_str().to_string(),
+        challengers: challengers.list.iter().map(|c| c.describe()).collect(),
     }
 }
 

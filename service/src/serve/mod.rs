@@ -9,6 +9,7 @@
 //! - [`outcomes`]: the prediction log in the server (what a scored row logs, the Outcomes service, the sweeps);
 //! - [`server`]: [`server::start`], the one function that builds the server for `main` and the tests.
 
+pub mod challenger;
 pub mod config;
 pub mod conversions;
 pub mod error;
@@ -19,6 +20,7 @@ pub mod proto;
 pub mod registry;
 pub mod scoring;
 pub mod server;
+pub mod shadow;
 pub mod status;
 
 use std::path::PathBuf;

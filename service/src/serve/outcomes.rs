@@ -42,6 +42,7 @@ impl ModelFacts for LoadedModel {
 pub fn queued(
     route: &Route,
     loaded: &Arc<LoadedModel>,
+    role: &str,
     row: &mut PreparedRow,
     scored: &probity_models::Scored,
 ) -> Queued {
@@ -51,7 +52,7 @@ pub fn queued(
             route: route.name.clone(),
             model: loaded.model.name().to_string(),
             version: loaded.model.version().to_string(),
-            role: "champion".into(),
+            role: role.to_string(),
             time_ms: crate::store::clock::system_now_ms(),
             margin: scored.margin,
             log_odds: scored.log_odds,

@@ -10,12 +10,14 @@ use std::time::Instant;
 
 use probity_models::EvalError;
 
+use crate::serve::challenger::Answer;
 use crate::serve::config::{Limits, Route};
 use crate::serve::conversions::{prepare_row, score_response};
 use crate::serve::error::ServeError;
 use crate::serve::metrics;
 use crate::serve::proto as pb;
 use crate::serve::registry::{LoadedModel, Registry};
+use crate::serve::shadow::{Answered, Shadow, ShadowJob};
 use crate::store::PredictionLog;
 
 /// Rows scored between two deadline checks in a batch.
@@ -78,6 +80,7 @@ pub struct Scorer {
     routes: BTreeMap<String, Route>,
     limits: Limits,
     log: Option<Arc<PredictionLog>>,
+    shadow: Option<Shadow>,
 }
 
 impl Scorer {
@@ -88,6 +91,45 @@ impl Scorer {
             routes,
             limits,
             log: None,
+            shadow: None,
+        }
+    }
+
+    /// The same scorer, also scoring requests in the background with the models that did not answer them
+    /// (mirrored challengers, and the other side of a split with `mirror_back`); see [`crate::serve::shadow`].
+    /// Call after [`Scorer::with_log`]. Without any challenger configured, no worker is started.
+    pub fn with_shadow(mut self) -> Scorer {
+        if self.routes.values().all(|r| r.challengers.is_empty()) {
+            return self;
+        }
+        match Shadow::start(
+            Arc::clone(&self.registry),
+            self.routes.clone(),
+            self.log.clone(),
+        ) {
+            Ok(shadow) => self.shadow = Some(shadow),
+            Err(error) => {
+                tracing::error!(%error, "cannot start the background scoring thread; challengers are not mirrored")
+            }
+        }
+        self
+    }
+
+    /// The models that score in the background when `answered` answers on `config`'s route.
+    fn shadows(&self, config: &Route, answered: &str) -> Vec<Answer> {
+        if self.shadow.is_none() {
+            return Vec::new();
+        }
+        config.challengers.shadows(&config.model, answered)
+    }
+
+    fn submit(&self, config: &Route, models: Vec<Answer>, rows: Vec<Answered>) {
+        if let Some(shadow) = &self.shadow {
+            shadow.submit(ShadowJob {
+                route: config.name.clone(),
+                models,
+                rows,
+            });
         }
     }
 
@@ -147,8 +189,18 @@ impl Scorer {
     /// Scores one row.
     pub fn score(&self, request: pb::ScoreRequest) -> Result<pb::ScoreResponse, ServeError> {
         let pb::ScoreRequest { route, row } = request;
-        let (config, loaded) = self.resolve(&route)?;
+        let (config, champion) = self.resolve(&route)?;
         let row = row.ok_or_else(|| ServeError::invalid("row", "is required"))?;
+        let answer = config
+            .challengers
+            .answer(&config.name, &config.model, &row.entity_key);
+        // A split challenger that is not loaded leaves its entities with the champion.
+        let (loaded, role) = match self.registry.snapshot().models.get(&answer.model) {
+            Some(model) if answer.role == "challenger" => (Arc::clone(model), "challenger"),
+            _ => (champion, "champion"),
+        };
+        let shadows = self.shadows(config, loaded.model.name());
+        let kept = (!shadows.is_empty()).then(|| row.clone());
         let prepared = prepare_row(row, "row", loaded.model.schema(), config)?;
         let scored = loaded
             .model
@@ -157,7 +209,17 @@ impl Scorer {
                 field: "row".into(),
                 error,
             })?;
-        Ok(self.respond(config, &loaded, prepared, scored))
+        let response = self.respond(config, &loaded, role, prepared, scored);
+        if let Some(mut row) = kept {
+            row.prediction_id.clone_from(&response.prediction_id);
+            let answered = Answered {
+                row,
+                adjusted_log_odds: response.adjusted_log_odds,
+                decision: response.decision.clone(),
+            };
+            self.submit(config, shadows, vec![answered]);
+        }
+        Ok(response)
     }
 
     /// Scores many rows with one model version; fails as a whole on the first bad row, naming it.
@@ -184,6 +246,8 @@ impl Scorer {
                 ),
             ));
         }
+        let shadows = self.shadows(config, loaded.model.name());
+        let kept = (!shadows.is_empty()).then(|| rows.clone());
         let schema = loaded.model.schema();
         let total = rows.len();
         let prepared = rows
@@ -219,14 +283,29 @@ impl Scorer {
                     },
                 })?;
         }
-        let results = prepared
+        let results: Vec<pb::ScoreResponse> = prepared
             .into_iter()
             .zip(margins)
             .map(|(row, margin)| {
                 let scored = loaded.model.finish(margin, &config.output);
-                self.respond(config, &loaded, row, scored)
+                self.respond(config, &loaded, "champion", row, scored)
             })
             .collect();
+        if let Some(rows) = kept {
+            let answered = rows
+                .into_iter()
+                .zip(&results)
+                .map(|(mut row, r)| {
+                    row.prediction_id.clone_from(&r.prediction_id);
+                    Answered {
+                        row,
+                        adjusted_log_odds: r.adjusted_log_odds,
+                        decision: r.decision.clone(),
+                    }
+                })
+                .collect();
+            self.submit(config, shadows, answered);
+        }
         Ok(pb::ScoreBatchResponse { results })
     }
 
@@ -234,12 +313,13 @@ impl Scorer {
         &self,
         config: &Route,
         loaded: &Arc<LoadedModel>,
+        role: &str,
         mut row: PreparedRow,
         scored: probity_models::Scored,
     ) -> pb::ScoreResponse {
         if let Some(log) = &self.log {
             log.log(crate::serve::outcomes::queued(
-                config, loaded, &mut row, &scored,
+                config, loaded, role, &mut row, &scored,
             ));
         }
         metrics::prediction(
@@ -252,6 +332,6 @@ impl Scorer {
         for w in &row.warnings {
             metrics::warning(&config.name, w.kind.as_str());
         }
-        score_response(&config.name, loaded, row, scored)
+        score_response(&config.name, loaded, role, row, scored)
     }
 }

@@ -252,7 +252,11 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
         }
         None => None,
     };
-    let scorer = Arc::new(Scorer::new(Arc::clone(&registry), routes, limits).with_log(log.clone()));
+    let scorer = Arc::new(
+        Scorer::new(Arc::clone(&registry), routes, limits)
+            .with_log(log.clone())
+            .with_shadow(),
+    );
     let outcomes = pb::outcomes_server::OutcomesServer::new(OutcomesApi::new(log.clone()))
         .max_decoding_message_size(limits.max_message_bytes)
         .max_encoding_message_size(limits.max_message_bytes);

@@ -202,6 +202,8 @@ pub struct ReportFilter {
 /// One prediction read back for a report, with its outcome if it has one.
 #[derive(Debug, Clone, PartialEq)]
 pub struct LoggedPrediction {
+    /// The prediction id (a champion and its challengers share it).
+    pub prediction_id: String,
     /// Route, model, version and role.
     pub route: String,
     /// Model name.

@@ -493,7 +493,7 @@ impl Store for SqliteStore {
             .conn
             .prepare(
                 "SELECT p.route, p.model, p.version, p.role, p.time_ms, p.adjusted_log_odds, p.probability,
-                        o.label, o.source, o.revision
+                        o.label, o.source, o.revision, p.prediction_id
                  FROM predictions p
                  LEFT JOIN outcomes o ON o.prediction_id = p.prediction_id AND o.state = 'matched'
                  WHERE (?1 IS NULL OR p.time_ms >= ?1) AND (?2 IS NULL OR p.time_ms < ?2)
@@ -516,6 +516,7 @@ impl Store for SqliteStore {
                     let source: Option<String> = r.get(8)?;
                     let revision: Option<i64> = r.get(9)?;
                     Ok(LoggedPrediction {
+                        prediction_id: r.get(10)?,
                         route: r.get(0)?,
                         model: r.get(1)?,
                         version: r.get(2)?,

@@ -1,0 +1,88 @@
+//! `probity compare`: champion against challenger on one route, from a prediction log file (table, JSON, SVG).
+
+use std::path::PathBuf;
+
+use anyhow::Context;
+use probity::compare::{self, svg, text, CompareRequest};
+use probity::store::{ReportFilter, SqliteStore, Store};
+
+/// Arguments of `probity compare`.
+#[derive(Debug, clap::Args)]
+pub struct CompareArgs {
+    /// The log: a data directory (holding predictions.db) or the database file itself.
+    #[arg(long, value_name = "PATH")]
+    pub log: PathBuf,
+    /// The route whose champion and challenger are compared.
+    #[arg(long)]
+    pub route: String,
+    /// The champion model (default: the model of the route's champion predictions).
+    #[arg(long)]
+    pub champion: Option<String>,
+    /// The challenger model (default: the route's only challenger).
+    #[arg(long)]
+    pub challenger: Option<String>,
+    /// Decision threshold on the probability, for the share of flipped decisions.
+    #[arg(long, value_name = "P")]
+    pub threshold: Option<f64>,
+    /// Use a Newey-West variance with this many lags in the paired tests (neighbouring cases correlated).
+    #[arg(long, value_name = "LAG")]
+    pub newey_west_lag: Option<usize>,
+    /// Earliest prediction time included, in milliseconds since the Unix epoch.
+    #[arg(long, value_name = "UNIX_MS")]
+    pub from: Option<i64>,
+    /// Prediction times before this are included (milliseconds since the Unix epoch).
+    #[arg(long, value_name = "UNIX_MS")]
+    pub to: Option<i64>,
+    /// Print JSON instead of the table.
+    #[arg(long)]
+    pub json: bool,
+    /// Write both reliability curves and the paired-difference distribution to this SVG file.
+    #[arg(long, value_name = "FILE")]
+    pub svg: Option<PathBuf>,
+}
+
+/// Runs `probity compare`.
+pub fn run(args: &CompareArgs) -> anyhow::Result<()> {
+    if let Some(t) = args.threshold {
+        if !(0.0..=1.0).contains(&t) {
+            anyhow::bail!("--threshold: must be a probability in [0, 1], got {t}");
+        }
+    }
+    let file = if args.log.is_dir() {
+        args.log.join(probity::store::sqlite::FILE_NAME)
+    } else {
+        args.log.clone()
+    };
+    if !file.is_file() {
+        anyhow::bail!("--log: no prediction log at {}", file.display());
+    }
+    let mut store = SqliteStore::open_existing(&file)
+        .with_context(|| format!("--log: opening {}", file.display()))?;
+    let request = CompareRequest {
+        filter: ReportFilter {
+            from_ms: args.from,
+            to_ms: args.to,
+            route: Some(args.route.clone()),
+            model: None,
+            version: None,
+        },
+        champion: args.champion.clone(),
+        challenger: args.challenger.clone(),
+        threshold: args.threshold,
+        newey_west_lag: args.newey_west_lag,
+    };
+    let report = compare::build(&mut store as &mut dyn Store, &request)?;
+    if args.json {
+        println!("{}", serde_json::to_string_pretty(&report)?);
+    } else {
+        print!("{}", text::render(&report));
+    }
+    if let Some(path) = &args.svg {
+        std::fs::write(path, svg::render(&report))
+            .with_context(|| format!("--svg: writing {}", path.display()))?;
+        if !args.json {
+            println!("wrote {}", path.display());
+        }
+    }
+    Ok(())
+}

@@ -1,0 +1,152 @@
+//! Background scoring of requests by the models that did not answer them (mirrored challengers, and the other side
+//! of a split with `mirror_back`), kept off the response's critical path.
+//!
+//! The request path only clones the rows and offers them to a bounded queue with `try_send`; a full queue drops the
+//! job and counts it (`probity_shadow_dropped_total`) rather than slow the answer down. One worker thread takes the
+//! jobs, scores each row with the current version of each shadow model under the route's policies, queues the
+//! predictions to the prediction log under the answer's prediction id with their role, and updates the live
+//! agreement metrics. The full comparison (rank correlation, PSI, tests once outcomes arrive) is computed from the
+//! log by `probity compare` ([`crate::compare`]).
+
+use std::collections::BTreeMap;
+use std::sync::mpsc::{sync_channel, Receiver, SyncSender, TrySendError};
+use std::sync::Arc;
+
+use crate::serve::challenger::Answer;
+use crate::serve::config::Route;
+use crate::serve::conversions::prepare_row;
+use crate::serve::proto as pb;
+use crate::serve::registry::Registry;
+use crate::store::PredictionLog;
+
+/// Rows scored in the background, by route, model and role.
+pub const SHADOW_PREDICTIONS: &str = "probity_shadow_predictions_total";
+/// Background jobs dropped because the queue was full, by route.
+pub const SHADOW_DROPPED: &str = "probity_shadow_dropped_total";
+/// Background rows not scored, by route, model and reason (`model_not_loaded`, `row_refused`).
+pub const SHADOW_FAILURES: &str = "probity_shadow_failures_total";
+/// Background rows whose decision differs from the answer's, by route and model.
+pub const SHADOW_DECISION_FLIPS: &str = "probity_shadow_decision_flips_total";
+/// Distribution of `|shadow - answer|` adjusted log-odds, by route and model.
+pub const SHADOW_LOG_ODDS_DIFFERENCE: &str = "probity_shadow_log_odds_abs_difference";
+
+/// Jobs waiting at most; beyond this the request path drops instead of waiting.
+const QUEUE_JOBS: usize = 4_096;
+
+/// What the answer said about one row, to compare the shadow's prediction with.
+#[derive(Debug, Clone)]
+pub struct Answered {
+    /// The row as received, with the prediction id of the answer filled in.
+    pub row: pb::Row,
+    /// The answer's adjusted log-odds.
+    pub adjusted_log_odds: f64,
+    /// The answer's decision, if the route has a rule.
+    pub decision: Option<String>,
+}
+
+/// One request (or batch) to score in the background.
+#[derive(Debug)]
+pub struct ShadowJob {
+    /// The route name.
+    pub route: String,
+    /// The models to score with, and their roles.
+    pub models: Vec<Answer>,
+    /// The rows with what the answer said.
+    pub rows: Vec<Answered>,
+}
+
+/// The sending side; dropping the last one ends the worker after it has finished the queued jobs.
+#[derive(Debug, Clone)]
+pub struct Shadow {
+    tx: SyncSender<ShadowJob>,
+}
+
+impl Shadow {
+    /// Starts the worker thread.
+    pub fn start(
+        registry: Arc<Registry>,
+        routes: BTreeMap<String, Route>,
+        log: Option<Arc<PredictionLog>>,
+    ) -> std::io::Result<Shadow> {
+        let (tx, rx) = sync_channel(QUEUE_JOBS);
+        std::thread::Builder::new()
+            .name("probity-shadow".into())
+            .spawn(move || work(rx, &registry, &routes, log.as_deref()))?;
+        Ok(Shadow { tx })
+    }
+
+    /// Offers a job without waiting; a full queue drops it and counts it.
+    pub fn submit(&self, job: ShadowJob) {
+        match self.tx.try_send(job) {
+            Ok(()) => {}
+            Err(TrySendError::Full(job)) | Err(TrySendError::Disconnected(job)) => {
+                metrics::counter!(SHADOW_DROPPED, "route" => job.route).increment(1);
+            }
+        }
+    }
+}
+
+fn failure(route: &str, model: &str, reason: &'static str, rows: usize) {
+    metrics::counter!(SHADOW_FAILURES, "route" => route.to_string(), "model" => model.to_string(),
+        "reason" => reason)
+    .increment(rows as u64);
+}
+
+fn work(
+    rx: Receiver<ShadowJob>,
+    registry: &Registry,
+    routes: &BTreeMap<String, Route>,
+    log: Option<&PredictionLog>,
+) {
+    while let Ok(job) = rx.recv() {
+        let Some(route) = routes.get(&job.route) else {
+            continue;
+        };
+        let snapshot = registry.snapshot();
+        for shadow in &job.models {
+            let Some(loaded) = snapshot.models.get(&shadow.model) else {
+                failure(
+                    &job.route,
+                    &shadow.model,
+                    "model_not_loaded",
+                    job.rows.len(),
+                );
+                continue;
+            };
+            for answered in &job.rows {
+                let prepared =
+                    prepare_row(answered.row.clone(), "row", loaded.model.schema(), route);
+                let Ok(mut prepared) = prepared else {
+                    failure(&job.route, &shadow.model, "row_refused", 1);
+                    continue;
+                };
+                let Ok(scored) = loaded.model.score(&prepared.values, &route.output) else {
+                    failure(&job.route, &shadow.model, "row_refused", 1);
+                    continue;
+                };
+                if let Some(log) = log {
+                    log.log(crate::serve::outcomes::queued(
+                        route,
+                        loaded,
+                        shadow.role,
+                        &mut prepared,
+                        &scored,
+                    ));
+                }
+                let labels = [
+                    ("route", job.route.clone()),
+                    ("model", shadow.model.clone()),
+                ];
+                metrics::counter!(SHADOW_PREDICTIONS, "route" => job.route.clone(),
+                    "model" => shadow.model.clone(), "role" => shadow.role)
+                .increment(1);
+                let decision = scored.decision.as_ref().map(|d| d.as_str().to_string());
+                if decision != answered.decision {
+                    metrics::counter!(SHADOW_DECISION_FLIPS, &labels).increment(1);
+                }
+                metrics::histogram!(SHADOW_LOG_ODDS_DIFFERENCE, &labels)
+                    .record((scored.adjusted_log_odds - answered.adjusted_log_odds).abs());
+            }
+        }
+    }
+}

@@ -1,0 +1,309 @@
+//! Champion and challenger through the real gRPC service (`probity serve` on loopback, a tonic client):
+//! - mirrored: every row is answered by the champion (the response names it and carries its log-odds), the
+//!   challenger scores the same row in the background, both predictions are logged under one id with their roles,
+//!   and the comparison built from the log equals the reference-fixture values (independent NumPy/SciPy
+//!   implementations of DeLong et al. 1988 and Diebold and Mariano 1995) and the per-model reports;
+//! - split: entities keep their model across calls, the challenger's share of entities is within binomial
+//!   tolerance, and the response names the model that answered.
+//!
+//! Fixture: `tests/fixtures/compare/breast_cancer.json` from `tests/fixtures/gen_compare.py` (scikit-learn 1.9.1,
+//! SciPy 1.17.1, NumPy 2.4.6, statsmodels 0.15.0) on scikit-learn's `load_breast_cancer` (Street, Wolberg and
+//! Mangasarian 1993): held-out log-odds of a LogisticRegression and a GradientBoostingClassifier. The two models
+//! served here are linear on two features `a` and `b` (coefficients 1, 0 and 0, 1), so their log-odds are the
+//! fixture's to the last bit.
+
+#![allow(clippy::unwrap_used)]
+
+use std::time::{Duration, Instant};
+
+use probity::compare::{self, CompareRequest};
+use probity::report;
+use probity::serve::config::{Config, Sources};
+use probity::serve::proto as pb;
+use probity::store::ReportFilter;
+use serde_json::{json, Value};
+
+const TOL: f64 = 1e-9;
+
+fn close(actual: f64, expected: f64, what: &str) {
+    assert!(
+        (actual - expected).abs() <= TOL * expected.abs().max(1.0),
+        "{what}\n  expected {expected:?}\n  actual   {actual:?}"
+    );
+}
+
+fn fixture() -> Value {
+    let path = concat!(
+        env!("CARGO_MANIFEST_DIR"),
+        "/../tests/fixtures/compare/breast_cancer.json"
+    );
+    serde_json::from_str(&std::fs::read_to_string(path).unwrap()).unwrap()
+}
+
+fn f64s(v: &Value) -> Vec<f64> {
+    v.as_array()
+        .unwrap()
+        .iter()
+        .map(|x| x.as_f64().unwrap())
+        .collect()
+}
+
+fn model(name: &str, coefficients: [f64; 2]) -> String {
+    json!({
+        "format": "probity.model", "format_version": 1, "name": name, "version": "1",
+        "features": [{"name": "a", "type": "numeric"}, {"name": "b", "type": "numeric"}],
+        "margin_scale": "log_odds", "base_rate": 0.5,
+        "linear": {"intercept": 0.0, "terms": [
+            {"numeric": {"feature": 0, "coefficient": coefficients[0]}},
+            {"numeric": {"feature": 1, "coefficient": coefficients[1]}}
+        ]}
+    })
+    .to_string()
+}
+
+fn row(id: String, key: String, a: f64, b: f64) -> pb::Row {
+    pb::Row {
+        prediction_id: id,
+        entity_key: key,
+        features: Some(pb::row::Features::Dense(pb::DenseFeatures {
+            values: vec![a, b],
+        })),
+        ..Default::default()
+    }
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn mirrored_and_split_challengers_through_the_service() {
+    let fix = fixture();
+    let v = &fix["variants"]["exact"];
+    let ha = f64s(&v["champion_log_odds"]);
+    let hb = f64s(&v["challenger_log_odds"]);
+    let labels: Vec<bool> = v["labels"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|y| y == 1)
+        .collect();
+    let n = ha.len();
+
+    let models = tempfile::tempdir().unwrap();
+    std::fs::write(models.path().join("champ.json"), model("champ", [1.0, 0.0])).unwrap();
+    std::fs::write(models.path().join("chall.json"), model("chall", [0.0, 1.0])).unwrap();
+    let data = tempfile::tempdir().unwrap();
+    let conf = tempfile::tempdir().unwrap();
+    let path = conf.path().join("probity.toml");
+    std::fs::write(
+        &path,
+        format!(
+            "[server]\ngrpc_listen = \"127.0.0.1:0\"\nmetrics_listen = \"127.0.0.1:0\"\n\
+             [models]\ndirectory = {:?}\nwatch = false\n\
+             [log]\ndirectory = {:?}\nflush_interval = \"5ms\"\noutcome_hold = \"1h\"\n\
+             [routes.bc]\nmodel = \"champ\"\ndecision = {{ threshold = 0.5 }}\n\
+             [[routes.bc.challengers]]\nmodel = \"chall\"\nmode = \"mirror\"\n\
+             [routes.split]\nmodel = \"champ\"\n\
+             [[routes.split.challengers]]\nmodel = \"chall\"\nmode = \"split\"\nfraction = 0.3\n",
+            models.path().display().to_string(),
+            data.path().display().to_string()
+        ),
+    )
+    .unwrap();
+    let config = Config::load(&Sources {
+        file: Some(path),
+        ..Sources::default()
+    })
+    .unwrap();
+    let server = probity::serve::start(config).await.unwrap();
+    let channel = tonic::transport::Channel::from_shared(format!("http://{}", server.grpc_addr()))
+        .unwrap()
+        .connect()
+        .await
+        .unwrap();
+    let mut scoring = pb::scoring_client::ScoringClient::new(channel.clone());
+    let mut outcomes = pb::outcomes_client::OutcomesClient::new(channel);
+
+    // Mirrored: every answer is the champion's.
+    for i in 0..n {
+        let r = scoring
+            .score(pb::ScoreRequest {
+                route: "bc".into(),
+                row: Some(row(format!("bc-{i}"), format!("cust-{i}"), ha[i], hb[i])),
+            })
+            .await
+            .unwrap()
+            .into_inner();
+        assert_eq!((r.model.as_str(), r.role.as_str()), ("champ", "champion"));
+        assert_eq!(r.log_odds.to_bits(), ha[i].to_bits());
+    }
+    let sent: Vec<pb::Outcome> = (0..n)
+        .map(|i| pb::Outcome {
+            prediction_id: format!("bc-{i}"),
+            label: labels[i],
+            outcome_time_unix_ms: 0,
+        })
+        .collect();
+    outcomes
+        .record_outcomes(pb::RecordOutcomesRequest { outcomes: sent })
+        .await
+        .unwrap();
+
+    // The challenger scores in the background: wait until all its predictions are in the log.
+    let log = std::sync::Arc::clone(server.log().unwrap());
+    let request = CompareRequest {
+        filter: ReportFilter {
+            route: Some("bc".into()),
+            ..ReportFilter::default()
+        },
+        threshold: Some(0.5),
+        ..CompareRequest::default()
+    };
+    let started = Instant::now();
+    let cmp = loop {
+        let log = std::sync::Arc::clone(&log);
+        let request = request.clone();
+        let cmp = tokio::task::spawn_blocking(move || {
+            log.flush().unwrap();
+            log.with_store(|s| Ok(compare::build(s, &request)))
+                .unwrap()
+                .unwrap()
+        })
+        .await
+        .unwrap();
+        if cmp.paired_with_outcome == n || started.elapsed() > Duration::from_secs(30) {
+            break cmp;
+        }
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    };
+    assert_eq!(
+        (cmp.champion.as_str(), cmp.challenger.as_str()),
+        ("champ", "chall")
+    );
+    assert_eq!((cmp.paired, cmp.paired_with_outcome), (n, n));
+    assert_eq!(
+        (cmp.champion_predictions, cmp.challenger_predictions),
+        (n, n)
+    );
+
+    // Against the fixture: scipy.stats.spearmanr, numpy, the 1988 DeLong pair sum, Diebold-Mariano.
+    let g = cmp.agreement.as_ref().unwrap();
+    let w = &v["agreement"];
+    close(
+        g["spearman"].as_f64().unwrap(),
+        w["spearman"].as_f64().unwrap(),
+        "spearman",
+    );
+    close(
+        g["max_absolute_log_odds_difference"].as_f64().unwrap(),
+        w["max_absolute_difference"].as_f64().unwrap(),
+        "max |diff|",
+    );
+    let flips = &w["flips"][1];
+    assert_eq!(flips["threshold"], 0.5);
+    close(
+        g["decision_flips"]["share"].as_f64().unwrap(),
+        flips["share"].as_f64().unwrap(),
+        "flip share",
+    );
+    let o = &cmp.outcomes;
+    let d = &v["delong"];
+    for (got, want) in [
+        ("auc_champion", "auc_champion"),
+        ("auc_challenger", "auc_challenger"),
+        ("standard_error", "standard_error"),
+        ("z", "z"),
+        ("p_value", "p_value"),
+    ] {
+        close(
+            o["delong"][got].as_f64().unwrap(),
+            d[want].as_f64().unwrap(),
+            got,
+        );
+    }
+    let ll = &v["log_loss"];
+    let t = &o["log_loss_test"];
+    close(
+        t["mean_difference"].as_f64().unwrap(),
+        ll["mean"].as_f64().unwrap(),
+        "DM mean",
+    );
+    close(
+        t["statistic"].as_f64().unwrap(),
+        ll["statistic"].as_f64().unwrap(),
+        "DM z",
+    );
+    close(
+        t["p_value"].as_f64().unwrap(),
+        ll["p_value"].as_f64().unwrap(),
+        "DM p",
+    );
+    assert_eq!(cmp.verdict_code, "no_clear_difference", "{}", cmp.verdict);
+
+    // The comparison agrees with each model's own report from the same log.
+    let rep = log
+        .with_store(|s| {
+            report::build(
+                s,
+                &ReportFilter {
+                    route: Some("bc".into()),
+                    ..ReportFilter::default()
+                },
+            )
+        })
+        .unwrap();
+    for (role, key) in [("champion", "champion"), ("challenger", "challenger")] {
+        let s = rep.series.iter().find(|s| s.role == role).unwrap();
+        close(
+            s.log_loss.unwrap(),
+            o[key]["log_loss"].as_f64().unwrap(),
+            &format!("{role} log-loss, report vs comparison"),
+        );
+        close(
+            s.roc_auc.unwrap(),
+            o["delong"][format!("auc_{key}")].as_f64().unwrap(),
+            &format!("{role} AUC, report vs comparison"),
+        );
+        close(
+            s.brier.unwrap(),
+            o[key]["brier"].as_f64().unwrap(),
+            &format!("{role} Brier, report vs comparison"),
+        );
+    }
+    let svg = compare::svg::render(&cmp);
+    assert!(svg.contains(r#"class="champion""#) && svg.contains(r#"class="challenger""#));
+    assert!(svg.contains(r#"class="bar""#));
+
+    // Split: 2,000 entities, each scored twice; the same entity meets the same model both times.
+    let mut to_challenger = 0usize;
+    for i in 0..2_000usize {
+        let mut seen = Vec::new();
+        for call in 0..2 {
+            let r = scoring
+                .score(pb::ScoreRequest {
+                    route: "split".into(),
+                    row: Some(row(
+                        format!("s-{i}-{call}"),
+                        format!("entity-{i}"),
+                        0.1,
+                        -0.2,
+                    )),
+                })
+                .await
+                .unwrap()
+                .into_inner();
+            assert_eq!(
+                r.role == "challenger",
+                r.model == "chall",
+                "role names the answering model"
+            );
+            seen.push(r.model);
+        }
+        assert_eq!(seen[0], seen[1], "entity-{i} changed model between calls");
+        to_challenger += usize::from(seen[0] == "chall");
+    }
+    // Within 4 binomial standard deviations of 2000 * 0.3 (common practice, no single source).
+    let sd = (2_000.0f64 * 0.3 * 0.7).sqrt();
+    assert!(
+        (to_challenger as f64 - 600.0).abs() <= 4.0 * sd,
+        "{to_challenger} of 2000 entities went to the challenger"
+    );
+    server.shutdown().await;
+}
