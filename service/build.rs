@@ -15,6 +15,7 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
         root.join("probity/v1/scoring.proto"),
         root.join("probity/v1/models.proto"),
         root.join("probity/v1/outcomes.proto"),
+        root.join("probity/v1/challengers.proto"),
     ];
     let out_dir = PathBuf::from(std::env::var("OUT_DIR")?);
     tonic_prost_build::configure()

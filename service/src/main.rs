@@ -32,6 +32,10 @@ enum Command {
     Report(cli::report::ReportArgs),
     /// Champion against challenger on one route, from a prediction log (table, JSON, SVG).
     Compare(cli::compare::CompareArgs),
+    /// Make a challenger a route's champion on a running server (admin token needed); recorded in the history.
+    Promote(cli::promote::PromoteArgs),
+    /// A running server's route promotion history.
+    RouteHistory(cli::promote::HistoryArgs),
     /// Run the gRPC scoring service until SIGTERM or SIGINT.
     Serve(probity::serve::ServeArgs),
 }
@@ -45,6 +49,8 @@ fn run() -> anyhow::Result<()> {
         Command::Calibrate(args) => cli::calibrate::run(&args),
         Command::Report(args) => cli::report::run(&args),
         Command::Compare(args) => cli::compare::run(&args),
+        Command::Promote(args) => cli::promote::run_promote(&args),
+        Command::RouteHistory(args) => cli::promote::run_history(&args),
         Command::Serve(args) => Ok(probity::serve::run(&args)?),
     }
 }

@@ -92,23 +92,26 @@ async fn mirrored_and_split_challengers_through_the_service() {
     let data = tempfile::tempdir().unwrap();
     let conf = tempfile::tempdir().unwrap();
     let path = conf.path().join("probity.toml");
+    let token_file = conf.path().join("admin.token");
+    std::fs::write(&token_file, "test-admin-token-0123456789\n").unwrap();
     std::fs::write(
         &path,
         format!(
-            "[server]\ngrpc_listen = \"127.0.0.1:0\"\nmetrics_listen = \"127.0.0.1:0\"\n\
+            "[server]\ngrpc_listen = \"127.0.0.1:0\"\nmetrics_listen = \"127.0.0.1:0\"\nadmin_token_file = {:?}\n\
              [models]\ndirectory = {:?}\nwatch = false\n\
              [log]\ndirectory = {:?}\nflush_interval = \"5ms\"\noutcome_hold = \"1h\"\n\
              [routes.bc]\nmodel = \"champ\"\ndecision = {{ threshold = 0.5 }}\n\
              [[routes.bc.challengers]]\nmodel = \"chall\"\nmode = \"mirror\"\n\
              [routes.split]\nmodel = \"champ\"\n\
              [[routes.split.challengers]]\nmodel = \"chall\"\nmode = \"split\"\nfraction = 0.3\n",
+            token_file.display().to_string(),
             models.path().display().to_string(),
             data.path().display().to_string()
         ),
     )
     .unwrap();
     let config = Config::load(&Sources {
-        file: Some(path),
+        file: Some(path.clone()),
         ..Sources::default()
     })
     .unwrap();
@@ -119,7 +122,8 @@ async fn mirrored_and_split_challengers_through_the_service() {
         .await
         .unwrap();
     let mut scoring = pb::scoring_client::ScoringClient::new(channel.clone());
-    let mut outcomes = pb::outcomes_client::OutcomesClient::new(channel);
+    let mut outcomes = pb::outcomes_client::OutcomesClient::new(channel.clone());
+    let mut admin = pb::challengers_client::ChallengersClient::new(channel);
 
     // Mirrored: every answer is the champion's.
     for i in 0..n {
@@ -305,5 +309,115 @@ async fn mirrored_and_split_challengers_through_the_service() {
         (to_challenger as f64 - 600.0).abs() <= 4.0 * sd,
         "{to_challenger} of 2000 entities went to the challenger"
     );
+
+    // The Compare RPC gives the same comparison, with the route's threshold.
+    let rpc = admin
+        .compare(pb::CompareRequest {
+            route: "bc".into(),
+            ..Default::default()
+        })
+        .await
+        .unwrap()
+        .into_inner();
+    assert_eq!(rpc.verdict_code, "no_clear_difference");
+    let json: Value = serde_json::from_str(&rpc.report_json).unwrap();
+    close(
+        json["outcomes"]["delong"]["p_value"].as_f64().unwrap(),
+        d["p_value"].as_f64().unwrap(),
+        "Compare RPC DeLong p",
+    );
+    assert!(
+        rpc.table.contains("verdict: no clear difference"),
+        "{}",
+        rpc.table
+    );
+
+    // Promotion: refused without the admin token, made with it, visible in the history and in the answers.
+    let promote = || pb::PromoteRequest {
+        route: "bc".into(),
+        challenger: "chall".into(),
+        requested_by: "model-risk-review".into(),
+        reason: "test".into(),
+    };
+    let refused = admin.promote(promote()).await.unwrap_err();
+    assert_eq!(refused.code(), tonic::Code::Unauthenticated);
+    let mut wrong = tonic::Request::new(promote());
+    wrong.metadata_mut().insert(
+        "authorization",
+        "Bearer not-the-token-at-all".parse().unwrap(),
+    );
+    assert_eq!(
+        admin.promote(wrong).await.unwrap_err().code(),
+        tonic::Code::Unauthenticated
+    );
+    let mut good = tonic::Request::new(promote());
+    good.metadata_mut().insert(
+        "authorization",
+        "Bearer test-admin-token-0123456789".parse().unwrap(),
+    );
+    let change = admin
+        .promote(good)
+        .await
+        .unwrap()
+        .into_inner()
+        .change
+        .unwrap();
+    assert_eq!(
+        (
+            change.previous_champion.as_str(),
+            change.new_champion.as_str()
+        ),
+        ("champ", "chall")
+    );
+    assert!(!change.peer.is_empty() && change.time_unix_ms > 0);
+    let r = scoring
+        .score(pb::ScoreRequest {
+            route: "bc".into(),
+            row: Some(row("after".into(), "cust-1".into(), ha[0], hb[0])),
+        })
+        .await
+        .unwrap()
+        .into_inner();
+    assert_eq!((r.model.as_str(), r.role.as_str()), ("chall", "champion"));
+    assert_eq!(r.log_odds.to_bits(), hb[0].to_bits());
+    let history = admin
+        .route_history(pb::RouteHistoryRequest { route: "bc".into() })
+        .await
+        .unwrap()
+        .into_inner()
+        .changes;
+    assert_eq!(history, vec![change.clone()]);
+    server.shutdown().await;
+
+    // A restart replays the recorded promotion.
+    let config = Config::load(&Sources {
+        file: Some(path),
+        ..Sources::default()
+    })
+    .unwrap();
+    let server = probity::serve::start(config).await.unwrap();
+    let channel = tonic::transport::Channel::from_shared(format!("http://{}", server.grpc_addr()))
+        .unwrap()
+        .connect()
+        .await
+        .unwrap();
+    let mut scoring = pb::scoring_client::ScoringClient::new(channel.clone());
+    let mut admin = pb::challengers_client::ChallengersClient::new(channel);
+    let r = scoring
+        .score(pb::ScoreRequest {
+            route: "bc".into(),
+            row: Some(row("restarted".into(), "cust-1".into(), ha[0], hb[0])),
+        })
+        .await
+        .unwrap()
+        .into_inner();
+    assert_eq!(r.model, "chall");
+    let history = admin
+        .route_history(pb::RouteHistoryRequest::default())
+        .await
+        .unwrap()
+        .into_inner()
+        .changes;
+    assert_eq!(history, vec![change]);
     server.shutdown().await;
 }

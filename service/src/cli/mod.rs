@@ -7,6 +7,7 @@ pub mod compare;
 pub mod demo;
 pub mod demo_data;
 pub mod pipeline;
+pub mod promote;
 pub mod reliability;
 pub mod report;
 pub mod score;

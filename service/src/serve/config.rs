@@ -81,6 +81,7 @@ struct RawServer {
     metrics_listen: String,
     reflection: bool,
     shutdown_grace_ms: u64,
+    admin_token_file: String,
 }
 
 impl Default for RawServer {
@@ -90,6 +91,7 @@ impl Default for RawServer {
             metrics_listen: "127.0.0.1:9464".into(),
             reflection: true,
             shutdown_grace_ms: 10_000,
+            admin_token_file: String::new(),
         }
     }
 }
@@ -181,6 +183,9 @@ pub struct Config {
     pub reflection: bool,
     /// How long a shutdown waits for in-flight calls before closing them.
     pub shutdown_grace: Duration,
+    /// The bearer token of admin calls (promotion), read from `server.admin_token_file`; admin calls are refused
+    /// without one.
+    pub admin_token: Option<AdminToken>,
     /// Where the model files are (`*.json`).
     pub model_dir: PathBuf,
     /// Whether to watch the model directory for changes.
@@ -361,6 +366,7 @@ impl Config {
             metrics_listen,
             reflection,
             shutdown_grace_ms,
+            admin_token_file,
         } = server;
         let RawModels {
             directory,
@@ -388,6 +394,7 @@ impl Config {
             metrics_listen: socket_addr("server.metrics_listen", &metrics_listen)?,
             reflection,
             shutdown_grace: Duration::from_millis(shutdown_grace_ms),
+            admin_token: admin_token(&admin_token_file)?,
             model_dir: directory,
             watch,
             watch_debounce: Duration::from_millis(in_range(
@@ -402,6 +409,41 @@ impl Config {
             routes,
         })
     }
+}
+
+/// The admin bearer token; its `Debug` form hides the value, so a logged configuration does not leak it.
+#[derive(Clone, PartialEq, Eq)]
+pub struct AdminToken(String);
+
+impl AdminToken {
+    /// The token text.
+    pub fn expose(&self) -> &str {
+        &self.0
+    }
+}
+
+impl std::fmt::Debug for AdminToken {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str("AdminToken(hidden)")
+    }
+}
+
+/// The admin token from its file: one line, at least 16 characters; `None` when no file is configured.
+fn admin_token(file: &str) -> Result<Option<AdminToken>, ConfigError> {
+    if file.is_empty() {
+        return Ok(None);
+    }
+    let key = "server.admin_token_file";
+    let text = std::fs::read_to_string(file)
+        .map_err(|e| invalid(key, format!("cannot read `{file}`: {e}")))?;
+    let token = text.trim();
+    if token.len() < 16 || token.chars().any(|c| c.is_whitespace() || c.is_control()) {
+        return Err(invalid(
+            key,
+            format!("`{file}` must hold one token of at least 16 characters without spaces"),
+        ));
+    }
+    Ok(Some(AdminToken(token.to_string())))
 }
 
 fn read_file(path: &Path) -> Result<toml::Table, ConfigError> {

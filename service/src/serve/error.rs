@@ -59,6 +59,18 @@ pub enum ServeError {
     /// The prediction log failed.
     #[error("prediction log: {0}")]
     Log(#[from] crate::store::StoreError),
+    /// An admin call without valid credentials.
+    #[error("{reason}")]
+    Unauthenticated {
+        /// What is missing or wrong (never the expected token).
+        reason: String,
+    },
+    /// A promotion was refused.
+    #[error("{0}")]
+    Promotion(#[from] crate::serve::promotion::PromotionError),
+    /// A comparison could not be built from the log (no such models on the route, ...).
+    #[error("{0}")]
+    Comparison(String),
     /// The model directory could not be listed during a reload.
     #[error("cannot read the model directory {dir}: {error}")]
     ModelDirectory {

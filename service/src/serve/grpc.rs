@@ -18,7 +18,7 @@ use crate::serve::server::Reloader;
 const STREAM_BUFFER: usize = 64;
 
 /// Records a finished call and turns the domain result into the gRPC one.
-fn finish<T>(
+pub(crate) fn finish<T>(
     method: &'static str,
     route: &str,
     started: Instant,

@@ -10,12 +10,14 @@
 //! - [`server`]: [`server::start`], the one function that builds the server for `main` and the tests.
 
 pub mod challenger;
+pub mod challengers_api;
 pub mod config;
 pub mod conversions;
 pub mod error;
 pub mod grpc;
 pub mod metrics;
 pub mod outcomes;
+pub mod promotion;
 pub mod proto;
 pub mod registry;
 pub mod scoring;

@@ -15,6 +15,7 @@ use crate::serve::config::{Limits, Route};
 use crate::serve::conversions::{prepare_row, score_response};
 use crate::serve::error::ServeError;
 use crate::serve::metrics;
+use crate::serve::promotion::{RouteMap, RouteTable};
 use crate::serve::proto as pb;
 use crate::serve::registry::{LoadedModel, Registry};
 use crate::serve::shadow::{Answered, Shadow, ShadowJob};
@@ -77,7 +78,7 @@ impl WarningKind {
 /// Scores requests against the registry's current models.
 pub struct Scorer {
     registry: Arc<Registry>,
-    routes: BTreeMap<String, Route>,
+    routes: Arc<RouteTable>,
     limits: Limits,
     log: Option<Arc<PredictionLog>>,
     shadow: Option<Shadow>,
@@ -88,7 +89,7 @@ impl Scorer {
     pub fn new(registry: Arc<Registry>, routes: BTreeMap<String, Route>, limits: Limits) -> Scorer {
         Scorer {
             registry,
-            routes,
+            routes: Arc::new(RouteTable::new(routes)),
             limits,
             log: None,
             shadow: None,
@@ -99,12 +100,17 @@ impl Scorer {
     /// (mirrored challengers, and the other side of a split with `mirror_back`); see [`crate::serve::shadow`].
     /// Call after [`Scorer::with_log`]. Without any challenger configured, no worker is started.
     pub fn with_shadow(mut self) -> Scorer {
-        if self.routes.values().all(|r| r.challengers.is_empty()) {
+        if self
+            .routes
+            .load()
+            .values()
+            .all(|r| r.challengers.is_empty())
+        {
             return self;
         }
         match Shadow::start(
             Arc::clone(&self.registry),
-            self.routes.clone(),
+            Arc::clone(&self.routes),
             self.log.clone(),
         ) {
             Ok(shadow) => self.shadow = Some(shadow),
@@ -144,8 +150,22 @@ impl Scorer {
         self.log.as_ref()
     }
 
-    /// The configured routes.
-    pub fn routes(&self) -> &BTreeMap<String, Route> {
+    /// The same scorer, recording promotions in `dir` (the prediction log's directory) and replaying the ones
+    /// recorded there; call before [`Scorer::with_shadow`].
+    pub fn with_route_history(mut self, dir: Option<&std::path::Path>) -> Scorer {
+        if let (Some(dir), Some(table)) = (dir, Arc::get_mut(&mut self.routes)) {
+            table.load_history(dir);
+        }
+        self
+    }
+
+    /// The routes now (promotions included).
+    pub fn routes(&self) -> Arc<RouteMap> {
+        self.routes.load()
+    }
+
+    /// The live route table, for promotions.
+    pub fn route_table(&self) -> &Arc<RouteTable> {
         &self.routes
     }
 
@@ -157,7 +177,7 @@ impl Scorer {
     /// The configured route name to use as a metric label: unknown names collapse into one value, so a client
     /// cannot grow the label set.
     pub fn route_label(&self, route: &str) -> String {
-        if self.routes.contains_key(route) {
+        if self.routes.load().contains_key(route) {
             route.to_string()
         } else {
             "(unknown)".to_string()
@@ -165,12 +185,13 @@ impl Scorer {
     }
 
     /// The route and the model serving it now.
-    pub fn resolve(&self, route: &str) -> Result<(&Route, Arc<LoadedModel>), ServeError> {
+    pub fn resolve(&self, route: &str) -> Result<(Arc<Route>, Arc<LoadedModel>), ServeError> {
         if route.is_empty() {
             return Err(ServeError::invalid("route", "is empty"));
         }
-        let Some(config) = self.routes.get(route) else {
-            let known = self.routes.keys().cloned().collect::<Vec<_>>().join(", ");
+        let routes = self.routes.load();
+        let Some(config) = routes.get(route).cloned() else {
+            let known = routes.keys().cloned().collect::<Vec<_>>().join(", ");
             return Err(ServeError::RouteNotFound {
                 route: route.chars().take(128).collect(),
                 known,
@@ -189,7 +210,8 @@ impl Scorer {
     /// Scores one row.
     pub fn score(&self, request: pb::ScoreRequest) -> Result<pb::ScoreResponse, ServeError> {
         let pb::ScoreRequest { route, row } = request;
-        let (config, champion) = self.resolve(&route)?;
+        let (route_now, champion) = self.resolve(&route)?;
+        let config: &Route = &route_now;
         let row = row.ok_or_else(|| ServeError::invalid("row", "is required"))?;
         let answer = config
             .challengers
@@ -229,7 +251,8 @@ impl Scorer {
         deadline: Instant,
     ) -> Result<pb::ScoreBatchResponse, ServeError> {
         let pb::ScoreBatchRequest { route, rows } = request;
-        let (config, loaded) = self.resolve(&route)?;
+        let (route_now, loaded) = self.resolve(&route)?;
+        let config: &Route = &route_now;
         if rows.is_empty() {
             return Err(ServeError::invalid(
                 "rows",

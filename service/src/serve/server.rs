@@ -210,6 +210,7 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
         metrics_listen,
         reflection,
         shutdown_grace,
+        admin_token,
         model_dir,
         watch: watch_dir,
         watch_debounce,
@@ -255,7 +256,11 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
     let scorer = Arc::new(
         Scorer::new(Arc::clone(&registry), routes, limits)
             .with_log(log.clone())
+            .with_route_history(log_config.directory.as_deref())
             .with_shadow(),
+    );
+    let challengers = pb::challengers_server::ChallengersServer::new(
+        crate::serve::challengers_api::ChallengersApi::new(Arc::clone(&scorer), admin_token),
     );
     let outcomes = pb::outcomes_server::OutcomesServer::new(OutcomesApi::new(log.clone()))
         .max_decoding_message_size(limits.max_message_bytes)
@@ -318,6 +323,7 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
         .add_service(scoring)
         .add_service(models)
         .add_service(outcomes)
+        .add_service(challengers)
         .add_optional_service(reflection_v1)
         .add_optional_service(reflection_v1alpha);
     let incoming =

@@ -8,13 +8,12 @@
 //! agreement metrics. The full comparison (rank correlation, PSI, tests once outcomes arrive) is computed from the
 //! log by `probity compare` ([`crate::compare`]).
 
-use std::collections::BTreeMap;
 use std::sync::mpsc::{sync_channel, Receiver, SyncSender, TrySendError};
 use std::sync::Arc;
 
 use crate::serve::challenger::Answer;
-use crate::serve::config::Route;
 use crate::serve::conversions::prepare_row;
+use crate::serve::promotion::RouteTable;
 use crate::serve::proto as pb;
 use crate::serve::registry::Registry;
 use crate::store::PredictionLog;
@@ -65,7 +64,7 @@ impl Shadow {
     /// Starts the worker thread.
     pub fn start(
         registry: Arc<Registry>,
-        routes: BTreeMap<String, Route>,
+        routes: Arc<RouteTable>,
         log: Option<Arc<PredictionLog>>,
     ) -> std::io::Result<Shadow> {
         let (tx, rx) = sync_channel(QUEUE_JOBS);
@@ -95,11 +94,12 @@ fn failure(route: &str, model: &str, reason: &'static str, rows: usize) {
 fn work(
     rx: Receiver<ShadowJob>,
     registry: &Registry,
-    routes: &BTreeMap<String, Route>,
+    routes: &RouteTable,
     log: Option<&PredictionLog>,
 ) {
     while let Ok(job) = rx.recv() {
-        let Some(route) = routes.get(&job.route) else {
+        let table = routes.load();
+        let Some(route) = table.get(&job.route) else {
             continue;
         };
         let snapshot = registry.snapshot();

@@ -7,6 +7,7 @@ use probity_models::EvalError;
 use tonic::{Code, Status};
 
 use crate::serve::error::ServeError;
+use crate::serve::promotion::PromotionError;
 
 impl From<ServeError> for Status {
     fn from(error: ServeError) -> Status {
@@ -24,7 +25,15 @@ impl From<ServeError> for Status {
                 tracing::error!(error = %store, "prediction log failed");
                 "the prediction log failed; the server log has the details".to_string()
             }
+            ServeError::Promotion(PromotionError::History { file, error: io }) => {
+                tracing::error!(%file, error = %io, "route history not written; promotion refused");
+                "the promotion could not be recorded, so it was not made; the server log has the details"
+                    .to_string()
+            }
             ServeError::Log(_) | ServeError::LogDisabled => error.to_string(),
+            ServeError::Unauthenticated { .. }
+            | ServeError::Promotion(_)
+            | ServeError::Comparison(_) => error.to_string(),
             ServeError::Eval { .. }
             | ServeError::InvalidField { .. }
             | ServeError::RouteNotFound { .. }
@@ -54,6 +63,17 @@ pub fn code_of(error: &ServeError) -> Code {
         ServeError::ModelDirectory { dir: _, error: _ } => Code::FailedPrecondition,
         ServeError::LogDisabled => Code::FailedPrecondition,
         ServeError::Log(error) => log_code(error),
+        ServeError::Unauthenticated { reason: _ } => Code::Unauthenticated,
+        ServeError::Promotion(error) => match error {
+            PromotionError::NoRoute(_) => Code::NotFound,
+            PromotionError::NotAChallenger {
+                route: _,
+                model: _,
+                known: _,
+            } => Code::FailedPrecondition,
+            PromotionError::History { file: _, error: _ } => Code::Internal,
+        },
+        ServeError::Comparison(_) => Code::FailedPrecondition,
     }
 }
 
@@ -77,6 +97,10 @@ fn eval_code(error: &EvalError) -> Code {
     match error {
         EvalError::MissingValue { feature: _ } => Code::InvalidArgument,
         EvalError::UnknownCategory { feature: _ } => Code::InvalidArgument,
+        EvalError::Overflow {
+            feature: _,
+            contribution: _,
+        } => Code::InvalidArgument,
         EvalError::InRow { row: _, error } => eval_code(error),
         EvalError::RowLength {
             expected: _,

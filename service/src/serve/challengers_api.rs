@@ -1,0 +1,212 @@
+//! The `probity.v1.Challengers` service: Compare (from the prediction log), Promote (an admin call) and
+//! RouteHistory. Handlers validate, call [`crate::compare`] or [`crate::serve::promotion`], and convert back.
+
+use std::sync::Arc;
+use std::time::Instant;
+
+use tonic::{Request, Response, Status};
+
+use crate::compare::{self, CompareRequest};
+use crate::serve::config::AdminToken;
+use crate::serve::error::ServeError;
+use crate::serve::grpc::finish;
+use crate::serve::promotion::RouteChange;
+use crate::serve::proto as pb;
+use crate::serve::scoring::Scorer;
+use crate::store::ReportFilter;
+
+/// The `probity.v1.Challengers` service.
+pub struct ChallengersApi {
+    scorer: Arc<Scorer>,
+    admin_token: Option<AdminToken>,
+}
+
+impl ChallengersApi {
+    /// The service over `scorer`; promotions need `admin_token`.
+    pub fn new(scorer: Arc<Scorer>, admin_token: Option<AdminToken>) -> ChallengersApi {
+        ChallengersApi {
+            scorer,
+            admin_token,
+        }
+    }
+
+    /// Checks `authorization: Bearer <token>` in constant time over the token's length.
+    fn authorize<T>(&self, request: &Request<T>) -> Result<(), ServeError> {
+        let Some(expected) = &self.admin_token else {
+            return Err(ServeError::Unauthenticated {
+                reason: "admin calls are off on this server (set server.admin_token_file)".into(),
+            });
+        };
+        let given = request
+            .metadata()
+            .get("authorization")
+            .and_then(|v| v.to_str().ok())
+            .and_then(|v| v.strip_prefix("Bearer "))
+            .ok_or_else(|| ServeError::Unauthenticated {
+                reason: "an admin call needs the metadata `authorization: Bearer <token>`".into(),
+            })?;
+        let (a, b) = (given.as_bytes(), expected.expose().as_bytes());
+        let differ =
+            a.len() != b.len() || a.iter().zip(b).fold(0u8, |acc, (x, y)| acc | (x ^ y)) != 0;
+        if differ {
+            return Err(ServeError::Unauthenticated {
+                reason: "the admin token is not valid".into(),
+            });
+        }
+        Ok(())
+    }
+}
+
+/// Builds the comparison; blocking (it reads the log), so it runs on the blocking pool.
+fn compare_on(
+    scorer: &Scorer,
+    request: pb::CompareRequest,
+) -> Result<pb::CompareResponse, ServeError> {
+    let pb::CompareRequest {
+        route,
+        challenger,
+        from_unix_ms,
+        to_unix_ms,
+    } = request;
+    let (config, _) = scorer.resolve(&route)?;
+    let log = scorer.log().ok_or(ServeError::LogDisabled)?;
+    // The flip share uses the route's threshold: the fixed one, or the Bayes-optimal one from its costs.
+    let threshold = match &config.output.decision {
+        Some(probity_models::DecisionRule::Threshold { threshold }) => Some(*threshold),
+        Some(probity_models::DecisionRule::Costs {
+            false_positive,
+            false_negative,
+        }) => Some(false_positive / (false_positive + false_negative)),
+        _ => None,
+    };
+    let request = CompareRequest {
+        filter: ReportFilter {
+            from_ms: (from_unix_ms != 0).then_some(from_unix_ms),
+            to_ms: (to_unix_ms != 0).then_some(to_unix_ms),
+            route: Some(route),
+            model: None,
+            version: None,
+        },
+        // The current champion: after a promotion the comparison follows the new arrangement.
+        champion: Some(config.model.clone()),
+        challenger: (!challenger.is_empty()).then_some(challenger),
+        threshold,
+        newey_west_lag: None,
+    };
+    let report = log.with_store(|s| Ok(compare::build(s, &request)))??;
+    Ok(pb::CompareResponse {
+        verdict_code: report.verdict_code.clone(),
+        verdict: report.verdict.clone(),
+        report_json: serde_json::to_string(&report).unwrap_or_default(),
+        table: compare::text::render(&report),
+    })
+}
+
+impl From<compare::CompareReportError> for ServeError {
+    fn from(e: compare::CompareReportError) -> ServeError {
+        match e {
+            compare::CompareReportError::Store(s) => ServeError::Log(s),
+            other => ServeError::Comparison(other.to_string()),
+        }
+    }
+}
+
+fn change(c: RouteChange) -> pb::RouteChange {
+    let RouteChange {
+        time_ms,
+        route,
+        previous_champion,
+        new_champion,
+        requested_by,
+        peer,
+        reason,
+    } = c;
+    pb::RouteChange {
+        route,
+        previous_champion,
+        new_champion,
+        requested_by,
+        peer,
+        time_unix_ms: time_ms,
+        reason,
+    }
+}
+
+#[tonic::async_trait]
+impl pb::challengers_server::Challengers for ChallengersApi {
+    async fn compare(
+        &self,
+        request: Request<pb::CompareRequest>,
+    ) -> Result<Response<pb::CompareResponse>, Status> {
+        let started = Instant::now();
+        let route = self.scorer.route_label(&request.get_ref().route);
+        let inner = request.into_inner();
+        let scorer = Arc::clone(&self.scorer);
+        let result = tokio::task::spawn_blocking(move || compare_on(&scorer, inner))
+            .await
+            .unwrap_or_else(|e| {
+                Err(ServeError::Comparison(format!(
+                    "comparison task failed: {e}"
+                )))
+            });
+        finish("Compare", &route, started, result)
+    }
+
+    async fn promote(
+        &self,
+        request: Request<pb::PromoteRequest>,
+    ) -> Result<Response<pb::PromoteResponse>, Status> {
+        let started = Instant::now();
+        let route = self.scorer.route_label(&request.get_ref().route);
+        let peer = request
+            .remote_addr()
+            .map(|a| a.to_string())
+            .unwrap_or_default();
+        let result = self.authorize(&request).and_then(|()| {
+            let pb::PromoteRequest {
+                route,
+                challenger,
+                requested_by,
+                reason,
+            } = request.into_inner();
+            if requested_by.trim().is_empty() {
+                return Err(ServeError::invalid(
+                    "requested_by",
+                    "is required: who asks for the promotion",
+                ));
+            }
+            let c = self.scorer.route_table().promote(
+                &route,
+                &challenger,
+                &requested_by,
+                &peer,
+                &reason,
+            )?;
+            Ok(pb::PromoteResponse {
+                change: Some(change(c)),
+            })
+        });
+        finish("Promote", &route, started, result)
+    }
+
+    async fn route_history(
+        &self,
+        request: Request<pb::RouteHistoryRequest>,
+    ) -> Result<Response<pb::RouteHistoryResponse>, Status> {
+        let started = Instant::now();
+        let route = request.into_inner().route;
+        let changes = self
+            .scorer
+            .route_table()
+            .history(&route)
+            .into_iter()
+            .map(change)
+            .collect();
+        finish(
+            "RouteHistory",
+            &self.scorer.route_label(&route),
+            started,
+            Ok(pb::RouteHistoryResponse { changes }),
+        )
+    }
+}
