@@ -82,7 +82,7 @@ fn write_log(dir: &std::path::Path) -> (Vec<f64>, Vec<bool>) {
     records.extend((0..10).map(|i| record(i, "b")));
     store.insert_predictions(&records).unwrap();
     let outcomes: Vec<OutcomeInput> = (0..h.len())
-        .filter(|i| i % 10 != 0)
+        .filter(|i| !i.is_multiple_of(10))
         .map(|i| OutcomeInput {
             prediction_id: format!("a-{i}"),
             label: y[i],
@@ -120,7 +120,7 @@ fn report_figures_equal_the_metrics_module_on_the_matched_pairs() {
     let s = &doc["series"][0];
     assert_eq!(doc["series"].as_array().unwrap().len(), 1, "route filter");
 
-    let keep: Vec<usize> = (0..h.len()).filter(|i| i % 10 != 0).collect();
+    let keep: Vec<usize> = (0..h.len()).filter(|i| !i.is_multiple_of(10)).collect();
     let hh: Vec<f64> = keep.iter().map(|&i| h[i]).collect();
     let yy: Vec<bool> = keep.iter().map(|&i| y[i]).collect();
     let pp: Vec<f64> = hh.iter().map(|&x| sigmoid(x)).collect();

@@ -29,7 +29,7 @@ struct Server {
 
 async fn start(config: &std::path::Path) -> Server {
     let port = free_port();
-    let child = Command::new(env!("CARGO_BIN_EXE_probity"))
+    let mut child = Command::new(env!("CARGO_BIN_EXE_probity"))
         .args(["serve", "--config"])
         .arg(config)
         .args(["--grpc-listen", &format!("127.0.0.1:{port}")])
@@ -50,6 +50,8 @@ async fn start(config: &std::path::Path) -> Server {
         }
         tokio::time::sleep(Duration::from_millis(50)).await;
     }
+    child.kill().unwrap();
+    child.wait().unwrap();
     panic!("the server did not start");
 }
 
@@ -92,7 +94,7 @@ fn rows(range: std::ops::Range<usize>) -> Vec<pb::Row> {
 
 /// The rule that makes the labels: deterministic, both classes, not a function of the score alone.
 fn label(i: usize) -> bool {
-    i % 3 == 0 || i > 150
+    i.is_multiple_of(3) || i > 150
 }
 
 fn outcomes(range: std::ops::Range<usize>) -> Vec<pb::Outcome> {
