@@ -382,7 +382,7 @@ fn progress_bar(total: u64) -> ProgressBar {
         return ProgressBar::hidden();
     }
     let style = ProgressStyle::with_template(
-        "{bar:40} {pos}/{len} rows scored over gRPC  {per_sec}  eta {eta}",
+        "{bar:40} {human_pos}/{human_len} rows scored over gRPC, {elapsed} elapsed, eta {eta}",
     )
     .unwrap_or_else(|_| ProgressStyle::default_bar());
     ProgressBar::new(total).with_style(style)
