@@ -232,6 +232,11 @@ fn svg_pictures_have_axes_diagonal_and_one_marker_per_bin_and_render() {
         .output()
         .is_err()
     {
+        // tests/run installs it and sets this variable, so CI cannot skip the check silently.
+        assert!(
+            std::env::var_os("PROBITY_REQUIRE_SVG_RENDERER").is_none(),
+            "rsvg-convert is required (Debian: librsvg2-bin) but not installed"
+        );
         eprintln!("rsvg-convert not installed (Debian: librsvg2-bin); rendering not checked");
         return;
     }
