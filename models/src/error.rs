@@ -98,6 +98,18 @@ pub enum EvalError {
         /// The feature's name.
         feature: String,
     },
+    /// A linear model's terms overflowed on extreme (finite) values: contributions of `+inf` and `-inf`, or
+    /// `0 * inf`, leave the margin undefined. `feature` is the first term whose contribution is not finite.
+    #[error(
+        "the margin is not a number: feature `{feature}` contributes {contribution}; values this extreme \
+         overflow the model's arithmetic"
+    )]
+    Overflow {
+        /// The feature of the first term with a non-finite contribution.
+        feature: String,
+        /// That term's contribution (infinite or NaN).
+        contribution: f64,
+    },
     /// An error in one row of a batch.
     #[error("row {row}: {error}")]
     InRow {

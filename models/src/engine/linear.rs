@@ -117,6 +117,30 @@ impl Linear {
         for term in &self.terms {
             m += term.contribution(row, schema)?;
         }
+        if m.is_nan() {
+            return Err(self.overflow(row, schema));
+        }
         Ok(m)
+    }
+
+    /// Why the margin of `row` is NaN: terms are finite for finite input, so some contribution overflowed.
+    #[cold]
+    fn overflow(&self, row: &[f64], schema: &Schema) -> EvalError {
+        let first = self.terms.iter().find_map(|term| {
+            let feature = match term {
+                Term::Numeric { feature, .. }
+                | Term::Categorical { feature, .. }
+                | Term::Binned { feature, .. } => *feature,
+            };
+            match term.contribution(row, schema) {
+                Ok(c) if !c.is_finite() => Some((feature, c)),
+                _ => None,
+            }
+        });
+        let (feature, contribution) = first.unwrap_or((0, f64::NAN));
+        EvalError::Overflow {
+            feature: name(schema, feature),
+            contribution,
+        }
     }
 }
