@@ -24,6 +24,23 @@ const MAX_ENTITY_KEY: usize = 256;
 const MAX_TAGS: usize = 32;
 const MAX_TAG_KEY: usize = 64;
 const MAX_TAG_VALUE: usize = 256;
+/// Longest category text that is not one of the model's categories; a longer one is refused, not routed as unknown.
+pub const MAX_CATEGORY_BYTES: usize = 1024;
+/// Most names in a named row that the model does not have. Each becomes a warning under the `ignore` policy, so
+/// without a bound a small request could ask for a response many times its size.
+pub const MAX_EXTRA_FEATURES: usize = 1024;
+/// Most characters of a caller's text repeated in an error or warning message.
+const SHOWN_CHARS: usize = 64;
+
+/// A caller's text for a message: quoted, cut to [`SHOWN_CHARS`] characters with its full length when longer.
+fn shown(text: &str) -> String {
+    if text.chars().count() <= SHOWN_CHARS {
+        format!("{text:?}")
+    } else {
+        let head: String = text.chars().take(SHOWN_CHARS).collect();
+        format!("{head:?}... ({} bytes)", text.len())
+    }
+}
 
 /// Checks a row's identity fields and turns its features into a dense row for `schema` under `route`'s policies.
 /// `field` is the row's path in the request (`row` or `rows[i]`).
@@ -103,13 +120,13 @@ fn check_identity(
     for (key, value) in tags {
         if key.is_empty() || key.len() > MAX_TAG_KEY {
             return Err(ServeError::invalid(
-                format!("{field}.tags[{key:?}]"),
+                format!("{field}.tags[{}]", shown(key)),
                 format!("tag keys are 1 to {MAX_TAG_KEY} bytes"),
             ));
         }
         if value.len() > MAX_TAG_VALUE {
             return Err(ServeError::invalid(
-                format!("{field}.tags[{key:?}]"),
+                format!("{field}.tags[{}]", shown(key)),
                 format!("tag values are at most {MAX_TAG_VALUE} bytes"),
             ));
         }
@@ -180,6 +197,17 @@ fn named_row(
     warnings: &mut Vec<RowWarning>,
 ) -> Result<Vec<f64>, ServeError> {
     let pb::NamedFeatures { values: given } = named;
+    if given.len() > schema.len() + MAX_EXTRA_FEATURES {
+        return Err(ServeError::invalid(
+            format!("{field}.named.values"),
+            format!(
+                "has {} entries; the model has {} features and a row may name at most {MAX_EXTRA_FEATURES} \
+                 others",
+                given.len(),
+                schema.len()
+            ),
+        ));
+    }
     let mut values = Vec::with_capacity(schema.len());
     let mut matched = 0usize;
     // Schema order, so that the first error reported does not depend on map iteration order.
@@ -221,9 +249,20 @@ fn named_row(
                 Some(Some(pb::feature_value::Kind::Category(text))),
             ) => match schema.category_index(index, text) {
                 Some(i) => i as f64,
+                None if text.len() > MAX_CATEGORY_BYTES => {
+                    return Err(ServeError::invalid(
+                        path(),
+                        format!(
+                            "category {} is not one of the model's categories and longer than \
+                             {MAX_CATEGORY_BYTES} bytes",
+                            shown(text)
+                        ),
+                    ));
+                }
                 None => {
                     let what = format!(
-                        "category {text:?} is not one of the model's {} categories",
+                        "category {} is not one of the model's {} categories",
+                        shown(text),
                         categories.len()
                     );
                     unknown_category(route, path, name, what, warnings)?
@@ -240,11 +279,11 @@ fn named_row(
         extra.sort();
         match route.unknown_features {
             UnknownFeaturePolicy::Reject => {
-                let first = extra.first().map(|s| s.as_str()).unwrap_or_default();
+                let first = shown(extra.first().map(|s| s.as_str()).unwrap_or_default());
                 return Err(ServeError::invalid(
-                    format!("{field}.named.values[{first:?}]"),
+                    format!("{field}.named.values[{first}]"),
                     format!(
-                        "the model has no feature {first:?} (route `{}` rejects unknown features)",
+                        "the model has no feature {first} (route `{}` rejects unknown features)",
                         route.name
                     ),
                 ));
@@ -252,7 +291,11 @@ fn named_row(
             UnknownFeaturePolicy::Ignore => {
                 warnings.extend(extra.into_iter().map(|name| RowWarning {
                     kind: WarningKind::IgnoredFeature,
-                    feature: name.clone(),
+                    feature: if name.len() > MAX_CATEGORY_BYTES {
+                        shown(name)
+                    } else {
+                        name.clone()
+                    },
                     message: "the model has no such feature; ignored".to_string(),
                 }))
             }
