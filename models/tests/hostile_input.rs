@@ -129,7 +129,7 @@ fn regression_linear_overflow_is_an_error_not_a_nan_margin() {
     for pattern in 0..4u32 {
         let row: Vec<f64> = (0..n)
             .map(|i| {
-                if (i as u32 + pattern) % 2 == 0 {
+                if (i as u32 + pattern).is_multiple_of(2) {
                     f64::MAX
                 } else {
                     -f64::MAX
