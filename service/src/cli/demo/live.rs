@@ -3,7 +3,9 @@
 //!
 //! The server is configured like any other: the models are written into a temporary model directory and a TOML
 //! configuration beside it names the routes, each with the demo data's live base rate as its target (the same
-//! target the offline demo uses, so both give the same bits).
+//! target the offline demo uses, so both give the same bits), turns the prediction log on, and mirrors the second
+//! model as a challenger on the first model's route. After the traffic, the fraud labels go back as outcomes and
+//! the report and comparison come from the server.
 
 use std::path::{Path, PathBuf};
 
@@ -11,7 +13,9 @@ use anyhow::Context;
 use probity::serve::config::{Config, Sources};
 use probity_models::Model;
 
+use super::loop_report;
 use super::offline::write_scored;
+use super::outcomes;
 use super::summary::{self, TITLE};
 use super::traffic::{self, Plan, Target};
 use super::{DemoArgs, DemoData, DemoModel, DemoRun, CAUTIONS};
@@ -22,13 +26,18 @@ const CONFIG_FILE: &str = "probity-demo.toml";
 /// Runs the live demo.
 pub fn run(args: &DemoArgs, data: &DemoData, models: Vec<DemoModel>) -> anyhow::Result<()> {
     let dir = DemoDir::create()?;
-    let config = write_config(args, data, &models, &dir.0)?;
+    let log_dir = args.data_dir.clone().unwrap_or_else(|| dir.0.join("log"));
+    std::fs::create_dir_all(&log_dir)
+        .with_context(|| format!("cannot create {}", log_dir.display()))?;
+    let config = write_config(args, data, &models, &dir.0, &log_dir)?;
     probity::serve::init_logging(&config.logging);
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .enable_all()
         .build()
         .context("cannot start the async runtime")?;
-    let result = runtime.block_on(serve_and_drive(args, data, &models, config, &dir.0));
+    let result = runtime.block_on(serve_and_drive(
+        args, data, &models, config, &dir.0, &log_dir,
+    ));
     drop(dir);
     result
 }
@@ -39,6 +48,7 @@ async fn serve_and_drive(
     models: &[DemoModel],
     config: Config,
     dir: &Path,
+    log_dir: &Path,
 ) -> anyhow::Result<()> {
     let server = probity::serve::start(config)
         .await
@@ -56,6 +66,16 @@ async fn serve_and_drive(
             data.live_base_rate
         );
     }
+    if let [champion, challenger, ..] = models {
+        println!(
+            "  challenger on {}: {} {}, mirrored (scores every request in the background; the answer stays the \
+             champion's)",
+            champion.route,
+            challenger.model.name(),
+            challenger.model.version()
+        );
+    }
+    println!("prediction log {}", log_dir.display());
     print!("{}", summary::data_section(data));
     println!(
         "\nsending every transaction to every route over {} gRPC connections ({} calls in flight): ScoreBatch \
@@ -76,6 +96,9 @@ async fn serve_and_drive(
         calls_per_connection: args.calls_per_connection.into(),
         batch_rows: args.batch_rows.into(),
     };
+    let traffic_start_ms = std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .map_or(0, |d| i64::try_from(d.as_millis()).unwrap_or(i64::MAX));
     let traffic = match traffic::drive(grpc, data, &targets, plan).await {
         Ok(t) => t,
         Err(e) => {
@@ -104,17 +127,41 @@ async fn serve_and_drive(
         }
         None => println!("\nsome rows have no answer, so no model figures are shown"),
     }
+    let pictures = match close_the_loop(args, data, models, grpc, log_dir, traffic_start_ms).await {
+        Ok(p) => p,
+        Err(e) => {
+            server.shutdown().await;
+            return Err(e.context("the demo's outcome loop stopped"));
+        }
+    };
     println!("\nwhere to look next");
     println!("  metrics   http://{metrics}/metrics (Prometheus text format); /livez and /readyz beside it");
     println!(
         "  gRPC      {grpc}: any gRPC client; server reflection is on (probity.v1.Scoring, probity.v1.Models, \
-         grpc.health.v1.Health)"
+         probity.v1.Outcomes, probity.v1.Challengers, grpc.health.v1.Health)"
     );
     println!(
         "  models    {}: a new model file version here is served without a restart",
         dir.join("models").display()
     );
     println!("  config    {}", dir.join(CONFIG_FILE).display());
+    println!(
+        "  log       probity report --log {0} (add --json), probity compare --log {0} --route {1}{2}",
+        log_dir.display(),
+        models.first().map_or("", |m| m.route.as_str()),
+        if args.data_dir.is_none() {
+            " (a temporary folder, removed when the demo stops; --data-dir keeps it)"
+        } else {
+            ""
+        }
+    );
+    if !pictures.is_empty() {
+        println!(
+            "  pictures  {} SVG files in {}",
+            pictures.len(),
+            args.svg_dir.display()
+        );
+    }
     println!("\n{CAUTIONS}");
 
     if traffic.failed_calls > 0 {
@@ -134,6 +181,61 @@ async fn serve_and_drive(
     }
     server.shutdown().await;
     Ok(())
+}
+
+/// Sends the labels back as outcomes, prints the server's report and the comparison, writes the pictures; returns
+/// the picture files.
+async fn close_the_loop(
+    args: &DemoArgs,
+    data: &DemoData,
+    models: &[DemoModel],
+    grpc: std::net::SocketAddr,
+    log_dir: &Path,
+    traffic_start_ms: i64,
+) -> anyhow::Result<Vec<PathBuf>> {
+    let channel = tonic::transport::Endpoint::from_shared(format!("http://{grpc}"))
+        .context("demo server address")?
+        .connect()
+        .await
+        .with_context(|| format!("cannot connect to the demo server at {grpc}"))?;
+    let routes: Vec<&str> = models.iter().map(|m| m.route.as_str()).collect();
+    let (list, not_yet) = outcomes::schedule(data, &routes, traffic_start_ms);
+    let transactions = list.len() / routes.len().max(1);
+    let sent = outcomes::send(channel.clone(), list, transactions, not_yet).await?;
+    print!("{}", loop_report::outcomes_section(&sent));
+
+    let rows = data.labels.len() as u64;
+    let mut expected: Vec<(String, String, u64)> = models
+        .iter()
+        .map(|m| (m.route.clone(), "champion".to_string(), rows))
+        .collect();
+    let has_challenger = models.len() > 1;
+    let route = routes.first().copied().unwrap_or_default();
+    if has_challenger {
+        expected.push((route.to_string(), "challenger".to_string(), rows));
+    }
+    let (report, complete) = outcomes::settled_report(
+        channel.clone(),
+        &expected,
+        std::time::Duration::from_secs(60),
+    )
+    .await?;
+    print!("{}", loop_report::report_section(&report, route, complete));
+    if has_challenger {
+        print!("{}", loop_report::compare_section(channel, route).await?);
+    }
+    let written = loop_report::write_svgs(log_dir, &args.svg_dir, route, has_challenger)?;
+    println!(
+        "
+pictures written to {}:",
+        args.svg_dir.display()
+    );
+    for path in &written {
+        if let Some(name) = path.file_name() {
+            println!("  {}", name.to_string_lossy());
+        }
+    }
+    Ok(written)
 }
 
 /// One route's answers as a [`DemoRun`], when every row has one.
@@ -164,6 +266,7 @@ fn write_config(
     data: &DemoData,
     models: &[DemoModel],
     dir: &Path,
+    log_dir: &Path,
 ) -> anyhow::Result<Config> {
     let model_dir = dir.join("models");
     std::fs::create_dir(&model_dir)
@@ -176,15 +279,24 @@ fn write_config(
         let mut route = toml::Table::new();
         route.insert("model".into(), m.model.name().into());
         route.insert("target_base_rate".into(), data.live_base_rate.into());
+        if let (0, Some(challenger)) = (i, models.get(1)) {
+            let mut c = toml::Table::new();
+            c.insert("model".into(), challenger.model.name().into());
+            c.insert("mode".into(), "mirror".into());
+            route.insert("challengers".into(), toml::Value::Array(vec![c.into()]));
+        }
         routes.insert(m.route.clone(), route.into());
     }
     let text = format!(
         "# Written by `probity demo`; `probity serve --config {CONFIG_FILE}` serves the same routes.\n\
          [server]\ngrpc_listen = {}\nmetrics_listen = {}\nreflection = true\nshutdown_grace_ms = 5000\n\n\
-         [models]\ndirectory = {}\n\n[logging]\nlevel = \"warn\"\n\n{}",
+         [models]\ndirectory = {}\n\n[logging]\nlevel = \"warn\"\n\n\
+         [limits]\n# The outcome stream stays open while every outcome is sent.\ndefault_deadline_ms = 120000\n\n\
+         [log]\ndirectory = {}\nflush_interval = \"50ms\"\n\n{}",
         toml::Value::from(args.grpc_listen.as_str()),
         toml::Value::from(args.metrics_listen.as_str()),
         toml::Value::from(model_dir.display().to_string()),
+        toml::Value::from(log_dir.display().to_string()),
         toml::to_string(&toml::Table::from_iter([(
             "routes".to_string(),
             toml::Value::from(routes)
