@@ -12,6 +12,7 @@ use std::sync::mpsc::{sync_channel, Receiver, SyncSender, TrySendError};
 use std::sync::Arc;
 
 use crate::serve::challenger::Answer;
+use crate::serve::config::{Route, UnknownFeaturePolicy};
 use crate::serve::conversions::prepare_row;
 use crate::serve::promotion::RouteTable;
 use crate::serve::proto as pb;
@@ -99,8 +100,14 @@ fn work(
 ) {
     while let Ok(job) = rx.recv() {
         let table = routes.load();
-        let Some(route) = table.get(&job.route) else {
+        let Some(configured) = table.get(&job.route) else {
             continue;
+        };
+        // The request was valid for the model that answered; a feature only that model knows is no reason for a
+        // shadow model to refuse the row, so unknown features are ignored here whatever the route's policy.
+        let route = &Route {
+            unknown_features: UnknownFeaturePolicy::Ignore,
+            ..Route::clone(configured)
         };
         let snapshot = registry.snapshot();
         for shadow in &job.models {
