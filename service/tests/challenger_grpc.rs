@@ -72,6 +72,18 @@ fn row(id: String, key: String, a: f64, b: f64) -> pb::Row {
     }
 }
 
+async fn http_get(addr: std::net::SocketAddr, path: &str) -> String {
+    use tokio::io::{AsyncReadExt, AsyncWriteExt};
+    let mut stream = tokio::net::TcpStream::connect(addr).await.unwrap();
+    stream
+        .write_all(format!("GET {path} HTTP/1.0\r\nHost: test\r\n\r\n").as_bytes())
+        .await
+        .unwrap();
+    let mut text = String::new();
+    stream.read_to_string(&mut text).await.unwrap();
+    text.split_once("\r\n\r\n").unwrap().1.to_string()
+}
+
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn mirrored_and_split_challengers_through_the_service() {
     let fix = fixture();
@@ -99,7 +111,7 @@ async fn mirrored_and_split_challengers_through_the_service() {
         format!(
             "[server]\ngrpc_listen = \"127.0.0.1:0\"\nmetrics_listen = \"127.0.0.1:0\"\nadmin_token_file = {:?}\n\
              [models]\ndirectory = {:?}\nwatch = false\n\
-             [log]\ndirectory = {:?}\nflush_interval = \"5ms\"\noutcome_hold = \"1h\"\n\
+             [log]\ndirectory = {:?}\nflush_interval = \"5ms\"\nsweep_interval = \"50ms\"\noutcome_hold = \"1h\"\n\
              [routes.bc]\nmodel = \"champ\"\ndecision = {{ threshold = 0.5 }}\n\
              [[routes.bc.challengers]]\nmodel = \"chall\"\nmode = \"mirror\"\n\
              [routes.split]\nmodel = \"champ\"\n\
@@ -309,6 +321,51 @@ async fn mirrored_and_split_challengers_through_the_service() {
         (to_challenger as f64 - 600.0).abs() <= 4.0 * sd,
         "{to_challenger} of 2000 entities went to the challenger"
     );
+
+    // The comparison is exported as gauges, refreshed every log.sweep_interval.
+    let started = Instant::now();
+    let gauge = |text: &str, name: &str, extra: &str| -> Option<f64> {
+        text.lines().find_map(|l| {
+            let (head, value) = l.rsplit_once(' ')?;
+            (head.starts_with(&format!("{name}{{"))
+                && head.contains("route=\"bc\"")
+                && head.contains("challenger=\"chall\"")
+                && head.contains(extra))
+            .then(|| value.parse().unwrap())
+        })
+    };
+    loop {
+        let text = http_get(server.metrics_addr(), "/metrics").await;
+        if gauge(&text, "probity_compare_paired_outcomes", "") == Some(n as f64) {
+            close(
+                gauge(&text, "probity_compare_auc_p_value", "").unwrap(),
+                d["p_value"].as_f64().unwrap(),
+                "exported DeLong p",
+            );
+            assert_eq!(
+                gauge(
+                    &text,
+                    "probity_compare_verdict",
+                    "verdict=\"no_clear_difference\""
+                ),
+                Some(1.0)
+            );
+            assert_eq!(
+                gauge(
+                    &text,
+                    "probity_compare_verdict",
+                    "verdict=\"challenger_better\""
+                ),
+                Some(0.0)
+            );
+            break;
+        }
+        assert!(
+            started.elapsed() < Duration::from_secs(30),
+            "comparison gauges not exported"
+        );
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
 
     // The Compare RPC gives the same comparison, with the route's threshold.
     let rpc = admin

@@ -70,15 +70,8 @@ fn compare_on(
     } = request;
     let (config, _) = scorer.resolve(&route)?;
     let log = scorer.log().ok_or(ServeError::LogDisabled)?;
-    // The flip share uses the route's threshold: the fixed one, or the Bayes-optimal one from its costs.
-    let threshold = match &config.output.decision {
-        Some(probity_models::DecisionRule::Threshold { threshold }) => Some(*threshold),
-        Some(probity_models::DecisionRule::Costs {
-            false_positive,
-            false_negative,
-        }) => Some(false_positive / (false_positive + false_negative)),
-        _ => None,
-    };
+    // The flip share uses the route's threshold.
+    let threshold = crate::serve::compare_metrics::route_threshold(&config);
     let request = CompareRequest {
         filter: ReportFilter {
             from_ms: (from_unix_ms != 0).then_some(from_unix_ms),

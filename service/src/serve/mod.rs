@@ -11,6 +11,7 @@
 
 pub mod challenger;
 pub mod challengers_api;
+pub mod compare_metrics;
 pub mod config;
 pub mod conversions;
 pub mod error;

@@ -342,6 +342,12 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
     let mut background = vec![hangup_task(Arc::clone(&reloader))];
     if let Some(log) = &log {
         background.push(sweep_task(Arc::clone(log)));
+        if scorer.routes().values().any(|r| !r.challengers.is_empty()) {
+            background.push(crate::serve::compare_metrics::task(
+                Arc::clone(&scorer),
+                log_config.sweep_interval,
+            ));
+        }
     }
     let watcher = if watch_dir {
         let (watcher, task) = watch_task(model_dir, watch_debounce, Arc::clone(&reloader))?;
