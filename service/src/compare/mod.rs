@@ -203,6 +203,24 @@ pub fn build(
     let challs: Vec<&LoggedPrediction> = by_role("challenger")
         .filter(|p| p.model == challenger)
         .collect();
+    for (role, model, missing) in [
+        ("champion", &champion, champs.is_empty()),
+        ("challenger", &challenger, challs.is_empty()),
+    ] {
+        if missing {
+            let mut known: Vec<&str> = by_role(role).map(|p| p.model.as_str()).collect();
+            known.sort_unstable();
+            known.dedup();
+            return Err(CompareReportError::Models(format!(
+                "route {route}: no {role} prediction by `{model}` in the log ({role}s logged: {})",
+                if known.is_empty() {
+                    "none".to_string()
+                } else {
+                    known.join(", ")
+                }
+            )));
+        }
+    }
     let mut index: HashMap<&str, &LoggedPrediction> = HashMap::with_capacity(champs.len());
     for p in &champs {
         index.entry(p.prediction_id.as_str()).or_insert(p);
