@@ -146,6 +146,13 @@ fn profile(cases: &[Case], what: &str) {
 }
 
 fn main() {
+    // `cargo test --all-targets` runs bench targets without `--bench`: benchmarks never run inside the tests.
+    if !std::env::args().any(|a| a == "--bench")
+        && std::env::var_os("PROBITY_BENCH_PROFILE").is_none()
+    {
+        eprintln!("engine benchmarks run only under `cargo bench` (see BENCHMARKS.md)");
+        return;
+    }
     let dir = models_dir();
     let Some(cases) = load_cases(&dir) else {
         eprintln!(
