@@ -28,12 +28,32 @@ pub struct ReportArgs {
     /// Only this model version.
     #[arg(long)]
     pub version: Option<String>,
+    /// A route's configured target base rate, as ROUTE=RATE (repeatable): the prior its served probabilities are
+    /// calibrated under, which the base-rate estimate starts from. A route without one is taken to have served under
+    /// its model's base rate.
+    #[arg(long = "base-rate", value_name = "ROUTE=RATE", value_parser = route_rate)]
+    pub base_rates: Vec<(String, f64)>,
     /// Print JSON instead of the table.
     #[arg(long)]
     pub json: bool,
     /// Write reliability, score-histogram and gains pictures (SVG) for each section here.
     #[arg(long, value_name = "DIR")]
     pub svg_dir: Option<PathBuf>,
+}
+
+/// Parses `ROUTE=RATE` with the rate in (0, 1).
+fn route_rate(text: &str) -> Result<(String, f64), String> {
+    let (route, rate) = text
+        .split_once('=')
+        .ok_or_else(|| format!("expected ROUTE=RATE, got `{text}`"))?;
+    let rate: f64 = rate
+        .trim()
+        .parse()
+        .map_err(|e| format!("`{rate}` is not a number: {e}"))?;
+    if !(rate > 0.0 && rate < 1.0) {
+        return Err(format!("the rate must be in (0, 1), got {rate}"));
+    }
+    Ok((route.trim().to_string(), rate))
 }
 
 /// Runs `probity report`.
@@ -55,7 +75,9 @@ pub fn run(args: &ReportArgs) -> anyhow::Result<()> {
         model: args.model.clone(),
         version: args.version.clone(),
     };
-    let report = report::build(&mut store as &mut dyn Store, &filter).context("reading the log")?;
+    let configured = args.base_rates.iter().cloned().collect();
+    let report = report::build_with(&mut store as &mut dyn Store, &filter, &configured)
+        .context("reading the log")?;
     if args.json {
         println!("{}", serde_json::to_string_pretty(&report)?);
     } else {

@@ -9,6 +9,14 @@
 //! AUC, KS and gains by decile on the final log-odds; PSI of all predictions in the range (with or without
 //! outcome) against the model file's reference distribution, empty bins floored at 1e-4.
 //!
+//! Each section also carries the Saerens, Latinne and Decaestecker (2002) EM estimate of the base rate of the
+//! scored population ([`estimate_prior`]) over all its predictions in the range, beside the configured (target)
+//! base rate and the observed positive rate among matched outcomes. The EM needs posteriors calibrated under a known
+//! prior; the log keeps the served probability (calibrated, then shifted to the route's target base rate when one
+//! was applied) but not the route's configuration, so the caller of [`build_with`] passes each route's configured
+//! target base rate, and a route without one is taken to have served under the model's own base rate (recorded in
+//! the log's model version facts).
+//!
 //! [`text`] renders the terminal table, [`svg`] the pictures; the JSON is this module's types through serde.
 
 pub mod svg;
@@ -16,6 +24,7 @@ pub mod text;
 
 use std::collections::BTreeMap;
 
+use probity_models::fit::{estimate_prior, EmOptions};
 use probity_models::metrics::{
     brier_decomposition, brier_score, calibration_table, gains_lift, hosmer_lemeshow, ks_statistic,
     log_loss_from_log_odds, psi_from_fractions, roc_auc, BinStrategy, EmptyBinRule, HlGrouping,
@@ -81,6 +90,14 @@ pub struct SeriesReport {
     pub predicted_base_rate: Option<f64>,
     /// Share of positives among them (the observed base rate).
     pub observed_base_rate: Option<f64>,
+    /// The route's configured target base rate, when the caller knew one (see [`build_with`]).
+    pub configured_base_rate: Option<f64>,
+    /// The prior the served probabilities are calibrated under, which the EM starts from and shifts away from: the
+    /// configured target base rate if there is one, else the model's base rate; `None` when neither is known.
+    pub served_base_rate: Option<f64>,
+    /// Saerens, Latinne and Decaestecker (2002) EM estimate of the base rate over all predictions in the range
+    /// (with or without outcome), from their probabilities under `served_base_rate`.
+    pub base_rate_estimate: Option<f64>,
     /// Mean log-loss (nats) from the final log-odds.
     pub log_loss: Option<f64>,
     /// Brier score.
@@ -193,8 +210,20 @@ pub struct Psi {
     pub actual: Vec<u64>,
 }
 
-/// Builds the report of `filter` from a store.
+/// Builds the report of `filter` from a store, with no configured target base rates (every route is taken to
+/// have served under its model's base rate; see [`build_with`]).
 pub fn build(store: &mut dyn Store, filter: &ReportFilter) -> Result<Report, StoreError> {
+    build_with(store, filter, &BTreeMap::new())
+}
+
+/// Builds the report of `filter` from a store. `configured` maps a route name to its configured target base rate:
+/// the prior its served probabilities are calibrated under, which the base-rate EM needs. A route missing from it
+/// is taken to have served under the model's own base rate, as the scorer does without a target.
+pub fn build_with(
+    store: &mut dyn Store,
+    filter: &ReportFilter,
+    configured: &BTreeMap<String, f64>,
+) -> Result<Report, StoreError> {
     let rows = store.load(filter)?;
     let mut groups: BTreeMap<(String, String, String, String), Vec<LoggedPrediction>> =
         BTreeMap::new();
@@ -209,9 +238,12 @@ pub fn build(store: &mut dyn Store, filter: &ReportFilter) -> Result<Report, Sto
     }
     let mut series = Vec::new();
     for ((route, model, version, role), rows) in groups {
-        let reference = store
-            .model_version(&model, &version)?
-            .and_then(|i| i.reference);
+        let info = store.model_version(&model, &version)?;
+        let rates = BaseRates {
+            configured: configured.get(&route).copied(),
+            model: info.as_ref().map(|i| i.base_rate),
+        };
+        let reference = info.and_then(|i| i.reference);
         series.push(section(
             route,
             model,
@@ -219,6 +251,7 @@ pub fn build(store: &mut dyn Store, filter: &ReportFilter) -> Result<Report, Sto
             role,
             &rows,
             reference.as_ref(),
+            rates,
         ));
     }
     Ok(Report {
@@ -247,6 +280,47 @@ fn keep<T>(
     }
 }
 
+/// The base rates a section is reported against.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct BaseRates {
+    /// The route's configured target base rate, if any.
+    pub configured: Option<f64>,
+    /// The model version's base rate, if the log knows it.
+    pub model: Option<f64>,
+}
+
+impl BaseRates {
+    /// The prior the served probabilities are calibrated under: the target if one was applied, else the model's.
+    pub fn served(&self) -> Option<f64> {
+        self.configured.or(self.model)
+    }
+}
+
+/// The EM estimate over `probabilities` served under `rates`, or `None` with the reason noted.
+fn em_estimate(notes: &mut Vec<String>, probabilities: &[f64], rates: BaseRates) -> Option<f64> {
+    let Some(served) = rates.served() else {
+        notes.push(
+            "base-rate estimate: neither a configured nor the model's base rate is known".into(),
+        );
+        return None;
+    };
+    match estimate_prior(probabilities, served, EmOptions::default()) {
+        Ok(e) => {
+            if !e.converged {
+                notes.push(format!(
+                    "base-rate estimate: EM stopped at its {} iteration cap before converging",
+                    e.iterations
+                ));
+            }
+            Some(e.prior)
+        }
+        Err(e) => {
+            notes.push(format!("base-rate estimate: {e}"));
+            None
+        }
+    }
+}
+
 /// The figures of one series; `rows` in the order they were written.
 pub fn section(
     route: String,
@@ -255,6 +329,7 @@ pub fn section(
     role: String,
     rows: &[LoggedPrediction],
     reference: Option<&crate::store::Reference>,
+    rates: BaseRates,
 ) -> SeriesReport {
     let mut notes = Vec::new();
     let pairs: Vec<&LoggedPrediction> = rows.iter().filter(|r| r.label.is_some()).collect();
@@ -362,6 +437,7 @@ pub fn section(
         }
     }
     let all_p: Vec<f64> = rows.iter().map(|r| r.probability).collect();
+    let base_rate_estimate = em_estimate(&mut notes, &all_p, rates);
     SeriesReport {
         route,
         model,
@@ -375,6 +451,9 @@ pub fn section(
         mean_probability: mean(&all_p).unwrap_or(0.0),
         predicted_base_rate: mean(&p),
         observed_base_rate: (n > 0).then(|| y.iter().filter(|&&b| b).count() as f64 / n as f64),
+        configured_base_rate: rates.configured,
+        served_base_rate: rates.served(),
+        base_rate_estimate,
         log_loss,
         brier,
         brier_decomposition: decomposition,
@@ -389,3 +468,6 @@ pub fn section(
         notes,
     }
 }
+
+#[cfg(test)]
+mod base_rate_tests;

@@ -45,6 +45,14 @@ fn section(s: &mut String, r: &SeriesReport) {
     );
     let _ = writeln!(
         s,
+        "base rate: estimate (Saerens EM over all predictions, served under {}) {}  configured {}  observed {}",
+        opt(r.served_base_rate),
+        opt(r.base_rate_estimate),
+        opt(r.configured_base_rate),
+        opt(r.observed_base_rate)
+    );
+    let _ = writeln!(
+        s,
         "log-loss {}  Brier {}  AUC {}  KS {}",
         opt(r.log_loss),
         opt(r.brier),

@@ -160,6 +160,7 @@ struct RawRoute {
     unknown_categories: Option<String>,
     unknown_features: Option<String>,
     challengers: Vec<crate::serve::challenger::RawChallenger>,
+    base_rate_from_estimate: Option<crate::serve::base_rate::RawEstimateBounds>,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -200,6 +201,9 @@ pub struct Config {
     pub log: crate::store::LogConfig,
     /// Routes by name.
     pub routes: BTreeMap<String, Route>,
+    /// Routes that apply the live base-rate estimate (`routes.<name>.base_rate_from_estimate`), with its bounds;
+    /// empty by default.
+    pub base_rate_from_estimate: BTreeMap<String, crate::serve::base_rate::EstimateBounds>,
 }
 
 /// Request limits.
@@ -382,13 +386,28 @@ impl Config {
                 "at least one route is needed, e.g. [routes.fraud] model = \"...\"",
             ));
         }
+        let mut estimate_bounds = BTreeMap::new();
         let routes = routes
             .into_iter()
-            .map(|(name, raw)| Ok((name.clone(), route(&name, raw)?)))
+            .map(|(name, mut raw)| {
+                if let Some(b) = raw.base_rate_from_estimate.take() {
+                    estimate_bounds.insert(name.clone(), b);
+                }
+                Ok((name.clone(), route(&name, raw)?))
+            })
             .collect::<Result<BTreeMap<_, _>, ConfigError>>()?;
         let names = routes.keys().cloned().collect();
         let log = crate::store::LogConfig::from_raw(log, &names)
             .map_err(|(key, message)| invalid(key, message))?;
+        let window = log.directory.is_some().then_some(log.prior_window);
+        let base_rate_from_estimate = estimate_bounds
+            .into_iter()
+            .map(|(name, raw)| {
+                crate::serve::base_rate::bounds(&name, raw, window)
+                    .map(|b| (name, b))
+                    .map_err(|(key, message)| invalid(key, message))
+            })
+            .collect::<Result<BTreeMap<_, _>, ConfigError>>()?;
         Ok(Config {
             grpc_listen: socket_addr("server.grpc_listen", &grpc_listen)?,
             metrics_listen: socket_addr("server.metrics_listen", &metrics_listen)?,
@@ -407,6 +426,7 @@ impl Config {
             logging: self::logging(logging)?,
             log,
             routes,
+            base_rate_from_estimate,
         })
     }
 }
@@ -622,6 +642,7 @@ fn route(name: &str, raw: RawRoute) -> Result<Route, ConfigError> {
         unknown_categories,
         unknown_features,
         challengers,
+        base_rate_from_estimate: _,
     } = raw;
     let model = model.ok_or_else(|| {
         invalid(

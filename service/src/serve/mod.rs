@@ -9,6 +9,7 @@
 //! - [`outcomes`]: the prediction log in the server (what a scored row logs, the Outcomes service, the sweeps);
 //! - [`server`]: [`server::start`], the one function that builds the server for `main` and the tests.
 
+pub mod base_rate;
 pub mod challenger;
 pub mod challengers_api;
 pub mod compare_metrics;

@@ -138,6 +138,8 @@ pub fn report_response(report: &Report) -> pb::ReportResponse {
             hosmer_lemeshow_statistic: s.hosmer_lemeshow.as_ref().map(|h| h.statistic),
             hosmer_lemeshow_p_value: s.hosmer_lemeshow.as_ref().map(|h| h.p_value),
             psi: s.psi.as_ref().map(|p| p.value),
+            base_rate_estimate: s.base_rate_estimate,
+            configured_base_rate: s.configured_base_rate,
         })
         .collect();
     pb::ReportResponse {
@@ -169,12 +171,30 @@ fn filter_of(request: pb::ReportRequest) -> ReportFilter {
 /// The `probity.v1.Outcomes` service.
 pub struct OutcomesApi {
     log: Option<Arc<PredictionLog>>,
+    /// The live routes, for the configured target base rates a report is set against.
+    routes: Option<Arc<crate::serve::promotion::RouteTable>>,
 }
 
 impl OutcomesApi {
     /// The service over the log (calls fail with FAILED_PRECONDITION when the log is off).
     pub fn new(log: Option<Arc<PredictionLog>>) -> OutcomesApi {
-        OutcomesApi { log }
+        OutcomesApi { log, routes: None }
+    }
+
+    /// Reports set each route's base-rate estimate against its configured target base rate from `routes`.
+    pub fn with_routes(mut self, routes: Arc<crate::serve::promotion::RouteTable>) -> OutcomesApi {
+        self.routes = Some(routes);
+        self
+    }
+
+    /// Each route's configured target base rate now.
+    fn configured_base_rates(&self) -> std::collections::BTreeMap<String, f64> {
+        self.routes.as_ref().map_or_else(Default::default, |t| {
+            t.load()
+                .iter()
+                .filter_map(|(name, r)| r.output.target_base_rate.map(|b| (name.clone(), b)))
+                .collect()
+        })
     }
 
     fn log(&self) -> Result<Arc<PredictionLog>, ServeError> {
@@ -303,10 +323,11 @@ impl pb::outcomes_server::Outcomes for OutcomesApi {
     ) -> Result<Response<pb::ReportResponse>, Status> {
         let started = Instant::now();
         let filter = filter_of(request.into_inner());
+        let configured = self.configured_base_rates();
         let result = async {
             let log = self.log()?;
             let report = tokio::task::spawn_blocking(move || {
-                log.with_store(|store| report::build(store, &filter))
+                log.with_store(|store| report::build_with(store, &filter, &configured))
             })
             .await
             .map_err(|_| ServeError::Log(crate::store::StoreError::Closed))??;

@@ -223,6 +223,22 @@ impl RouteTable {
         Ok(change)
     }
 
+    /// Sets the target base rate of `route` (a route applying the live estimate, `serve::base_rate`), swapping the
+    /// table atomically; serialized with promotions. False when the route is gone.
+    pub fn set_target_base_rate(&self, route: &str, rate: f64) -> bool {
+        let _serial = lock(&self.history);
+        let map = self.current.load_full();
+        let Some(old) = map.get(route) else {
+            return false;
+        };
+        let mut new = (**old).clone();
+        new.output.target_base_rate = Some(rate);
+        let mut next = (*map).clone();
+        next.insert(route.to_string(), Arc::new(new));
+        self.current.store(Arc::new(next));
+        true
+    }
+
     /// The promotions of `route` (all routes when empty), oldest first.
     pub fn history(&self, route: &str) -> Vec<RouteChange> {
         lock(&self.history)

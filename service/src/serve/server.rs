@@ -218,6 +218,7 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
         logging: _,
         log: log_config,
         routes,
+        base_rate_from_estimate,
     } = config;
     let handle = metrics::install().map_err(StartError::Metrics)?;
     let registry = Arc::new(Registry::new(model_dir.clone()));
@@ -262,9 +263,11 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
     let challengers = pb::challengers_server::ChallengersServer::new(
         crate::serve::challengers_api::ChallengersApi::new(Arc::clone(&scorer), admin_token),
     );
-    let outcomes = pb::outcomes_server::OutcomesServer::new(OutcomesApi::new(log.clone()))
-        .max_decoding_message_size(limits.max_message_bytes)
-        .max_encoding_message_size(limits.max_message_bytes);
+    let outcomes = pb::outcomes_server::OutcomesServer::new(
+        OutcomesApi::new(log.clone()).with_routes(Arc::clone(scorer.route_table())),
+    )
+    .max_decoding_message_size(limits.max_message_bytes)
+    .max_encoding_message_size(limits.max_message_bytes);
     let scoring = pb::scoring_server::ScoringServer::new(ScoringApi::new(
         Arc::clone(&scorer),
         limits.default_deadline,
@@ -342,6 +345,13 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
     let mut background = vec![hangup_task(Arc::clone(&reloader))];
     if let Some(log) = &log {
         background.push(sweep_task(Arc::clone(log)));
+        if !base_rate_from_estimate.is_empty() {
+            background.push(crate::serve::base_rate::task(
+                Arc::clone(scorer.route_table()),
+                Arc::clone(log),
+                base_rate_from_estimate,
+            ));
+        }
         if scorer.routes().values().any(|r| !r.challengers.is_empty()) {
             background.push(crate::serve::compare_metrics::task(
                 Arc::clone(&scorer),

@@ -16,10 +16,12 @@
 //! bins), and the Saerens-Latinne-Decaestecker EM estimate of the live base rate ([`estimate_prior`]), a
 //! monitoring signal that never changes a served probability.
 
-use std::collections::{HashMap, VecDeque};
+use std::collections::{BTreeMap, HashMap, VecDeque};
+use std::sync::{Arc, Mutex};
 
 use metrics_exporter_prometheus::{BuildError, Matcher, PrometheusBuilder};
 use probity_models::fit::{estimate_prior, EmOptions};
+use probity_models::link::{logit, sigmoid};
 use probity_models::metrics::quantile::{linspace_unit, right_closed_bin};
 use probity_models::metrics::{log_loss_term_pm1, psi_from_fractions, EmptyBinRule};
 
@@ -243,12 +245,17 @@ struct Window {
     dirty: bool,
 }
 
+/// The latest base-rate estimate per (route, model): (estimate, predictions in its window). Shared with the
+/// server, which applies it to the routes that opt in (`serve::base_rate`).
+pub type LatestEstimates = Arc<Mutex<BTreeMap<(String, String), (f64, usize)>>>;
+
 /// The windows behind the PSI and base-rate gauges.
 #[derive(Debug, Default)]
 pub struct Windows {
     psi_window: usize,
     prior_window: usize,
     series: HashMap<(String, String, String), Window>,
+    latest: LatestEstimates,
 }
 
 impl Windows {
@@ -258,10 +265,19 @@ impl Windows {
             psi_window,
             prior_window,
             series: HashMap::new(),
+            latest: LatestEstimates::default(),
         }
     }
 
-    /// Adds one prediction. `reference` and `prior` are read the first time the series is seen.
+    /// The shared latest estimates, filled by [`Windows::publish`].
+    pub fn latest(&self) -> LatestEstimates {
+        Arc::clone(&self.latest)
+    }
+
+    /// Adds one prediction. `reference` is read the first time the series is seen; `prior` is the base rate this
+    /// prediction was served under. The window keeps every probability under the series' first prior (shifting the
+    /// log-odds by `logit(first) - logit(prior)`, Saerens et al. 2002 eq. 2.4 on the log-odds scale), so a target
+    /// that changes while the window fills (a route applying the estimate) does not mix priors in the EM.
     pub fn add(
         &mut self,
         key: (&str, &str, &str),
@@ -296,7 +312,11 @@ impl Windows {
                 }
             }
         }
-        w.probabilities.push_back(probability);
+        w.probabilities.push_back(if prior == w.prior {
+            probability
+        } else {
+            sigmoid(adjusted_log_odds + logit(w.prior) - logit(prior))
+        });
         if w.probabilities.len() > self.prior_window {
             w.probabilities.pop_front();
         }
@@ -329,6 +349,13 @@ impl Windows {
             };
             if let Ok(estimate) = estimate_prior(&sample, w.prior, EmOptions::default()) {
                 metrics::gauge!(BASE_RATE_ESTIMATE, &labels).set(estimate.prior);
+                self.latest
+                    .lock()
+                    .unwrap_or_else(std::sync::PoisonError::into_inner)
+                    .insert(
+                        (route.clone(), model.clone()),
+                        (estimate.prior, sample.len()),
+                    );
             }
         }
     }

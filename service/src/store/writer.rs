@@ -55,6 +55,7 @@ pub struct PredictionLog {
     clock: Clock,
     depth: Arc<AtomicUsize>,
     writer: Mutex<Option<JoinHandle<()>>>,
+    estimates: running::LatestEstimates,
 }
 
 fn lock(store: &Mutex<Box<dyn Store>>) -> MutexGuard<'_, Box<dyn Store>> {
@@ -68,13 +69,15 @@ impl PredictionLog {
         let (sender, receiver) = mpsc::sync_channel(config.queue_size);
         let store = Arc::new(Mutex::new(store));
         let depth = Arc::new(AtomicUsize::new(0));
+        let windows = Windows::new(config.psi_window, config.prior_window);
+        let estimates = windows.latest();
         let writer = Writer {
             store: Arc::clone(&store),
             receiver,
             depth: Arc::clone(&depth),
             batch_size: config.batch_size,
             flush_interval: config.flush_interval,
-            windows: Windows::new(config.psi_window, config.prior_window),
+            windows,
             registered: HashSet::new(),
             last_publish: Instant::now(),
         };
@@ -90,7 +93,18 @@ impl PredictionLog {
             clock,
             depth,
             writer: Mutex::new(handle),
+            estimates,
         })
+    }
+
+    /// The latest base-rate estimate per (route, model): (estimate, predictions in its window).
+    pub fn base_rate_estimates(
+        &self,
+    ) -> std::collections::BTreeMap<(String, String), (f64, usize)> {
+        self.estimates
+            .lock()
+            .unwrap_or_else(std::sync::PoisonError::into_inner)
+            .clone()
     }
 
     /// The configuration it runs with.
