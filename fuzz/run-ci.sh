@@ -23,10 +23,8 @@ if ! cargo fuzz --version >/dev/null 2>&1; then
 fi
 
 flags=(-s none --target-dir "$target_dir")
-echo "== building ${targets[*]}"
-for t in "${targets[@]}"; do
-    cargo fuzz build "${flags[@]}" "$t"
-done
+echo "== building the fuzz targets"
+cargo fuzz build "${flags[@]}"
 
 status=0
 for t in "${targets[@]}"; do
