@@ -65,6 +65,7 @@ fn estimate_recovers_a_shifted_base_rate_served_under_the_model_prior() {
     };
     let r = report(&rows, rates);
     let estimate = r.base_rate_estimate.unwrap();
+    println!("report estimate {estimate}, truth {TRUTH}");
     assert!(
         (estimate - TRUTH).abs() / TRUTH < 0.1,
         "estimate {estimate}, truth {TRUTH}"
@@ -88,6 +89,7 @@ fn estimate_uses_the_configured_target_when_one_was_applied() {
     };
     let r = report(&rows, rates);
     let estimate = r.base_rate_estimate.unwrap();
+    println!("report estimate {estimate}, truth {TRUTH}");
     assert!(
         (estimate - TRUTH).abs() / TRUTH < 0.1,
         "estimate {estimate}, truth {TRUTH}"

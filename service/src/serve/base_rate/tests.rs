@@ -173,6 +173,7 @@ fn the_window_keeps_one_prior_when_the_served_target_changes() {
     let direct = estimate_prior(&under_first, 0.2, EmOptions::default())
         .unwrap()
         .prior;
+    println!("window estimate {estimate}, direct {direct}, truth 0.05");
     assert!((estimate - direct).abs() < 1e-9, "{estimate} vs {direct}");
     assert!((estimate - 0.05).abs() / 0.05 < 0.1, "{estimate}");
 }
