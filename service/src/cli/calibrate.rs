@@ -396,6 +396,7 @@ fn print_summary(
         println!("  (log-loss is infinite: the map gives probability 0 or 1 to a row of the other class)");
     }
     println!("wrote {} (version {version})", display(&args.output));
+    println!("\n{}", super::CAUTIONS);
 }
 
 fn display(p: &Path) -> String {

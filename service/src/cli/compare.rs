@@ -76,6 +76,7 @@ pub fn run(args: &CompareArgs) -> anyhow::Result<()> {
         println!("{}", serde_json::to_string_pretty(&report)?);
     } else {
         print!("{}", text::render(&report));
+        println!("\n{}", super::CAUTIONS);
     }
     if let Some(path) = &args.svg {
         std::fs::write(path, svg::render(&report))

@@ -11,3 +11,8 @@ pub mod promote;
 pub mod reliability;
 pub mod report;
 pub mod score;
+
+/// Said once at the end of every human-readable report (demo, report, compare, calibrate).
+pub const CAUTIONS: &str =
+    "Probabilities are decision support; thresholds and adverse-action duties follow local \
+law and licensed practice; re-validate a model before using it on a new population.";

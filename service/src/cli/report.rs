@@ -82,6 +82,7 @@ pub fn run(args: &ReportArgs) -> anyhow::Result<()> {
         println!("{}", serde_json::to_string_pretty(&report)?);
     } else {
         print!("{}", text::render(&report));
+        println!("\n{}", super::CAUTIONS);
     }
     if let Some(dir) = &args.svg_dir {
         std::fs::create_dir_all(dir).with_context(|| format!("--svg-dir {}", dir.display()))?;
@@ -102,4 +103,23 @@ pub fn run(args: &ReportArgs) -> anyhow::Result<()> {
         }
     }
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::route_rate;
+
+    #[test]
+    fn base_rate_flags_parse_and_refuse_bad_rates() {
+        assert_eq!(
+            route_rate("card-auth=0.002").unwrap(),
+            ("card-auth".to_string(), 0.002)
+        );
+        assert!(route_rate("card-auth").unwrap_err().contains("ROUTE=RATE"));
+        assert!(route_rate("card-auth=x")
+            .unwrap_err()
+            .contains("not a number"));
+        assert!(route_rate("card-auth=1").unwrap_err().contains("(0, 1)"));
+        assert!(route_rate("card-auth=NaN").unwrap_err().contains("(0, 1)"));
+    }
 }

@@ -44,10 +44,7 @@ const EMBEDDED_MODELS: [(&str, &str, &str); 2] = [
 /// training rows and flatter the models.
 pub const DEMO_SEED: u64 = 20_251_103;
 
-/// Said once at the end of the demo.
-pub const CAUTIONS: &str =
-    "Probabilities are decision support; thresholds and adverse-action duties follow local \
-law and licensed practice; re-validate a model before using it on a new population.";
+pub use super::CAUTIONS;
 
 /// Arguments of `probity demo`.
 #[derive(Debug, clap::Args)]
