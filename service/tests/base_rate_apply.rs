@@ -179,5 +179,42 @@ async fn an_opted_in_route_follows_the_estimate_and_another_route_does_not() {
         gauge(&text, "probity_effective_target_base_rate", "off"),
         None
     );
+
+    // The Report RPC carries the estimate beside the configured rate: for `off` (no target) the EM runs under the
+    // model's 0.2 over the logged probabilities, the batch rows then the one probe, and equals estimate_prior on
+    // the same values.
+    let mut outcomes = pb::outcomes_client::OutcomesClient::new(
+        tonic::transport::Channel::from_shared(format!("http://{}", server.grpc_addr()))
+            .unwrap()
+            .connect()
+            .await
+            .unwrap(),
+    );
+    let mut off = None;
+    for _ in 0..150 {
+        let report = outcomes
+            .report(pb::ReportRequest {
+                route: "off".into(),
+                ..Default::default()
+            })
+            .await
+            .unwrap()
+            .into_inner();
+        if let Some(s) = report.series.into_iter().find(|s| s.predictions == 10_001) {
+            off = Some(s);
+            break;
+        }
+        tokio::time::sleep(Duration::from_millis(100)).await;
+    }
+    let off = off.expect("all predictions of `off` are logged");
+    let mut p: Vec<f64> = h.iter().map(|&x| sigmoid(x)).collect();
+    p.push(0.5);
+    let direct = probity_models::fit::estimate_prior(&p, 0.2, Default::default())
+        .unwrap()
+        .prior;
+    assert_eq!(off.configured_base_rate, None);
+    let reported = off.base_rate_estimate.unwrap();
+    println!("reported estimate for `off` {reported}, direct {direct}");
+    assert!((reported - direct).abs() < 1e-12, "{reported} vs {direct}");
     server.shutdown().await;
 }
