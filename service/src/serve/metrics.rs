@@ -54,13 +54,16 @@ const LOG_ODDS_BUCKETS: [f64; 21] = [
     7.0, 8.0, 9.0, 10.0,
 ];
 
-static HANDLE: OnceLock<PrometheusHandle> = OnceLock::new();
+static INSTALLED: OnceLock<Result<PrometheusHandle, String>> = OnceLock::new();
 
-/// Installs the process-wide recorder on first use and returns its handle.
+/// Installs the process-wide recorder once and returns its handle. `OnceLock::get_or_init` blocks concurrent
+/// callers until the first one has finished, so a server started on another thread (tests start several) never
+/// sees the recorder in place without its handle.
 pub fn install() -> Result<PrometheusHandle, String> {
-    if let Some(handle) = HANDLE.get() {
-        return Ok(handle.clone());
-    }
+    INSTALLED.get_or_init(install_once).clone()
+}
+
+fn install_once() -> Result<PrometheusHandle, String> {
     let builder = PrometheusBuilder::new()
         .set_buckets_for_metric(Matcher::Full(REQUEST_DURATION.into()), &LATENCY_BUCKETS)
         .and_then(|b| {
@@ -71,14 +74,8 @@ pub fn install() -> Result<PrometheusHandle, String> {
         .map_err(|e| e.to_string())?;
     let recorder = builder.build_recorder();
     let handle = recorder.handle();
-    // Another thread may have won the race; its recorder is the one in place, so use its handle.
-    if metrics::set_global_recorder(recorder).is_err() {
-        return HANDLE
-            .get()
-            .cloned()
-            .ok_or_else(|| "another metrics recorder is installed".to_string());
-    }
-    let handle = HANDLE.get_or_init(|| handle).clone();
+    metrics::set_global_recorder(recorder)
+        .map_err(|_| "another metrics recorder is installed".to_string())?;
     describe();
     metrics::gauge!(BUILD_INFO, "version" => env!("CARGO_PKG_VERSION")).set(1.0);
     Ok(handle)
