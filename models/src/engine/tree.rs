@@ -6,6 +6,10 @@
 //! (`bitsets`, for small category indices) or as a sorted index list (`lists`, when a bitset would be much larger
 //! than the list); `aux` is the offset of the set in its pool, whose first entry is the set's length.
 //!
+//! A numeric split always tests `x <= threshold`: a file's `x < t` is stored as `x <= t.next_down()`, which gives
+//! the same answer for every non-NaN f64 `x`, infinities included (no f64 lies strictly between the two
+//! thresholds). With float32 split precision the rounded feature is still an f64, so the same holds there.
+//!
 //! The loader (`model::load`) guarantees the invariants the walk relies on: every tree is acyclic, every child
 //! index is inside the array, every feature index is inside the row. Traversal is a loop, never recursion.
 
@@ -13,8 +17,6 @@ use crate::error::ModelError;
 
 /// Node flag: a leaf; `value` is its value.
 const LEAF: u8 = 1;
-/// Node flag: numeric comparison `<=` (otherwise `<`).
-const OP_LE: u8 = 2;
 /// Node flag: a missing value goes left.
 const MISSING_LEFT: u8 = 4;
 /// Node flag: a categorical split.
@@ -58,6 +60,9 @@ pub(crate) enum Side {
 pub(crate) struct Ensemble {
     nodes: Vec<Node>,
     roots: Vec<u32>,
+    /// Depth (largest root-to-leaf edge count) of each tree, parallel to `roots`: a lockstep walk of that many
+    /// steps reaches a leaf in every lane.
+    depths: Vec<usize>,
     bitsets: Vec<u64>,
     lists: Vec<u32>,
     /// Number of categories of each feature (0 for a numeric one): a categorical value is a known category only
@@ -96,6 +101,7 @@ impl EnsembleBuilder {
             e: Ensemble {
                 nodes: Vec::with_capacity(nodes),
                 roots: Vec::new(),
+                depths: Vec::new(),
                 bitsets: Vec::new(),
                 lists: Vec::new(),
                 n_categories,
@@ -116,12 +122,16 @@ impl EnsembleBuilder {
     pub(crate) fn start_tree(&mut self) -> Result<(), ModelError> {
         let root = self.next_index()?;
         self.e.roots.push(root);
+        self.e.depths.push(0);
         Ok(())
     }
 
-    /// Records the depth of a leaf for the summary.
+    /// Records the depth of a leaf of the current tree.
     pub(crate) fn note_depth(&mut self, depth: usize) {
         self.e.max_depth = self.e.max_depth.max(depth);
+        if let Some(d) = self.e.depths.last_mut() {
+            *d = (*d).max(depth);
+        }
     }
 
     pub(crate) fn push_leaf(&mut self, value: f64) -> Result<(), ModelError> {
@@ -140,10 +150,9 @@ impl EnsembleBuilder {
 
     /// Pushes a numeric split; its right child is set later with [`Self::set_right`].
     pub(crate) fn push_numeric(&mut self, feature: u32, le: bool, threshold: f64, missing: Side) {
+        // See the module overview: `<` becomes `<=` on the previous f64, so the walk makes one comparison.
+        let threshold = if le { threshold } else { threshold.next_down() };
         let mut flags = 0;
-        if le {
-            flags |= OP_LE;
-        }
         if missing == Side::Left {
             flags |= MISSING_LEFT;
         }
@@ -223,6 +232,21 @@ pub(crate) fn known_category(x: f64, n: usize) -> Option<usize> {
     }
 }
 
+/// Whether numeric split (or leaf) `node` sends value `x` left; a leaf never does.
+///
+/// Written with `&` and `|` on booleans rather than `if`s so the compiler can select without branches: which
+/// way a lane goes depends on the data and predicts badly.
+#[inline(always)]
+fn numeric_left<const F32: bool>(node: &Node, x: f64) -> bool {
+    // Training libraries that store features as f32 compare the rounded value with the threshold (NaN stays
+    // NaN, so the missing test is unchanged).
+    let x = if F32 { x as f32 as f64 } else { x };
+    let split = node.flags & LEAF == 0;
+    // `x <= t` is false for NaN, which then goes where the flag says.
+    let left = (x <= node.value) | (x.is_nan() & (node.flags & MISSING_LEFT != 0));
+    split & left
+}
+
 impl Ensemble {
     /// Number of trees.
     pub(crate) fn trees(&self) -> usize {
@@ -273,11 +297,11 @@ impl Ensemble {
         for (b, block) in out.chunks_mut(BLOCK_ROWS).enumerate() {
             let first = b * BLOCK_ROWS;
             block.fill(self.base_margin);
-            for &root in &self.roots {
+            for (&root, &depth) in self.roots.iter().zip(&self.depths) {
                 for (g, lanes) in block.chunks_mut(LANES).enumerate() {
                     let row0 = first + g * LANES;
                     if let Ok(full) = <&mut [f64; LANES]>::try_from(&mut *lanes) {
-                        self.add_leaves_of_lanes::<F32>(root, rows, row0, n, full);
+                        self.add_leaves_of_lanes::<F32>(root, depth, rows, row0, n, full);
                     } else {
                         for (k, o) in lanes.iter_mut().enumerate() {
                             let start = (row0 + k) * n;
@@ -289,33 +313,35 @@ impl Ensemble {
         }
     }
 
-    /// Walks one tree for [`LANES`] rows in lockstep and adds each row's leaf value to its output. The rows'
-    /// walks are independent, so the processor overlaps their memory loads and comparisons instead of waiting
-    /// on one dependent chain.
+    /// Walks one tree of depth `depth` for [`LANES`] rows in lockstep and adds each row's leaf value to its
+    /// output. The rows' walks are independent, so the processor overlaps their memory loads and comparisons
+    /// instead of waiting on one dependent chain.
     #[inline]
     fn add_leaves_of_lanes<const F32: bool>(
         &self,
         root: u32,
+        depth: usize,
         rows: &[f64],
         row0: usize,
         n: usize,
         out: &mut [f64; LANES],
     ) {
+        // One slice per lane, cut once per tree, so a step's feature load checks only the feature index.
+        let lane: [&[f64]; LANES] = std::array::from_fn(|k| &rows[(row0 + k) * n..][..n]);
         let mut at = [root as usize; LANES];
-        loop {
-            let mut moving = false;
-            for (k, i) in at.iter_mut().enumerate() {
+        // Exactly `depth` steps: no test of whether any lane still moves. A lane already at a leaf stays there,
+        // since a leaf never goes left and is its own right child.
+        for _ in 0..depth {
+            for (i, row) in at.iter_mut().zip(&lane) {
                 let node = &self.nodes[*i];
-                // No branch on the lane's state: a leaf reads a harmless value and, being its own right child,
-                // stays where it is.
-                let inner = node.flags & LEAF == 0;
-                let x = rows[(row0 + k) * n + node.feature as usize];
-                let left = inner & self.goes_left::<F32>(node, x);
+                // A leaf's feature is 0, inside every row that reaches a split (a split needs a feature).
+                let x = row[node.feature as usize];
+                let left = if node.flags & CATEGORICAL == 0 {
+                    numeric_left::<F32>(node, x)
+                } else {
+                    self.categorical_left(node, x)
+                };
                 *i = if left { *i + 1 } else { node.right as usize };
-                moving |= inner;
-            }
-            if !moving {
-                break;
             }
         }
         for (o, &i) in out.iter_mut().zip(&at) {
@@ -333,34 +359,26 @@ impl Ensemble {
                 return node.value;
             }
             let x = row[node.feature as usize];
-            i = if self.goes_left::<F32>(node, x) {
-                i + 1
+            let left = if node.flags & CATEGORICAL == 0 {
+                numeric_left::<F32>(node, x)
             } else {
-                node.right as usize
+                self.categorical_left(node, x)
             };
+            i = if left { i + 1 } else { node.right as usize };
         }
     }
 
-    /// Whether split `node` sends value `x` left.
-    #[inline(always)]
-    fn goes_left<const F32: bool>(&self, node: &Node, x: f64) -> bool {
-        let flags = node.flags;
+    /// Whether categorical split `node` sends value `x` left. Kept out of the numeric path, which most splits
+    /// take.
+    #[inline(never)]
+    fn categorical_left(&self, node: &Node, x: f64) -> bool {
         if x.is_nan() {
-            flags & MISSING_LEFT != 0
-        } else if flags & CATEGORICAL == 0 {
-            // Training libraries that store features as f32 compare the rounded value with the threshold.
-            let x = if F32 { x as f32 as f64 } else { x };
-            if flags & OP_LE != 0 {
-                x <= node.value
-            } else {
-                x < node.value
-            }
-        } else {
-            let n = self.n_categories[node.feature as usize] as usize;
-            match known_category(x, n) {
-                Some(c) => self.in_left_set(node, c),
-                None => flags & UNKNOWN_LEFT != 0,
-            }
+            return node.flags & MISSING_LEFT != 0;
+        }
+        let n = self.n_categories[node.feature as usize] as usize;
+        match known_category(x, n) {
+            Some(c) => self.in_left_set(node, c),
+            None => node.flags & UNKNOWN_LEFT != 0,
         }
     }
 
@@ -400,6 +418,54 @@ mod tests {
     fn node_is_compact() {
         // The layout the module overview promises: 8 (value) + 3 * 4 (feature, right, aux) + 1 (flags), padded.
         assert_eq!(std::mem::size_of::<Node>(), 24);
+    }
+
+    #[test]
+    fn strict_split_folds_to_le_exactly() {
+        // `x < t` stored as `x <= t.next_down()`: check values at and around the threshold, signed zeros and
+        // infinities, in both split precisions, against the strict comparison itself.
+        for t in [
+            0.0,
+            -0.0,
+            1.5,
+            -2.0,
+            f64::MAX,
+            -f64::MAX,
+            f64::MIN_POSITIVE,
+            0.1,
+        ] {
+            for float32 in [false, true] {
+                let mut b = EnsembleBuilder::new(0.0, float32, vec![0], 3);
+                b.start_tree().unwrap();
+                b.note_depth(1);
+                b.push_numeric(0, false, t, Side::Right);
+                b.push_leaf(-1.0).unwrap();
+                b.set_right(0, 2);
+                b.push_leaf(1.0).unwrap();
+                let e = b.finish();
+                let xs = [
+                    t,
+                    t.next_down(),
+                    t.next_up(),
+                    0.0,
+                    -0.0,
+                    f64::INFINITY,
+                    f64::NEG_INFINITY,
+                    f64::MAX,
+                    -f64::MAX,
+                    t as f32 as f64,
+                ];
+                for x in xs {
+                    let r = if float32 { x as f32 as f64 } else { x };
+                    let want = if r < t { -1.0 } else { 1.0 };
+                    assert_eq!(e.margin(&[x]), want, "t={t} x={x} float32={float32}");
+                    let mut out = [0.0; LANES];
+                    e.margins(&[x; LANES], 1, &mut out);
+                    assert_eq!(out, [want; LANES], "batch t={t} x={x} float32={float32}");
+                }
+                assert_eq!(e.margin(&[f64::NAN]), 1.0);
+            }
+        }
     }
 
     #[test]
