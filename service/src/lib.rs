@@ -7,3 +7,4 @@ pub mod compare;
 pub mod report;
 pub mod serve;
 pub mod store;
+pub mod svg;

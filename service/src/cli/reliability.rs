@@ -4,6 +4,7 @@
 
 use std::fmt::Write as _;
 
+use probity::svg::escape;
 use probity_models::fit::FitReport;
 use probity_models::metrics::CalibrationTable;
 
@@ -16,12 +17,6 @@ fn px(v: f64) -> f64 {
 
 fn py(v: f64) -> f64 {
     PAD + (1.0 - v.clamp(0.0, 1.0)) * SIZE
-}
-
-fn escape(s: &str) -> String {
-    s.replace('&', "&amp;")
-        .replace('<', "&lt;")
-        .replace('>', "&gt;")
 }
 
 fn series(out: &mut String, table: &CalibrationTable, colour: &str) {

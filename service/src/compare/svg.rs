@@ -5,6 +5,7 @@
 
 use std::fmt::Write as _;
 
+use crate::svg::escape;
 use probity_models::metrics::CalibrationTable;
 
 use super::CompareReport;
@@ -12,13 +13,6 @@ use super::CompareReport;
 const SIZE: f64 = 360.0;
 const PAD: f64 = 50.0;
 const BARS: usize = 30;
-
-fn escape(s: &str) -> String {
-    s.replace('&', "&amp;")
-        .replace('<', "&lt;")
-        .replace('>', "&gt;")
-        .replace('"', "&quot;")
-}
 
 fn curve(s: &mut String, table: &CalibrationTable, class: &str, colour: &str, x0: f64) {
     let points: Vec<String> = table

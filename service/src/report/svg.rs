@@ -6,6 +6,7 @@
 use std::fmt::Write as _;
 
 use super::SeriesReport;
+use crate::svg::escape;
 
 const SIZE: f64 = 400.0;
 const PAD: f64 = 50.0;
@@ -16,13 +17,6 @@ fn px(v: f64) -> f64 {
 
 fn py(v: f64) -> f64 {
     PAD + (1.0 - v.clamp(0.0, 1.0)) * SIZE
-}
-
-fn escape(s: &str) -> String {
-    s.replace('&', "&amp;")
-        .replace('<', "&lt;")
-        .replace('>', "&gt;")
-        .replace('"', "&quot;")
 }
 
 /// Frame, axes with ticks at tenths, title and axis names.
