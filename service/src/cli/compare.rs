@@ -4,7 +4,9 @@ use std::path::PathBuf;
 
 use anyhow::Context;
 use probity::compare::{self, svg, text, CompareRequest};
-use probity::store::{ReportFilter, SqliteStore, Store};
+use probity::store::{ReportFilter, Store};
+
+use super::report::open_log;
 
 /// Arguments of `probity compare`.
 #[derive(Debug, clap::Args)]
@@ -48,16 +50,7 @@ pub fn run(args: &CompareArgs) -> anyhow::Result<()> {
             anyhow::bail!("--threshold: must be a probability in [0, 1], got {t}");
         }
     }
-    let file = if args.log.is_dir() {
-        args.log.join(probity::store::sqlite::FILE_NAME)
-    } else {
-        args.log.clone()
-    };
-    if !file.is_file() {
-        anyhow::bail!("--log: no prediction log at {}", file.display());
-    }
-    let mut store = SqliteStore::open_existing(&file)
-        .with_context(|| format!("--log: opening {}", file.display()))?;
+    let mut store = open_log(&args.log)?;
     let request = CompareRequest {
         filter: ReportFilter {
             from_ms: args.from,

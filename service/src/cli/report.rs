@@ -56,18 +56,22 @@ fn route_rate(text: &str) -> Result<(String, f64), String> {
     Ok((route.trim().to_string(), rate))
 }
 
-/// Runs `probity report`.
-pub fn run(args: &ReportArgs) -> anyhow::Result<()> {
-    let file = if args.log.is_dir() {
-        args.log.join(probity::store::sqlite::FILE_NAME)
+/// Opens the prediction log named by `--log`: a data directory holding the database, or the file itself.
+pub(crate) fn open_log(log: &std::path::Path) -> anyhow::Result<SqliteStore> {
+    let file = if log.is_dir() {
+        log.join(probity::store::sqlite::FILE_NAME)
     } else {
-        args.log.clone()
+        log.to_path_buf()
     };
     if !file.is_file() {
         anyhow::bail!("--log: no prediction log at {}", file.display());
     }
-    let mut store = SqliteStore::open_existing(&file)
-        .with_context(|| format!("--log: opening {}", file.display()))?;
+    SqliteStore::open_existing(&file).with_context(|| format!("--log: opening {}", file.display()))
+}
+
+/// Runs `probity report`.
+pub fn run(args: &ReportArgs) -> anyhow::Result<()> {
+    let mut store = open_log(&args.log)?;
     let filter = ReportFilter {
         from_ms: args.from,
         to_ms: args.to,
