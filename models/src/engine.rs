@@ -77,6 +77,7 @@ impl Model {
                 leaves: e.leaves(),
                 max_depth: e.max_depth(),
                 terms: 0,
+                engine_bytes: e.bytes(),
             },
             Body::Linear(l) => ModelSummary {
                 kind: BodyKind::Linear,
@@ -85,6 +86,7 @@ impl Model {
                 leaves: 0,
                 max_depth: 0,
                 terms: l.terms.len(),
+                engine_bytes: l.bytes(),
             },
         }
     }

@@ -119,6 +119,8 @@ pub struct ModelSummary {
     pub max_depth: usize,
     /// Number of linear terms (0 for an ensemble).
     pub terms: usize,
+    /// Bytes held by the compiled trees or terms (the engine's arrays, not the file).
+    pub engine_bytes: usize,
 }
 
 /// A loaded and validated model.

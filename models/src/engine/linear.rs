@@ -40,6 +40,27 @@ pub(crate) struct Linear {
     pub(crate) terms: Vec<Term>,
 }
 
+impl Linear {
+    /// Bytes held by the terms.
+    pub(crate) fn bytes(&self) -> usize {
+        let f64s = |v: &Vec<f64>| v.len() * std::mem::size_of::<f64>();
+        self.terms.len() * std::mem::size_of::<Term>()
+            + self
+                .terms
+                .iter()
+                .map(|t| match t {
+                    Term::Numeric { .. } => 0,
+                    Term::Categorical { coefficients, .. } => f64s(coefficients),
+                    Term::Binned {
+                        edges,
+                        contributions,
+                        ..
+                    } => f64s(edges) + f64s(contributions),
+                })
+                .sum::<usize>()
+    }
+}
+
 fn name(schema: &Schema, feature: usize) -> String {
     schema
         .feature(feature)

@@ -1,6 +1,18 @@
-//! The compiled tree ensemble: every tree's nodes in one flat array, laid out in preorder.
+//! The compiled tree ensemble, in two layouts chosen per group of [`LANES`] consecutive trees.
 //!
-//! A node is 24 bytes. In preorder a split's left child is the next node, so only the right child's absolute index
+//! **Complete layout** (numeric splits only, depth at most [`MAX_COMPLETE_DEPTH`]): each tree of the group is
+//! padded to a complete binary tree of the group's largest depth. Its splits are an array in breadth-first order
+//! (the children of position `p` are `2p + 1` and `2p + 2`; `2^depth` slots, the last one unused), 16 bytes each
+//! (threshold, feature, where a missing value goes), and its leaves a separate array of `2^depth` values. A walk
+//! is exactly `depth` steps of `p = 2p + 1 + goes_right`, with no leaf test and no child pointer to load, compiled
+//! once per depth so the steps unroll and every index is masked into its power-of-two array (no bounds check but
+//! the feature's); a leaf shallower than the group's
+//! depth is copied to every leaf position under it, and the splits under it are never-mind placeholders whose
+//! subtrees all hold the same value. Batches walk 8 rows through one tree in lockstep; a single row walks the
+//! group's 8 trees in lockstep. Either way the walks are independent, so the processor overlaps their loads.
+//!
+//! **Preorder layout** (groups with a categorical split, or too deep or too sparse to pad): every tree's nodes in
+//! one flat array, laid out in preorder. A node is 24 bytes. In preorder a split's left child is the next node, so only the right child's absolute index
 //! is stored; a walk down the left side reads memory sequentially. A leaf keeps its value, a numeric split its
 //! threshold, in the same `value` slot. A categorical split's left set lives in a shared pool, either as a bitset
 //! (`bitsets`, for small category indices) or as a sorted index list (`lists`, when a bitset would be much larger
@@ -8,7 +20,9 @@
 //!
 //! A numeric split always tests `x <= threshold`: a file's `x < t` is stored as `x <= t.next_down()`, which gives
 //! the same answer for every non-NaN f64 `x`, infinities included (no f64 lies strictly between the two
-//! thresholds). With float32 split precision the rounded feature is still an f64, so the same holds there.
+//! thresholds). With float32 split precision (a library that compares `x` rounded to f32), the threshold is moved
+//! at load to the largest f64 whose f32 rounding passes the test ([`f32_equivalent`]): rounding is monotone, so
+//! `x <= that` gives the same answer for every non-NaN `x`, and the walk never rounds.
 //!
 //! The loader (`model::load`) guarantees the invariants the walk relies on: every tree is acyclic, every child
 //! index is inside the array, every feature index is inside the row. Traversal is a loop, never recursion.
@@ -33,6 +47,12 @@ const BLOCK_ROWS: usize = 64;
 /// Rows walked through one tree in lockstep in a batch.
 const LANES: usize = 8;
 
+/// Deepest group kept in the complete layout (a tree of this depth has 1,023 splits and 1,024 leaves).
+const MAX_COMPLETE_DEPTH: usize = 10;
+
+/// A group takes the complete layout only when padding at most multiplies its node count by this.
+const MAX_PADDING: usize = 4;
+
 /// Bitsets up to this many words are always used; beyond, only when no longer than the index list.
 const SMALL_BITSET_WORDS: usize = 8;
 
@@ -48,6 +68,38 @@ struct Node {
     flags: u8,
 }
 
+/// A numeric split in the complete layout.
+#[derive(Debug, Clone, Copy, PartialEq)]
+struct Split {
+    /// The threshold: `x <= threshold` goes left.
+    threshold: f64,
+    feature: u32,
+    /// 1 when a missing value goes right, 0 when left.
+    nan_right: u32,
+}
+
+/// A placeholder under a shallow leaf: both of its subtrees hold that leaf's value, so its test does not matter.
+const PLACEHOLDER: Split = Split {
+    threshold: 0.0,
+    feature: 0,
+    nan_right: 0,
+};
+
+/// Consecutive trees (at most [`LANES`]) in one layout; groups are in file order.
+#[derive(Debug, Clone, Copy, PartialEq)]
+enum Group {
+    /// `trees` trees padded to `depth` (at most [`MAX_COMPLETE_DEPTH`]): tree `k`'s `2^depth` split slots at
+    /// `splits[splits_at + k * 2^depth..]`, its `2^depth` leaves at `leaf_values[leaves_at + k * 2^depth..]`.
+    Complete {
+        trees: usize,
+        depth: usize,
+        splits_at: usize,
+        leaves_at: usize,
+    },
+    /// Trees `first..first + trees` of `roots` in the preorder layout.
+    Preorder { first: usize, trees: usize },
+}
+
 /// How a split sends a missing value or an unknown category.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub(crate) enum Side {
@@ -58,18 +110,28 @@ pub(crate) enum Side {
 /// A compiled, validated tree ensemble.
 #[derive(Debug, Clone, PartialEq)]
 pub(crate) struct Ensemble {
+    /// The trees in file order, as groups of either layout.
+    groups: Vec<Group>,
+    /// Splits of the complete layout.
+    splits: Vec<Split>,
+    /// Leaves of the complete layout.
+    leaf_values: Vec<f64>,
+    /// Nodes of the preorder layout.
     nodes: Vec<Node>,
+    /// Root of each tree of the preorder layout, in `nodes`.
     roots: Vec<u32>,
     /// Depth (largest root-to-leaf edge count) of each tree, parallel to `roots`: a lockstep walk of that many
     /// steps reaches a leaf in every lane.
     depths: Vec<usize>,
+    /// Trees, nodes (splits and leaves as written in the file) in all.
+    n_trees: usize,
+    n_nodes: usize,
     bitsets: Vec<u64>,
     lists: Vec<u32>,
     /// Number of categories of each feature (0 for a numeric one): a categorical value is a known category only
     /// when it is an integer below this.
     n_categories: Vec<u32>,
     base_margin: f64,
-    float32: bool,
     leaves: usize,
     max_depth: usize,
 }
@@ -78,6 +140,8 @@ pub(crate) struct Ensemble {
 #[derive(Debug)]
 pub(crate) struct EnsembleBuilder {
     e: Ensemble,
+    /// Whether thresholds are compared with features rounded to f32.
+    float32: bool,
 }
 
 fn overflow(what: &'static str, got: usize) -> ModelError {
@@ -98,7 +162,13 @@ impl EnsembleBuilder {
         nodes: usize,
     ) -> Self {
         EnsembleBuilder {
+            float32,
             e: Ensemble {
+                groups: Vec::new(),
+                splits: Vec::new(),
+                leaf_values: Vec::new(),
+                n_trees: 0,
+                n_nodes: 0,
                 nodes: Vec::with_capacity(nodes),
                 roots: Vec::new(),
                 depths: Vec::new(),
@@ -106,7 +176,6 @@ impl EnsembleBuilder {
                 lists: Vec::new(),
                 n_categories,
                 base_margin,
-                float32,
                 leaves: 0,
                 max_depth: 0,
             },
@@ -152,6 +221,11 @@ impl EnsembleBuilder {
     pub(crate) fn push_numeric(&mut self, feature: u32, le: bool, threshold: f64, missing: Side) {
         // See the module overview: `<` becomes `<=` on the previous f64, so the walk makes one comparison.
         let threshold = if le { threshold } else { threshold.next_down() };
+        let threshold = if self.float32 {
+            f32_equivalent(threshold)
+        } else {
+            threshold
+        };
         let mut flags = 0;
         if missing == Side::Left {
             flags |= MISSING_LEFT;
@@ -217,8 +291,87 @@ impl EnsembleBuilder {
         }
     }
 
+    /// Lays the trees out for evaluation, in groups of [`LANES`] consecutive trees: the complete layout where
+    /// it applies (see the module overview), the preorder layout otherwise.
     pub(crate) fn finish(self) -> Ensemble {
-        self.e
+        let mut built = self.e;
+        let bitsets = std::mem::take(&mut built.bitsets);
+        let lists = std::mem::take(&mut built.lists);
+        let n_categories = std::mem::take(&mut built.n_categories);
+        let n = built.roots.len();
+        let end_of = |t: usize| {
+            built
+                .roots
+                .get(t + 1)
+                .map_or(built.nodes.len(), |&r| r as usize)
+        };
+        let mut e = Ensemble {
+            groups: Vec::with_capacity(n.div_ceil(LANES)),
+            splits: Vec::new(),
+            leaf_values: Vec::new(),
+            nodes: Vec::new(),
+            roots: Vec::new(),
+            depths: Vec::new(),
+            n_trees: n,
+            n_nodes: built.nodes.len(),
+            bitsets,
+            lists,
+            n_categories,
+            base_margin: built.base_margin,
+            leaves: built.leaves,
+            max_depth: built.max_depth,
+        };
+        for first in (0..n).step_by(LANES) {
+            let trees = LANES.min(n - first);
+            let range = built.roots[first] as usize..end_of(first + trees - 1);
+            let depth = (first..first + trees)
+                .map(|t| built.tree_depth(t))
+                .max()
+                .unwrap_or(0);
+            let numeric = built.nodes[range.clone()]
+                .iter()
+                .all(|node| node.flags & CATEGORICAL == 0);
+            let padded = trees * (2usize << depth);
+            if numeric && depth <= MAX_COMPLETE_DEPTH && padded <= MAX_PADDING * range.len() {
+                let splits_at = e.splits.len();
+                let leaves_at = e.leaf_values.len();
+                let size = 1 << depth;
+                e.splits.resize(splits_at + trees * size, PLACEHOLDER);
+                e.leaf_values.resize(leaves_at + trees * size, 0.0);
+                for k in 0..trees {
+                    built.fill_complete(
+                        built.roots[first + k] as usize,
+                        depth,
+                        &mut e.splits[splits_at + k * size..][..size],
+                        &mut e.leaf_values[leaves_at + k * size..][..size],
+                    );
+                }
+                e.groups.push(Group::Complete {
+                    trees,
+                    depth,
+                    splits_at,
+                    leaves_at,
+                });
+            } else {
+                e.groups.push(Group::Preorder {
+                    first: e.roots.len(),
+                    trees,
+                });
+                for t in first..first + trees {
+                    // Child indices are absolute: moving a tree down by `shift` moves them by as much.
+                    let old = built.roots[t] as usize;
+                    let shift = old - e.nodes.len();
+                    e.roots.push(e.nodes.len() as u32);
+                    e.depths.push(built.tree_depth(t));
+                    e.nodes
+                        .extend(built.nodes[old..end_of(t)].iter().map(|node| Node {
+                            right: node.right - shift as u32,
+                            ..*node
+                        }));
+                }
+            }
+        }
+        e
     }
 }
 
@@ -232,29 +385,231 @@ pub(crate) fn known_category(x: f64, n: usize) -> Option<usize> {
     }
 }
 
+/// The largest f64 `T` such that `x as f32 as f64 <= threshold` exactly when `x <= T`, for every non-NaN `x`.
+///
+/// Rounding to f32 is monotone (non-decreasing), so the set of `x` that pass is a down-set of the f64 line: found
+/// by bisection over the f64 values in order (64 halvings at most), at load time only.
+pub(crate) fn f32_equivalent(threshold: f64) -> f64 {
+    // A key that orders every non-NaN f64 as the numbers do (-0.0 just below +0.0).
+    fn key(x: f64) -> i128 {
+        let b = x.to_bits() as i64;
+        i128::from(if b < 0 { b ^ i64::MAX } else { b })
+    }
+    fn value(k: i128) -> f64 {
+        // Only keys between those of -inf and +inf are asked for, which fit in i64.
+        let k = k as i64;
+        f64::from_bits((if k < 0 { k ^ i64::MAX } else { k }) as u64)
+    }
+    let passes = |x: f64| (x as f32 as f64) <= threshold;
+    if threshold.is_nan() || passes(f64::INFINITY) {
+        return threshold.max(f64::INFINITY);
+    }
+    // Invariant: passes(value(lo)), !passes(value(hi)). -inf always passes (threshold is not NaN).
+    let (mut lo, mut hi) = (key(f64::NEG_INFINITY), key(f64::INFINITY));
+    while hi - lo > 1 {
+        let mid = lo + (hi - lo) / 2;
+        if passes(value(mid)) {
+            lo = mid;
+        } else {
+            hi = mid;
+        }
+    }
+    value(lo)
+}
+
 /// Whether numeric split (or leaf) `node` sends value `x` left; a leaf never does.
 ///
 /// Written with `&` and `|` on booleans rather than `if`s so the compiler can select without branches: which
 /// way a lane goes depends on the data and predicts badly.
 #[inline(always)]
-fn numeric_left<const F32: bool>(node: &Node, x: f64) -> bool {
-    // Training libraries that store features as f32 compare the rounded value with the threshold (NaN stays
-    // NaN, so the missing test is unchanged).
-    let x = if F32 { x as f32 as f64 } else { x };
+fn numeric_left(node: &Node, x: f64) -> bool {
     let split = node.flags & LEAF == 0;
     // `x <= t` is false for NaN, which then goes where the flag says.
     let left = (x <= node.value) | (x.is_nan() & (node.flags & MISSING_LEFT != 0));
     split & left
 }
 
+/// Whether a split of the complete layout sends `x` right. `x > t` is false for NaN, which then goes where the
+/// split says; written with `&` and `|` so the compiler can select without a branch.
+#[inline(always)]
+fn goes_right(s: &Split, x: f64) -> bool {
+    (x > s.threshold) | (x.is_nan() & (s.nan_right != 0))
+}
+
+/// The walks of the complete layout for one depth `D` (`N = 2^D` split slots and leaves per tree): with `D` a
+/// constant the steps unroll, and with `N` a power of two every index is masked into its array.
+struct Walk<const D: usize, const N: usize>;
+
+impl<const D: usize, const N: usize> Walk<D, N> {
+    /// One step from position `at`.
+    #[inline(always)]
+    fn step(splits: &[Split; N], row: &[f64], at: usize) -> usize {
+        let s = &splits[at & (N - 1)];
+        2 * at + 1 + usize::from(goes_right(s, row[s.feature as usize]))
+    }
+
+    /// The leaf at the position `D` steps reached (`N - 1 ..= 2N - 2`).
+    #[inline(always)]
+    fn leaf(leaves: &[f64; N], at: usize) -> f64 {
+        leaves[(at + 1) & (N - 1)]
+    }
+
+    /// Adds the group's trees' leaves for every row of `block` (rows `row0..` of `rows`, `n` values each):
+    /// [`LANES`] rows through one tree in lockstep.
+    fn add_rows(
+        splits: &[Split],
+        leaves: &[f64],
+        rows: &[f64],
+        n: usize,
+        row0: usize,
+        block: &mut [f64],
+    ) {
+        let (splits, _) = splits.as_chunks::<N>();
+        let (leaves, _) = leaves.as_chunks::<N>();
+        for (s, l) in splits.iter().zip(leaves) {
+            for (g, lanes) in block.chunks_mut(LANES).enumerate() {
+                let first = row0 + g * LANES;
+                if let Ok(out) = <&mut [f64; LANES]>::try_from(&mut *lanes) {
+                    let lane: [&[f64]; LANES] =
+                        std::array::from_fn(|j| &rows[(first + j) * n..][..n]);
+                    let mut at = [0usize; LANES];
+                    for _ in 0..D {
+                        for (a, row) in at.iter_mut().zip(&lane) {
+                            *a = Self::step(s, row, *a);
+                        }
+                    }
+                    for (o, &a) in out.iter_mut().zip(&at) {
+                        *o += Self::leaf(l, a);
+                    }
+                } else {
+                    for (j, o) in lanes.iter_mut().enumerate() {
+                        let row = &rows[(first + j) * n..][..n];
+                        let mut at = 0;
+                        for _ in 0..D {
+                            at = Self::step(s, row, at);
+                        }
+                        *o += Self::leaf(l, at);
+                    }
+                }
+            }
+        }
+    }
+
+    /// Adds the group's trees' leaves for one row to `m`, in tree order; a full group's trees walk in lockstep.
+    fn add_row(splits: &[Split], leaves: &[f64], row: &[f64], m: &mut f64) {
+        let (splits, _) = splits.as_chunks::<N>();
+        let (leaves, _) = leaves.as_chunks::<N>();
+        if let (Ok(splits), Ok(leaves)) = (
+            <&[[Split; N]; LANES]>::try_from(splits),
+            <&[[f64; N]; LANES]>::try_from(leaves),
+        ) {
+            let mut at = [0usize; LANES];
+            for _ in 0..D {
+                for (a, s) in at.iter_mut().zip(splits) {
+                    *a = Self::step(s, row, *a);
+                }
+            }
+            for (&a, l) in at.iter().zip(leaves) {
+                *m += Self::leaf(l, a);
+            }
+        } else {
+            for (s, l) in splits.iter().zip(leaves) {
+                let mut at = 0;
+                for _ in 0..D {
+                    at = Self::step(s, row, at);
+                }
+                *m += Self::leaf(l, at);
+            }
+        }
+    }
+}
+
+/// Calls `Walk::<D, 2^D>::$f(args)` for a complete group's depth (at most [`MAX_COMPLETE_DEPTH`], which
+/// [`EnsembleBuilder::finish`] ensures).
+macro_rules! walk_by_depth {
+    ($depth:expr, $f:ident($($arg:expr),*)) => {
+        match $depth {
+            0 => Walk::<0, 1>::$f($($arg),*),
+            1 => Walk::<1, 2>::$f($($arg),*),
+            2 => Walk::<2, 4>::$f($($arg),*),
+            3 => Walk::<3, 8>::$f($($arg),*),
+            4 => Walk::<4, 16>::$f($($arg),*),
+            5 => Walk::<5, 32>::$f($($arg),*),
+            6 => Walk::<6, 64>::$f($($arg),*),
+            7 => Walk::<7, 128>::$f($($arg),*),
+            8 => Walk::<8, 256>::$f($($arg),*),
+            9 => Walk::<9, 512>::$f($($arg),*),
+            10 => Walk::<10, 1024>::$f($($arg),*),
+            _ => unreachable!("complete groups are at most MAX_COMPLETE_DEPTH deep"),
+        }
+    };
+}
+const _: () = assert!(
+    MAX_COMPLETE_DEPTH == 10,
+    "walk_by_depth! covers depths 0 to 10"
+);
+
 impl Ensemble {
     /// Number of trees.
     pub(crate) fn trees(&self) -> usize {
-        self.roots.len()
+        self.n_trees
     }
-    /// Number of nodes in all trees.
+    /// Number of nodes in all trees, as written in the file.
     pub(crate) fn nodes(&self) -> usize {
-        self.nodes.len()
+        self.n_nodes
+    }
+    /// Bytes held by the compiled trees (both layouts and the category sets).
+    pub(crate) fn bytes(&self) -> usize {
+        use std::mem::size_of;
+        self.splits.len() * size_of::<Split>()
+            + self.leaf_values.len() * size_of::<f64>()
+            + self.nodes.len() * size_of::<Node>()
+            + self.roots.len() * size_of::<u32>()
+            + self.depths.len() * size_of::<usize>()
+            + self.groups.len() * size_of::<Group>()
+            + self.bitsets.len() * size_of::<u64>()
+            + self.lists.len() * size_of::<u32>()
+    }
+
+    /// Depth of tree `t` of the preorder layout, found by walking it (a loop with an explicit stack).
+    fn tree_depth(&self, t: usize) -> usize {
+        let mut deepest = 0;
+        let mut stack = vec![(self.roots[t] as usize, 0usize)];
+        while let Some((i, level)) = stack.pop() {
+            let node = &self.nodes[i];
+            if node.flags & LEAF != 0 {
+                deepest = deepest.max(level);
+            } else {
+                stack.push((i + 1, level + 1));
+                stack.push((node.right as usize, level + 1));
+            }
+        }
+        deepest
+    }
+
+    /// Writes tree `root` of the preorder layout (numeric splits only, no deeper than `depth`) in the complete
+    /// layout: `splits` and `leaves` have `2^depth` entries (placeholders on entry; the last split slot stays
+    /// one).
+    fn fill_complete(&self, root: usize, depth: usize, splits: &mut [Split], leaves: &mut [f64]) {
+        // (preorder node, breadth-first position, level)
+        let mut stack = vec![(root, 0usize, 0usize)];
+        while let Some((i, pos, level)) = stack.pop() {
+            let node = &self.nodes[i];
+            if node.flags & LEAF != 0 {
+                // Every leaf position under `pos`.
+                let span = 1usize << (depth - level);
+                let first = (pos + 1 - (1 << level)) * span;
+                leaves[first..first + span].fill(node.value);
+            } else {
+                splits[pos] = Split {
+                    threshold: node.value,
+                    feature: node.feature,
+                    nan_right: u32::from(node.flags & MISSING_LEFT == 0),
+                };
+                stack.push((i + 1, 2 * pos + 1, level + 1));
+                stack.push((node.right as usize, 2 * pos + 2, level + 1));
+            }
+        }
     }
     /// Number of leaves in all trees.
     pub(crate) fn leaves(&self) -> usize {
@@ -267,45 +622,75 @@ impl Ensemble {
 
     /// The margin of one row whose length the caller checked.
     pub(crate) fn margin(&self, row: &[f64]) -> f64 {
-        if self.float32 {
-            self.margin_with::<true>(row)
-        } else {
-            self.margin_with::<false>(row)
-        }
-    }
-
-    fn margin_with<const F32: bool>(&self, row: &[f64]) -> f64 {
         // Base margin first, then the trees in file order: the summation order of the reference libraries.
         let mut m = self.base_margin;
-        for &root in &self.roots {
-            m += self.leaf::<F32>(root, row);
+        for group in &self.groups {
+            match *group {
+                Group::Complete {
+                    trees,
+                    depth,
+                    splits_at,
+                    leaves_at,
+                } => {
+                    let (splits, leaves) = self.complete(trees, depth, splits_at, leaves_at);
+                    walk_by_depth!(depth, add_row(splits, leaves, row, &mut m));
+                }
+                Group::Preorder { first, trees } => {
+                    for &root in &self.roots[first..first + trees] {
+                        m += self.leaf(root, row);
+                    }
+                }
+            }
         }
         m
+    }
+
+    /// The split slots and leaves of a complete group.
+    #[inline]
+    fn complete(
+        &self,
+        trees: usize,
+        depth: usize,
+        splits_at: usize,
+        leaves_at: usize,
+    ) -> (&[Split], &[f64]) {
+        (
+            &self.splits[splits_at..][..trees << depth],
+            &self.leaf_values[leaves_at..][..trees << depth],
+        )
     }
 
     /// Margins of `out.len()` rows of `n` values each (shape checked by the caller), tree-major over blocks of
     /// rows. Each row's sum is formed in the same order as in [`Self::margin`], so results are bit-identical.
     pub(crate) fn margins(&self, rows: &[f64], n: usize, out: &mut [f64]) {
-        if self.float32 {
-            self.margins_with::<true>(rows, n, out);
-        } else {
-            self.margins_with::<false>(rows, n, out);
-        }
-    }
-
-    fn margins_with<const F32: bool>(&self, rows: &[f64], n: usize, out: &mut [f64]) {
         for (b, block) in out.chunks_mut(BLOCK_ROWS).enumerate() {
             let first = b * BLOCK_ROWS;
             block.fill(self.base_margin);
-            for (&root, &depth) in self.roots.iter().zip(&self.depths) {
-                for (g, lanes) in block.chunks_mut(LANES).enumerate() {
-                    let row0 = first + g * LANES;
-                    if let Ok(full) = <&mut [f64; LANES]>::try_from(&mut *lanes) {
-                        self.add_leaves_of_lanes::<F32>(root, depth, rows, row0, n, full);
-                    } else {
-                        for (k, o) in lanes.iter_mut().enumerate() {
-                            let start = (row0 + k) * n;
-                            *o += self.leaf::<F32>(root, &rows[start..start + n]);
+            for group in &self.groups {
+                match *group {
+                    Group::Complete {
+                        trees,
+                        depth,
+                        splits_at,
+                        leaves_at,
+                    } => {
+                        let (splits, leaves) = self.complete(trees, depth, splits_at, leaves_at);
+                        walk_by_depth!(depth, add_rows(splits, leaves, rows, n, first, block));
+                    }
+                    Group::Preorder { first: t0, trees } => {
+                        for t in t0..t0 + trees {
+                            let (root, depth) = (self.roots[t], self.depths[t]);
+                            for (g, lanes) in block.chunks_mut(LANES).enumerate() {
+                                let row0 = first + g * LANES;
+                                if let Ok(full) = <&mut [f64; LANES]>::try_from(&mut *lanes) {
+                                    self.add_leaves_of_lanes(root, depth, rows, row0, n, full);
+                                } else {
+                                    for (k, o) in lanes.iter_mut().enumerate() {
+                                        let start = (row0 + k) * n;
+                                        *o += self.leaf(root, &rows[start..start + n]);
+                                    }
+                                }
+                            }
                         }
                     }
                 }
@@ -317,7 +702,7 @@ impl Ensemble {
     /// output. The rows' walks are independent, so the processor overlaps their memory loads and comparisons
     /// instead of waiting on one dependent chain.
     #[inline]
-    fn add_leaves_of_lanes<const F32: bool>(
+    fn add_leaves_of_lanes(
         &self,
         root: u32,
         depth: usize,
@@ -337,7 +722,7 @@ impl Ensemble {
                 // A leaf's feature is 0, inside every row that reaches a split (a split needs a feature).
                 let x = row[node.feature as usize];
                 let left = if node.flags & CATEGORICAL == 0 {
-                    numeric_left::<F32>(node, x)
+                    numeric_left(node, x)
                 } else {
                     self.categorical_left(node, x)
                 };
@@ -351,7 +736,7 @@ impl Ensemble {
 
     /// Walks one tree from `root` to a leaf and returns its value.
     #[inline]
-    fn leaf<const F32: bool>(&self, root: u32, row: &[f64]) -> f64 {
+    fn leaf(&self, root: u32, row: &[f64]) -> f64 {
         let mut i = root as usize;
         loop {
             let node = &self.nodes[i];
@@ -360,7 +745,7 @@ impl Ensemble {
             }
             let x = row[node.feature as usize];
             let left = if node.flags & CATEGORICAL == 0 {
-                numeric_left::<F32>(node, x)
+                numeric_left(node, x)
             } else {
                 self.categorical_left(node, x)
             };
@@ -464,6 +849,160 @@ mod tests {
                     assert_eq!(out, [want; LANES], "batch t={t} x={x} float32={float32}");
                 }
                 assert_eq!(e.margin(&[f64::NAN]), 1.0);
+            }
+        }
+    }
+
+    /// Eight trees of depth 2 over one feature, leaves numbered so each row's margin tells which leaves it hit;
+    /// tree 3 is a single leaf and tree 5 has a shallow left leaf (padded in the complete layout).
+    fn eight_numeric(categorical_in_tree: Option<usize>) -> Ensemble {
+        let mut b = EnsembleBuilder::new(0.5, false, vec![0, 4], 64);
+        for t in 0..8u32 {
+            b.start_tree().unwrap();
+            let v = f64::from(t) * 16.0;
+            if t == 3 {
+                b.push_leaf(v).unwrap();
+                continue;
+            }
+            let root = b.next_index().unwrap();
+            if Some(t as usize) == categorical_in_tree {
+                b.push_categorical(1, &[1, 2], Side::Left, Side::Right)
+                    .unwrap();
+            } else {
+                b.push_numeric(0, true, 0.0, Side::Left);
+            }
+            if t == 5 {
+                b.push_leaf(v + 1.0).unwrap();
+            } else {
+                let left = b.next_index().unwrap();
+                b.push_numeric(0, false, -1.0, Side::Right);
+                b.push_leaf(v + 2.0).unwrap();
+                let r = b.next_index().unwrap();
+                b.set_right(left, r);
+                b.push_leaf(v + 3.0).unwrap();
+            }
+            let right = b.next_index().unwrap();
+            b.set_right(root, right);
+            b.push_numeric(0, true, 1.0, Side::Right);
+            b.push_leaf(v + 4.0).unwrap();
+            let r = b.next_index().unwrap();
+            b.set_right(right, r);
+            b.push_leaf(v + 5.0).unwrap();
+        }
+        b.finish()
+    }
+
+    #[test]
+    fn layouts_agree() {
+        // All numeric: one group in the complete layout. With a categorical root in tree 0 (feature 1 is
+        // category 1 in every row, which is in its left set): the preorder layout, and the same answers on rows
+        // that go left at that root anyway (x <= 0 or missing).
+        let complete = eight_numeric(None);
+        assert!(matches!(
+            complete.groups[..],
+            [Group::Complete {
+                trees: 8,
+                depth: 2,
+                ..
+            }]
+        ));
+        let preorder = eight_numeric(Some(0));
+        assert!(matches!(
+            preorder.groups[..],
+            [Group::Preorder { trees: 8, .. }]
+        ));
+        let xs = [-2.0, -1.0, -0.5, 0.0, 0.5, 1.0, 2.0, f64::NAN];
+        let mut rows = Vec::new();
+        for (i, &x) in xs.iter().cycle().take(21).enumerate() {
+            rows.extend_from_slice(&[x, 1.0]);
+            // Leaves by hand: tree t adds 16t plus its leaf number.
+            let goes_left = x <= 0.0 || x.is_nan();
+            let leaf = |t: u32| -> f64 {
+                let v = f64::from(t) * 16.0;
+                match t {
+                    3 => v,
+                    5 if goes_left => v + 1.0,
+                    _ if goes_left => v + if x < -1.0 { 2.0 } else { 3.0 },
+                    _ => v + if x <= 1.0 { 4.0 } else { 5.0 },
+                }
+            };
+            let want = (0..8).fold(0.5, |m, t| m + leaf(t));
+            assert_eq!(complete.margin(&[x, 1.0]), want, "row {i} x={x}");
+            if goes_left {
+                assert_eq!(preorder.margin(&[x, 1.0]), want, "row {i} x={x}");
+            }
+        }
+        let mut a = vec![0.0; 21];
+        let mut b = vec![0.0; 21];
+        complete.margins(&rows, 2, &mut a);
+        preorder.margins(&rows, 2, &mut b);
+        for (r, row) in rows.chunks(2).enumerate() {
+            assert_eq!(a[r], complete.margin(row), "batch row {r}");
+            assert_eq!(b[r], preorder.margin(row), "batch row {r}");
+        }
+        // A padded tree costs its complete size; the counts stay those of the file.
+        assert_eq!(complete.nodes(), preorder.nodes());
+        assert_eq!(complete.splits.len(), 8 * 4);
+        assert_eq!(complete.leaf_values.len(), 8 * 4);
+    }
+
+    #[test]
+    fn f32_equivalent_threshold_agrees_with_rounding() {
+        // For thresholds at, between and around f32 values (the midpoint of two f32 neighbours is where rounding
+        // changes, ties to even), the f64 test on the moved threshold answers as the test on the rounded value.
+        let mut thresholds = vec![
+            0.0,
+            -0.0,
+            0.1,
+            -0.1,
+            1.0,
+            100_000_001.0,
+            f64::MAX,
+            -f64::MAX,
+            f64::INFINITY,
+            f64::NEG_INFINITY,
+            f32::MAX as f64,
+            (f32::MAX as f64) * 1.5,
+            f32::MIN_POSITIVE as f64,
+            1e-45,
+            1e-300,
+        ];
+        for t in thresholds.clone() {
+            let f = t as f32;
+            let up = f64::from(f.next_up());
+            let mid = (f64::from(f) + up) / 2.0;
+            thresholds.extend([
+                mid,
+                mid.next_up(),
+                mid.next_down(),
+                t.next_up(),
+                t.next_down(),
+            ]);
+        }
+        for t in thresholds {
+            let big_t = f32_equivalent(t);
+            let mut xs = vec![
+                big_t,
+                big_t.next_up(),
+                big_t.next_down(),
+                t,
+                0.0,
+                -0.0,
+                f64::INFINITY,
+            ];
+            xs.push(f64::NEG_INFINITY);
+            let f = t as f32;
+            for g in [f.next_down(), f, f.next_up()] {
+                let up = f64::from(g.next_up());
+                let mid = (f64::from(g) + up) / 2.0;
+                xs.extend([f64::from(g), mid, mid.next_up(), mid.next_down()]);
+            }
+            for x in xs.into_iter().filter(|x| !x.is_nan()) {
+                assert_eq!(
+                    x <= big_t,
+                    (x as f32 as f64) <= t,
+                    "t={t:e} moved to {big_t:e}, x={x:e}"
+                );
             }
         }
     }

@@ -36,8 +36,11 @@ pub fn summary_json(model: &Model) -> Value {
     let body = match s.kind {
         BodyKind::Ensemble => json!({
             "kind": "ensemble", "trees": s.trees, "nodes": s.nodes, "leaves": s.leaves, "max_depth": s.max_depth,
+            "engine_bytes": s.engine_bytes,
         }),
-        BodyKind::Linear => json!({"kind": "linear", "terms": s.terms}),
+        BodyKind::Linear => {
+            json!({"kind": "linear", "terms": s.terms, "engine_bytes": s.engine_bytes})
+        }
     };
     let features: Vec<Value> = model
         .schema()
@@ -86,10 +89,13 @@ pub fn summary_text(model: &Model) -> String {
     let mut out = format!("model          {} {}\n", model.name(), model.version());
     out += &match s.kind {
         BodyKind::Ensemble => format!(
-            "body           tree ensemble: {} trees, {} nodes, {} leaves, max depth {}\n",
-            s.trees, s.nodes, s.leaves, s.max_depth
+            "body           tree ensemble: {} trees, {} nodes, {} leaves, max depth {}; {} bytes compiled\n",
+            s.trees, s.nodes, s.leaves, s.max_depth, s.engine_bytes
         ),
-        BodyKind::Linear => format!("body           linear: {} terms\n", s.terms),
+        BodyKind::Linear => format!(
+            "body           linear: {} terms; {} bytes compiled\n",
+            s.terms, s.engine_bytes
+        ),
     };
     let features = model.schema().features();
     out += &format!("features       {}\n", features.len());
