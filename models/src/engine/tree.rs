@@ -3,10 +3,13 @@
 //! **Complete layout** (numeric splits only, depth at most [`MAX_COMPLETE_DEPTH`]): each tree of the group is
 //! padded to a complete binary tree of the group's largest depth. Its splits are an array in breadth-first order
 //! (the children of position `p` are `2p + 1` and `2p + 2`; `2^depth` slots, the last one unused), 16 bytes each
-//! (threshold, feature, where a missing value goes), and its leaves a separate array of `2^depth` values. A walk
-//! is exactly `depth` steps of `p = 2p + 1 + goes_right`, with no leaf test and no child pointer to load, compiled
-//! once per depth so the steps unroll and every index is masked into its power-of-two array (no bounds check but
-//! the feature's); a leaf shallower than the group's
+//! (threshold and column), and its leaves a separate array of `2^depth` values. A walk is exactly `depth` steps of
+//! `p = 2p + 1 + (x > threshold)`, with no leaf test, no child pointer and no missing-value test: the row is first
+//! written out twice, missing values as -inf in the first copy and as +inf in the second, and a split whose
+//! missing values go right reads its feature from the second copy (its column is `feature + n`). Since every
+//! threshold is finite, -inf always goes left and +inf right, and a real infinity goes the same way in either
+//! copy. The walks are compiled once per depth so the steps unroll and every index is masked into its
+//! power-of-two array (no bounds check but the column's); a leaf shallower than the group's
 //! depth is copied to every leaf position under it, and the splits under it are never-mind placeholders whose
 //! subtrees all hold the same value. Batches walk 8 rows through one tree in lockstep; a single row walks the
 //! group's 8 trees in lockstep. Either way the walks are independent, so the processor overlaps their loads.
@@ -44,8 +47,11 @@ const SET_IS_LIST: u8 = 32;
 /// block's rows stay in cache too.
 const BLOCK_ROWS: usize = 64;
 
-/// Rows walked through one tree in lockstep in a batch.
+/// Rows walked through one tree in lockstep in a batch; trees per group in the layout choice.
 const LANES: usize = 8;
+
+/// Trees walked in lockstep for one row.
+const TREE_LANES: usize = 16;
 
 /// Deepest group kept in the complete layout (a tree of this depth has 1,023 splits and 1,024 leaves).
 const MAX_COMPLETE_DEPTH: usize = 10;
@@ -71,21 +77,61 @@ struct Node {
 /// A numeric split in the complete layout.
 #[derive(Debug, Clone, Copy, PartialEq)]
 struct Split {
-    /// The threshold: `x <= threshold` goes left.
+    /// The threshold (finite): `x <= threshold` goes left.
     threshold: f64,
-    feature: u32,
-    /// 1 when a missing value goes right, 0 when left.
-    nan_right: u32,
+    /// Where `x` is in the sided row (see the module overview): the feature's index, plus the number of
+    /// features when a missing value goes right.
+    column: u32,
 }
 
 /// A placeholder under a shallow leaf: both of its subtrees hold that leaf's value, so its test does not matter.
 const PLACEHOLDER: Split = Split {
     threshold: 0.0,
-    feature: 0,
-    nan_right: 0,
+    column: 0,
 };
 
-/// Consecutive trees (at most [`LANES`]) in one layout; groups are in file order.
+/// Writes `row` twice into `sided`: missing values as -inf, then as +inf.
+#[inline]
+fn write_sided(row: &[f64], sided: &mut [f64]) {
+    let (low, high) = sided.split_at_mut(row.len());
+    for ((&x, lo), hi) in row.iter().zip(low).zip(high) {
+        let nan = x.is_nan();
+        *lo = if nan { f64::NEG_INFINITY } else { x };
+        *hi = if nan { f64::INFINITY } else { x };
+    }
+}
+
+/// Sided rows up to this long (models of up to half as many features) are scored from a stack array whose length
+/// is a power of two, so a column is masked into it rather than bounds-checked.
+const SMALL_SIDED: usize = 256;
+
+/// A sided row, read by column.
+trait Sided {
+    fn get(&self, column: u32) -> f64;
+}
+
+impl Sided for [f64] {
+    #[inline(always)]
+    fn get(&self, column: u32) -> f64 {
+        self[column as usize]
+    }
+}
+
+impl Sided for [f64; SMALL_SIDED] {
+    /// Every column is below twice the feature count, at most [`SMALL_SIDED`]: the mask changes nothing.
+    #[inline(always)]
+    fn get(&self, column: u32) -> f64 {
+        self[column as usize & (SMALL_SIDED - 1)]
+    }
+}
+
+std::thread_local! {
+    /// The sided row of [`Ensemble::margin`], reused between calls on a thread.
+    static SIDED: std::cell::RefCell<Vec<f64>> = const { std::cell::RefCell::new(Vec::new()) };
+}
+
+/// Consecutive trees in one layout, in file order: a run of complete trees of one depth, or at most [`LANES`]
+/// trees in the preorder layout.
 #[derive(Debug, Clone, Copy, PartialEq)]
 enum Group {
     /// `trees` trees padded to `depth` (at most [`MAX_COMPLETE_DEPTH`]): tree `k`'s `2^depth` split slots at
@@ -126,6 +172,8 @@ pub(crate) struct Ensemble {
     /// Trees, nodes (splits and leaves as written in the file) in all.
     n_trees: usize,
     n_nodes: usize,
+    /// Features in a row.
+    n_features: usize,
     bitsets: Vec<u64>,
     lists: Vec<u32>,
     /// Number of categories of each feature (0 for a numeric one): a categorical value is a known category only
@@ -169,6 +217,7 @@ impl EnsembleBuilder {
                 leaf_values: Vec::new(),
                 n_trees: 0,
                 n_nodes: 0,
+                n_features: 0,
                 nodes: Vec::with_capacity(nodes),
                 roots: Vec::new(),
                 depths: Vec::new(),
@@ -299,6 +348,7 @@ impl EnsembleBuilder {
         let lists = std::mem::take(&mut built.lists);
         let n_categories = std::mem::take(&mut built.n_categories);
         let n = built.roots.len();
+        let n_features = n_categories.len();
         let end_of = |t: usize| {
             built
                 .roots
@@ -314,6 +364,7 @@ impl EnsembleBuilder {
             depths: Vec::new(),
             n_trees: n,
             n_nodes: built.nodes.len(),
+            n_features,
             bitsets,
             lists,
             n_categories,
@@ -328,9 +379,11 @@ impl EnsembleBuilder {
                 .map(|t| built.tree_depth(t))
                 .max()
                 .unwrap_or(0);
+            // Numeric splits with finite thresholds only (the loader requires finite thresholds; a float32
+            // threshold moved by `f32_equivalent` stays finite).
             let numeric = built.nodes[range.clone()]
                 .iter()
-                .all(|node| node.flags & CATEGORICAL == 0);
+                .all(|node| node.flags & CATEGORICAL == 0 && node.value.is_finite());
             let padded = trees * (2usize << depth);
             if numeric && depth <= MAX_COMPLETE_DEPTH && padded <= MAX_PADDING * range.len() {
                 let splits_at = e.splits.len();
@@ -341,17 +394,26 @@ impl EnsembleBuilder {
                 for k in 0..trees {
                     built.fill_complete(
                         built.roots[first + k] as usize,
+                        n_features,
                         depth,
                         &mut e.splits[splits_at + k * size..][..size],
                         &mut e.leaf_values[leaves_at + k * size..][..size],
                     );
                 }
-                e.groups.push(Group::Complete {
-                    trees,
-                    depth,
-                    splits_at,
-                    leaves_at,
-                });
+                // Consecutive complete groups of one depth are contiguous in both arrays: one run.
+                match e.groups.last_mut() {
+                    Some(Group::Complete {
+                        trees: run,
+                        depth: d,
+                        ..
+                    }) if *d == depth => *run += trees,
+                    _ => e.groups.push(Group::Complete {
+                        trees,
+                        depth,
+                        splits_at,
+                        leaves_at,
+                    }),
+                }
             } else {
                 e.groups.push(Group::Preorder {
                     first: e.roots.len(),
@@ -429,23 +491,16 @@ fn numeric_left(node: &Node, x: f64) -> bool {
     split & left
 }
 
-/// Whether a split of the complete layout sends `x` right. `x > t` is false for NaN, which then goes where the
-/// split says; written with `&` and `|` so the compiler can select without a branch.
-#[inline(always)]
-fn goes_right(s: &Split, x: f64) -> bool {
-    (x > s.threshold) | (x.is_nan() & (s.nan_right != 0))
-}
-
 /// The walks of the complete layout for one depth `D` (`N = 2^D` split slots and leaves per tree): with `D` a
 /// constant the steps unroll, and with `N` a power of two every index is masked into its array.
 struct Walk<const D: usize, const N: usize>;
 
 impl<const D: usize, const N: usize> Walk<D, N> {
-    /// One step from position `at`.
+    /// One step from position `at`, on a sided row.
     #[inline(always)]
-    fn step(splits: &[Split; N], row: &[f64], at: usize) -> usize {
+    fn step<R: Sided + ?Sized>(splits: &[Split; N], sided: &R, at: usize) -> usize {
         let s = &splits[at & (N - 1)];
-        2 * at + 1 + usize::from(goes_right(s, row[s.feature as usize]))
+        2 * at + 1 + usize::from(sided.get(s.column) > s.threshold)
     }
 
     /// The leaf at the position `D` steps reached (`N - 1 ..= 2N - 2`).
@@ -454,28 +509,21 @@ impl<const D: usize, const N: usize> Walk<D, N> {
         leaves[(at + 1) & (N - 1)]
     }
 
-    /// Adds the group's trees' leaves for every row of `block` (rows `row0..` of `rows`, `n` values each):
-    /// [`LANES`] rows through one tree in lockstep.
-    fn add_rows(
-        splits: &[Split],
-        leaves: &[f64],
-        rows: &[f64],
-        n: usize,
-        row0: usize,
-        block: &mut [f64],
-    ) {
+    /// Adds the group's trees' leaves for every row of `block` (`sided`: the block's sided rows, `width` values
+    /// each): [`LANES`] rows through one tree in lockstep.
+    fn add_rows(splits: &[Split], leaves: &[f64], sided: &[f64], width: usize, block: &mut [f64]) {
         let (splits, _) = splits.as_chunks::<N>();
         let (leaves, _) = leaves.as_chunks::<N>();
         for (s, l) in splits.iter().zip(leaves) {
             for (g, lanes) in block.chunks_mut(LANES).enumerate() {
-                let first = row0 + g * LANES;
+                let first = g * LANES;
                 if let Ok(out) = <&mut [f64; LANES]>::try_from(&mut *lanes) {
                     let lane: [&[f64]; LANES] =
-                        std::array::from_fn(|j| &rows[(first + j) * n..][..n]);
+                        std::array::from_fn(|j| &sided[(first + j) * width..][..width]);
                     let mut at = [0usize; LANES];
                     for _ in 0..D {
                         for (a, row) in at.iter_mut().zip(&lane) {
-                            *a = Self::step(s, row, *a);
+                            *a = Self::step(s, *row, *a);
                         }
                     }
                     for (o, &a) in out.iter_mut().zip(&at) {
@@ -483,7 +531,7 @@ impl<const D: usize, const N: usize> Walk<D, N> {
                     }
                 } else {
                     for (j, o) in lanes.iter_mut().enumerate() {
-                        let row = &rows[(first + j) * n..][..n];
+                        let row = &sided[(first + j) * width..][..width];
                         let mut at = 0;
                         for _ in 0..D {
                             at = Self::step(s, row, at);
@@ -495,15 +543,15 @@ impl<const D: usize, const N: usize> Walk<D, N> {
         }
     }
 
-    /// Adds the group's trees' leaves for one row to `m`, in tree order; a full group's trees walk in lockstep.
-    fn add_row(splits: &[Split], leaves: &[f64], row: &[f64], m: &mut f64) {
+    /// Adds the group's trees' leaves for one sided row to `m`, in tree order; a full group's trees walk in
+    /// lockstep.
+    fn add_row<R: Sided + ?Sized>(splits: &[Split], leaves: &[f64], row: &R, m: &mut f64) {
         let (splits, _) = splits.as_chunks::<N>();
         let (leaves, _) = leaves.as_chunks::<N>();
-        if let (Ok(splits), Ok(leaves)) = (
-            <&[[Split; N]; LANES]>::try_from(splits),
-            <&[[f64; N]; LANES]>::try_from(leaves),
-        ) {
-            let mut at = [0usize; LANES];
+        let (full, rest) = splits.as_chunks::<TREE_LANES>();
+        let (full_leaves, rest_leaves) = leaves.as_chunks::<TREE_LANES>();
+        for (splits, leaves) in full.iter().zip(full_leaves) {
+            let mut at = [0usize; TREE_LANES];
             for _ in 0..D {
                 for (a, s) in at.iter_mut().zip(splits) {
                     *a = Self::step(s, row, *a);
@@ -512,8 +560,9 @@ impl<const D: usize, const N: usize> Walk<D, N> {
             for (&a, l) in at.iter().zip(leaves) {
                 *m += Self::leaf(l, a);
             }
-        } else {
-            for (s, l) in splits.iter().zip(leaves) {
+        }
+        {
+            for (s, l) in rest.iter().zip(rest_leaves) {
                 let mut at = 0;
                 for _ in 0..D {
                     at = Self::step(s, row, at);
@@ -590,7 +639,14 @@ impl Ensemble {
     /// Writes tree `root` of the preorder layout (numeric splits only, no deeper than `depth`) in the complete
     /// layout: `splits` and `leaves` have `2^depth` entries (placeholders on entry; the last split slot stays
     /// one).
-    fn fill_complete(&self, root: usize, depth: usize, splits: &mut [Split], leaves: &mut [f64]) {
+    fn fill_complete(
+        &self,
+        root: usize,
+        n_features: usize,
+        depth: usize,
+        splits: &mut [Split],
+        leaves: &mut [f64],
+    ) {
         // (preorder node, breadth-first position, level)
         let mut stack = vec![(root, 0usize, 0usize)];
         while let Some((i, pos, level)) = stack.pop() {
@@ -601,10 +657,14 @@ impl Ensemble {
                 let first = (pos + 1 - (1 << level)) * span;
                 leaves[first..first + span].fill(node.value);
             } else {
+                let side = if node.flags & MISSING_LEFT == 0 {
+                    n_features
+                } else {
+                    0
+                };
                 splits[pos] = Split {
                     threshold: node.value,
-                    feature: node.feature,
-                    nan_right: u32::from(node.flags & MISSING_LEFT == 0),
+                    column: node.feature + side as u32,
                 };
                 stack.push((i + 1, 2 * pos + 1, level + 1));
                 stack.push((node.right as usize, 2 * pos + 2, level + 1));
@@ -622,6 +682,31 @@ impl Ensemble {
 
     /// The margin of one row whose length the caller checked.
     pub(crate) fn margin(&self, row: &[f64]) -> f64 {
+        if self.splits.is_empty() {
+            return self.margin_sided(row, &[][..]);
+        }
+        if 2 * row.len() <= SMALL_SIDED {
+            let mut sided = [0.0; SMALL_SIDED];
+            write_sided(row, &mut sided[..2 * row.len()]);
+            return self.margin_sided(row, &sided);
+        }
+        SIDED.with(|cell| match cell.try_borrow_mut() {
+            Ok(mut sided) => {
+                sided.resize(2 * row.len(), 0.0);
+                write_sided(row, &mut sided);
+                self.margin_sided(row, &sided[..])
+            }
+            // Not reachable (nothing here calls itself), but never a panic: a buffer of its own.
+            Err(_) => {
+                let mut sided = vec![0.0; 2 * row.len()];
+                write_sided(row, &mut sided);
+                self.margin_sided(row, &sided[..])
+            }
+        })
+    }
+
+    /// [`Self::margin`] with the row's sided copy made.
+    fn margin_sided<R: Sided + ?Sized>(&self, row: &[f64], sided: &R) -> f64 {
         // Base margin first, then the trees in file order: the summation order of the reference libraries.
         let mut m = self.base_margin;
         for group in &self.groups {
@@ -633,7 +718,7 @@ impl Ensemble {
                     leaves_at,
                 } => {
                     let (splits, leaves) = self.complete(trees, depth, splits_at, leaves_at);
-                    walk_by_depth!(depth, add_row(splits, leaves, row, &mut m));
+                    walk_by_depth!(depth, add_row(splits, leaves, sided, &mut m));
                 }
                 Group::Preorder { first, trees } => {
                     for &root in &self.roots[first..first + trees] {
@@ -663,9 +748,19 @@ impl Ensemble {
     /// Margins of `out.len()` rows of `n` values each (shape checked by the caller), tree-major over blocks of
     /// rows. Each row's sum is formed in the same order as in [`Self::margin`], so results are bit-identical.
     pub(crate) fn margins(&self, rows: &[f64], n: usize, out: &mut [f64]) {
+        let mut sided = if self.splits.is_empty() {
+            Vec::new()
+        } else {
+            vec![0.0; BLOCK_ROWS * 2 * n]
+        };
         for (b, block) in out.chunks_mut(BLOCK_ROWS).enumerate() {
             let first = b * BLOCK_ROWS;
             block.fill(self.base_margin);
+            if !sided.is_empty() {
+                for (j, s) in sided.chunks_exact_mut(2 * n).take(block.len()).enumerate() {
+                    write_sided(&rows[(first + j) * n..][..n], s);
+                }
+            }
             for group in &self.groups {
                 match *group {
                     Group::Complete {
@@ -675,7 +770,7 @@ impl Ensemble {
                         leaves_at,
                     } => {
                         let (splits, leaves) = self.complete(trees, depth, splits_at, leaves_at);
-                        walk_by_depth!(depth, add_rows(splits, leaves, rows, n, first, block));
+                        walk_by_depth!(depth, add_rows(splits, leaves, &sided, 2 * n, block));
                     }
                     Group::Preorder { first: t0, trees } => {
                         for t in t0..t0 + trees {
@@ -853,25 +948,26 @@ mod tests {
         }
     }
 
-    /// Eight trees of depth 2 over one feature, leaves numbered so each row's margin tells which leaves it hit;
-    /// tree 3 is a single leaf and tree 5 has a shallow left leaf (padded in the complete layout).
-    fn eight_numeric(categorical_in_tree: Option<usize>) -> Ensemble {
+    /// `count` trees of depth 2 over one feature, leaves numbered so each row's margin tells which leaves it hit;
+    /// tree 3 (and every 8th after it) is a single leaf and tree 5 (every 8th after) has a shallow left leaf,
+    /// padded in the complete layout.
+    fn numeric_trees(count: u32, categorical_in_tree: Option<u32>) -> Ensemble {
         let mut b = EnsembleBuilder::new(0.5, false, vec![0, 4], 64);
-        for t in 0..8u32 {
+        for t in 0..count {
             b.start_tree().unwrap();
             let v = f64::from(t) * 16.0;
-            if t == 3 {
+            if t % 8 == 3 {
                 b.push_leaf(v).unwrap();
                 continue;
             }
             let root = b.next_index().unwrap();
-            if Some(t as usize) == categorical_in_tree {
+            if Some(t) == categorical_in_tree {
                 b.push_categorical(1, &[1, 2], Side::Left, Side::Right)
                     .unwrap();
             } else {
                 b.push_numeric(0, true, 0.0, Side::Left);
             }
-            if t == 5 {
+            if t % 8 == 5 {
                 b.push_leaf(v + 1.0).unwrap();
             } else {
                 let left = b.next_index().unwrap();
@@ -896,8 +992,11 @@ mod tests {
     fn layouts_agree() {
         // All numeric: one group in the complete layout. With a categorical root in tree 0 (feature 1 is
         // category 1 in every row, which is in its left set): the preorder layout, and the same answers on rows
-        // that go left at that root anyway (x <= 0 or missing).
-        let complete = eight_numeric(None);
+        // that go left at that root anyway (x <= 0 or missing). 19 numeric trees: one complete run, walked 16
+        // trees at a time for one row, then 3 alone.
+        let complete = numeric_trees(8, None);
+        let preorder = numeric_trees(8, Some(0));
+        let run = numeric_trees(19, None);
         assert!(matches!(
             complete.groups[..],
             [Group::Complete {
@@ -906,10 +1005,17 @@ mod tests {
                 ..
             }]
         ));
-        let preorder = eight_numeric(Some(0));
         assert!(matches!(
             preorder.groups[..],
             [Group::Preorder { trees: 8, .. }]
+        ));
+        assert!(matches!(
+            run.groups[..],
+            [Group::Complete {
+                trees: 19,
+                depth: 2,
+                ..
+            }]
         ));
         let xs = [-2.0, -1.0, -0.5, 0.0, 0.5, 1.0, 2.0, f64::NAN];
         let mut rows = Vec::new();
@@ -919,7 +1025,7 @@ mod tests {
             let goes_left = x <= 0.0 || x.is_nan();
             let leaf = |t: u32| -> f64 {
                 let v = f64::from(t) * 16.0;
-                match t {
+                match t % 8 {
                     3 => v,
                     5 if goes_left => v + 1.0,
                     _ if goes_left => v + if x < -1.0 { 2.0 } else { 3.0 },
@@ -931,14 +1037,15 @@ mod tests {
             if goes_left {
                 assert_eq!(preorder.margin(&[x, 1.0]), want, "row {i} x={x}");
             }
+            let want = (0..19).fold(0.5, |m, t| m + leaf(t));
+            assert_eq!(run.margin(&[x, 1.0]), want, "row {i} x={x}");
         }
-        let mut a = vec![0.0; 21];
-        let mut b = vec![0.0; 21];
-        complete.margins(&rows, 2, &mut a);
-        preorder.margins(&rows, 2, &mut b);
-        for (r, row) in rows.chunks(2).enumerate() {
-            assert_eq!(a[r], complete.margin(row), "batch row {r}");
-            assert_eq!(b[r], preorder.margin(row), "batch row {r}");
+        for e in [&complete, &preorder, &run] {
+            let mut batch = vec![0.0; 21];
+            e.margins(&rows, 2, &mut batch);
+            for (r, row) in rows.chunks(2).enumerate() {
+                assert_eq!(batch[r], e.margin(row), "batch row {r}");
+            }
         }
         // A padded tree costs its complete size; the counts stay those of the file.
         assert_eq!(complete.nodes(), preorder.nodes());
