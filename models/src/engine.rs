@@ -14,7 +14,7 @@ use crate::model::{BodyKind, Model, ModelSummary};
 #[derive(Debug, Clone, PartialEq)]
 pub(crate) enum Body {
     /// A tree ensemble.
-    Ensemble(tree::Ensemble),
+    Ensemble(Box<tree::Ensemble>),
     /// A linear model.
     Linear(linear::Linear),
 }

@@ -165,7 +165,7 @@ fn build(raw: RawModel) -> Result<Model, ModelError> {
         ));
     }
     let body = match (raw.ensemble, raw.linear) {
-        (Some(e), None) => Body::Ensemble(trees::ensemble(e, &schema)?),
+        (Some(e), None) => Body::Ensemble(Box::new(trees::ensemble(e, &schema)?)),
         (None, Some(l)) => Body::Linear(linear::linear(l, &schema)?),
         (None, None) => {
             return Err(ModelError::rule(
