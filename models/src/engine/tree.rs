@@ -384,8 +384,9 @@ impl EnsembleBuilder {
             let numeric = built.nodes[range.clone()]
                 .iter()
                 .all(|node| node.flags & CATEGORICAL == 0 && node.value.is_finite());
-            let padded = trees * (2usize << depth);
-            if numeric && depth <= MAX_COMPLETE_DEPTH && padded <= MAX_PADDING * range.len() {
+            // Padded size, only worked out for depths where it cannot overflow.
+            let small = |depth: usize| trees * (2usize << depth) <= MAX_PADDING * range.len();
+            if numeric && depth <= MAX_COMPLETE_DEPTH && small(depth) {
                 let splits_at = e.splits.len();
                 let leaves_at = e.leaf_values.len();
                 let size = 1 << depth;
