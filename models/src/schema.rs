@@ -55,13 +55,17 @@ impl Feature {
     }
 }
 
+/// A map keyed by names from the model file, looked up with names from requests on every scored row: a fast
+/// non-cryptographic hash (foldhash) with a per-map random seed. Requests never insert into it.
+type NameMap = HashMap<String, usize, foldhash::fast::RandomState>;
+
 /// The ordered features of a model, with hash lookups by name and by category text.
 #[derive(Debug, Clone, PartialEq, Default)]
 pub struct Schema {
     pub(crate) features: Vec<Feature>,
-    by_name: HashMap<String, usize>,
+    by_name: NameMap,
     /// For each feature, `Some(category -> index)` when categorical.
-    category_maps: Vec<Option<HashMap<String, usize>>>,
+    category_maps: Vec<Option<NameMap>>,
 }
 
 impl Schema {
@@ -77,7 +81,7 @@ impl Schema {
                 limit: MAX_FEATURES,
             });
         }
-        let mut by_name = HashMap::with_capacity(features.len());
+        let mut by_name = NameMap::with_capacity_and_hasher(features.len(), Default::default());
         let mut category_maps = Vec::with_capacity(features.len());
         for (i, feature) in features.iter().enumerate() {
             if feature.name.is_empty() {
@@ -180,7 +184,7 @@ impl Schema {
 }
 
 /// Checks one feature's category list and builds its lookup.
-fn category_map(i: usize, categories: &[String]) -> Result<HashMap<String, usize>, ModelError> {
+fn category_map(i: usize, categories: &[String]) -> Result<NameMap, ModelError> {
     let path = || format!("features[{i}].categories");
     if categories.is_empty() {
         return Err(ModelError::rule(
@@ -196,7 +200,7 @@ fn category_map(i: usize, categories: &[String]) -> Result<HashMap<String, usize
             limit: MAX_CATEGORIES,
         });
     }
-    let mut map = HashMap::with_capacity(categories.len());
+    let mut map = NameMap::with_capacity_and_hasher(categories.len(), Default::default());
     for (j, c) in categories.iter().enumerate() {
         if c.is_empty() {
             return Err(ModelError::rule(

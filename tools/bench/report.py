@@ -67,7 +67,9 @@ def service(args) -> None:
     )
     print("|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|")
     for r in runs:
-        bare = by.get(("bare", r["concurrency"], r.get("rate")))
+        # Each model's server against the bare server fed the same messages.
+        base = "bare linear rows" if "linear" in r["label"] else "bare"
+        bare = by.get((base, r["concurrency"], r.get("rate")))
         ratio = r["calls_per_s"] / bare["calls_per_s"] if bare and bare["calls_per_s"] else None
         cpu = r.get("server_cpu_us_per_call")
         extra = cpu - bare["server_cpu_us_per_call"] if bare and cpu and bare.get("server_cpu_us_per_call") else None

@@ -53,7 +53,7 @@ start_serve() { # $1 model name, $2 offset -> prints pid
 load() { # $1 label, $2 port, $3 model, $4 rows, $5 pid, rest: extra args
   local label=$1 port=$2 model=$3 rows=$4 pid=$5; shift 5
   taskset -c 1 $BIN/probity-load run --target 127.0.0.1:$port --model "$M/$model.json" --rows "$M/$rows" \
-    --server-pid "$pid" --duration "$DUR" --warmup "$WARM" --label "$label" "$@" | tee -a "$OUT/service.jsonl"
+    --server-pid "$pid" --duration "${LOAD_SECONDS:-$DUR}" --warmup "$WARM" --label "$label" "$@" | tee -a "$OUT/service.jsonl"
 }
 
 : > "$OUT/service.jsonl"
@@ -61,13 +61,17 @@ TREES=$(start_serve lightgbm_500_d6 0)
 LINEAR=$(start_serve linear_200 1)
 taskset -c 0 $BIN/probity-load bare --listen 127.0.0.1:50179 2>/dev/null & BARE=$!; PIDS+=($BARE); wait_port 50179
 
+# The bare server gets the same messages as each model's server: 50 named features for the trees, 200 for the
+# linear model (decoding a request's named features is most of the bare server's work).
 for c in 1 4 16 64; do
   load bare 50179 lightgbm_500_d6 trees_rows.f64 $BARE --concurrency $c
   load "probity 500 trees" 50170 lightgbm_500_d6 trees_rows.f64 $TREES --concurrency $c
+  load "bare linear rows" 50179 linear_200 linear_rows.f64 $BARE --concurrency $c
   load "probity linear 200" 50171 linear_200 linear_rows.f64 $LINEAR --concurrency $c
 done
 # Half the saturating load, open loop: p99 latency.
 for spec in "bare 50179 lightgbm_500_d6 trees_rows.f64 $BARE" \
+            "bare-linear-rows 50179 linear_200 linear_rows.f64 $BARE" \
             "probity-500-trees 50170 lightgbm_500_d6 trees_rows.f64 $TREES" \
             "probity-linear-200 50171 linear_200 linear_rows.f64 $LINEAR"; do
   set -- $spec
@@ -78,20 +82,21 @@ for spec in "bare 50179 lightgbm_500_d6 trees_rows.f64 $BARE" \
 done
 "$PY" tools/bench/report.py service | tee "$OUT/service.md"
 
-# Memory: resident size with the 1,000-tree model loaded, against its node arrays (24 bytes a node), and the base
+# Memory: resident size with the 1,000-tree model loaded, against its compiled arrays (`probity check`'s
+# engine_bytes: splits, leaves, preorder nodes, category sets), and the base
 # with the small linear model; then a soak at a fixed rate with resident size sampled every 5 s.
 BIG=$(start_serve lightgbm_1000_d8 2)
 sleep 1
-NODES=$($BIN/probity check --json "$M/lightgbm_1000_d8.json" | "$PY" -c "import sys,json;d=json.load(sys.stdin);print(d['body']['nodes'])")
+ENGINE=$($BIN/probity check --json "$M/lightgbm_1000_d8.json" | "$PY" -c "import sys,json;d=json.load(sys.stdin);print(d['body']['engine_bytes'])")
 rss() { awk '/VmRSS/{print $2}' "/proc/$1/status"; }
 {
   echo "| process | resident KiB |"; echo "|---|---:|"
   echo "| probity serve, linear_200 (base) | $(rss "$LINEAR") |"
   echo "| probity serve, lightgbm_1000_d8 after start | $(rss "$BIG") |"
-  echo "| node arrays of lightgbm_1000_d8 ($NODES nodes x 24 B) | $((NODES * 24 / 1024)) |"
+  echo "| compiled arrays of lightgbm_1000_d8 (engine_bytes) | $((ENGINE / 1024)) |"
 } > "$OUT/memory.md"
-load "soak 1000 trees" 50172 lightgbm_1000_d8 trees_rows.f64 "$BIG" --concurrency 16 --rate 2000 \
-  --duration "$SOAK" --sample-every 5 > "$OUT/soak.json"
+LOAD_SECONDS=$SOAK load "soak 1000 trees" 50172 lightgbm_1000_d8 trees_rows.f64 "$BIG" --concurrency 16 --rate 2000 \
+  --sample-every 5 > "$OUT/soak.json"
 "$PY" - "$OUT/soak.json" >> "$OUT/memory.md" <<'PYEOF'
 import json, sys
 r = json.loads(open(sys.argv[1]).read())

@@ -208,19 +208,20 @@ fn named_row(
             ),
         ));
     }
-    let mut values = Vec::with_capacity(schema.len());
+    // Each given name looked up once in the model's name index (a fast hash); then the features in schema
+    // order, so that the first error reported does not depend on map iteration order.
+    let mut slots: Vec<Option<&Option<pb::feature_value::Kind>>> = vec![None; schema.len()];
     let mut matched = 0usize;
-    // Schema order, so that the first error reported does not depend on map iteration order.
-    for (index, feature) in schema.features().iter().enumerate() {
-        let name = feature.name.as_str();
-        let path = || format!("{field}.named.values[{name:?}]");
-        let value = given.get(name).map(|v| {
-            let pb::FeatureValue { kind } = v;
-            kind
-        });
-        if value.is_some() {
+    for (name, v) in &given {
+        if let Some(slot) = schema.index_of(name).and_then(|i| slots.get_mut(i)) {
+            *slot = Some(&v.kind);
             matched += 1;
         }
+    }
+    let mut values = Vec::with_capacity(schema.len());
+    for ((index, feature), value) in schema.features().iter().enumerate().zip(slots) {
+        let name = feature.name.as_str();
+        let path = || format!("{field}.named.values[{name:?}]");
         let encoded = match (&feature.kind, value) {
             (_, None) | (_, Some(None)) => {
                 missing(route, path, name, WarningKind::MissingFeature, warnings)?
