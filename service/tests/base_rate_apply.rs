@@ -82,7 +82,7 @@ async fn an_opted_in_route_follows_the_estimate_and_another_route_does_not() {
     std::fs::write(
         &path,
         format!(
-            "[server]\ngrpc_listen = \"127.0.0.1:0\"\nmetrics_listen = \"127.0.0.1:0\"\n\
+            "[server]\nplaintext = \"loopback\"\ngrpc_listen = \"127.0.0.1:0\"\nmetrics_listen = \"127.0.0.1:0\"\n\
              [models]\ndirectory = {:?}\nwatch = false\n\
              [log]\ndirectory = {:?}\nflush_interval = \"5ms\"\nprior_window = 10000\n\
              [routes.on]\nmodel = \"m\"\n\

@@ -109,7 +109,7 @@ async fn mirrored_and_split_challengers_through_the_service() {
     std::fs::write(
         &path,
         format!(
-            "[server]\ngrpc_listen = \"127.0.0.1:0\"\nmetrics_listen = \"127.0.0.1:0\"\nadmin_token_file = {:?}\n\
+            "[server]\nplaintext = \"loopback\"\ngrpc_listen = \"127.0.0.1:0\"\nmetrics_listen = \"127.0.0.1:0\"\nadmin_token_file = {:?}\n\
              [models]\ndirectory = {:?}\nwatch = false\n\
              [log]\ndirectory = {:?}\nflush_interval = \"5ms\"\nsweep_interval = \"50ms\"\noutcome_hold = \"1h\"\n\
              [routes.bc]\nmodel = \"champ\"\ndecision = {{ threshold = 0.5 }}\n\

@@ -26,7 +26,7 @@ async fn mirroring_one_challenger_latency() {
     std::fs::write(
         &path,
         format!(
-            "[server]\ngrpc_listen = \"127.0.0.1:0\"\nmetrics_listen = \"127.0.0.1:0\"\n\
+            "[server]\nplaintext = \"loopback\"\ngrpc_listen = \"127.0.0.1:0\"\nmetrics_listen = \"127.0.0.1:0\"\n\
              [models]\ndirectory = {DEMO:?}\nwatch = false\n\
              [log]\ndirectory = {:?}\n\
              [routes.plain]\nmodel = \"harbourline-fraud-trees\"\nunknown_features = \"ignore\"\n\

@@ -137,7 +137,7 @@ async fn outcomes_through_the_service_give_the_reference_report_and_matching_sum
     std::fs::write(
         &path,
         format!(
-            "[server]\ngrpc_listen = \"127.0.0.1:0\"\nmetrics_listen = \"127.0.0.1:0\"\n\
+            "[server]\nplaintext = \"loopback\"\ngrpc_listen = \"127.0.0.1:0\"\nmetrics_listen = \"127.0.0.1:0\"\n\
              [models]\ndirectory = {:?}\nwatch = false\n\
              [limits]\nmax_batch_rows = 1000\n\
              [log]\ndirectory = {:?}\nflush_interval = \"5ms\"\nsweep_interval = \"20ms\"\noutcome_hold = \"1h\"\n\

@@ -131,7 +131,8 @@ async fn sigkill_loses_nothing_acknowledged_and_matching_stays_exactly_once() {
     std::fs::write(
         &config,
         format!(
-            "[models]\ndirectory = {:?}\nwatch = false\n[log]\ndirectory = {:?}\nflush_interval = \"10ms\"\n\
+            "[server]\nplaintext = \"loopback\"\n\
+             [models]\ndirectory = {:?}\nwatch = false\n[log]\ndirectory = {:?}\nflush_interval = \"10ms\"\n\
              [routes.r]\nmodel = \"linear\"\n",
             models.path().display().to_string(),
             data.path().join("log").display().to_string()

@@ -63,7 +63,7 @@ class Server:
             shutil.copy(DATA / name, self.models / name)
         config = workdir / "probity.toml"
         config.write_text(
-            '[server]\ngrpc_listen = "127.0.0.1:0"\nmetrics_listen = "127.0.0.1:0"\n'
+            '[server]\nplaintext = "loopback"\ngrpc_listen = "127.0.0.1:0"\nmetrics_listen = "127.0.0.1:0"\n'
             f"[models]\ndirectory = {json.dumps(str(self.models))}\nwatch = false\n{ROUTES}"
         )
         self.proc = subprocess.Popen(

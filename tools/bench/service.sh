@@ -26,6 +26,7 @@ trap cleanup EXIT
 config() {
   cat > "$WORK/probity-$2.toml" <<TOML
 [server]
+plaintext = "loopback"
 grpc_listen = "127.0.0.1:$((50170 + $2))"
 metrics_listen = "127.0.0.1:$((9570 + $2))"
 reflection = false

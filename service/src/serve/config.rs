@@ -82,6 +82,7 @@ struct RawServer {
     reflection: bool,
     shutdown_grace_ms: u64,
     admin_token_file: String,
+    plaintext: Option<String>,
 }
 
 impl Default for RawServer {
@@ -92,6 +93,7 @@ impl Default for RawServer {
             reflection: true,
             shutdown_grace_ms: 10_000,
             admin_token_file: String::new(),
+            plaintext: None,
         }
     }
 }
@@ -180,6 +182,8 @@ pub struct Config {
     pub grpc_listen: SocketAddr,
     /// Address of the HTTP listener for `/metrics`, `/livez` and `/readyz`.
     pub metrics_listen: SocketAddr,
+    /// How the gRPC port is secured.
+    pub transport: Transport,
     /// Whether gRPC server reflection is on.
     pub reflection: bool,
     /// How long a shutdown waits for in-flight calls before closing them.
@@ -204,6 +208,14 @@ pub struct Config {
     /// Routes that apply the live base-rate estimate (`routes.<name>.base_rate_from_estimate`), with its bounds;
     /// empty by default.
     pub base_rate_from_estimate: BTreeMap<String, crate::serve::base_rate::EstimateBounds>,
+}
+
+/// How the gRPC port is secured.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum Transport {
+    /// Plain text, allowed only when asked for with `server.plaintext = "loopback"` and only on a loopback
+    /// `server.grpc_listen` (127.0.0.0/8, ::1).
+    PlaintextLoopback,
 }
 
 /// Request limits.
@@ -371,6 +383,7 @@ impl Config {
             reflection,
             shutdown_grace_ms,
             admin_token_file,
+            plaintext,
         } = server;
         let RawModels {
             directory,
@@ -408,9 +421,13 @@ impl Config {
                     .map_err(|(key, message)| invalid(key, message))
             })
             .collect::<Result<BTreeMap<_, _>, ConfigError>>()?;
+        let grpc_listen = socket_addr("server.grpc_listen", &grpc_listen)?;
+        let metrics_listen = socket_addr("server.metrics_listen", &metrics_listen)?;
+        let transport = transport(plaintext.as_deref(), grpc_listen)?;
         Ok(Config {
-            grpc_listen: socket_addr("server.grpc_listen", &grpc_listen)?,
-            metrics_listen: socket_addr("server.metrics_listen", &metrics_listen)?,
+            grpc_listen,
+            metrics_listen,
+            transport,
             reflection,
             shutdown_grace: Duration::from_millis(shutdown_grace_ms),
             admin_token: admin_token(&admin_token_file)?,
@@ -428,6 +445,29 @@ impl Config {
             routes,
             base_rate_from_estimate,
         })
+    }
+}
+
+/// The transport of the gRPC port. Plain text is never a default: it must be asked for, and only for loopback.
+fn transport(plaintext: Option<&str>, grpc_listen: SocketAddr) -> Result<Transport, ConfigError> {
+    let key = "server.plaintext";
+    match plaintext {
+        None => Err(invalid(
+            key,
+            "is not set and no transport security is configured; set server.plaintext = \"loopback\" to serve \
+             gRPC in plain text on a loopback server.grpc_listen",
+        )),
+        Some("loopback") if grpc_listen.ip().is_loopback() => Ok(Transport::PlaintextLoopback),
+        Some("loopback") => Err(invalid(
+            key,
+            format!(
+                "\"loopback\" needs a loopback server.grpc_listen (127.0.0.1, ::1 or localhost), got {grpc_listen}"
+            ),
+        )),
+        Some(other) => Err(invalid(
+            key,
+            format!("must be \"loopback\" (plain text on a loopback address) or absent, got `{other}`"),
+        )),
     }
 }
 

@@ -269,7 +269,7 @@ mod tests {
         let path = dir.path().join("p.toml");
         std::fs::write(
             &path,
-            "[routes.fraud]\nmodel = \"a\"\n[[routes.fraud.challengers]]\nmodel = \"b\"\nmode = \"split\"\n\
+            "[server]\nplaintext = \"loopback\"\n[routes.fraud]\nmodel = \"a\"\n[[routes.fraud.challengers]]\nmodel = \"b\"\nmode = \"split\"\n\
              fraction = 0.2\nmirror_back = true\n[[routes.fraud.challengers]]\nmodel = \"c\"\nmode = \"mirror\"\n",
         )
         .unwrap();

@@ -17,7 +17,7 @@ use tokio::task::JoinHandle;
 use tonic_health::server::HealthReporter;
 use tonic_health::ServingStatus;
 
-use crate::serve::config::Config;
+use crate::serve::config::{Config, Transport};
 use crate::serve::error::ServeError;
 use crate::serve::grpc::{ModelsApi, ScoringApi};
 use crate::serve::metrics;
@@ -208,6 +208,7 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
     let Config {
         grpc_listen,
         metrics_listen,
+        transport,
         reflection,
         shutdown_grace,
         admin_token,
@@ -366,7 +367,11 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
     } else {
         None
     };
-    tracing::info!(%grpc_addr, %metrics_addr, "probity serving");
+    match transport {
+        Transport::PlaintextLoopback => {
+            tracing::info!(%grpc_addr, %metrics_addr, transport = "plaintext-loopback", "probity serving");
+        }
+    }
     Ok(RunningServer {
         grpc_addr,
         metrics_addr,

@@ -54,7 +54,7 @@ impl TestServer {
         let config_dir = tempfile::tempdir().unwrap();
         let path = config_dir.path().join("probity.toml");
         let text = format!(
-            "[server]\ngrpc_listen = \"127.0.0.1:0\"\nmetrics_listen = \"127.0.0.1:0\"\nshutdown_grace_ms = 2000\n\
+            "[server]\nplaintext = \"loopback\"\ngrpc_listen = \"127.0.0.1:0\"\nmetrics_listen = \"127.0.0.1:0\"\nshutdown_grace_ms = 2000\n\
              [models]\ndirectory = {:?}\nwatch = {watch}\nwatch_debounce_ms = 50\n\
              [limits]\nmax_batch_rows = 100\n{ROUTES}",
             models.path().display().to_string()

@@ -289,7 +289,8 @@ fn write_config(
     }
     let text = format!(
         "# Written by `probity demo`; `probity serve --config {CONFIG_FILE}` serves the same routes.\n\
-         [server]\ngrpc_listen = {}\nmetrics_listen = {}\nreflection = true\nshutdown_grace_ms = 5000\n\n\
+         [server]\n# Plain text on loopback: the demo's client and server share this machine.\n\
+         plaintext = \"loopback\"\ngrpc_listen = {}\nmetrics_listen = {}\nreflection = true\nshutdown_grace_ms = 5000\n\n\
          [models]\ndirectory = {}\n\n[logging]\nlevel = \"warn\"\n\n\
          [limits]\n# The outcome stream stays open while every outcome is sent.\ndefault_deadline_ms = 120000\n\n\
          [log]\ndirectory = {}\nflush_interval = \"50ms\"\n\n{}",

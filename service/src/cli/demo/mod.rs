@@ -65,7 +65,8 @@ pub struct DemoArgs {
     /// Score in process, without the server.
     #[arg(long)]
     pub offline: bool,
-    /// gRPC listen address of the demo server (port 0 picks a free port).
+    /// gRPC listen address of the demo server: a loopback address, as the demo serves plain text (port 0 picks
+    /// a free port).
     #[arg(
         long,
         value_name = "HOST:PORT",

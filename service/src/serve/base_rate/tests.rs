@@ -14,7 +14,8 @@ use crate::store::running::Windows;
 fn load(text: &str) -> Result<Config, ConfigError> {
     let dir = tempfile::tempdir().unwrap();
     let path: PathBuf = dir.path().join("probity.toml");
-    let text = text.replace("LOGDIR", &dir.path().join("log").display().to_string());
+    let text = format!("[server]\nplaintext = \"loopback\"\n{text}")
+        .replace("LOGDIR", &dir.path().join("log").display().to_string());
     std::fs::write(&path, text).unwrap();
     Config::load(&Sources {
         file: Some(path),

@@ -13,10 +13,12 @@ fn load(
     overrides: &[(&str, &str)],
 ) -> Result<Config, ConfigError> {
     let (_dir, path) = write(text);
+    // Every case here serves plain text on loopback; `transport_*` tests below leave the key out.
     Config::load(&Sources {
         file: Some(path),
-        env: env
+        env: [("PROBITY_SERVER_PLAINTEXT", "loopback")]
             .iter()
+            .chain(env)
             .map(|(k, v)| (k.to_string(), v.to_string()))
             .collect(),
         overrides: overrides
@@ -114,6 +116,51 @@ fn errors_name_the_key() {
             "config {text:?}\n  expected: {expected}\n  actual:   {err}"
         );
     }
+}
+
+/// Loads `text` as the only layer (no plaintext key added).
+fn load_bare(text: &str) -> Result<Config, ConfigError> {
+    let (_dir, path) = write(text);
+    Config::load(&Sources {
+        file: Some(path),
+        ..Sources::default()
+    })
+}
+
+#[test]
+fn transport_plaintext_only_when_asked_and_only_on_loopback() {
+    let err = load_bare(MINIMAL).unwrap_err().to_string();
+    assert!(
+        err.starts_with("server.plaintext: is not set and no transport security is configured")
+            && err.contains("server.plaintext = \"loopback\""),
+        "{err}"
+    );
+    for listen in ["127.0.0.1:0", "[::1]:50051", "127.0.0.2:7000"] {
+        let c = load_bare(&format!(
+            "[server]\nplaintext = \"loopback\"\ngrpc_listen = \"{listen}\"\n{MINIMAL}"
+        ))
+        .unwrap();
+        assert_eq!(c.transport, Transport::PlaintextLoopback, "{listen}");
+    }
+    for listen in ["0.0.0.0:50051", "[::]:50051", "192.0.2.10:50051"] {
+        let err = load_bare(&format!(
+            "[server]\nplaintext = \"loopback\"\ngrpc_listen = \"{listen}\"\n{MINIMAL}"
+        ))
+        .unwrap_err()
+        .to_string();
+        assert!(
+            err.starts_with("server.plaintext: \"loopback\" needs a loopback server.grpc_listen")
+                && err.contains(listen.trim_start_matches('[').split(']').next().unwrap()),
+            "{listen}: {err}"
+        );
+    }
+    let err = load_bare(&format!("[server]\nplaintext = \"yes\"\n{MINIMAL}"))
+        .unwrap_err()
+        .to_string();
+    assert!(
+        err.starts_with("server.plaintext: must be \"loopback\"") && err.contains("`yes`"),
+        "{err}"
+    );
 }
 
 #[test]
