@@ -8,6 +8,11 @@ use clap::{Parser, Subcommand};
 
 mod cli;
 
+/// mimalloc rather than the C library's allocator: a request allocates many small strings (named features),
+/// and memory freed after loading a large model file goes back to the system instead of staying resident.
+#[global_allocator]
+static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
+
 /// Serve binary classifiers as calibrated probabilities, and watch them.
 #[derive(Debug, Parser)]
 #[command(name = "probity", version, about)]
