@@ -6,7 +6,7 @@
 //! process-wide (the `metrics` facade has one global recorder), so several servers in one process, as in the
 //! tests, share it.
 
-use std::collections::BTreeMap;
+use std::collections::{BTreeMap, HashMap};
 use std::sync::{Arc, OnceLock};
 
 use axum::http::{header, StatusCode};
@@ -120,8 +120,68 @@ pub fn request(method: &'static str, route: &str, code: tonic::Code, seconds: f6
         .record(seconds);
 }
 
+/// The metric handles of one (route, model, version), registered once.
+struct PredictionSeries {
+    route: String,
+    model: String,
+    version: String,
+    count: metrics::Counter,
+    probability: metrics::Histogram,
+    log_odds: metrics::Histogram,
+}
+
+/// Handles by a hash of (route, model, version), so that recording a row needs no label strings and no registry
+/// lookup. Bounded by the configured routes times the model versions loaded since start.
+static PREDICTION_SERIES: std::sync::LazyLock<
+    std::sync::RwLock<HashMap<u64, Arc<PredictionSeries>>>,
+> = std::sync::LazyLock::new(Default::default);
+
+fn series_key(route: &str, model: &str, version: &str) -> u64 {
+    use std::hash::BuildHasher;
+    foldhash::fast::FixedState::with_seed(0).hash_one((route, model, version))
+}
+
+fn prediction_series(route: &str, model: &str, version: &str) -> Option<Arc<PredictionSeries>> {
+    let key = series_key(route, model, version);
+    let same = |s: &PredictionSeries| s.route == route && s.model == model && s.version == version;
+    {
+        let cache = PREDICTION_SERIES
+            .read()
+            .unwrap_or_else(std::sync::PoisonError::into_inner);
+        if let Some(s) = cache.get(&key) {
+            // A hash collision between two series (never seen) falls back to the uncached path.
+            return same(s).then(|| Arc::clone(s));
+        }
+    }
+    let labels = [
+        ("route", route.to_string()),
+        ("model", model.to_string()),
+        ("version", version.to_string()),
+    ];
+    let series = Arc::new(PredictionSeries {
+        route: route.to_string(),
+        model: model.to_string(),
+        version: version.to_string(),
+        count: metrics::counter!(PREDICTIONS, &labels),
+        probability: metrics::histogram!(PROBABILITY, &labels),
+        log_odds: metrics::histogram!(LOG_ODDS, &labels),
+    });
+    PREDICTION_SERIES
+        .write()
+        .unwrap_or_else(std::sync::PoisonError::into_inner)
+        .entry(key)
+        .or_insert_with(|| Arc::clone(&series));
+    Some(series)
+}
+
 /// Records one scored row.
 pub fn prediction(route: &str, model: &str, version: &str, probability: f64, log_odds: f64) {
+    if let Some(s) = prediction_series(route, model, version) {
+        s.count.increment(1);
+        s.probability.record(probability);
+        s.log_odds.record(log_odds);
+        return;
+    }
     let labels = [
         ("route", route.to_string()),
         ("model", model.to_string()),
