@@ -17,7 +17,7 @@ M=target/bench-models
 cargo build --release -p probity --bin probity --bin probity-load
 BIN=target/release
 DUR=${DUR:-8}; SOAK=${SOAK:-60}; WARM=1
-if [ -n "${QUICK:-}" ]; then DUR=1; SOAK=3; WARM=0.3; fi
+if [ -n "${QUICK:-}" ]; then DUR=1; SOAK=3; WARM=0.3; SETTLE=${SETTLE:-1}; fi
 WORK=$(mktemp -d); PIDS=()
 cleanup() { for p in "${PIDS[@]}"; do kill "$p" 2>/dev/null || true; done; wait 2>/dev/null || true; rm -rf "$WORK"; }
 trap cleanup EXIT
@@ -46,10 +46,13 @@ TOML
   echo "$WORK/probity-$2.toml"
 }
 wait_port() { for _ in $(seq 1 300); do (exec 3<>"/dev/tcp/127.0.0.1/$1") 2>/dev/null && return 0; sleep 0.1; done; echo "port $1 never opened" >&2; exit 1; }
-start_serve() { # $1 model name, $2 offset -> prints pid
+# Not in a $(...) subshell, so that PIDS reaches the cleanup: the server's pid is left in STARTED.
+start_serve() { # $1 model name, $2 offset
   mkdir -p "$WORK/models-$2"; cp "$M/$1.json" "$WORK/models-$2/"
   taskset -c 0 $BIN/probity serve --config "$(config "$WORK/models-$2" "$2" "$1")" >"$WORK/serve-$2.log" 2>&1 &
-  PIDS+=($!); wait_port $((50170 + $2)); echo $!
+  STARTED=$!; PIDS+=($STARTED)
+  wait_port $((50170 + $2))
+  kill -0 "$STARTED" 2>/dev/null || { echo "probity serve ($1) exited:" >&2; cat "$WORK/serve-$2.log" >&2; exit 1; }
 }
 load() { # $1 label, $2 port, $3 model, $4 rows, $5 pid, rest: extra args
   local label=$1 port=$2 model=$3 rows=$4 pid=$5; shift 5
@@ -58,8 +61,8 @@ load() { # $1 label, $2 port, $3 model, $4 rows, $5 pid, rest: extra args
 }
 
 : > "$OUT/service.jsonl"
-TREES=$(start_serve lightgbm_500_d6 0)
-LINEAR=$(start_serve linear_200 1)
+start_serve lightgbm_500_d6 0; TREES=$STARTED
+start_serve linear_200 1; LINEAR=$STARTED
 taskset -c 0 $BIN/probity-load bare --listen 127.0.0.1:50179 2>/dev/null & BARE=$!; PIDS+=($BARE); wait_port 50179
 
 # The bare server gets the same messages as each model's server: 50 named features for the trees, 200 for the
@@ -84,16 +87,18 @@ done
 "$PY" tools/bench/report.py service | tee "$OUT/service.md"
 
 # Memory: resident size with the 1,000-tree model loaded, against its compiled arrays (`probity check`'s
-# engine_bytes: splits, leaves, preorder nodes, category sets), and the base
-# with the small linear model; then a soak at a fixed rate with resident size sampled every 5 s.
-BIG=$(start_serve lightgbm_1000_d8 2)
-sleep 1
+# engine_bytes: splits, leaves, preorder nodes, category sets), and the base: a fresh server with the small linear
+# model started at the same time. Both are read after SETTLE seconds (default 20), once the allocator has handed
+# back what loading the 33 MB file used. Then a soak at a fixed rate with resident size sampled every 5 s.
+start_serve lightgbm_1000_d8 2; BIG=$STARTED
+start_serve linear_200 3; BASE=$STARTED
+sleep "${SETTLE:-20}"
 ENGINE=$($BIN/probity check --json "$M/lightgbm_1000_d8.json" | "$PY" -c "import sys,json;d=json.load(sys.stdin);print(d['body']['engine_bytes'])")
 rss() { awk '/VmRSS/{print $2}' "/proc/$1/status"; }
 {
   echo "| process | resident KiB |"; echo "|---|---:|"
-  echo "| probity serve, linear_200 (base) | $(rss "$LINEAR") |"
-  echo "| probity serve, lightgbm_1000_d8 after start | $(rss "$BIG") |"
+  echo "| probity serve, linear_200 (base), ${SETTLE:-20} s after start | $(rss "$BASE") |"
+  echo "| probity serve, lightgbm_1000_d8, ${SETTLE:-20} s after start | $(rss "$BIG") |"
   echo "| compiled arrays of lightgbm_1000_d8 (engine_bytes) | $((ENGINE / 1024)) |"
 } > "$OUT/memory.md"
 LOAD_SECONDS=$SOAK load "soak 1000 trees" 50172 lightgbm_1000_d8 trees_rows.f64 "$BIG" --concurrency 16 --rate 2000 \
