@@ -134,16 +134,20 @@ std::thread_local! {
 /// trees in the preorder layout.
 #[derive(Debug, Clone, Copy, PartialEq)]
 enum Group {
-    /// `trees` trees padded to `depth` (at most [`MAX_COMPLETE_DEPTH`]): tree `k`'s `2^depth` split slots at
-    /// `splits[splits_at + k * 2^depth..]`, its `2^depth` leaves at `leaf_values[leaves_at + k * 2^depth..]`.
-    Complete {
-        trees: usize,
-        depth: usize,
-        splits_at: usize,
-        leaves_at: usize,
-    },
+    /// A run in the complete layout.
+    Complete(Run),
     /// Trees `first..first + trees` of `roots` in the preorder layout.
     Preorder { first: usize, trees: usize },
+}
+
+/// `trees` trees padded to `depth` (at most [`MAX_COMPLETE_DEPTH`]): tree `k`'s `2^depth` split slots at
+/// `splits[splits_at + k * 2^depth..]`, its `2^depth` leaves at `leaf_values[leaves_at + k * 2^depth..]`.
+#[derive(Debug, Clone, Copy, PartialEq)]
+struct Run {
+    trees: usize,
+    depth: usize,
+    splits_at: usize,
+    leaves_at: usize,
 }
 
 /// How a split sends a missing value or an unknown category.
@@ -403,17 +407,13 @@ impl EnsembleBuilder {
                 }
                 // Consecutive complete groups of one depth are contiguous in both arrays: one run.
                 match e.groups.last_mut() {
-                    Some(Group::Complete {
-                        trees: run,
-                        depth: d,
-                        ..
-                    }) if *d == depth => *run += trees,
-                    _ => e.groups.push(Group::Complete {
+                    Some(Group::Complete(run)) if run.depth == depth => run.trees += trees,
+                    _ => e.groups.push(Group::Complete(Run {
                         trees,
                         depth,
                         splits_at,
                         leaves_at,
-                    }),
+                    })),
                 }
             } else {
                 e.groups.push(Group::Preorder {
@@ -712,14 +712,9 @@ impl Ensemble {
         let mut m = self.base_margin;
         for group in &self.groups {
             match *group {
-                Group::Complete {
-                    trees,
-                    depth,
-                    splits_at,
-                    leaves_at,
-                } => {
-                    let (splits, leaves) = self.complete(trees, depth, splits_at, leaves_at);
-                    walk_by_depth!(depth, add_row(splits, leaves, sided, &mut m));
+                Group::Complete(run) => {
+                    let (splits, leaves) = self.complete(&run);
+                    walk_by_depth!(run.depth, add_row(splits, leaves, sided, &mut m));
                 }
                 Group::Preorder { first, trees } => {
                     for &root in &self.roots[first..first + trees] {
@@ -731,18 +726,13 @@ impl Ensemble {
         m
     }
 
-    /// The split slots and leaves of a complete group.
+    /// The split slots and leaves of a complete run.
     #[inline]
-    fn complete(
-        &self,
-        trees: usize,
-        depth: usize,
-        splits_at: usize,
-        leaves_at: usize,
-    ) -> (&[Split], &[f64]) {
+    fn complete(&self, run: &Run) -> (&[Split], &[f64]) {
+        let len = run.trees << run.depth;
         (
-            &self.splits[splits_at..][..trees << depth],
-            &self.leaf_values[leaves_at..][..trees << depth],
+            &self.splits[run.splits_at..][..len],
+            &self.leaf_values[run.leaves_at..][..len],
         )
     }
 
@@ -764,14 +754,9 @@ impl Ensemble {
             }
             for group in &self.groups {
                 match *group {
-                    Group::Complete {
-                        trees,
-                        depth,
-                        splits_at,
-                        leaves_at,
-                    } => {
-                        let (splits, leaves) = self.complete(trees, depth, splits_at, leaves_at);
-                        walk_by_depth!(depth, add_rows(splits, leaves, &sided, 2 * n, block));
+                    Group::Complete(run) => {
+                        let (splits, leaves) = self.complete(&run);
+                        walk_by_depth!(run.depth, add_rows(splits, leaves, &sided, 2 * n, block));
                     }
                     Group::Preorder { first: t0, trees } => {
                         for t in t0..t0 + trees {
@@ -1000,11 +985,11 @@ mod tests {
         let run = numeric_trees(19, None);
         assert!(matches!(
             complete.groups[..],
-            [Group::Complete {
+            [Group::Complete(Run {
                 trees: 8,
                 depth: 2,
                 ..
-            }]
+            })]
         ));
         assert!(matches!(
             preorder.groups[..],
@@ -1012,11 +997,11 @@ mod tests {
         ));
         assert!(matches!(
             run.groups[..],
-            [Group::Complete {
+            [Group::Complete(Run {
                 trees: 19,
                 depth: 2,
                 ..
-            }]
+            })]
         ));
         let xs = [-2.0, -1.0, -0.5, 0.0, 0.5, 1.0, 2.0, f64::NAN];
         let mut rows = Vec::new();
