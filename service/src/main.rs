@@ -37,7 +37,7 @@ enum Command {
     Report(cli::report::ReportArgs),
     /// Champion against challenger on one route, from a prediction log (table, JSON, SVG).
     Compare(cli::compare::CompareArgs),
-    /// Make a challenger a route's champion on a running server (admin token needed); recorded in the history.
+    /// Make a challenger a route's champion on a running server (the `admin` role); recorded in the history.
     Promote(cli::promote::PromoteArgs),
     /// A running server's route promotion history.
     RouteHistory(cli::promote::HistoryArgs),

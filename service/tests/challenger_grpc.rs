@@ -104,12 +104,18 @@ async fn mirrored_and_split_challengers_through_the_service() {
     let data = tempfile::tempdir().unwrap();
     let conf = tempfile::tempdir().unwrap();
     let path = conf.path().join("probity.toml");
+    // Two callers: the pipeline scores, writes outcomes and reads reports; ops may also promote.
     let token_file = conf.path().join("admin.token");
     std::fs::write(&token_file, "test-admin-token-0123456789\n").unwrap();
+    let pipeline_token = conf.path().join("pipeline.token");
+    std::fs::write(&pipeline_token, "test-pipeline-token-0123456789\n").unwrap();
     std::fs::write(
         &path,
         format!(
-            "[server]\nplaintext = \"loopback\"\ngrpc_listen = \"127.0.0.1:0\"\nmetrics_listen = \"127.0.0.1:0\"\nadmin_token_file = {:?}\n\
+            "[server]\nplaintext = \"loopback\"\ngrpc_listen = \"127.0.0.1:0\"\nmetrics_listen = \"127.0.0.1:0\"\n\
+             [[access.callers]]\nname = \"ops\"\ntoken_file = {:?}\nroles = [\"admin\", \"report-read\"]\n\
+             [[access.callers]]\nname = \"pipeline\"\ntoken_file = {:?}\n\
+             roles = [\"score\", \"outcome-write\", \"report-read\"]\n\
              [models]\ndirectory = {:?}\nwatch = false\n\
              [log]\ndirectory = {:?}\nflush_interval = \"5ms\"\nsweep_interval = \"50ms\"\noutcome_hold = \"1h\"\n\
              [routes.bc]\nmodel = \"champ\"\ndecision = {{ threshold = 0.5 }}\n\
@@ -117,6 +123,7 @@ async fn mirrored_and_split_challengers_through_the_service() {
              [routes.split]\nmodel = \"champ\"\n\
              [[routes.split.challengers]]\nmodel = \"chall\"\nmode = \"split\"\nfraction = 0.3\n",
             token_file.display().to_string(),
+            pipeline_token.display().to_string(),
             models.path().display().to_string(),
             data.path().display().to_string()
         ),
@@ -128,14 +135,20 @@ async fn mirrored_and_split_challengers_through_the_service() {
     })
     .unwrap();
     let server = probity::serve::start(config).await.unwrap();
-    let channel = tonic::transport::Channel::from_shared(format!("http://{}", server.grpc_addr()))
+    let raw = tonic::transport::Channel::from_shared(format!("http://{}", server.grpc_addr()))
         .unwrap()
         .connect()
         .await
         .unwrap();
-    let mut scoring = pb::scoring_client::ScoringClient::new(channel.clone());
-    let mut outcomes = pb::outcomes_client::OutcomesClient::new(channel.clone());
-    let mut admin = pb::challengers_client::ChallengersClient::new(channel);
+    let pipeline = tonic::service::interceptor::InterceptedService::new(
+        raw.clone(),
+        probity::client::BearerToken::from_file(&pipeline_token).unwrap(),
+    );
+    let mut scoring = pb::scoring_client::ScoringClient::new(pipeline.clone());
+    let mut outcomes = pb::outcomes_client::OutcomesClient::new(pipeline.clone());
+    let mut admin = pb::challengers_client::ChallengersClient::new(pipeline.clone());
+    // Without the interceptor, for calls that set their own `authorization`.
+    let mut bare = pb::challengers_client::ChallengersClient::new(raw);
 
     // Mirrored: every answer is the champion's.
     for i in 0..n {
@@ -389,22 +402,31 @@ async fn mirrored_and_split_challengers_through_the_service() {
         rpc.table
     );
 
-    // Promotion: refused without the admin token, made with it, visible in the history and in the answers.
+    // Promotion: refused without a token (UNAUTHENTICATED), with a wrong one (UNAUTHENTICATED) and with the
+    // pipeline's, which lacks the admin role (PERMISSION_DENIED); made with ops' token, recorded with its caller,
+    // visible in the history and in the answers.
     let promote = || pb::PromoteRequest {
         route: "bc".into(),
         challenger: "chall".into(),
         requested_by: "model-risk-review".into(),
         reason: "test".into(),
     };
-    let refused = admin.promote(promote()).await.unwrap_err();
+    let refused = bare.promote(promote()).await.unwrap_err();
     assert_eq!(refused.code(), tonic::Code::Unauthenticated);
+    let denied = admin.promote(promote()).await.unwrap_err();
+    assert_eq!(denied.code(), tonic::Code::PermissionDenied, "{denied:?}");
+    assert!(
+        denied.message().contains("pipeline") && denied.message().contains("admin"),
+        "{}",
+        denied.message()
+    );
     let mut wrong = tonic::Request::new(promote());
     wrong.metadata_mut().insert(
         "authorization",
         "Bearer not-the-token-at-all".parse().unwrap(),
     );
     assert_eq!(
-        admin.promote(wrong).await.unwrap_err().code(),
+        bare.promote(wrong).await.unwrap_err().code(),
         tonic::Code::Unauthenticated
     );
     let mut good = tonic::Request::new(promote());
@@ -412,7 +434,7 @@ async fn mirrored_and_split_challengers_through_the_service() {
         "authorization",
         "Bearer test-admin-token-0123456789".parse().unwrap(),
     );
-    let change = admin
+    let change = bare
         .promote(good)
         .await
         .unwrap()
@@ -426,7 +448,12 @@ async fn mirrored_and_split_challengers_through_the_service() {
         ),
         ("champ", "chall")
     );
-    assert!(!change.peer.is_empty() && change.time_unix_ms > 0);
+    assert!(
+        change.peer.starts_with("127.0.0.1:") && change.peer.ends_with(" as ops"),
+        "{}",
+        change.peer
+    );
+    assert!(change.time_unix_ms > 0);
     let r = scoring
         .score(pb::ScoreRequest {
             route: "bc".into(),
@@ -458,6 +485,10 @@ async fn mirrored_and_split_challengers_through_the_service() {
         .connect()
         .await
         .unwrap();
+    let channel = tonic::service::interceptor::InterceptedService::new(
+        channel,
+        probity::client::BearerToken::from_file(&pipeline_token).unwrap(),
+    );
     let mut scoring = pb::scoring_client::ScoringClient::new(channel.clone());
     let mut admin = pb::challengers_client::ChallengersClient::new(channel);
     let r = scoring

@@ -56,15 +56,15 @@ def binary():
 class Server:
     """A `probity serve` process on loopback ports it picks itself (port 0), found from its JSON log."""
 
-    def __init__(self, workdir: Path):
+    def __init__(self, workdir: Path, server_toml: str = 'plaintext = "loopback"\n', credentials=None):
         self.models = workdir / "models"
         self.models.mkdir()
         for name in ("grpc-fraud-v1.json", "grpc-credit-v1.json"):
             shutil.copy(DATA / name, self.models / name)
         config = workdir / "probity.toml"
         config.write_text(
-            '[server]\nplaintext = "loopback"\ngrpc_listen = "127.0.0.1:0"\nmetrics_listen = "127.0.0.1:0"\n'
-            f"[models]\ndirectory = {json.dumps(str(self.models))}\nwatch = false\n{ROUTES}"
+            '[server]\ngrpc_listen = "127.0.0.1:0"\nmetrics_listen = "127.0.0.1:0"\n'
+            f"{server_toml}[models]\ndirectory = {json.dumps(str(self.models))}\nwatch = false\n{ROUTES}"
         )
         self.proc = subprocess.Popen(
             [binary(), "serve", "--config", str(config), "--log-format", "json"],
@@ -89,7 +89,12 @@ class Server:
         if not found.wait(60):
             self.proc.kill()
             pytest.fail("server did not start:\n" + "".join(self.log))
-        self.channel = grpc.insecure_channel(self.grpc_addr)
+        if credentials is None:
+            self.channel = grpc.insecure_channel(self.grpc_addr)
+        else:
+            # The test certificate is for `localhost`; the server listens on 127.0.0.1.
+            options = [("grpc.ssl_target_name_override", "localhost")]
+            self.channel = grpc.secure_channel(self.grpc_addr, credentials, options=options)
 
     def stop(self):
         self.channel.close()

@@ -8,7 +8,9 @@
 //! (the rows of `tools/bench/make_bench_models.py`), from `--concurrency` tasks over `--connections` HTTP/2
 //! connections, either as fast as answers come (closed loop) or at `--rate` calls per second (open loop, each
 //! task on its own schedule). It prints one JSON line: calls, errors, throughput, latency percentiles and, with
-//! `--server-pid`, the server's CPU time per call and its resident memory sampled during the run.
+//! `--server-pid`, the server's CPU time per call and its resident memory sampled during the run. With `--ca-file`
+//! (and optionally `--client-cert`/`--client-key`, `--token-file`) it calls a TLS server through the same connector
+//! as the command-line tools (`probity::client`).
 
 use std::collections::HashMap;
 use std::path::PathBuf;
@@ -17,9 +19,11 @@ use std::time::{Duration, Instant};
 
 use anyhow::{bail, Context, Result};
 use clap::{Parser, Subcommand};
+use probity::client::{ConnectArgs, Connection};
 use probity::serve::proto as pb;
 use probity_models::Model;
-use tonic::transport::{Channel, Endpoint, Server};
+use tonic::service::interceptor::InterceptedService;
+use tonic::transport::Server;
 use tonic::{Request, Response, Status};
 
 #[derive(Parser)]
@@ -32,6 +36,8 @@ struct Args {
     command: Command,
 }
 
+// Parsed once at start: the size of the larger variant does not matter.
+#[allow(clippy::large_enum_variant)]
 #[derive(Subcommand)]
 enum Command {
     /// A tonic server answering Score with a fixed response, doing no work.
@@ -81,6 +87,26 @@ struct RunArgs {
     /// A label copied into the output.
     #[arg(long, default_value = "")]
     label: String,
+    /// TLS: the CA that signed the server's certificate (the calls then go over https).
+    #[arg(long, value_name = "FILE")]
+    ca_file: Option<PathBuf>,
+    /// Mutual TLS: client certificate (PEM), with --client-key.
+    #[arg(
+        long,
+        value_name = "FILE",
+        requires = "client_key",
+        requires = "ca_file"
+    )]
+    client_cert: Option<PathBuf>,
+    /// Mutual TLS: the client certificate's private key (PEM).
+    #[arg(long, value_name = "FILE", requires = "client_cert")]
+    client_key: Option<PathBuf>,
+    /// A file holding the bearer token of a caller with the `score` role.
+    #[arg(long, value_name = "FILE")]
+    token_file: Option<PathBuf>,
+    /// The name the server's certificate is verified against, when not the host of --target.
+    #[arg(long, value_name = "NAME", requires = "ca_file")]
+    tls_server_name: Option<String>,
 }
 
 fn main() -> Result<()> {
@@ -236,7 +262,7 @@ struct TaskResult {
 }
 
 async fn worker(
-    mut client: pb::scoring_client::ScoringClient<Channel>,
+    mut client: pb::scoring_client::ScoringClient<Connection>,
     requests: Arc<Vec<pb::ScoreRequest>>,
     start_at: usize,
     measure_from: Instant,
@@ -300,14 +326,29 @@ async fn run(args: RunArgs) -> Result<()> {
     let requests = Arc::new(requests(&args)?);
     let concurrency = args.concurrency.max(1);
     let connections = args.connections.clamp(1, concurrency);
+    let scheme = if args.ca_file.is_some() {
+        "https"
+    } else {
+        "http"
+    };
+    let (endpoint, token) = ConnectArgs {
+        server: format!("{scheme}://{}", args.target),
+        ca_file: args.ca_file.clone(),
+        client_cert: args.client_cert.clone(),
+        client_key: args.client_key.clone(),
+        token_file: args.token_file.clone(),
+        tls_server_name: args.tls_server_name.clone(),
+    }
+    .endpoint()?;
     let mut channels = Vec::with_capacity(connections);
     for _ in 0..connections {
-        let channel = Endpoint::from_shared(format!("http://{}", args.target))?
+        let channel = endpoint
+            .clone()
             .tcp_nodelay(true)
             .connect()
             .await
             .with_context(|| format!("connecting to {}", args.target))?;
-        channels.push(channel);
+        channels.push(InterceptedService::new(channel, token.clone()));
     }
     let start = Instant::now();
     let measure_from = start + Duration::from_secs_f64(args.warmup);

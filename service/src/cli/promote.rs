@@ -1,26 +1,22 @@
 //! `probity promote` and `probity route-history`: the admin call that makes a challenger a route's champion on a
 //! running server, and the route's promotion history.
 
-use std::path::PathBuf;
-
 use anyhow::Context;
+use probity::client::{ConnectArgs, Connection};
 use probity::serve::proto as pb;
 
 /// Arguments of `probity promote`.
 #[derive(Debug, clap::Args)]
 pub struct PromoteArgs {
-    /// The server's gRPC address.
-    #[arg(long, default_value = "http://127.0.0.1:50051")]
-    pub server: String,
+    /// The server and the credentials of a caller with the `admin` role.
+    #[command(flatten)]
+    pub connect: ConnectArgs,
     /// The route.
     #[arg(long)]
     pub route: String,
     /// The challenger model to make champion.
     #[arg(long)]
     pub challenger: String,
-    /// A file holding the server's admin token (`server.admin_token_file`).
-    #[arg(long, value_name = "FILE")]
-    pub token_file: PathBuf,
     /// Who asks (recorded with the change); defaults to the USER environment variable.
     #[arg(long)]
     pub requested_by: Option<String>,
@@ -32,9 +28,9 @@ pub struct PromoteArgs {
 /// Arguments of `probity route-history`.
 #[derive(Debug, clap::Args)]
 pub struct HistoryArgs {
-    /// The server's gRPC address.
-    #[arg(long, default_value = "http://127.0.0.1:50051")]
-    pub server: String,
+    /// The server and the credentials of a caller with the `report-read` role.
+    #[command(flatten)]
+    pub connect: ConnectArgs,
     /// Only this route.
     #[arg(long, default_value = "")]
     pub route: String,
@@ -51,14 +47,11 @@ fn runtime() -> anyhow::Result<tokio::runtime::Runtime> {
 }
 
 async fn client(
-    server: &str,
-) -> anyhow::Result<pb::challengers_client::ChallengersClient<tonic::transport::Channel>> {
-    let channel = tonic::transport::Channel::from_shared(server.to_string())
-        .with_context(|| format!("--server: `{server}` is not a URL"))?
-        .connect()
-        .await
-        .with_context(|| format!("--server: cannot connect to {server}"))?;
-    Ok(pb::challengers_client::ChallengersClient::new(channel))
+    connect: &ConnectArgs,
+) -> anyhow::Result<pb::challengers_client::ChallengersClient<Connection>> {
+    Ok(pb::challengers_client::ChallengersClient::new(
+        connect.connect().await?,
+    ))
 }
 
 fn line(c: &pb::RouteChange) -> String {
@@ -80,25 +73,19 @@ fn line(c: &pb::RouteChange) -> String {
 
 /// Runs `probity promote`.
 pub fn run_promote(args: &PromoteArgs) -> anyhow::Result<()> {
-    let token = std::fs::read_to_string(&args.token_file)
-        .with_context(|| format!("--token-file: reading {}", args.token_file.display()))?;
     let who = args
         .requested_by
         .clone()
         .or_else(|| std::env::var("USER").ok())
         .unwrap_or_default();
-    let mut request = tonic::Request::new(pb::PromoteRequest {
+    let request = tonic::Request::new(pb::PromoteRequest {
         route: args.route.clone(),
         challenger: args.challenger.clone(),
         requested_by: who,
         reason: args.reason.clone(),
     });
-    let value = format!("Bearer {}", token.trim())
-        .parse()
-        .context("--token-file: the token is not valid header text")?;
-    request.metadata_mut().insert("authorization", value);
     let answer = runtime()?.block_on(async {
-        let mut c = client(&args.server).await?;
+        let mut c = client(&args.connect).await?;
         c.promote(request)
             .await
             .map_err(|s| anyhow::anyhow!("{}: {}", s.code(), s.message()))
@@ -113,7 +100,7 @@ pub fn run_promote(args: &PromoteArgs) -> anyhow::Result<()> {
 /// Runs `probity route-history`.
 pub fn run_history(args: &HistoryArgs) -> anyhow::Result<()> {
     let answer = runtime()?.block_on(async {
-        let mut c = client(&args.server).await?;
+        let mut c = client(&args.connect).await?;
         c.route_history(pb::RouteHistoryRequest {
             route: args.route.clone(),
         })

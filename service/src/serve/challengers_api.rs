@@ -1,4 +1,4 @@
-//! The `probity.v1.Challengers` service: Compare (from the prediction log), Promote (an admin call) and
+//! The `probity.v1.Challengers` service: Compare (from the prediction log), Promote (the `admin` role) and
 //! RouteHistory. Handlers validate, call [`crate::compare`] or [`crate::serve::promotion`], and convert back.
 
 use std::sync::Arc;
@@ -7,53 +7,50 @@ use std::time::Instant;
 use tonic::{Request, Response, Status};
 
 use crate::compare::{self, CompareRequest};
-use crate::serve::config::AdminToken;
 use crate::serve::error::ServeError;
 use crate::serve::grpc::finish;
 use crate::serve::promotion::RouteChange;
 use crate::serve::proto as pb;
 use crate::serve::scoring::Scorer;
+use crate::serve::security::access::Caller;
 use crate::store::ReportFilter;
 
-/// The `probity.v1.Challengers` service.
+/// The `probity.v1.Challengers` service. Who may call what is decided before the call arrives here
+/// ([`crate::serve::security`]: Promote needs the `admin` role).
 pub struct ChallengersApi {
     scorer: Arc<Scorer>,
-    admin_token: Option<AdminToken>,
 }
 
 impl ChallengersApi {
-    /// The service over `scorer`; promotions need `admin_token`.
-    pub fn new(scorer: Arc<Scorer>, admin_token: Option<AdminToken>) -> ChallengersApi {
-        ChallengersApi {
-            scorer,
-            admin_token,
-        }
+    /// The service over `scorer`.
+    pub fn new(scorer: Arc<Scorer>) -> ChallengersApi {
+        ChallengersApi { scorer }
     }
 
-    /// Checks `authorization: Bearer <token>` in constant time over the token's length.
-    fn authorize<T>(&self, request: &Request<T>) -> Result<(), ServeError> {
-        let Some(expected) = &self.admin_token else {
-            return Err(ServeError::Unauthenticated {
-                reason: "admin calls are off on this server (set server.admin_token_file)".into(),
-            });
-        };
-        let given = request
-            .metadata()
-            .get("authorization")
-            .and_then(|v| v.to_str().ok())
-            .and_then(|v| v.strip_prefix("Bearer "))
-            .ok_or_else(|| ServeError::Unauthenticated {
-                reason: "an admin call needs the metadata `authorization: Bearer <token>`".into(),
-            })?;
-        let (a, b) = (given.as_bytes(), expected.expose().as_bytes());
-        let differ =
-            a.len() != b.len() || a.iter().zip(b).fold(0u8, |acc, (x, y)| acc | (x ^ y)) != 0;
-        if differ {
-            return Err(ServeError::Unauthenticated {
-                reason: "the admin token is not valid".into(),
-            });
+    fn promote_as(
+        &self,
+        request: pb::PromoteRequest,
+        peer: &str,
+    ) -> Result<pb::PromoteResponse, ServeError> {
+        let pb::PromoteRequest {
+            route,
+            challenger,
+            requested_by,
+            reason,
+        } = request;
+        if requested_by.trim().is_empty() {
+            return Err(ServeError::invalid(
+                "requested_by",
+                "is required: who asks for the promotion",
+            ));
         }
-        Ok(())
+        let c =
+            self.scorer
+                .route_table()
+                .promote(&route, &challenger, &requested_by, peer, &reason)?;
+        Ok(pb::PromoteResponse {
+            change: Some(change(c)),
+        })
     }
 }
 
@@ -151,34 +148,15 @@ impl pb::challengers_server::Challengers for ChallengersApi {
     ) -> Result<Response<pb::PromoteResponse>, Status> {
         let started = Instant::now();
         let route = self.scorer.route_label(&request.get_ref().route);
-        let peer = request
-            .remote_addr()
+        // The peer as recorded: its address and, when access control is on, the caller it authenticated as.
+        let address = crate::serve::security::tls::remote_addr(&request)
             .map(|a| a.to_string())
             .unwrap_or_default();
-        let result = self.authorize(&request).and_then(|()| {
-            let pb::PromoteRequest {
-                route,
-                challenger,
-                requested_by,
-                reason,
-            } = request.into_inner();
-            if requested_by.trim().is_empty() {
-                return Err(ServeError::invalid(
-                    "requested_by",
-                    "is required: who asks for the promotion",
-                ));
-            }
-            let c = self.scorer.route_table().promote(
-                &route,
-                &challenger,
-                &requested_by,
-                &peer,
-                &reason,
-            )?;
-            Ok(pb::PromoteResponse {
-                change: Some(change(c)),
-            })
-        });
+        let peer = match request.extensions().get::<Arc<Caller>>() {
+            Some(caller) => format!("{address} as {}", caller.name),
+            None => address,
+        };
+        let result = self.promote_as(request.into_inner(), &peer);
         finish("Promote", &route, started, result)
     }
 

@@ -71,6 +71,7 @@ pub struct RawConfig {
     limits: RawLimits,
     logging: RawLogging,
     log: crate::store::config::RawLog,
+    access: crate::serve::security::config::RawAccess,
     routes: BTreeMap<String, RawRoute>,
 }
 
@@ -81,8 +82,9 @@ struct RawServer {
     metrics_listen: String,
     reflection: bool,
     shutdown_grace_ms: u64,
-    admin_token_file: String,
+    admin_token_file: Option<String>,
     plaintext: Option<String>,
+    tls: Option<crate::serve::security::config::RawTls>,
 }
 
 impl Default for RawServer {
@@ -92,8 +94,9 @@ impl Default for RawServer {
             metrics_listen: "127.0.0.1:9464".into(),
             reflection: true,
             shutdown_grace_ms: 10_000,
-            admin_token_file: String::new(),
+            admin_token_file: None,
             plaintext: None,
+            tls: None,
         }
     }
 }
@@ -188,9 +191,8 @@ pub struct Config {
     pub reflection: bool,
     /// How long a shutdown waits for in-flight calls before closing them.
     pub shutdown_grace: Duration,
-    /// The bearer token of admin calls (promotion), read from `server.admin_token_file`; admin calls are refused
-    /// without one.
-    pub admin_token: Option<AdminToken>,
+    /// The callers and their roles (`[[access.callers]]`).
+    pub access: crate::serve::security::config::AccessConfig,
     /// Where the model files are (`*.json`).
     pub model_dir: PathBuf,
     /// Whether to watch the model directory for changes.
@@ -216,6 +218,8 @@ pub enum Transport {
     /// Plain text, allowed only when asked for with `server.plaintext = "loopback"` and only on a loopback
     /// `server.grpc_listen` (127.0.0.0/8, ::1).
     PlaintextLoopback,
+    /// TLS with the certificate and key of `[server.tls]`, mutual when a client CA is given.
+    Tls(crate::serve::security::config::TlsFiles),
 }
 
 /// Request limits.
@@ -375,6 +379,7 @@ impl Config {
             limits,
             logging,
             log,
+            access,
             routes,
         } = raw;
         let RawServer {
@@ -384,7 +389,15 @@ impl Config {
             shutdown_grace_ms,
             admin_token_file,
             plaintext,
+            tls,
         } = server;
+        if admin_token_file.is_some() {
+            return Err(invalid(
+                "server.admin_token_file",
+                "was replaced by [[access.callers]]: give the caller a name, token_file = \"...\" and \
+                 roles = [\"admin\"] (README, Security)",
+            ));
+        }
         let RawModels {
             directory,
             watch,
@@ -423,14 +436,17 @@ impl Config {
             .collect::<Result<BTreeMap<_, _>, ConfigError>>()?;
         let grpc_listen = socket_addr("server.grpc_listen", &grpc_listen)?;
         let metrics_listen = socket_addr("server.metrics_listen", &metrics_listen)?;
-        let transport = transport(plaintext.as_deref(), grpc_listen)?;
+        let tls = crate::serve::security::config::tls(tls).map_err(|(k, m)| invalid(k, m))?;
+        let access = crate::serve::security::config::access(access, tls.as_ref(), valid_name)
+            .map_err(|(k, m)| invalid(k, m))?;
+        let transport = transport(plaintext.as_deref(), tls, grpc_listen)?;
         Ok(Config {
             grpc_listen,
             metrics_listen,
             transport,
             reflection,
             shutdown_grace: Duration::from_millis(shutdown_grace_ms),
-            admin_token: admin_token(&admin_token_file)?,
+            access,
             model_dir: directory,
             watch,
             watch_debounce: Duration::from_millis(in_range(
@@ -449,61 +465,37 @@ impl Config {
 }
 
 /// The transport of the gRPC port. Plain text is never a default: it must be asked for, and only for loopback.
-fn transport(plaintext: Option<&str>, grpc_listen: SocketAddr) -> Result<Transport, ConfigError> {
+fn transport(
+    plaintext: Option<&str>,
+    tls: Option<crate::serve::security::config::TlsFiles>,
+    grpc_listen: SocketAddr,
+) -> Result<Transport, ConfigError> {
     let key = "server.plaintext";
-    match plaintext {
-        None => Err(invalid(
+    match (plaintext, tls) {
+        (None, Some(files)) => Ok(Transport::Tls(files)),
+        (Some(_), Some(_)) => Err(invalid(
             key,
-            "is not set and no transport security is configured; set server.plaintext = \"loopback\" to serve \
-             gRPC in plain text on a loopback server.grpc_listen",
+            "and [server.tls] exclude each other: remove one",
         )),
-        Some("loopback") if grpc_listen.ip().is_loopback() => Ok(Transport::PlaintextLoopback),
-        Some("loopback") => Err(invalid(
+        (None, None) => Err(invalid(
+            "server.tls",
+            "no transport security is configured: set server.tls.certificate_file and server.tls.key_file \
+             (TLS), or server.plaintext = \"loopback\" to serve gRPC in plain text on a loopback \
+             server.grpc_listen",
+        )),
+        (Some("loopback"), None) if grpc_listen.ip().is_loopback() => Ok(Transport::PlaintextLoopback),
+        (Some("loopback"), None) => Err(invalid(
             key,
             format!(
-                "\"loopback\" needs a loopback server.grpc_listen (127.0.0.1, ::1 or localhost), got {grpc_listen}"
+                "\"loopback\" needs a loopback server.grpc_listen (127.0.0.1, ::1 or localhost), got {grpc_listen}; \
+                 use [server.tls] for any other address"
             ),
         )),
-        Some(other) => Err(invalid(
+        (Some(other), None) => Err(invalid(
             key,
             format!("must be \"loopback\" (plain text on a loopback address) or absent, got `{other}`"),
         )),
     }
-}
-
-/// The admin bearer token; its `Debug` form hides the value, so a logged configuration does not leak it.
-#[derive(Clone, PartialEq, Eq)]
-pub struct AdminToken(String);
-
-impl AdminToken {
-    /// The token text.
-    pub fn expose(&self) -> &str {
-        &self.0
-    }
-}
-
-impl std::fmt::Debug for AdminToken {
-    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        f.write_str("AdminToken(hidden)")
-    }
-}
-
-/// The admin token from its file: one line, at least 16 characters; `None` when no file is configured.
-fn admin_token(file: &str) -> Result<Option<AdminToken>, ConfigError> {
-    if file.is_empty() {
-        return Ok(None);
-    }
-    let key = "server.admin_token_file";
-    let text = std::fs::read_to_string(file)
-        .map_err(|e| invalid(key, format!("cannot read `{file}`: {e}")))?;
-    let token = text.trim();
-    if token.len() < 16 || token.chars().any(|c| c.is_whitespace() || c.is_control()) {
-        return Err(invalid(
-            key,
-            format!("`{file}` must hold one token of at least 16 characters without spaces"),
-        ));
-    }
-    Ok(Some(AdminToken(token.to_string())))
 }
 
 fn read_file(path: &Path) -> Result<toml::Table, ConfigError> {

@@ -59,12 +59,23 @@ pub enum ServeError {
     /// The prediction log failed.
     #[error("prediction log: {0}")]
     Log(#[from] crate::store::StoreError),
-    /// An admin call without valid credentials.
+    /// A call without valid credentials.
     #[error("{reason}")]
     Unauthenticated {
-        /// What is missing or wrong (never the expected token).
+        /// What is missing or wrong (never a token).
         reason: String,
     },
+    /// A known caller without the role the call needs.
+    #[error("{caller} does not have {needs}, which this call needs")]
+    PermissionDenied {
+        /// The caller's configured name (or the certificate name of an unconfigured client certificate).
+        caller: String,
+        /// What the call needs, e.g. "the role `admin`".
+        needs: String,
+    },
+    /// A method the access table does not list.
+    #[error("this method is not served")]
+    UnknownMethod,
     /// A promotion was refused.
     #[error("{0}")]
     Promotion(#[from] crate::serve::promotion::PromotionError),

@@ -241,7 +241,7 @@ impl pb::models_server::Models for ModelsApi {
         let started = Instant::now();
         let result = self
             .reloader
-            .reload("rpc")
+            .reload_all("rpc")
             .await
             .map(|files| pb::ReloadResponse {
                 files: files.into_iter().map(pb::FileReload::from).collect(),

@@ -38,6 +38,14 @@ pub const MODEL_INFO: &str = "probity_model_info";
 pub const ROUTE_READY: &str = "probity_route_ready";
 /// Constant 1 with the build's version.
 pub const BUILD_INFO: &str = "probity_build_info";
+/// Calls refused by the access check, by reason and method.
+pub const AUTH_REFUSALS: &str = "probity_auth_refusals_total";
+/// TLS connections that did not complete their handshake, by reason (`handshake`, `timeout`, `busy`).
+pub const TLS_HANDSHAKE_FAILURES: &str = "probity_tls_handshake_failures_total";
+/// Reloads of the TLS files and token files that changed something, by part and result (`loaded`, `failed`).
+pub const SECURITY_RELOADS: &str = "probity_security_reloads_total";
+/// End of validity of the server certificate in use, seconds since the Unix epoch, labelled with its fingerprint.
+pub const TLS_CERTIFICATE_EXPIRY: &str = "probity_tls_certificate_expiry_timestamp_seconds";
 
 /// Latency buckets in seconds: scoring is expected well under a millisecond, batches and queueing above.
 const LATENCY_BUCKETS: [f64; 14] = [
@@ -123,6 +131,54 @@ fn describe() {
     );
     metrics::describe_gauge!(ROUTE_READY, "1 when the route's model is loaded.");
     metrics::describe_gauge!(BUILD_INFO, "Constant 1, labelled with the build version.");
+    metrics::describe_counter!(
+        AUTH_REFUSALS,
+        "gRPC calls refused by the access check, by reason and method."
+    );
+    metrics::describe_counter!(
+        TLS_HANDSHAKE_FAILURES,
+        "TLS connections closed before their handshake completed, by reason."
+    );
+    metrics::describe_counter!(
+        SECURITY_RELOADS,
+        "Reloads of TLS or token files that changed something, by part and result."
+    );
+    metrics::describe_gauge!(
+        TLS_CERTIFICATE_EXPIRY,
+        metrics::Unit::Seconds,
+        "End of validity of the server certificate in use (Unix time); 0 for a replaced one."
+    );
+}
+
+/// Records a refused call (`method` is a path from the access table or `unknown`, never the caller's text).
+pub fn auth_refused(reason: &'static str, method: &'static str) {
+    metrics::counter!(AUTH_REFUSALS, "reason" => reason, "method" => method).increment(1);
+}
+
+/// Records a TLS handshake that did not complete.
+pub fn tls_handshake_failed(reason: &'static str) {
+    metrics::counter!(TLS_HANDSHAKE_FAILURES, "reason" => reason).increment(1);
+}
+
+/// Records a reload of the TLS files or token files that changed something.
+pub fn security_reload(what: &'static str, result: &'static str) {
+    metrics::counter!(SECURITY_RELOADS, "what" => what, "result" => result).increment(1);
+}
+
+static CERTIFICATE_IN_USE: std::sync::Mutex<Option<String>> = std::sync::Mutex::new(None);
+
+/// Sets the expiry gauge to the certificate now in use and zeroes the one it replaced.
+pub fn tls_certificate(fingerprint: &str, not_after: i64) {
+    let mut in_use = CERTIFICATE_IN_USE
+        .lock()
+        .unwrap_or_else(std::sync::PoisonError::into_inner);
+    if let Some(old) = in_use.replace(fingerprint.to_string()) {
+        if old != fingerprint {
+            metrics::gauge!(TLS_CERTIFICATE_EXPIRY, "fingerprint_sha256" => old).set(0.0);
+        }
+    }
+    metrics::gauge!(TLS_CERTIFICATE_EXPIRY, "fingerprint_sha256" => fingerprint.to_string())
+        .set(not_after as f64);
 }
 
 /// Records one finished call.

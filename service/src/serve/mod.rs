@@ -7,6 +7,7 @@
 //! - [`grpc`]: the handlers; [`status`]: the one mapping from [`error::ServeError`] to gRPC status;
 //! - [`metrics`]: Prometheus metrics and the monitoring HTTP endpoint;
 //! - [`outcomes`]: the prediction log in the server (what a scored row logs, the Outcomes service, the sweeps);
+//! - [`security`]: TLS (with certificate reload), callers, roles and the access layer every call passes;
 //! - [`server`]: [`server::start`], the one function that builds the server for `main` and the tests.
 
 pub mod base_rate;
@@ -23,6 +24,7 @@ pub mod promotion;
 pub mod proto;
 pub mod registry;
 pub mod scoring;
+pub mod security;
 pub mod server;
 pub mod shadow;
 pub mod status;

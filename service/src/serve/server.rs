@@ -25,6 +25,9 @@ use crate::serve::outcomes::{sweep_task, OutcomesApi};
 use crate::serve::proto as pb;
 use crate::serve::registry::{FileReport, Outcome, Registry};
 use crate::serve::scoring::Scorer;
+use crate::serve::security::config::ClientCertificates;
+use crate::serve::security::layer::AccessLayer;
+use crate::serve::security::Security;
 use crate::store::{Clock, PredictionLog, SqliteStore};
 
 /// Why the server did not start.
@@ -52,6 +55,9 @@ pub enum StartError {
     /// The reflection service could not be built.
     #[error("reflection: {0}")]
     Reflection(String),
+    /// A TLS or token file could not be used.
+    #[error("{0}")]
+    Security(crate::serve::security::SecurityError),
     /// The model directory could not be watched.
     #[error("models.watch: cannot watch {dir}: {source}")]
     Watch {
@@ -67,9 +73,18 @@ pub struct Reloader {
     registry: Arc<Registry>,
     routes: Vec<(String, String)>,
     health: HealthReporter,
+    security: Arc<Security>,
 }
 
 impl Reloader {
+    /// Reloads the TLS and token files, then the model directory: what SIGHUP and the Reload call do. A bad
+    /// certificate, key or token file keeps the previous one (logged, counted), like a bad model file.
+    pub async fn reload_all(&self, trigger: &'static str) -> Result<Vec<FileReport>, ServeError> {
+        let security = Arc::clone(&self.security);
+        let _ = tokio::task::spawn_blocking(move || security.reload(trigger)).await;
+        self.reload(trigger).await
+    }
+
     /// Scans the model directory (`trigger` says why, for the log) and updates health.
     pub async fn reload(&self, trigger: &'static str) -> Result<Vec<FileReport>, ServeError> {
         let result = self.registry.reload().await;
@@ -146,9 +161,14 @@ impl RunningServer {
         self.metrics_addr
     }
 
-    /// Reloads the model directory now, as the Reload call and SIGHUP do.
+    /// Reloads the TLS and token files and the model directory now, as the Reload call and SIGHUP do.
     pub async fn reload(&self) -> Result<Vec<FileReport>, ServeError> {
-        self.reloader.reload("api").await
+        self.reloader.reload_all("api").await
+    }
+
+    /// The TLS and token state (to check a reload's outcome).
+    pub fn security(&self) -> &Arc<Security> {
+        &self.reloader.security
     }
 
     /// The prediction log, when it is on.
@@ -211,7 +231,7 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
         transport,
         reflection,
         shutdown_grace,
-        admin_token,
+        access,
         model_dir,
         watch: watch_dir,
         watch_debounce,
@@ -222,6 +242,7 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
         base_rate_from_estimate,
     } = config;
     let handle = metrics::install().map_err(StartError::Metrics)?;
+    let security = Arc::new(Security::load(&transport, &access).map_err(StartError::Security)?);
     let registry = Arc::new(Registry::new(model_dir.clone()));
     let (health, health_service) = tonic_health::server::health_reporter();
     let reloader = Arc::new(Reloader {
@@ -231,6 +252,7 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
             .map(|r| (r.name.clone(), r.model.clone()))
             .collect(),
         health,
+        security: Arc::clone(&security),
     });
     reloader
         .reload("start")
@@ -262,7 +284,7 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
             .with_shadow(),
     );
     let challengers = pb::challengers_server::ChallengersServer::new(
-        crate::serve::challengers_api::ChallengersApi::new(Arc::clone(&scorer), admin_token),
+        crate::serve::challengers_api::ChallengersApi::new(Arc::clone(&scorer)),
     );
     let outcomes = pb::outcomes_server::OutcomesServer::new(
         OutcomesApi::new(log.clone()).with_routes(Arc::clone(scorer.route_table())),
@@ -318,8 +340,10 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
     let metrics_addr = http_listener.local_addr().unwrap_or(metrics_listen);
 
     let (shutdown, shutdown_rx) = watch::channel(false);
+    // The access check is the outermost layer: a refused call never takes a concurrency slot.
     let router = tonic::transport::Server::builder()
         .timeout(limits.default_deadline)
+        .layer(AccessLayer::new(Arc::clone(&security)))
         .layer(tower::limit::GlobalConcurrencyLimitLayer::new(
             limits.max_concurrent_requests,
         ))
@@ -330,10 +354,22 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
         .add_service(challengers)
         .add_optional_service(reflection_v1)
         .add_optional_service(reflection_v1alpha);
-    let incoming =
-        tonic::transport::server::TcpIncoming::from(grpc_listener).with_nodelay(Some(true));
-    let grpc =
-        tokio::spawn(router.serve_with_incoming_shutdown(incoming, stopped(shutdown_rx.clone())));
+    let grpc = match security.tls() {
+        None => {
+            let incoming =
+                tonic::transport::server::TcpIncoming::from(grpc_listener).with_nodelay(Some(true));
+            tokio::spawn(
+                router.serve_with_incoming_shutdown(incoming, stopped(shutdown_rx.clone())),
+            )
+        }
+        Some(tls) => {
+            let incoming =
+                crate::serve::security::tls::incoming(grpc_listener, tls, shutdown_rx.clone());
+            tokio::spawn(
+                router.serve_with_incoming_shutdown(incoming, stopped(shutdown_rx.clone())),
+            )
+        }
+    };
 
     let ready = Arc::clone(&reloader);
     let app = metrics::http_app(handle, Arc::new(move || ready.not_ready()));
@@ -367,11 +403,15 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
     } else {
         None
     };
-    match transport {
-        Transport::PlaintextLoopback => {
-            tracing::info!(%grpc_addr, %metrics_addr, transport = "plaintext-loopback", "probity serving");
-        }
-    }
+    let transport = match transport {
+        Transport::PlaintextLoopback => "plaintext-loopback",
+        Transport::Tls(files) => match files.client_certificates {
+            ClientCertificates::Off => "tls",
+            ClientCertificates::Optional => "tls, client certificates optional",
+            ClientCertificates::Required => "mutual tls",
+        },
+    };
+    tracing::info!(%grpc_addr, %metrics_addr, transport, callers = access.callers.len(), "probity serving");
     Ok(RunningServer {
         grpc_addr,
         metrics_addr,
@@ -402,7 +442,7 @@ fn hangup_task(reloader: Arc<Reloader>) -> JoinHandle<()> {
             }
         };
         while hangup.recv().await.is_some() {
-            let _ = reloader.reload("sighup").await;
+            let _ = reloader.reload_all("sighup").await;
         }
     })
 }

@@ -32,6 +32,8 @@ impl From<ServeError> for Status {
             }
             ServeError::Log(_) | ServeError::LogDisabled => error.to_string(),
             ServeError::Unauthenticated { .. }
+            | ServeError::PermissionDenied { .. }
+            | ServeError::UnknownMethod
             | ServeError::Promotion(_)
             | ServeError::Comparison(_) => error.to_string(),
             ServeError::Eval { .. }
@@ -64,6 +66,11 @@ pub fn code_of(error: &ServeError) -> Code {
         ServeError::LogDisabled => Code::FailedPrecondition,
         ServeError::Log(error) => log_code(error),
         ServeError::Unauthenticated { reason: _ } => Code::Unauthenticated,
+        ServeError::PermissionDenied {
+            caller: _,
+            needs: _,
+        } => Code::PermissionDenied,
+        ServeError::UnknownMethod => Code::Unimplemented,
         ServeError::Promotion(error) => match error {
             PromotionError::NoRoute(_) => Code::NotFound,
             PromotionError::NotAChallenger {

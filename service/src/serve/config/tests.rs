@@ -131,7 +131,8 @@ fn load_bare(text: &str) -> Result<Config, ConfigError> {
 fn transport_plaintext_only_when_asked_and_only_on_loopback() {
     let err = load_bare(MINIMAL).unwrap_err().to_string();
     assert!(
-        err.starts_with("server.plaintext: is not set and no transport security is configured")
+        err.starts_with("server.tls: no transport security is configured")
+            && err.contains("server.tls.certificate_file and server.tls.key_file")
             && err.contains("server.plaintext = \"loopback\""),
         "{err}"
     );
@@ -222,4 +223,136 @@ fn deploy_example_is_valid() {
             .and_then(|d| d.threshold()),
         Some(1.0 / 41.0)
     );
+}
+
+#[test]
+fn tls_and_access_are_validated_with_the_key_named() {
+    let tls = "[server.tls]\ncertificate_file = \"s.crt\"\nkey_file = \"s.key\"\n";
+    let mtls = "[server.tls]\ncertificate_file = \"s.crt\"\nkey_file = \"s.key\"\nclient_ca_file = \"ca.crt\"\n";
+    let token =
+        "[[access.callers]]\nname = \"gw\"\ntoken_file = \"gw.token\"\nroles = [\"score\"]\n";
+    let c = load_bare(&format!("{tls}{token}{MINIMAL}")).unwrap();
+    let Transport::Tls(files) = &c.transport else {
+        panic!("{:?}", c.transport)
+    };
+    assert_eq!(
+        files.client_certificates,
+        crate::serve::security::config::ClientCertificates::Off
+    );
+    assert_eq!(c.access.callers[0].name, "gw");
+    let c = load_bare(&format!(
+        "{mtls}client_certificates = \"optional\"\n[[access.callers]]\nname = \"ops\"\n\
+         certificate_name = \"ops.test\"\nroles = [\"admin\", \"report-read\"]\n{MINIMAL}"
+    ))
+    .unwrap();
+    let Transport::Tls(files) = &c.transport else {
+        panic!("{:?}", c.transport)
+    };
+    assert_eq!(
+        files.client_certificates,
+        crate::serve::security::config::ClientCertificates::Optional
+    );
+    let cases: Vec<(String, &str)> = vec![
+        (format!("{tls}{MINIMAL}"), "access.callers: a TLS server needs at least one caller"),
+        (
+            format!("[server.tls]\ncertificate_file = \"s.crt\"\n{token}{MINIMAL}"),
+            "server.tls.key_file: is required",
+        ),
+        (
+            format!("{tls}client_certificates = \"required\"\n{token}{MINIMAL}"),
+            "server.tls.client_certificates: needs server.tls.client_ca_file",
+        ),
+        (
+            format!("{mtls}client_certificates = \"sometimes\"\n{token}{MINIMAL}"),
+            "server.tls.client_certificates: must be \"required\" or \"optional\"",
+        ),
+        (
+            format!("{tls}[[access.callers]]\nname = \"ops\"\ncertificate_name = \"ops.test\"\nroles = [\"admin\"]\n{MINIMAL}"),
+            "access.callers[0].certificate_name: needs mutual TLS",
+        ),
+        (
+            format!("{tls}[[access.callers]]\nname = \"gw\"\ntoken_file = \"a\"\nroles = [\"scoring\"]\n{MINIMAL}"),
+            "access.callers[0].roles: unknown role `scoring`",
+        ),
+        (
+            format!("{tls}[[access.callers]]\nname = \"gw\"\ntoken_file = \"a\"\nroles = []\n{MINIMAL}"),
+            "access.callers[0].roles: at least one of",
+        ),
+        (
+            format!("{mtls}[[access.callers]]\nname = \"gw\"\ntoken_file = \"a\"\ncertificate_name = \"x\"\nroles = [\"score\"]\n{MINIMAL}"),
+            "access.callers[0]: give exactly one of token_file",
+        ),
+        (
+            format!("{tls}{token}{token}{MINIMAL}"),
+            "access.callers[1].name: `gw` is used by another caller",
+        ),
+        (
+            format!("{tls}{token}[[access.callers]]\nname = \"gw2\"\ntoken_file = \"gw.token\"\nroles = [\"admin\"]\n{MINIMAL}"),
+            "access.callers[1].token_file: `gw.token` is also the token file of `gw`",
+        ),
+        (
+            format!("[server]\nplaintext = \"loopback\"\n{tls}{token}{MINIMAL}"),
+            "server.plaintext: and [server.tls] exclude each other",
+        ),
+        (
+            format!("[server]\nplaintext = \"loopback\"\nadmin_token_file = \"a\"\n{MINIMAL}"),
+            "server.admin_token_file: was replaced by [[access.callers]]",
+        ),
+    ];
+    for (text, expected) in cases {
+        let err = load_bare(&text).unwrap_err().to_string();
+        assert!(
+            err.starts_with(expected),
+            "config {text:?}\n  expected: {expected}\n  actual:   {err}"
+        );
+    }
+    // Callers on a plain-text loopback server are allowed (roles enforced there too).
+    let c = load_bare(&format!(
+        "[server]\nplaintext = \"loopback\"\n{token}{MINIMAL}"
+    ))
+    .unwrap();
+    assert_eq!(c.transport, Transport::PlaintextLoopback);
+    assert_eq!(c.access.callers.len(), 1);
+}
+
+#[test]
+fn deploy_example_security_block_is_valid_when_uncommented() {
+    let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("../deploy/probity.toml");
+    let text = std::fs::read_to_string(path).unwrap();
+    let keys = [
+        "[server.tls]",
+        "certificate_file",
+        "key_file",
+        "client_ca_file",
+        "client_certificates",
+        "[[access.callers]]",
+        "name",
+        "token_file",
+        "certificate_name",
+        "roles",
+    ];
+    let mut uncommented = 0;
+    let text: String = text
+        .lines()
+        .filter(|l| !l.starts_with("plaintext ="))
+        .map(|l| match l.strip_prefix("# ") {
+            Some(rest) if keys.iter().any(|k| rest.starts_with(k)) => {
+                uncommented += 1;
+                format!("{rest}\n")
+            }
+            _ => format!("{l}\n"),
+        })
+        .collect();
+    assert_eq!(uncommented, 13, "the example block changed shape");
+    let (_dir, path) = write(&text.replace("127.0.0.1:50051", "0.0.0.0:50051"));
+    let c = Config::load(&Sources {
+        file: Some(path),
+        ..Sources::default()
+    })
+    .unwrap();
+    let Transport::Tls(files) = &c.transport else {
+        panic!("{:?}", c.transport)
+    };
+    assert!(files.client_ca_file.is_some());
+    assert_eq!(c.access.callers.len(), 2);
 }
