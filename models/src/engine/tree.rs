@@ -11,12 +11,13 @@
 //! copy. The walks are compiled once per depth so the steps unroll and every index is masked into its
 //! power-of-two array (no bounds check but the column's); a leaf shallower than the group's
 //! depth is copied to every leaf position under it, and the splits under it are never-mind placeholders whose
-//! subtrees all hold the same value. Batches walk 8 rows through one tree in lockstep; a single row walks the
-//! group's 8 trees in lockstep. Either way the walks are independent, so the processor overlaps their loads.
+//! subtrees all hold the same value. Consecutive complete groups of one depth form one run. Batches walk 8 rows
+//! through one tree in lockstep; a single row walks 16 trees of a run in lockstep. Either way the walks are
+//! independent, so the processor overlaps their loads.
 //!
 //! **Preorder layout** (groups with a categorical split, or too deep or too sparse to pad): every tree's nodes in
-//! one flat array, laid out in preorder. A node is 24 bytes. In preorder a split's left child is the next node, so only the right child's absolute index
-//! is stored; a walk down the left side reads memory sequentially. A leaf keeps its value, a numeric split its
+//! one flat array, laid out in preorder. A node is 24 bytes. In preorder a split's left child is the next node, so
+//! only the right child's absolute index is stored; a walk down the left side reads memory sequentially. A leaf keeps its value, a numeric split its
 //! threshold, in the same `value` slot. A categorical split's left set lives in a shared pool, either as a bitset
 //! (`bitsets`, for small category indices) or as a sorted index list (`lists`, when a bitset would be much larger
 //! than the list); `aux` is the offset of the set in its pool, whose first entry is the set's length.
@@ -244,16 +245,12 @@ impl EnsembleBuilder {
     pub(crate) fn start_tree(&mut self) -> Result<(), ModelError> {
         let root = self.next_index()?;
         self.e.roots.push(root);
-        self.e.depths.push(0);
         Ok(())
     }
 
-    /// Records the depth of a leaf of the current tree.
+    /// Records the depth of a leaf, for [`Ensemble::max_depth`] (the layout works out each tree's depth itself).
     pub(crate) fn note_depth(&mut self, depth: usize) {
         self.e.max_depth = self.e.max_depth.max(depth);
-        if let Some(d) = self.e.depths.last_mut() {
-            *d = (*d).max(depth);
-        }
     }
 
     pub(crate) fn push_leaf(&mut self, value: f64) -> Result<(), ModelError> {
