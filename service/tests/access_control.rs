@@ -1076,3 +1076,59 @@ async fn tokens_never_reach_the_log_or_metrics() {
         );
     }
 }
+
+/// `probity promote` and `probity route-history` dial a TLS server with --ca-file, --tls-server-name and
+/// --token-file: the admin token promotes, the score token is refused with the role named, the report token reads
+/// the history.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn command_line_tools_dial_with_tls_and_a_token() {
+    let setup = Setup::new();
+    let server = setup.start(None).await;
+    let url = format!("https://127.0.0.1:{}", server.grpc_addr().port());
+    let ca = setup.path("certs/ca.crt");
+    let cli = |args: &[&str], token: &str| {
+        let mut command = std::process::Command::new(env!("CARGO_BIN_EXE_probity"));
+        command
+            .args(args)
+            .args(["--server", &url, "--tls-server-name", "localhost"])
+            .arg("--ca-file")
+            .arg(&ca)
+            .arg("--token-file")
+            .arg(setup.path(&format!("tokens/{token}")));
+        command
+    };
+    let promote = [
+        "promote",
+        "--route",
+        "r",
+        "--challenger",
+        "m2",
+        "--requested-by",
+        "cli test",
+    ];
+    let refused = tokio::task::block_in_place(|| cli(&promote, "t-score").output().unwrap());
+    assert!(!refused.status.success());
+    let stderr = String::from_utf8_lossy(&refused.stderr);
+    assert!(
+        stderr.contains("t-score does not have the role `admin`") && !stderr.contains(TOKENS[0].2),
+        "{stderr}"
+    );
+    let done = tokio::task::block_in_place(|| cli(&promote, "t-admin").output().unwrap());
+    let stdout = String::from_utf8_lossy(&done.stdout);
+    assert!(
+        done.status.success() && stdout.contains("m -> m2") && stdout.contains("as t-admin"),
+        "{stdout}{}",
+        String::from_utf8_lossy(&done.stderr)
+    );
+    let history = tokio::task::block_in_place(|| {
+        cli(&["route-history", "--route", "r"], "t-report")
+            .output()
+            .unwrap()
+    });
+    let stdout = String::from_utf8_lossy(&history.stdout);
+    assert!(
+        history.status.success() && stdout.contains("route r: m -> m2 by cli test"),
+        "{stdout}"
+    );
+    server.shutdown().await;
+}
