@@ -225,17 +225,26 @@ pub fn build_with(
     configured: &BTreeMap<String, f64>,
 ) -> Result<Report, StoreError> {
     let rows = store.load(filter)?;
-    let mut groups: BTreeMap<(String, String, String, String), Vec<LoggedPrediction>> =
-        BTreeMap::new();
+    // A handful of series, found by a scan, so that no row's names are copied: four more strings per row were
+    // most of a report's memory.
+    type Key = (String, String, String, String);
+    let mut groups: Vec<(Key, Vec<LoggedPrediction>)> = Vec::new();
     for r in rows {
-        let key = (
-            r.route.clone(),
-            r.model.clone(),
-            r.version.clone(),
-            r.role.clone(),
-        );
-        groups.entry(key).or_default().push(r);
+        let same = |k: &Key| k.0 == r.route && k.1 == r.model && k.2 == r.version && k.3 == r.role;
+        match groups.iter_mut().find(|(k, _)| same(k)) {
+            Some((_, members)) => members.push(r),
+            None => {
+                let key = (
+                    r.route.clone(),
+                    r.model.clone(),
+                    r.version.clone(),
+                    r.role.clone(),
+                );
+                groups.push((key, vec![r]));
+            }
+        }
     }
+    groups.sort_by(|a, b| a.0.cmp(&b.0));
     let mut series = Vec::new();
     for ((route, model, version, role), rows) in groups {
         let info = store.model_version(&model, &version)?;

@@ -83,7 +83,7 @@ fn compare_on(
         threshold,
         newey_west_lag: None,
     };
-    let report = log.with_store(|s| Ok(compare::build(s, &request)))??;
+    let report = log.read_blocking(move |s| Ok(compare::build(s, &request)))??;
     Ok(pb::CompareResponse {
         verdict_code: report.verdict_code.clone(),
         verdict: report.verdict.clone(),

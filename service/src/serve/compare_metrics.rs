@@ -95,7 +95,7 @@ pub fn refresh(scorer: &Scorer) {
                 threshold: route_threshold(route),
                 newey_west_lag: None,
             };
-            match log.with_store(|s| Ok(compare::build(s, &request))) {
+            match log.read_blocking(move |s| Ok(compare::build(s, &request))) {
                 Ok(Ok(report)) => set(&report),
                 // No prediction of one side yet: nothing to export.
                 Ok(Err(compare::CompareReportError::Models(_))) => {}

@@ -8,7 +8,8 @@
 //! - [`metrics`]: Prometheus metrics and the monitoring HTTP endpoint;
 //! - [`outcomes`]: the prediction log in the server (what a scored row logs, the Outcomes service, the sweeps);
 //! - [`security`]: TLS (with certificate reload), callers, roles and the access layer every call passes;
-//! - [`server`]: [`server::start`], the one function that builds the server for `main` and the tests.
+//! - [`server`]: [`server::start`], the one function that builds the server for `main` and the tests
+//!   ([`server::start_with_store`] is the same with the prediction log in a given [`crate::store::Store`]).
 
 pub mod base_rate;
 pub mod challenger;
@@ -32,7 +33,7 @@ pub mod status;
 use std::path::PathBuf;
 
 use crate::serve::config::{parse_override, Config, ConfigError, LogFormat, Logging, Sources};
-pub use crate::serve::server::{start, RunningServer, StartError};
+pub use crate::serve::server::{start, start_with_store, RunningServer, StartError};
 
 /// Flags of `probity serve`. Each flag overrides the environment, which overrides the file.
 #[derive(Debug, Clone, Default, clap::Args)]

@@ -102,15 +102,38 @@ fn result(index: usize, id: String, r: OutcomeResult) -> pb::OutcomeResult {
     }
 }
 
+/// Most outcome writes and reports running on blocking threads at once. They share one store behind one lock, so
+/// more would only queue there; and a call that gives up (its deadline passes) while its blocking task waits for
+/// a stalled disk leaves that task running: the limit bounds how many such tasks (and the outcomes they carry) a
+/// stalled disk can pile up. Calls beyond it wait for a slot within their deadline.
+pub const STORE_CALLS_IN_FLIGHT: usize = 4;
+
+/// Runs `f` on the log off the async runtime, holding one of the [`STORE_CALLS_IN_FLIGHT`] slots until it ends.
+async fn on_store<T: Send + 'static>(
+    slots: &Arc<tokio::sync::Semaphore>,
+    log: Arc<PredictionLog>,
+    f: impl FnOnce(&PredictionLog) -> Result<T, crate::store::StoreError> + Send + 'static,
+) -> Result<T, ServeError> {
+    let slot = Arc::clone(slots)
+        .acquire_owned()
+        .await
+        .map_err(|_| ServeError::Log(crate::store::StoreError::Closed))?;
+    tokio::task::spawn_blocking(move || {
+        let _slot = slot;
+        f(&log)
+    })
+    .await
+    .map_err(|_| ServeError::Log(crate::store::StoreError::Closed))?
+    .map_err(ServeError::from)
+}
+
 /// Records outcomes off the async runtime.
 async fn record(
+    slots: &Arc<tokio::sync::Semaphore>,
     log: Arc<PredictionLog>,
     inputs: Vec<OutcomeInput>,
 ) -> Result<Vec<OutcomeResult>, ServeError> {
-    tokio::task::spawn_blocking(move || log.record_outcomes(&inputs))
-        .await
-        .map_err(|_| ServeError::Log(crate::store::StoreError::Closed))?
-        .map_err(ServeError::from)
+    on_store(slots, log, move |log| log.record_outcomes(&inputs)).await
 }
 
 /// The report as its wire message.
@@ -171,6 +194,8 @@ fn filter_of(request: pb::ReportRequest) -> ReportFilter {
 /// The `probity.v1.Outcomes` service.
 pub struct OutcomesApi {
     log: Option<Arc<PredictionLog>>,
+    /// The [`STORE_CALLS_IN_FLIGHT`] slots.
+    slots: Arc<tokio::sync::Semaphore>,
     /// The live routes, for the configured target base rates a report is set against.
     routes: Option<Arc<crate::serve::promotion::RouteTable>>,
 }
@@ -178,7 +203,11 @@ pub struct OutcomesApi {
 impl OutcomesApi {
     /// The service over the log (calls fail with FAILED_PRECONDITION when the log is off).
     pub fn new(log: Option<Arc<PredictionLog>>) -> OutcomesApi {
-        OutcomesApi { log, routes: None }
+        OutcomesApi {
+            log,
+            slots: Arc::new(tokio::sync::Semaphore::new(STORE_CALLS_IN_FLIGHT)),
+            routes: None,
+        }
     }
 
     /// Reports set each route's base-rate estimate against its configured target base rate from `routes`.
@@ -235,7 +264,8 @@ impl pb::outcomes_server::Outcomes for OutcomesApi {
                 ));
             }
             let ids: Vec<String> = outcomes.iter().map(|o| o.prediction_id.clone()).collect();
-            let results = record(log, outcomes.into_iter().map(input).collect()).await?;
+            let results =
+                record(&self.slots, log, outcomes.into_iter().map(input).collect()).await?;
             Ok(pb::RecordOutcomesResponse {
                 results: results
                     .into_iter()
@@ -257,6 +287,7 @@ impl pb::outcomes_server::Outcomes for OutcomesApi {
         request: Request<Streaming<pb::Outcome>>,
     ) -> Result<Response<Self::RecordOutcomeStreamStream>, Status> {
         let log = self.log().map_err(Status::from)?;
+        let slots = Arc::clone(&self.slots);
         let mut inbound = request.into_inner();
         let (tx, rx) = tokio::sync::mpsc::channel(STREAM_CHUNK);
         tokio::spawn(async move {
@@ -285,8 +316,12 @@ impl pb::outcomes_server::Outcomes for OutcomesApi {
                 }
                 let started = Instant::now();
                 let ids: Vec<String> = chunk.iter().map(|o| o.prediction_id.clone()).collect();
-                let written =
-                    record(Arc::clone(&log), chunk.into_iter().map(input).collect()).await;
+                let written = record(
+                    &slots,
+                    Arc::clone(&log),
+                    chunk.into_iter().map(input).collect(),
+                )
+                .await;
                 let code = written
                     .as_ref()
                     .map_or_else(crate::serve::status::code_of, |_| tonic::Code::Ok);
@@ -326,11 +361,18 @@ impl pb::outcomes_server::Outcomes for OutcomesApi {
         let configured = self.configured_base_rates();
         let result = async {
             let log = self.log()?;
-            let report = tokio::task::spawn_blocking(move || {
-                log.with_store(|store| report::build_with(store, &filter, &configured))
-            })
-            .await
-            .map_err(|_| ServeError::Log(crate::store::StoreError::Closed))??;
+            // On the log's reader thread (see PredictionLog::read), holding a slot until it is done.
+            let slot = Arc::clone(&self.slots)
+                .acquire_owned()
+                .await
+                .map_err(|_| ServeError::Log(crate::store::StoreError::Closed))?;
+            let report = log
+                .read(move |store| {
+                    let _slot = slot;
+                    report::build_with(store, &filter, &configured)
+                })
+                .await
+                .map_err(|_| ServeError::Log(crate::store::StoreError::Closed))??;
             Ok(report_response(&report))
         }
         .await;
@@ -364,7 +406,8 @@ pub fn sweep_task(log: Arc<PredictionLog>) -> tokio::task::JoinHandle<()> {
                         tracing::info!(matured, unmatched, removed, "prediction log swept");
                     }
                 }
-                Ok(Err(error)) => tracing::warn!(%error, "prediction log sweep failed"),
+                // Counted and logged (once per kind) by the log itself.
+                Ok(Err(_)) => {}
                 Err(_) => return,
             }
         }

@@ -28,7 +28,7 @@ use crate::serve::scoring::Scorer;
 use crate::serve::security::config::ClientCertificates;
 use crate::serve::security::layer::AccessLayer;
 use crate::serve::security::Security;
-use crate::store::{Clock, PredictionLog, SqliteStore};
+use crate::store::{Clock, PredictionLog, SqliteStore, Store};
 
 /// Why the server did not start.
 #[derive(Debug, thiserror::Error)]
@@ -52,6 +52,12 @@ pub enum StartError {
     /// The prediction log could not be opened.
     #[error("log.directory: {0}")]
     Log(crate::store::StoreError),
+    /// The prediction log's directory cannot be written (read-only file system, permissions).
+    #[error(
+        "log.directory: {0}; the server does not start without the log it is configured to keep: make the \
+         directory writable, or leave out log.directory to run without a log"
+    )]
+    LogNotWritable(crate::store::StoreError),
     /// The reflection service could not be built.
     #[error("reflection: {0}")]
     Reflection(String),
@@ -225,6 +231,23 @@ impl RunningServer {
 
 /// Loads the models, binds both listeners and starts serving.
 pub async fn start(config: Config) -> Result<RunningServer, StartError> {
+    start_inner(config, None).await
+}
+
+/// [`start`] with the prediction log kept in `store` instead of the SQLite file under `log.directory` (the other
+/// `[log]` keys apply; `log.directory`, if given, still holds the route history). For another [`Store`]
+/// implementation, and for tests that need a store which fails or stalls on purpose.
+pub async fn start_with_store(
+    config: Config,
+    store: Box<dyn Store>,
+) -> Result<RunningServer, StartError> {
+    start_inner(config, Some(store)).await
+}
+
+async fn start_inner(
+    config: Config,
+    store: Option<Box<dyn Store>>,
+) -> Result<RunningServer, StartError> {
     let Config {
         grpc_listen,
         metrics_listen,
@@ -265,9 +288,20 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
         tracing::error!(%route, "route not ready at start: its model is not loaded");
     }
 
-    let log = match &log_config.directory {
-        Some(dir) => {
-            let store = SqliteStore::open(dir, log_config.durability).map_err(StartError::Log)?;
+    let log = match (store, &log_config.directory) {
+        (Some(store), _) => Some(PredictionLog::start(
+            store,
+            log_config.clone(),
+            Clock::system(),
+        )),
+        (None, Some(dir)) => {
+            let store =
+                SqliteStore::open(dir, log_config.durability).map_err(|error| match error {
+                    crate::store::StoreError::NotWritable { .. } => {
+                        StartError::LogNotWritable(error)
+                    }
+                    other => StartError::Log(other),
+                })?;
             tracing::info!(dir = %dir.display(), durability = log_config.durability.as_str(), "prediction log open");
             Some(PredictionLog::start(
                 Box::new(store),
@@ -275,7 +309,7 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
                 Clock::system(),
             ))
         }
-        None => None,
+        (None, None) => None,
     };
     let scorer = Arc::new(
         Scorer::new(Arc::clone(&registry), routes, limits)

@@ -21,6 +21,19 @@ impl From<ServeError> for Status {
                 tracing::error!(%field, error = %eval, "engine refused a row the service had checked");
                 format!("{field}: internal error while scoring")
             }
+            ServeError::Log(store)
+                if store.write_failure() != crate::store::WriteFailure::Other =>
+            {
+                // Logged once per kind by the log's failure count (store::faults), not once per call.
+                let why = match store.write_failure() {
+                    crate::store::WriteFailure::DiskFull => "its disk is full",
+                    _ => "its directory is read-only",
+                };
+                format!(
+                    "the prediction log cannot be written now ({why}); nothing of this call was recorded, send it \
+                     again later"
+                )
+            }
             ServeError::Log(store) if code == Code::Internal => {
                 tracing::error!(error = %store, "prediction log failed");
                 "the prediction log failed; the server log has the details".to_string()
@@ -84,13 +97,22 @@ pub fn code_of(error: &ServeError) -> Code {
     }
 }
 
-/// Prediction log errors: a log that is shutting down is unavailable; anything else is ours.
+/// Prediction log errors: a log that is shutting down is unavailable; a full disk is RESOURCE_EXHAUSTED and a
+/// read-only one UNAVAILABLE (both retryable once the operator has made room or remounted; the gRPC status code
+/// list, grpc/doc/statuscodes.md, names "the entire file system is out of space" under RESOURCE_EXHAUSTED);
+/// anything else is ours.
 fn log_code(error: &crate::store::StoreError) -> Code {
-    use crate::store::StoreError;
+    use crate::store::{StoreError, WriteFailure};
+    let by_failure = |error: &StoreError| match error.write_failure() {
+        WriteFailure::DiskFull => Code::ResourceExhausted,
+        WriteFailure::ReadOnly => Code::Unavailable,
+        WriteFailure::Other => Code::Internal,
+    };
     match error {
         StoreError::Closed => Code::Unavailable,
-        StoreError::Database { what: _, source: _ } => Code::Internal,
-        StoreError::Directory { dir: _, source: _ } => Code::Internal,
+        StoreError::Database { what: _, source: _ } => by_failure(error),
+        StoreError::Directory { dir: _, source: _ } => by_failure(error),
+        StoreError::NotWritable { dir: _, source: _ } => by_failure(error),
         StoreError::Schema {
             found: _,
             supported: _,

@@ -21,6 +21,7 @@
 
 pub mod clock;
 pub mod config;
+pub mod faults;
 pub mod running;
 pub mod sqlite;
 pub mod writer;
@@ -254,6 +255,14 @@ pub enum StoreError {
         /// The I/O error.
         source: std::io::Error,
     },
+    /// The data directory exists but no file can be created in it (read-only file system, permissions).
+    #[error("prediction log directory {dir} is not writable ({source})")]
+    NotWritable {
+        /// The directory.
+        dir: String,
+        /// The I/O error of the probe file.
+        source: std::io::Error,
+    },
     /// The log file was written by a newer probity with a different layout.
     #[error(
         "prediction log schema version {found} is not supported (this build reads {supported})"
@@ -267,6 +276,63 @@ pub enum StoreError {
     /// The writer thread is gone (the server is stopping).
     #[error("the prediction log is closed")]
     Closed,
+}
+
+/// Why a write to the log failed, as counted (`reason` label) and logged. Anything but a full disk and a
+/// read-only (or otherwise unwritable) file system is `Other`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash)]
+pub enum WriteFailure {
+    /// No space left on the device (`SQLITE_FULL`, `ENOSPC`).
+    DiskFull,
+    /// The file system or the database file is read-only, or the directory is not writable (`SQLITE_READONLY`,
+    /// `EROFS`, `EACCES`).
+    ReadOnly,
+    /// Any other database or I/O error.
+    Other,
+}
+
+impl WriteFailure {
+    /// The metric label.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            WriteFailure::DiskFull => "disk_full",
+            WriteFailure::ReadOnly => "read_only",
+            WriteFailure::Other => "write_error",
+        }
+    }
+
+    pub(crate) fn of_io(error: &std::io::Error) -> WriteFailure {
+        match error.kind() {
+            std::io::ErrorKind::StorageFull => WriteFailure::DiskFull,
+            std::io::ErrorKind::ReadOnlyFilesystem | std::io::ErrorKind::PermissionDenied => {
+                WriteFailure::ReadOnly
+            }
+            _ => WriteFailure::Other,
+        }
+    }
+}
+
+impl StoreError {
+    /// What kind of write failure this is.
+    pub fn write_failure(&self) -> WriteFailure {
+        match self {
+            StoreError::Database { what: _, source } => match source.sqlite_error_code() {
+                Some(rusqlite::ErrorCode::DiskFull) => WriteFailure::DiskFull,
+                Some(rusqlite::ErrorCode::ReadOnly) => WriteFailure::ReadOnly,
+                _ => WriteFailure::Other,
+            },
+            StoreError::Directory { dir: _, source } => WriteFailure::of_io(source),
+            StoreError::NotWritable { dir: _, source } => match WriteFailure::of_io(source) {
+                WriteFailure::DiskFull => WriteFailure::DiskFull,
+                WriteFailure::ReadOnly | WriteFailure::Other => WriteFailure::ReadOnly,
+            },
+            StoreError::Schema {
+                found: _,
+                supported: _,
+            }
+            | StoreError::Closed => WriteFailure::Other,
+        }
+    }
 }
 
 /// The storage interface of the prediction log. Every method is one transaction: it either happens whole or not

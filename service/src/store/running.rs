@@ -51,7 +51,8 @@ pub const UNMATCHED: &str = "probity_outcomes_unmatched_total";
 pub const MATURED: &str = "probity_outcomes_matured_total";
 /// Predictions written to the log, by route.
 pub const WRITTEN: &str = "probity_log_predictions_written_total";
-/// Predictions not written, by route and reason (`queue_full`, `closed`, `write_error`, `duplicate_id`).
+/// Predictions not written, by route and reason (`queue_full`, `closed`, `disk_full`, `read_only`, `write_error`,
+/// `duplicate_id`).
 pub const DROPPED: &str = "probity_log_predictions_dropped_total";
 /// Predictions waiting in the queue.
 pub const QUEUE_DEPTH: &str = "probity_log_queue_depth";

@@ -93,6 +93,8 @@ impl Durability {
 /// The embedded prediction log.
 pub struct SqliteStore {
     conn: Connection,
+    /// The data directory, probed when a write fails with an I/O error.
+    dir: std::path::PathBuf,
 }
 
 fn db(what: &'static str) -> impl Fn(rusqlite::Error) -> StoreError {
@@ -100,14 +102,19 @@ fn db(what: &'static str) -> impl Fn(rusqlite::Error) -> StoreError {
 }
 
 impl SqliteStore {
-    /// Opens (creating if needed) `predictions.db` in `dir`.
+    /// Opens (creating if needed) `predictions.db` in `dir`. A directory in which no file can be created
+    /// (read-only file system, permissions) is refused with [`StoreError::NotWritable`] before SQLite sees it.
     pub fn open(dir: &Path, durability: Durability) -> Result<SqliteStore, StoreError> {
-        std::fs::create_dir_all(dir).map_err(|source| StoreError::Directory {
-            dir: dir.display().to_string(),
-            source,
+        std::fs::create_dir_all(dir).map_err(|source| {
+            let dir = dir.display().to_string();
+            match super::WriteFailure::of_io(&source) {
+                super::WriteFailure::ReadOnly => StoreError::NotWritable { dir, source },
+                _ => StoreError::Directory { dir, source },
+            }
         })?;
+        probe_writable(dir)?;
         let conn = Connection::open(dir.join(FILE_NAME)).map_err(db("open"))?;
-        Self::init(conn, durability)
+        Self::init(conn, durability, dir)
     }
 
     /// Opens an existing log read-only-in-spirit for a report (it still may replay the WAL).
@@ -117,10 +124,18 @@ impl SqliteStore {
             rusqlite::OpenFlags::SQLITE_OPEN_READ_WRITE | rusqlite::OpenFlags::SQLITE_OPEN_NO_MUTEX,
         )
         .map_err(db("open"))?;
-        Self::init(conn, Durability::Normal)
+        Self::init(
+            conn,
+            Durability::Normal,
+            file.parent().unwrap_or_else(|| Path::new(".")),
+        )
     }
 
-    fn init(conn: Connection, durability: Durability) -> Result<SqliteStore, StoreError> {
+    fn init(
+        conn: Connection,
+        durability: Durability,
+        dir: &Path,
+    ) -> Result<SqliteStore, StoreError> {
         conn.pragma_update(None, "journal_mode", "WAL")
             .map_err(db("journal mode"))?;
         conn.pragma_update(None, "synchronous", durability.as_str())
@@ -137,10 +152,58 @@ impl SqliteStore {
             });
         }
         conn.execute_batch(SCHEMA).map_err(db("create tables"))?;
-        conn.pragma_update(None, "user_version", SCHEMA_VERSION)
-            .map_err(db("schema version"))?;
-        Ok(SqliteStore { conn })
+        if found != SCHEMA_VERSION {
+            // Written only when it changes, so an existing log opens without a write (on a full disk too).
+            conn.pragma_update(None, "user_version", SCHEMA_VERSION)
+                .map_err(db("schema version"))?;
+        }
+        Ok(SqliteStore {
+            conn,
+            dir: dir.to_path_buf(),
+        })
     }
+
+    /// SQLite reports a write refused by the operating system as a plain I/O error (`SQLITE_IOERR`) without its
+    /// cause; a file system that turned read-only under a running server (ext4 `errors=remount-ro`, say) shows up
+    /// that way. After such an error the directory is probed: if no file can be created in it the error becomes
+    /// [`StoreError::NotWritable`] (counted as `read_only`), or a directory error with the probe's cause (a full
+    /// disk counts as `disk_full`).
+    fn diagnosed(&self, error: StoreError) -> StoreError {
+        let StoreError::Database { what: _, source } = &error else {
+            return error;
+        };
+        if !matches!(
+            source.sqlite_error_code(),
+            Some(rusqlite::ErrorCode::SystemIoFailure | rusqlite::ErrorCode::CannotOpen)
+        ) {
+            return error;
+        }
+        match probe_writable(&self.dir) {
+            Err(StoreError::NotWritable { dir, source })
+                if super::WriteFailure::of_io(&source) == super::WriteFailure::DiskFull =>
+            {
+                StoreError::Directory { dir, source }
+            }
+            Err(probe) => probe,
+            Ok(()) => error,
+        }
+    }
+}
+
+/// Creates and removes an empty file in `dir`: SQLite needs to create its journal files there, and its own error
+/// for a read-only directory does not name the directory.
+fn probe_writable(dir: &Path) -> Result<(), StoreError> {
+    let probe = dir.join(".probity-write-check");
+    std::fs::OpenOptions::new()
+        .write(true)
+        .create(true)
+        .truncate(true)
+        .open(&probe)
+        .and_then(|_| std::fs::remove_file(&probe))
+        .map_err(|source| StoreError::NotWritable {
+            dir: dir.display().to_string(),
+            source,
+        })
 }
 
 /// A prediction's facts needed to settle it.
@@ -220,6 +283,67 @@ impl Store for SqliteStore {
         &mut self,
         records: &[PredictionRecord],
     ) -> Result<(Vec<bool>, Vec<Settled>), StoreError> {
+        let r = self.insert_predictions_inner(records);
+        r.map_err(|e| self.diagnosed(e))
+    }
+
+    fn register_model(&mut self, info: &ModelVersionInfo) -> Result<(), StoreError> {
+        let r = self.register_model_inner(info);
+        r.map_err(|e| self.diagnosed(e))
+    }
+
+    fn record_outcomes(
+        &mut self,
+        outcomes: &[OutcomeInput],
+        now_ms: i64,
+    ) -> Result<(Vec<OutcomeResult>, Vec<Settled>), StoreError> {
+        let r = self.record_outcomes_inner(outcomes, now_ms);
+        r.map_err(|e| self.diagnosed(e))
+    }
+
+    fn settle_matured(
+        &mut self,
+        maturity_ms: &BTreeMap<String, i64>,
+        now_ms: i64,
+        limit: usize,
+    ) -> Result<Vec<Settled>, StoreError> {
+        let r = self.settle_matured_inner(maturity_ms, now_ms, limit);
+        r.map_err(|e| self.diagnosed(e))
+    }
+
+    fn expire_pending(&mut self, hold_ms: i64, now_ms: i64) -> Result<u64, StoreError> {
+        let r = self.expire_pending_inner(hold_ms, now_ms);
+        r.map_err(|e| self.diagnosed(e))
+    }
+
+    fn remove_expired(&mut self, retention_ms: i64, now_ms: i64) -> Result<u64, StoreError> {
+        let r = self.remove_expired_inner(retention_ms, now_ms);
+        r.map_err(|e| self.diagnosed(e))
+    }
+
+    fn load(&mut self, filter: &ReportFilter) -> Result<Vec<LoggedPrediction>, StoreError> {
+        self.load_inner(filter)
+    }
+
+    fn model_version(
+        &mut self,
+        model: &str,
+        version: &str,
+    ) -> Result<Option<ModelVersionInfo>, StoreError> {
+        self.model_version_inner(model, version)
+    }
+
+    fn outcome_counts(&mut self) -> Result<OutcomeCounts, StoreError> {
+        self.outcome_counts_inner()
+    }
+}
+
+/// The operations, before [`SqliteStore::diagnosed`] looks at their errors.
+impl SqliteStore {
+    fn insert_predictions_inner(
+        &mut self,
+        records: &[PredictionRecord],
+    ) -> Result<(Vec<bool>, Vec<Settled>), StoreError> {
         let tx = self.conn.transaction().map_err(db("begin"))?;
         let mut written = Vec::with_capacity(records.len());
         let mut pairs = Vec::new();
@@ -280,7 +404,7 @@ impl Store for SqliteStore {
         Ok((written, pairs))
     }
 
-    fn register_model(&mut self, info: &ModelVersionInfo) -> Result<(), StoreError> {
+    fn register_model_inner(&mut self, info: &ModelVersionInfo) -> Result<(), StoreError> {
         let text = serde_json::to_string(info).unwrap_or_else(|_| "{}".into());
         self.conn
             .execute(
@@ -291,7 +415,7 @@ impl Store for SqliteStore {
         Ok(())
     }
 
-    fn record_outcomes(
+    fn record_outcomes_inner(
         &mut self,
         outcomes: &[OutcomeInput],
         now_ms: i64,
@@ -400,7 +524,7 @@ impl Store for SqliteStore {
         Ok((results, pairs))
     }
 
-    fn settle_matured(
+    fn settle_matured_inner(
         &mut self,
         maturity_ms: &BTreeMap<String, i64>,
         now_ms: i64,
@@ -455,7 +579,7 @@ impl Store for SqliteStore {
         Ok(pairs)
     }
 
-    fn expire_pending(&mut self, hold_ms: i64, now_ms: i64) -> Result<u64, StoreError> {
+    fn expire_pending_inner(&mut self, hold_ms: i64, now_ms: i64) -> Result<u64, StoreError> {
         let n = self
             .conn
             .execute(
@@ -466,7 +590,7 @@ impl Store for SqliteStore {
         Ok(n as u64)
     }
 
-    fn remove_expired(&mut self, retention_ms: i64, now_ms: i64) -> Result<u64, StoreError> {
+    fn remove_expired_inner(&mut self, retention_ms: i64, now_ms: i64) -> Result<u64, StoreError> {
         let tx = self.conn.transaction().map_err(db("begin"))?;
         let cutoff = now_ms - retention_ms;
         let n = tx
@@ -488,7 +612,7 @@ impl Store for SqliteStore {
         Ok(n as u64)
     }
 
-    fn load(&mut self, filter: &ReportFilter) -> Result<Vec<LoggedPrediction>, StoreError> {
+    fn load_inner(&mut self, filter: &ReportFilter) -> Result<Vec<LoggedPrediction>, StoreError> {
         let mut stmt = self
             .conn
             .prepare(
@@ -536,7 +660,7 @@ impl Store for SqliteStore {
         Ok(rows)
     }
 
-    fn model_version(
+    fn model_version_inner(
         &mut self,
         model: &str,
         version: &str,
@@ -553,7 +677,7 @@ impl Store for SqliteStore {
         Ok(text.and_then(|t| serde_json::from_str(&t).ok()))
     }
 
-    fn outcome_counts(&mut self) -> Result<OutcomeCounts, StoreError> {
+    fn outcome_counts_inner(&mut self) -> Result<OutcomeCounts, StoreError> {
         let count = |state: &str| -> Result<u64, StoreError> {
             let n: i64 = self
                 .conn
