@@ -11,6 +11,12 @@
 //! `--server-pid`, the server's CPU time per call and its resident memory sampled during the run. With `--ca-file`
 //! (and optionally `--client-cert`/`--client-key`, `--token-file`) it calls a TLS server through the same connector
 //! as the command-line tools (`probity::client`).
+//!
+//! `probity-load soak --minutes 10` starts a `probity serve` of its own and runs a sustained mixed load against
+//! it (scoring, outcome streams, reloads, reports), failing on any failed request, a stalled p99 or growing
+//! memory ([`soak`]).
+
+mod soak;
 
 use std::collections::HashMap;
 use std::path::PathBuf;
@@ -47,6 +53,8 @@ enum Command {
     },
     /// Sends Score calls and reports throughput and latency.
     Run(RunArgs),
+    /// Starts a server and runs a sustained mixed load against it (scoring, outcome streams, reloads, reports).
+    Soak(soak::SoakArgs),
 }
 
 #[derive(clap::Args)]
@@ -109,15 +117,21 @@ struct RunArgs {
     tls_server_name: Option<String>,
 }
 
-fn main() -> Result<()> {
+fn main() -> Result<std::process::ExitCode> {
     let args = Args::parse();
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .enable_all()
         .build()?;
     match args.command {
-        Command::Bare { listen } => runtime.block_on(bare(listen)),
-        Command::Run(run_args) => runtime.block_on(run(run_args)),
+        Command::Bare { listen } => runtime.block_on(bare(listen))?,
+        Command::Run(run_args) => runtime.block_on(run(run_args))?,
+        Command::Soak(soak_args) => {
+            if !runtime.block_on(soak::soak(soak_args))? {
+                return Ok(std::process::ExitCode::FAILURE);
+            }
+        }
     }
+    Ok(std::process::ExitCode::SUCCESS)
 }
 
 // ------------------------------------------------------------------------------------------------ bare server
