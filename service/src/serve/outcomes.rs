@@ -108,22 +108,25 @@ fn result(index: usize, id: String, r: OutcomeResult) -> pb::OutcomeResult {
 /// stalled disk can pile up. Calls beyond it wait for a slot within their deadline.
 pub const STORE_CALLS_IN_FLIGHT: usize = 4;
 
-/// Runs `f` on the log off the async runtime, holding one of the [`STORE_CALLS_IN_FLIGHT`] slots until it ends.
+/// Runs `f` on the log's thread for calls ([`PredictionLog::on_thread`]), off the async runtime, holding one of
+/// the [`STORE_CALLS_IN_FLIGHT`] slots until it ends.
 async fn on_store<T: Send + 'static>(
     slots: &Arc<tokio::sync::Semaphore>,
     log: Arc<PredictionLog>,
     f: impl FnOnce(&PredictionLog) -> Result<T, crate::store::StoreError> + Send + 'static,
 ) -> Result<T, ServeError> {
+    let closed = || ServeError::Log(crate::store::StoreError::Closed);
     let slot = Arc::clone(slots)
         .acquire_owned()
         .await
-        .map_err(|_| ServeError::Log(crate::store::StoreError::Closed))?;
-    tokio::task::spawn_blocking(move || {
+        .map_err(|_| closed())?;
+    let on = Arc::clone(&log);
+    log.on_thread(move || {
         let _slot = slot;
-        f(&log)
+        f(&on)
     })
     .await
-    .map_err(|_| ServeError::Log(crate::store::StoreError::Closed))?
+    .map_err(|_| closed())?
     .map_err(ServeError::from)
 }
 
@@ -361,18 +364,10 @@ impl pb::outcomes_server::Outcomes for OutcomesApi {
         let configured = self.configured_base_rates();
         let result = async {
             let log = self.log()?;
-            // On the log's reader thread (see PredictionLog::read), holding a slot until it is done.
-            let slot = Arc::clone(&self.slots)
-                .acquire_owned()
-                .await
-                .map_err(|_| ServeError::Log(crate::store::StoreError::Closed))?;
-            let report = log
-                .read(move |store| {
-                    let _slot = slot;
-                    report::build_with(store, &filter, &configured)
-                })
-                .await
-                .map_err(|_| ServeError::Log(crate::store::StoreError::Closed))??;
+            let report = on_store(&self.slots, log, move |log| {
+                log.with_store(|store| report::build_with(store, &filter, &configured))
+            })
+            .await?;
             Ok(report_response(&report))
         }
         .await;

@@ -47,8 +47,8 @@ pub struct Queued {
     pub facts: Arc<dyn ModelFacts>,
 }
 
-/// A read run on the reader thread.
-type ReadJob = Box<dyn FnOnce() + Send>;
+/// A call run on the log's thread for calls.
+type CallJob = Box<dyn FnOnce() + Send>;
 
 enum Message {
     Record(Box<Queued>),
@@ -66,7 +66,7 @@ pub struct PredictionLog {
     writer: Mutex<Option<JoinHandle<()>>>,
     estimates: running::LatestEstimates,
     failures: Arc<Failures>,
-    reader: Mutex<Option<mpsc::Sender<ReadJob>>>,
+    calls: Mutex<Option<mpsc::Sender<CallJob>>>,
 }
 
 fn lock(store: &Mutex<Box<dyn Store>>) -> MutexGuard<'_, Box<dyn Store>> {
@@ -100,9 +100,9 @@ impl PredictionLog {
             .ok();
         running::describe();
         Failures::describe();
-        let (reader, jobs) = mpsc::channel::<ReadJob>();
+        let (calls, jobs) = mpsc::channel::<CallJob>();
         let _ = std::thread::Builder::new()
-            .name("probity-log-reader".into())
+            .name("probity-log-calls".into())
             .spawn(move || {
                 while let Ok(job) = jobs.recv() {
                     job();
@@ -110,7 +110,7 @@ impl PredictionLog {
             });
         Arc::new(PredictionLog {
             failures,
-            reader: Mutex::new(Some(reader)),
+            calls: Mutex::new(Some(calls)),
             sender: Mutex::new(Some(sender)),
             store,
             config,
@@ -211,27 +211,38 @@ impl PredictionLog {
         f(guard.as_mut())
     }
 
-    /// Runs `f` on the store on the log's reader thread, one read at a time, and returns its answer through the
-    /// receiver. For reads that hold many rows (reports, comparisons): glibc's allocator keeps what a thread frees
-    /// for that thread's arena, so such reads spread over a pool of threads each leave a read's worth of memory
-    /// behind in another arena (the soak measured a server's resident memory climbing from 30 to over 180 MiB with
-    /// a report every 5 s, and flat at 43 MiB with one arena); on one thread they reuse the same memory.
+    /// Runs `f` on the log's own thread for calls (one at a time) and returns its answer through the receiver.
+    /// Outcome writes, reports and comparisons run there: they share one store behind one lock anyway, and
+    /// glibc's allocator keeps what a thread frees for that thread's arena, so such calls spread over a pool of
+    /// threads each leave their working set behind in another arena (the soak measured a server's resident memory
+    /// climbing from 30 to over 180 MiB with a report every 5 s, and flat at 43 MiB on one arena). On one thread
+    /// they reuse the same memory.
+    pub fn on_thread<T: Send + 'static>(
+        &self,
+        f: impl FnOnce() -> T + Send + 'static,
+    ) -> tokio::sync::oneshot::Receiver<T> {
+        let (answer, receiver) = tokio::sync::oneshot::channel();
+        let job: CallJob = Box::new(move || {
+            let _ = answer.send(f());
+        });
+        let calls = self.calls.lock().unwrap_or_else(|e| e.into_inner());
+        // A closed thread drops the job, and with it the sender: the receiver then reports the log closed.
+        if let Some(calls) = calls.as_ref() {
+            let _ = calls.send(job);
+        }
+        receiver
+    }
+
+    /// Runs `f` on the store on the log's thread for calls ([`PredictionLog::on_thread`]).
     pub fn read<T: Send + 'static>(
         &self,
         f: impl FnOnce(&mut dyn Store) -> Result<T, StoreError> + Send + 'static,
     ) -> tokio::sync::oneshot::Receiver<Result<T, StoreError>> {
-        let (answer, receiver) = tokio::sync::oneshot::channel();
         let store = Arc::clone(&self.store);
-        let job: ReadJob = Box::new(move || {
+        self.on_thread(move || {
             let mut guard = lock(&store);
-            let _ = answer.send(f(guard.as_mut()));
-        });
-        let reader = self.reader.lock().unwrap_or_else(|e| e.into_inner());
-        // A closed reader drops the job, and with it the sender: the receiver then reports the log closed.
-        if let Some(reader) = reader.as_ref() {
-            let _ = reader.send(job);
-        }
-        receiver
+            f(guard.as_mut())
+        })
     }
 
     /// [`PredictionLog::read`], waiting for the answer (blocking; call off the async runtime).
@@ -290,8 +301,8 @@ impl PredictionLog {
     pub fn close(&self) {
         let sender = self.sender.lock().unwrap_or_else(|e| e.into_inner()).take();
         drop(sender);
-        // The reader thread ends after the reads already asked for.
-        drop(self.reader.lock().unwrap_or_else(|e| e.into_inner()).take());
+        // The thread for calls ends after the calls already asked for.
+        drop(self.calls.lock().unwrap_or_else(|e| e.into_inner()).take());
         if let Some(handle) = self.writer.lock().unwrap_or_else(|e| e.into_inner()).take() {
             let _ = handle.join();
         }
