@@ -336,6 +336,13 @@ fn outcome() -> pb::Outcome {
     }
 }
 
+/// Connects with `args` and calls `path` once; either failure as text (a refused handshake is the point of the
+/// tests that use it).
+async fn connect_and_call(args: &ConnectArgs, path: &str) -> Result<(), String> {
+    let conn = args.connect().await.map_err(|e| e.to_string())?;
+    call(&conn, path).await.map_err(|s| s.to_string())
+}
+
 /// Calls `path` once with a valid request; `Ok` when the server answered OK.
 async fn call(conn: &Connection, path: &str) -> Result<(), tonic::Status> {
     use tonic_reflection::pb::{v1, v1alpha};
@@ -651,26 +658,14 @@ async fn tls_with_tokens_every_role_against_every_method() {
         server: format!("http://127.0.0.1:{}", addr.port()),
         ..ConnectArgs::default()
     };
-    let result = async {
-        let conn = plain.connect().await.map_err(|e| e.to_string())?;
-        call(&conn, "/grpc.health.v1.Health/Check")
-            .await
-            .map_err(|s| s.to_string())
-    }
-    .await;
+    let result = connect_and_call(&plain, "/grpc.health.v1.Health/Check").await;
     assert!(result.is_err(), "plain text reached a TLS server");
     // And a TLS client that does not trust the server's CA cannot either.
     let other_ca = ca("another CA");
     std::fs::write(setup.path("certs/other-ca.crt"), &other_ca.pem).unwrap();
     let mut untrusting = setup.connect(addr, Some("t-admin"), None);
     untrusting.ca_file = Some(setup.path("certs/other-ca.crt"));
-    let result = async {
-        let conn = untrusting.connect().await.map_err(|e| e.to_string())?;
-        call(&conn, "/grpc.health.v1.Health/Check")
-            .await
-            .map_err(|s| s.to_string())
-    }
-    .await;
+    let result = connect_and_call(&untrusting, "/grpc.health.v1.Health/Check").await;
     assert!(
         result.is_err(),
         "a client accepted a certificate from a CA it does not trust"
@@ -707,16 +702,10 @@ async fn mutual_tls_certificate_identities_against_every_method() {
     )
     .await;
     // Required: no certificate, no connection (even with a good token, even for health).
-    let result = async {
-        let conn = setup
-            .connect(addr, Some("t-admin"), None)
-            .connect()
-            .await
-            .map_err(|e| e.to_string())?;
-        call(&conn, "/grpc.health.v1.Health/Check")
-            .await
-            .map_err(|s| s.to_string())
-    }
+    let result = connect_and_call(
+        &setup.connect(addr, Some("t-admin"), None),
+        "/grpc.health.v1.Health/Check",
+    )
     .await;
     assert!(
         result.is_err(),
@@ -732,13 +721,7 @@ async fn mutual_tls_certificate_identities_against_every_method() {
     let mut foreign = setup.connect(addr, None, None);
     foreign.client_cert = Some(c);
     foreign.client_key = Some(k);
-    let result = async {
-        let conn = foreign.connect().await.map_err(|e| e.to_string())?;
-        call(&conn, "/probity.v1.Models/Reload")
-            .await
-            .map_err(|s| s.to_string())
-    }
-    .await;
+    let result = connect_and_call(&foreign, "/probity.v1.Models/Reload").await;
     assert!(
         result.is_err(),
         "a certificate from a foreign CA got through"
