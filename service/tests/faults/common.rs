@@ -191,6 +191,22 @@ impl Spawned {
             .unwrap()
     }
 
+    /// The (operation, reason) of every "prediction log write failed" line, sorted.
+    pub fn write_failure_kinds(&self) -> Vec<(String, String)> {
+        let mut kinds: Vec<(String, String)> = self
+            .logged("prediction log write failed")
+            .iter()
+            .map(|v| {
+                (
+                    v["operation"].as_str().unwrap().to_string(),
+                    v["reason"].as_str().unwrap().to_string(),
+                )
+            })
+            .collect();
+        kinds.sort();
+        kinds
+    }
+
     /// The log lines whose `message` starts with `prefix`.
     pub fn logged(&self, prefix: &str) -> Vec<Value> {
         self.lines

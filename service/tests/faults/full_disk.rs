@@ -131,18 +131,7 @@ async fn a_full_disk_is_a_counted_logging_failure_scoring_goes_on_and_the_log_re
     );
 
     // An outcome call cannot be recorded: the caller is told, with a retryable code, and nothing is kept.
-    let refused = outcomes
-        .record_outcomes(pb::RecordOutcomesRequest {
-            outcomes: (0..300)
-                .map(|i| pb::Outcome {
-                    prediction_id: format!("a-{i}"),
-                    label: i % 3 == 0,
-                    outcome_time_unix_ms: 0,
-                })
-                .collect(),
-        })
-        .await
-        .unwrap_err();
+    let refused = outcomes.record_outcomes(outcomes_a()).await.unwrap_err();
     assert_eq!(
         refused.code(),
         tonic::Code::ResourceExhausted,
@@ -178,18 +167,8 @@ async fn a_full_disk_is_a_counted_logging_failure_scoring_goes_on_and_the_log_re
         "more batches failed"
     );
     let failures = server.logged("prediction log write failed");
-    let mut kinds: Vec<(String, String)> = failures
-        .iter()
-        .map(|v| {
-            (
-                v["operation"].as_str().unwrap().to_string(),
-                v["reason"].as_str().unwrap().to_string(),
-            )
-        })
-        .collect();
-    kinds.sort();
     assert_eq!(
-        kinds,
+        server.write_failure_kinds(),
         [
             ("outcomes".to_string(), "disk_full".to_string()),
             ("predictions".to_string(), "disk_full".to_string())
@@ -206,15 +185,7 @@ async fn a_full_disk_is_a_counted_logging_failure_scoring_goes_on_and_the_log_re
     })
     .await;
     let accepted = outcomes
-        .record_outcomes(pb::RecordOutcomesRequest {
-            outcomes: (0..300)
-                .map(|i| pb::Outcome {
-                    prediction_id: format!("a-{i}"),
-                    label: i % 3 == 0,
-                    outcome_time_unix_ms: 0,
-                })
-                .collect(),
-        })
+        .record_outcomes(outcomes_a())
         .await
         .unwrap()
         .into_inner();
@@ -250,4 +221,17 @@ async fn a_full_disk_is_a_counted_logging_failure_scoring_goes_on_and_the_log_re
 
     // No crash: a clean stop.
     assert!(server.terminate().success());
+}
+
+/// Outcomes for the 300 predictions `a-0..a-299`, every third positive.
+fn outcomes_a() -> pb::RecordOutcomesRequest {
+    pb::RecordOutcomesRequest {
+        outcomes: (0..300)
+            .map(|i| pb::Outcome {
+                prediction_id: format!("a-{i}"),
+                label: i % 3 == 0,
+                outcome_time_unix_ms: 0,
+            })
+            .collect(),
+    }
 }

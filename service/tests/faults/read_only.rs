@@ -271,19 +271,8 @@ async fn a_file_system_turning_read_only_under_the_server_is_counted_and_scoring
         .unwrap()
         .into_inner();
     assert_eq!(report.series[0].predictions, 200);
-    let mut kinds: Vec<(String, String)> = server
-        .logged("prediction log write failed")
-        .iter()
-        .map(|v| {
-            (
-                v["operation"].as_str().unwrap().to_string(),
-                v["reason"].as_str().unwrap().to_string(),
-            )
-        })
-        .collect();
-    kinds.sort();
     assert_eq!(
-        kinds,
+        server.write_failure_kinds(),
         [
             ("outcomes".to_string(), "read_only".to_string()),
             ("predictions".to_string(), "read_only".to_string())
