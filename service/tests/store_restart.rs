@@ -90,10 +90,17 @@ impl Server {
         )
     }
 
-    fn kill(mut self) {
-        // SIGKILL: no drain, no flush.
-        self.child.kill().unwrap();
-        self.child.wait().unwrap();
+    fn kill(self) {
+        // SIGKILL: no drain, no flush (Drop does it).
+        drop(self);
+    }
+}
+
+impl Drop for Server {
+    /// SIGKILL and reap, also when an assertion fails first: a failed test leaves no server running.
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
     }
 }
 
@@ -572,11 +579,16 @@ async fn sigkill_under_mixed_load_keeps_every_committed_record_and_matching_exac
     }
     let outcomes_now = outcome_rows(&db);
     for (id, label) in &acknowledged {
-        let (stored, state) = outcomes_now
+        let (stored, _) = outcomes_now
             .get(id)
             .unwrap_or_else(|| panic!("acknowledged outcome {id} is not in the log"));
         assert_eq!(stored, label, "{id}");
-        // Matched exactly when its prediction is in the log.
+    }
+    // Outcomes committed whose answer the kill cut off are there too, as sent: only for answered ids. Every stored
+    // outcome, acknowledged or not, is matched exactly when its prediction is in the log.
+    for (id, (label, state)) in &outcomes_now {
+        assert!(answered.contains_key(id), "outcome for {id} was never sent");
+        assert_eq!(*label, label_of(id), "{id}");
         let expected = if logged.contains_key(id) {
             "matched"
         } else {
@@ -584,17 +596,13 @@ async fn sigkill_under_mixed_load_keeps_every_committed_record_and_matching_exac
         };
         assert_eq!(state, expected, "{id}");
     }
-    // Outcomes committed whose answer the kill cut off are there too, as sent: only for answered ids.
-    for (id, (label, _)) in &outcomes_now {
-        assert!(answered.contains_key(id), "outcome for {id} was never sent");
-        assert_eq!(*label, label_of(id), "{id}");
-    }
 
-    // The report agrees with the ground truth: outcomes on logged predictions, positives among them.
-    let truth_pairs: Vec<bool> = acknowledged
+    // The report agrees with what the log holds after the restart: every stored outcome on a logged prediction
+    // (the acknowledged ones and those committed just before the kill cut off their answer), positives among them.
+    let truth_pairs: Vec<bool> = outcomes_now
         .iter()
         .filter(|(id, _)| logged.contains_key(*id))
-        .map(|(_, l)| *l)
+        .map(|(_, (l, _))| *l)
         .collect();
     let sums = |r: &Value| -> (u64, u64, f64) {
         let mut n = (0, 0, 0.0);
