@@ -63,6 +63,8 @@ fn run() -> anyhow::Result<()> {
 fn main() -> ExitCode {
     match run() {
         Ok(()) => ExitCode::SUCCESS,
+        // The reader of a pipe exited early (`probity report --json | head`): nothing more to say.
+        Err(err) if cli::is_broken_pipe(&err) => ExitCode::SUCCESS,
         Err(err) => {
             // One line: the error and its causes, outermost first.
             eprintln!("error: {err:#}");

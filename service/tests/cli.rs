@@ -158,6 +158,9 @@ fn assert_same_as_library(
         s(out),
     ];
     args.extend_from_slice(flags);
+    if !flags.contains(&"--target-base-rate") {
+        args.push("--keep-training-base-rate");
+    }
     ok(&args);
     let model = load(model_file);
     let (in_header, in_rows) = read_csv(input);
@@ -254,6 +257,7 @@ fn score_output_equals_the_library_bit_for_bit() {
     // --keep-columns copies every input column before the scores.
     ok(&[
         "score",
+        "--keep-training-base-rate",
         "-q",
         "--model",
         s(&data("small-trees.json")),
@@ -347,6 +351,7 @@ fn threshold_and_cost_decisions() {
     // Rules that make no sense are refused before any row is read.
     let bad = probity(&[
         "score",
+        "--keep-training-base-rate",
         "--model",
         s(&data("small-trees.json")),
         "--input",
@@ -360,6 +365,7 @@ fn threshold_and_cost_decisions() {
     assert!(stderr(&bad).contains("threshold"), "{}", stderr(&bad));
     let both = probity(&[
         "score",
+        "--keep-training-base-rate",
         "--model",
         "m",
         "--input",
@@ -388,6 +394,7 @@ fn a_bad_cell_is_named_by_row_line_and_column() {
     let out = dir.path().join("out.csv");
     let o = probity(&[
         "score",
+        "--keep-training-base-rate",
         "--model",
         s(&data("small-trees.json")),
         "--input",
@@ -413,6 +420,7 @@ fn a_bad_cell_is_named_by_row_line_and_column() {
     .unwrap();
     let o = probity(&[
         "score",
+        "--keep-training-base-rate",
         "--model",
         s(&data("small-scorecard.json")),
         "--input",
@@ -441,6 +449,7 @@ fn a_missing_feature_column_is_an_error_unless_allowed() {
     let model = data("small-scorecard.json");
     let o = probity(&[
         "score",
+        "--keep-training-base-rate",
         "--model",
         s(&model),
         "--input",
@@ -453,6 +462,7 @@ fn a_missing_feature_column_is_an_error_unless_allowed() {
 
     ok(&[
         "score",
+        "--keep-training-base-rate",
         "-q",
         "--allow-missing-columns",
         "--model",
@@ -677,6 +687,7 @@ fn an_explicit_id_column_must_exist() {
     let out = dir.path().join("out.csv");
     let o = probity(&[
         "score",
+        "--keep-training-base-rate",
         "--model",
         s(&data("small-trees.json")),
         "--input",
@@ -690,6 +701,7 @@ fn an_explicit_id_column_must_exist() {
     assert!(stderr(&o).contains("txn_ref"), "{}", stderr(&o));
     ok(&[
         "score",
+        "--keep-training-base-rate",
         "-q",
         "--model",
         s(&data("small-trees.json")),
@@ -702,4 +714,168 @@ fn an_explicit_id_column_must_exist() {
     ]);
     let (h, _) = read_csv(&out);
     assert_eq!(&h[0], "channel");
+}
+
+#[test]
+fn score_without_a_base_rate_is_refused_naming_the_training_rate() {
+    let dir = tempfile::tempdir().unwrap();
+    let input = demo_csv(dir.path(), 50, 3, &[]);
+    let out = dir.path().join("out.csv");
+    let model = data("small-trees.json");
+    let o = probity(&[
+        "score",
+        "--model",
+        s(&model),
+        "--input",
+        s(&input),
+        "--output",
+        s(&out),
+    ]);
+    assert_eq!(o.status.code(), Some(1));
+    let err = stderr(&o);
+    let rate = load("small-trees.json").base_rate().to_string();
+    assert!(err.contains(&rate), "{err}");
+    assert!(
+        err.contains("--target-base-rate") && err.contains("--keep-training-base-rate"),
+        "{err}"
+    );
+    assert!(!out.exists());
+}
+
+#[test]
+fn score_never_writes_over_its_input_and_a_failed_run_leaves_the_old_output() {
+    let dir = tempfile::tempdir().unwrap();
+    let input = demo_csv(dir.path(), 50, 4, &[]);
+    let before = std::fs::read(&input).unwrap();
+    let model = data("small-trees.json");
+    let same = |output: &Path| {
+        probity(&[
+            "score",
+            "--keep-training-base-rate",
+            "--model",
+            s(&model),
+            "--input",
+            s(&input),
+            "--output",
+            s(output),
+        ])
+    };
+    // The same path, another spelling of it, and a hard link: all refused, the input unchanged.
+    let spelled = dir.path().join(".").join(input.file_name().unwrap());
+    let linked = dir.path().join("linked.csv");
+    std::fs::hard_link(&input, &linked).unwrap();
+    for output in [&input, &spelled, &linked] {
+        let o = same(output);
+        assert_eq!(o.status.code(), Some(1), "{}", output.display());
+        assert!(stderr(&o).contains("is the --input file"), "{}", stderr(&o));
+        assert_eq!(
+            std::fs::read(&input).unwrap(),
+            before,
+            "the input was changed"
+        );
+    }
+
+    // A run that fails half-way keeps an existing output as it was, and leaves no temporary file.
+    let out = dir.path().join("out.csv");
+    std::fs::write(&out, "an earlier result\n").unwrap();
+    let bad = dir.path().join("bad.csv");
+    let mut text = String::from_utf8(before.clone()).unwrap();
+    text.push_str(&text.lines().nth(1).unwrap().replacen(',', ",x", 1));
+    text.push('\n');
+    std::fs::write(&bad, &text).unwrap();
+    let o = probity(&[
+        "score",
+        "--keep-training-base-rate",
+        "--model",
+        s(&model),
+        "--input",
+        s(&bad),
+        "--output",
+        s(&out),
+    ]);
+    assert_eq!(o.status.code(), Some(1), "{}", stderr(&o));
+    assert_eq!(
+        std::fs::read_to_string(&out).unwrap(),
+        "an earlier result\n"
+    );
+    let leftovers: Vec<_> = std::fs::read_dir(dir.path())
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .filter(|n| n.ends_with(".partial"))
+        .collect();
+    assert!(leftovers.is_empty(), "{leftovers:?}");
+}
+
+#[test]
+fn skip_policy_scores_the_good_rows_and_lists_the_bad_ones() {
+    let dir = tempfile::tempdir().unwrap();
+    let input = dir.path().join("in.csv");
+    std::fs::write(
+        &input,
+        "id,amount,hour,channel,foreign\na,12.5,3,chip,0\nb,12;5,4,online,1\nc,40,22,online,1\nd,7,zz,chip,0\n",
+    )
+    .unwrap();
+    let out = dir.path().join("out.csv");
+    let model = data("small-trees.json");
+    let o = ok(&[
+        "score",
+        "--keep-training-base-rate",
+        "--on-error",
+        "skip",
+        "--model",
+        s(&model),
+        "--input",
+        s(&input),
+        "--output",
+        s(&out),
+    ]);
+    let (_, rows) = read_csv(&out);
+    let ids: Vec<&str> = rows.iter().map(|r| r.get(0).unwrap()).collect();
+    assert_eq!(ids, ["a", "c"]);
+    let rejects = dir.path().join("out.rejects.csv");
+    let (h, bad) = read_csv(&rejects);
+    assert_eq!(h.iter().collect::<Vec<_>>(), ["row", "line", "reason"]);
+    assert_eq!(bad.len(), 2);
+    assert_eq!((&bad[0][0], &bad[0][1]), ("2", "3"));
+    assert!(bad[0][2].contains("column `amount`"), "{:?}", &bad[0]);
+    assert_eq!((&bad[1][0], &bad[1][1]), ("4", "5"));
+    assert!(bad[1][2].contains("column `hour`"), "{:?}", &bad[1]);
+    assert!(stderr(&o).contains("left out 2 rows"), "{}", stderr(&o));
+    // The scores of the good rows are those of a clean run on them alone.
+    let clean = dir.path().join("clean.csv");
+    std::fs::write(
+        &clean,
+        "id,amount,hour,channel,foreign\na,12.5,3,chip,0\nc,40,22,online,1\n",
+    )
+    .unwrap();
+    let clean_out = dir.path().join("clean-out.csv");
+    ok(&[
+        "score",
+        "-q",
+        "--keep-training-base-rate",
+        "--model",
+        s(&model),
+        "--input",
+        s(&clean),
+        "--output",
+        s(&clean_out),
+    ]);
+    assert_eq!(
+        std::fs::read_to_string(&out).unwrap(),
+        std::fs::read_to_string(&clean_out).unwrap()
+    );
+    // --rejects without skip is refused.
+    let o = probity(&[
+        "score",
+        "--keep-training-base-rate",
+        "--rejects",
+        s(&dir.path().join("r.csv")),
+        "--model",
+        s(&model),
+        "--input",
+        s(&input),
+        "--output",
+        s(&out),
+    ]);
+    assert_eq!(o.status.code(), Some(1));
 }

@@ -255,6 +255,7 @@ fn read_holdout(model: &Model, args: &CalibrateArgs) -> anyhow::Result<(Vec<f64>
                 &columns,
                 &OutputSpec::default(),
                 &mut reader,
+                None,
                 |record, scored| {
                     row += 1;
                     h.push(scored.log_odds);

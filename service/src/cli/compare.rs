@@ -29,11 +29,15 @@ pub struct CompareArgs {
     /// Use a Newey-West variance with this many lags in the paired tests (neighbouring cases correlated).
     #[arg(long, value_name = "LAG")]
     pub newey_west_lag: Option<usize>,
-    /// Earliest prediction time included, in milliseconds since the Unix epoch.
-    #[arg(long, value_name = "UNIX_MS")]
+    /// Earliest prediction time included: an RFC 3339 time (2026-12-01T08:30:00Z), a date (2026-12-01, midnight
+    /// UTC) or milliseconds since the Unix epoch.
+    #[arg(long, value_name = "TIME", value_parser = super::when::instant)]
     pub from: Option<i64>,
-    /// Prediction times before this are included (milliseconds since the Unix epoch).
-    #[arg(long, value_name = "UNIX_MS")]
+    /// Only predictions made within this span before now (7d, 12h, 30m); instead of --from.
+    #[arg(long, value_name = "SPAN", value_parser = super::when::span_ms, conflicts_with = "from")]
+    pub since: Option<i64>,
+    /// Prediction times before this are included (same forms as --from).
+    #[arg(long, value_name = "TIME", value_parser = super::when::instant)]
     pub to: Option<i64>,
     /// Print JSON instead of the table.
     #[arg(long)]
@@ -53,7 +57,7 @@ pub fn run(args: &CompareArgs) -> anyhow::Result<()> {
     let mut store = open_log(&args.log)?;
     let request = CompareRequest {
         filter: ReportFilter {
-            from_ms: args.from,
+            from_ms: super::when::range_start(args.from, args.since, super::when::now_ms()),
             to_ms: args.to,
             route: Some(args.route.clone()),
             model: None,
@@ -66,16 +70,15 @@ pub fn run(args: &CompareArgs) -> anyhow::Result<()> {
     };
     let report = compare::build(&mut store as &mut dyn Store, &request)?;
     if args.json {
-        println!("{}", serde_json::to_string_pretty(&report)?);
+        super::emit(&format!("{}\n", serde_json::to_string_pretty(&report)?))?;
     } else {
-        print!("{}", text::render(&report));
-        println!("\n{}", super::CAUTIONS);
+        super::emit(&format!("{}\n{}\n", text::render(&report), super::CAUTIONS))?;
     }
     if let Some(path) = &args.svg {
         std::fs::write(path, svg::render(&report))
             .with_context(|| format!("--svg: writing {}", path.display()))?;
         if !args.json {
-            println!("wrote {}", path.display());
+            super::emit(&format!("wrote {}\n", path.display()))?;
         }
     }
     Ok(())

@@ -91,7 +91,7 @@ impl ColumnMap {
         record: &StringRecord,
         number: u64,
         row: &mut [f64],
-    ) -> anyhow::Result<()> {
+    ) -> Result<(), BadCell> {
         for (f, (slot, col)) in row.iter_mut().zip(&self.features).enumerate() {
             *slot = match col {
                 None => f64::NAN,
@@ -104,11 +104,10 @@ impl ColumnMap {
                             }
                             other => other.to_string(),
                         };
-                        anyhow!(
-                            "{}, column `{}`: {why}",
-                            where_(number, record),
-                            self.names[f]
-                        )
+                        BadCell {
+                            place: where_(number, record),
+                            reason: format!("column `{}`: {why}", self.names[f]),
+                        }
                     })?
                 }
             };
@@ -116,6 +115,21 @@ impl ColumnMap {
         Ok(())
     }
 }
+
+/// A cell that could not be read: where (`row N (line L)`) and why (naming the column).
+#[derive(Debug)]
+struct BadCell {
+    place: String,
+    reason: String,
+}
+
+impl std::fmt::Display for BadCell {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(f, "{}, {}", self.place, self.reason)
+    }
+}
+
+impl std::error::Error for BadCell {}
 
 /// `row N (line L)` for a 1-based data row and its record.
 fn where_(number: u64, record: &StringRecord) -> String {
@@ -125,56 +139,111 @@ fn where_(number: u64, record: &StringRecord) -> String {
     }
 }
 
+/// A row that could not be scored: its 1-based data row number, its record and why.
+pub struct Rejected<'a> {
+    /// 1-based data row.
+    pub number: u64,
+    /// The record as read.
+    pub record: &'a StringRecord,
+    /// Why it was not scored (names the column for a bad cell).
+    pub reason: String,
+}
+
+/// What to do with a row that cannot be scored: stop with its error (`None`), or hand it to this sink and go on.
+pub type OnReject<'s> = Option<&'s mut dyn FnMut(Rejected<'_>) -> anyhow::Result<()>>;
+
 /// Scores every remaining record of `reader` and calls `sink` with each record and its result, in file order.
-/// Returns the number of rows scored. Errors name the data row (1-based), its line and, for a bad cell, the column.
+/// Returns the number of rows scored. A row that cannot be scored stops the run with an error naming the data row
+/// (1-based), its line and, for a bad cell, the column, unless `on_reject` takes it (then it is skipped).
 pub fn score_records<R: Read>(
     model: &Model,
     columns: &ColumnMap,
     spec: &OutputSpec,
     reader: &mut csv::Reader<R>,
+    mut on_reject: OnReject<'_>,
     mut sink: impl FnMut(&StringRecord, &Scored) -> anyhow::Result<()>,
 ) -> anyhow::Result<u64> {
     let schema = model.schema();
     let n = schema.len();
     let mut records = vec![StringRecord::new(); BLOCK_ROWS];
+    let mut numbers = vec![0u64; BLOCK_ROWS];
     let mut rows = vec![0.0; BLOCK_ROWS * n];
     let mut margins = vec![0.0; BLOCK_ROWS];
-    let mut done: u64 = 0;
+    let mut read: u64 = 0;
+    let mut scored: u64 = 0;
     loop {
         let mut filled = 0;
+        let mut exhausted = false;
         while filled < BLOCK_ROWS {
-            let number = done + filled as u64 + 1;
+            let number = read + 1;
             let more = reader
                 .read_record(&mut records[filled])
                 .with_context(|| format!("cannot read data row {number}"))?;
             if !more {
+                exhausted = true;
                 break;
             }
-            columns.encode(
+            read += 1;
+            let encoded = columns.encode(
                 schema,
                 &records[filled],
                 number,
                 &mut rows[filled * n..(filled + 1) * n],
-            )?;
-            filled += 1;
-        }
-        if filled == 0 {
-            return Ok(done);
-        }
-        model
-            .margins(&rows[..filled * n], &mut margins[..filled])
-            .map_err(|e| match e {
-                EvalError::InRow { row, error } => {
-                    anyhow!("{}: {error}", where_(done + row as u64 + 1, &records[row]))
+            );
+            match (encoded, on_reject.as_deref_mut()) {
+                (Ok(()), _) => {
+                    numbers[filled] = number;
+                    filled += 1;
                 }
-                other => anyhow!(other),
-            })?;
-        for (record, &margin) in records.iter().zip(&margins[..filled]) {
-            sink(record, &model.finish(margin, spec))?;
+                (Err(e), None) => return Err(e.into()),
+                (Err(e), Some(reject)) => reject(Rejected {
+                    number,
+                    record: &records[filled],
+                    reason: e.reason,
+                })?,
+            }
         }
-        done += filled as u64;
-        if filled < BLOCK_ROWS {
-            return Ok(done);
+        if filled > 0 {
+            let block = model.margins(&rows[..filled * n], &mut margins[..filled]);
+            match (block, on_reject.as_deref_mut()) {
+                (Ok(()), _) => {
+                    for (record, &margin) in records.iter().zip(&margins[..filled]) {
+                        sink(record, &model.finish(margin, spec))?;
+                    }
+                    scored += filled as u64;
+                }
+                (Err(e), None) => {
+                    return Err(match e {
+                        EvalError::InRow { row, error } => {
+                            anyhow!("{}: {error}", where_(numbers[row], &records[row]))
+                        }
+                        other => anyhow!(other),
+                    })
+                }
+                // Some row of the block failed: score each alone, so only the bad ones are skipped.
+                (Err(_), Some(reject)) => {
+                    for i in 0..filled {
+                        let mut one = [0.0];
+                        match model.margins(&rows[i * n..(i + 1) * n], &mut one) {
+                            Ok(()) => {
+                                sink(&records[i], &model.finish(one[0], spec))?;
+                                scored += 1;
+                            }
+                            Err(e) => reject(Rejected {
+                                number: numbers[i],
+                                record: &records[i],
+                                reason: match e {
+                                    EvalError::InRow { error, .. } => error.to_string(),
+                                    other => other.to_string(),
+                                },
+                            })?,
+                        }
+                    }
+                }
+            }
+        }
+        if exhausted {
+            return Ok(scored);
         }
     }
 }

@@ -17,9 +17,13 @@ pub struct PromoteArgs {
     /// The challenger model to make champion.
     #[arg(long)]
     pub challenger: String,
-    /// Who asks (recorded with the change); defaults to the USER environment variable.
+    /// Who asks (recorded with the change) [default: the USER, else the LOGNAME environment variable; required
+    /// where neither is set, as in containers and service units].
     #[arg(long)]
     pub requested_by: Option<String>,
+    /// Promote even when the comparison's verdict is that the champion is better.
+    #[arg(long)]
+    pub force: bool,
     /// Why (recorded with the change).
     #[arg(long, default_value = "")]
     pub reason: String,
@@ -57,7 +61,7 @@ async fn client(
 fn line(c: &pb::RouteChange) -> String {
     format!(
         "{} route {}: {} -> {} by {} from {}{}",
-        c.time_unix_ms,
+        super::when::iso(c.time_unix_ms),
         c.route,
         c.previous_champion,
         c.new_champion,
@@ -71,27 +75,58 @@ fn line(c: &pb::RouteChange) -> String {
     )
 }
 
-/// Runs `probity promote`.
+/// Who asks: the flag, else USER, else LOGNAME; an error naming the flag where none is set.
+fn requester(flag: Option<&str>, env: impl Fn(&str) -> Option<String>) -> anyhow::Result<String> {
+    flag.map(str::to_string)
+        .or_else(|| env("USER"))
+        .or_else(|| env("LOGNAME"))
+        .filter(|who| !who.trim().is_empty())
+        .ok_or_else(|| {
+            anyhow::anyhow!("give --requested-by: who asks is recorded with the change, and neither USER nor LOGNAME is set")
+        })
+}
+
+/// Runs `probity promote`: shows the route's comparison verdict first, and refuses to promote against a verdict
+/// that the champion is better unless `--force`.
 pub fn run_promote(args: &PromoteArgs) -> anyhow::Result<()> {
-    let who = args
-        .requested_by
-        .clone()
-        .or_else(|| std::env::var("USER").ok())
-        .unwrap_or_default();
-    let request = tonic::Request::new(pb::PromoteRequest {
-        route: args.route.clone(),
-        challenger: args.challenger.clone(),
-        requested_by: who,
-        reason: args.reason.clone(),
-    });
-    let answer = runtime()?.block_on(async {
+    let who = requester(args.requested_by.as_deref(), |k| std::env::var(k).ok())?;
+    let rt = runtime()?;
+    let changed = rt.block_on(async {
         let mut c = client(&args.connect).await?;
-        c.promote(request)
-            .await
-            .map_err(|s| anyhow::anyhow!("{}: {}", s.code(), s.message()))
+        let compared = c
+            .compare(pb::CompareRequest {
+                route: args.route.clone(),
+                challenger: args.challenger.clone(),
+                ..Default::default()
+            })
+            .await;
+        match &compared {
+            Ok(answer) => {
+                let a = answer.get_ref();
+                super::emit(&format!("comparison verdict: {} ({})\n", a.verdict, a.verdict_code))?;
+                if a.verdict_code == "champion_better" && !args.force {
+                    anyhow::bail!(
+                        "not promoted: the comparison says the champion is better; give --force to promote anyway"
+                    );
+                }
+            }
+            Err(s) => super::emit(&format!(
+                "comparison verdict: unknown ({}: {})\n",
+                s.code(),
+                s.message()
+            ))?,
+        }
+        c.promote(tonic::Request::new(pb::PromoteRequest {
+            route: args.route.clone(),
+            challenger: args.challenger.clone(),
+            requested_by: who,
+            reason: args.reason.clone(),
+        }))
+        .await
+        .map_err(|s| anyhow::anyhow!("{}: {}", s.code(), s.message()))
     })?;
-    match answer.into_inner().change {
-        Some(c) => println!("promoted: {}", line(&c)),
+    match changed.into_inner().change {
+        Some(c) => super::emit(&format!("promoted: {}\n", line(&c)))?,
         None => anyhow::bail!("the server answered without the change"),
     }
     Ok(())
@@ -109,21 +144,46 @@ pub fn run_history(args: &HistoryArgs) -> anyhow::Result<()> {
     })?;
     let changes = answer.into_inner().changes;
     if changes.is_empty() && !args.json {
-        println!("no promotion recorded");
+        super::emit("no promotion recorded\n")?;
     }
     for c in &changes {
         if args.json {
-            println!(
-                "{}",
-                serde_json::json!({
-                    "time_unix_ms": c.time_unix_ms, "route": c.route,
-                    "previous_champion": c.previous_champion, "new_champion": c.new_champion,
-                    "requested_by": c.requested_by, "peer": c.peer, "reason": c.reason,
-                })
-            );
+            let json = serde_json::json!({
+                "time": super::when::iso(c.time_unix_ms), "time_unix_ms": c.time_unix_ms, "route": c.route,
+                "previous_champion": c.previous_champion, "new_champion": c.new_champion,
+                "requested_by": c.requested_by, "peer": c.peer, "reason": c.reason,
+            });
+            super::emit(&format!("{json}\n"))?;
         } else {
-            println!("{}", line(c));
+            super::emit(&format!("{}\n", line(c)))?;
         }
     }
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::requester;
+
+    #[test]
+    fn who_asks_falls_back_from_the_flag_to_user_to_logname_then_says_what_to_give() {
+        let env = |vars: &'static [(&'static str, &'static str)]| {
+            move |k: &str| {
+                vars.iter()
+                    .find(|(n, _)| *n == k)
+                    .map(|(_, v)| v.to_string())
+            }
+        };
+        assert_eq!(
+            requester(Some("ana"), env(&[("USER", "u")])).unwrap(),
+            "ana"
+        );
+        assert_eq!(
+            requester(None, env(&[("USER", "u"), ("LOGNAME", "l")])).unwrap(),
+            "u"
+        );
+        assert_eq!(requester(None, env(&[("LOGNAME", "l")])).unwrap(), "l");
+        let err = requester(None, env(&[])).unwrap_err().to_string();
+        assert!(err.contains("--requested-by"), "{err}");
+    }
 }

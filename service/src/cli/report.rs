@@ -13,11 +13,15 @@ pub struct ReportArgs {
     /// The log: a data directory (holding predictions.db) or the database file itself.
     #[arg(long, value_name = "PATH")]
     pub log: PathBuf,
-    /// Earliest prediction time included, in milliseconds since the Unix epoch.
-    #[arg(long, value_name = "UNIX_MS")]
+    /// Earliest prediction time included: an RFC 3339 time (2026-12-01T08:30:00Z), a date (2026-12-01, midnight
+    /// UTC) or milliseconds since the Unix epoch.
+    #[arg(long, value_name = "TIME", value_parser = super::when::instant)]
     pub from: Option<i64>,
-    /// Prediction times before this are included (milliseconds since the Unix epoch).
-    #[arg(long, value_name = "UNIX_MS")]
+    /// Only predictions made within this span before now (7d, 12h, 30m); instead of --from.
+    #[arg(long, value_name = "SPAN", value_parser = super::when::span_ms, conflicts_with = "from")]
+    pub since: Option<i64>,
+    /// Prediction times before this are included (same forms as --from).
+    #[arg(long, value_name = "TIME", value_parser = super::when::instant)]
     pub to: Option<i64>,
     /// Only this route.
     #[arg(long)]
@@ -73,7 +77,7 @@ pub(crate) fn open_log(log: &std::path::Path) -> anyhow::Result<SqliteStore> {
 pub fn run(args: &ReportArgs) -> anyhow::Result<()> {
     let mut store = open_log(&args.log)?;
     let filter = ReportFilter {
-        from_ms: args.from,
+        from_ms: super::when::range_start(args.from, args.since, super::when::now_ms()),
         to_ms: args.to,
         route: args.route.clone(),
         model: args.model.clone(),
@@ -83,10 +87,9 @@ pub fn run(args: &ReportArgs) -> anyhow::Result<()> {
     let report = report::build_with(&mut store as &mut dyn Store, &filter, &configured)
         .context("reading the log")?;
     if args.json {
-        println!("{}", serde_json::to_string_pretty(&report)?);
+        super::emit(&format!("{}\n", serde_json::to_string_pretty(&report)?))?;
     } else {
-        print!("{}", text::render(&report));
-        println!("\n{}", super::CAUTIONS);
+        super::emit(&format!("{}\n{}\n", text::render(&report), super::CAUTIONS))?;
     }
     if let Some(dir) = &args.svg_dir {
         std::fs::create_dir_all(dir).with_context(|| format!("--svg-dir {}", dir.display()))?;
@@ -101,7 +104,7 @@ pub fn run(args: &ReportArgs) -> anyhow::Result<()> {
                 std::fs::write(&path, body)
                     .with_context(|| format!("writing {}", path.display()))?;
                 if !args.json {
-                    println!("wrote {}", path.display());
+                    super::emit(&format!("wrote {}\n", path.display()))?;
                 }
             }
         }

@@ -11,7 +11,7 @@ use csv::StringRecord;
 use indicatif::{ProgressBar, ProgressStyle};
 use probity_models::{DecisionRule, Model, OutputSpec, Scored};
 
-use super::pipeline::{csv_reader, score_records, ColumnMap};
+use super::pipeline::{csv_reader, score_records, ColumnMap, OnReject, Rejected};
 
 /// Files smaller than this finish before a progress bar is worth drawing.
 const PROGRESS_MIN_BYTES: u64 = 1 << 20;
@@ -32,8 +32,14 @@ pub struct ScoreArgs {
     #[arg(long)]
     pub id_column: Option<String>,
     /// Base rate of the population being scored; shifts the log-odds by logit(P) - logit(model base rate).
+    /// One of this and --keep-training-base-rate is required: a model trained on re-sampled data answers at its
+    /// training rate otherwise, which can be many times the live one.
     #[arg(long, value_name = "P")]
     pub target_base_rate: Option<f64>,
+    /// Serve at the base rate the model was trained (or calibrated) on: right only when that rate is the scored
+    /// population's own.
+    #[arg(long, conflicts_with = "target_base_rate")]
+    pub keep_training_base_rate: bool,
     /// Decide `positive` when the probability is above T.
     #[arg(long, value_name = "T", conflicts_with_all = ["cost_false_positive", "cost_false_negative"])]
     pub threshold: Option<f64>,
@@ -49,20 +55,61 @@ pub struct ScoreArgs {
     /// Read a feature the input has no column for as missing on every row, instead of stopping.
     #[arg(long)]
     pub allow_missing_columns: bool,
+    /// What a row that cannot be scored does: `fail` stops the run (nothing is written), `skip` leaves it out of
+    /// the output and lists it in the rejects file.
+    #[arg(long, value_enum, default_value_t = OnError::Fail)]
+    pub on_error: OnError,
+    /// With `--on-error skip`: where to write the rows left out (data row, line and reason) [default: OUTPUT with
+    /// `.rejects.csv` in place of its extension].
+    #[arg(long, value_name = "FILE")]
+    pub rejects: Option<PathBuf>,
     /// No progress bar and no summary line.
     #[arg(long, short)]
     pub quiet: bool,
 }
 
+/// The error policy of a scoring run.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
+pub enum OnError {
+    /// Stop at the first row that cannot be scored.
+    Fail,
+    /// Leave the row out and record it in the rejects file.
+    Skip,
+}
+
 /// Runs `probity score`.
 pub fn run(args: &ScoreArgs) -> anyhow::Result<()> {
     let model = load_model(&args.model)?;
+    if args.target_base_rate.is_none() && !args.keep_training_base_rate {
+        bail!(
+            "no base rate given: {} was trained (or calibrated) at a base rate of {}, and a model trained on \
+             re-sampled data overstates every probability when served at it; give --target-base-rate P (the scored \
+             population's base rate) or --keep-training-base-rate",
+            args.model.display(),
+            model.base_rate()
+        );
+    }
     let spec = output_spec(
         args.target_base_rate,
         args.threshold,
         args.cost_false_positive,
         args.cost_false_negative,
     )?;
+    if args.rejects.is_some() && args.on_error != OnError::Skip {
+        bail!("--rejects is written only with --on-error skip");
+    }
+    let rejects_path = (args.on_error == OnError::Skip).then(|| {
+        args.rejects
+            .clone()
+            .unwrap_or_else(|| args.output.with_extension("rejects.csv"))
+    });
+    refuse_same_file(&args.input, "--input", &args.output, "--output")?;
+    if let Some(r) = &rejects_path {
+        refuse_same_file(&args.input, "--input", r, "--rejects")?;
+        if r == &args.output {
+            bail!("--rejects and --output name the same file {}", r.display());
+        }
+    }
     let input =
         File::open(&args.input).with_context(|| format!("cannot open {}", args.input.display()))?;
     let size = input.metadata().map(|m| m.len()).unwrap_or(0);
@@ -73,20 +120,27 @@ pub fn run(args: &ScoreArgs) -> anyhow::Result<()> {
         ProgressBar::hidden()
     };
     let mut reader = csv_reader(progress.wrap_read(input));
-    let output = File::create(&args.output)
-        .with_context(|| format!("cannot create {}", args.output.display()))?;
+    // Written beside the target and renamed over it only when the whole run succeeds: a failed run leaves any
+    // existing file as it was, and a half-written output never passes for a result.
+    let output = Staged::beside(&args.output)?;
+    let rejects = rejects_path.as_deref().map(Staged::beside).transpose()?;
 
     let start = Instant::now();
-    let result = score_file(&model, &spec, args, &mut reader, BufWriter::new(output));
+    let result = score_file(
+        &model,
+        &spec,
+        args,
+        &mut reader,
+        BufWriter::new(output.file()),
+        rejects.as_ref().map(|r| BufWriter::new(r.file())),
+    );
     progress.finish_and_clear();
-    let rows = match result {
-        Ok(rows) => rows,
-        Err(e) => {
-            // A half-written output must not pass for a result.
-            let _ = std::fs::remove_file(&args.output);
-            return Err(e.context(format!("cannot score {}", args.input.display())));
-        }
-    };
+    let (rows, rejected) =
+        result.with_context(|| format!("cannot score {}", args.input.display()))?;
+    output.commit()?;
+    if let Some(r) = rejects {
+        r.commit()?;
+    }
     if !args.quiet {
         let seconds = start.elapsed().as_secs_f64();
         eprintln!(
@@ -94,8 +148,83 @@ pub fn run(args: &ScoreArgs) -> anyhow::Result<()> {
             rows as f64 / seconds.max(1e-9),
             args.output.display()
         );
+        if let Some(path) = &rejects_path {
+            eprintln!(
+                "left out {rejected} rows that could not be scored: listed in {}",
+                path.display()
+            );
+        }
     }
     Ok(())
+}
+
+/// Refuses to write `output` when it is the file `input` names (same path, link or hard link): the run would
+/// destroy its own input.
+fn refuse_same_file(
+    input: &Path,
+    input_flag: &str,
+    output: &Path,
+    output_flag: &str,
+) -> anyhow::Result<()> {
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::MetadataExt;
+        if let (Ok(a), Ok(b)) = (std::fs::metadata(input), std::fs::metadata(output)) {
+            if a.dev() == b.dev() && a.ino() == b.ino() {
+                bail!(
+                    "{output_flag} {} is the {input_flag} file: choose another output",
+                    output.display()
+                );
+            }
+        }
+    }
+    if let (Ok(a), Ok(b)) = (input.canonicalize(), output.canonicalize()) {
+        if a == b {
+            bail!(
+                "{output_flag} {} is the {input_flag} file: choose another output",
+                output.display()
+            );
+        }
+    }
+    Ok(())
+}
+
+/// A file written under a temporary name in the target's folder and renamed over the target on [`Staged::commit`];
+/// dropped without a commit, the temporary file goes and the target is untouched.
+struct Staged {
+    temp: tempfile::NamedTempFile,
+    target: PathBuf,
+}
+
+impl Staged {
+    fn beside(target: &Path) -> anyhow::Result<Self> {
+        let folder = match target.parent() {
+            Some(p) if !p.as_os_str().is_empty() => p,
+            _ => Path::new("."),
+        };
+        let temp = tempfile::Builder::new()
+            .prefix(".probity-")
+            .suffix(".partial")
+            .tempfile_in(folder)
+            .with_context(|| format!("cannot create {}", target.display()))?;
+        Ok(Self {
+            temp,
+            target: target.to_path_buf(),
+        })
+    }
+
+    fn file(&self) -> &File {
+        self.temp.as_file()
+    }
+
+    fn commit(self) -> anyhow::Result<()> {
+        let target = self.target;
+        self.temp
+            .persist(&target)
+            .map_err(|e| e.error)
+            .with_context(|| format!("cannot write {}", target.display()))?;
+        Ok(())
+    }
 }
 
 /// Reads a model file (I/O at the edge) and loads it.
@@ -172,14 +301,16 @@ pub fn push_scores(out: &mut StringRecord, s: &Scored, spec: &OutputSpec, buf: &
     }
 }
 
-/// Scores the whole input into `output`; returns the number of rows.
+/// Scores the whole input into `output`, and rows that cannot be scored into `rejects` when it is given; returns
+/// the numbers of rows scored and rejected.
 fn score_file<R: Read, W: Write>(
     model: &Model,
     spec: &OutputSpec,
     args: &ScoreArgs,
     reader: &mut csv::Reader<R>,
     output: W,
-) -> anyhow::Result<u64> {
+    rejects: Option<W>,
+) -> anyhow::Result<(u64, u64)> {
     let header = reader
         .headers()
         .context("cannot read the header row")?
@@ -213,20 +344,54 @@ fn score_file<R: Read, W: Write>(
     writer.write_record(&out_header)?;
     let mut line = StringRecord::new();
     let mut buf = String::new();
-    let rows = score_records(model, &columns, spec, reader, |record, scored| {
-        line.clear();
-        if args.keep_columns {
-            line.extend(record.iter());
-        } else if let Some(id) = columns.id {
-            line.push_field(record.get(id).unwrap_or(""));
+    let mut rejected = 0u64;
+    let mut rejects = rejects.map(csv::Writer::from_writer);
+    if let Some(r) = rejects.as_mut() {
+        r.write_record(["row", "line", "reason"])
+            .context("cannot write the rejects file")?;
+    }
+    let mut reject = |bad: Rejected<'_>| -> anyhow::Result<()> {
+        rejected += 1;
+        if let Some(r) = rejects.as_mut() {
+            let line = bad
+                .record
+                .position()
+                .map(|p| p.line().to_string())
+                .unwrap_or_default();
+            r.write_record([bad.number.to_string(), line, bad.reason])
+                .context("cannot write the rejects file")?;
         }
-        push_scores(&mut line, scored, spec, &mut buf);
-        writer
-            .write_record(&line)
-            .context("cannot write the output")
-    })?;
+        Ok(())
+    };
+    let on_reject: OnReject<'_> = if args.on_error == OnError::Skip {
+        Some(&mut reject)
+    } else {
+        None
+    };
+    let rows = score_records(
+        model,
+        &columns,
+        spec,
+        reader,
+        on_reject,
+        |record, scored| {
+            line.clear();
+            if args.keep_columns {
+                line.extend(record.iter());
+            } else if let Some(id) = columns.id {
+                line.push_field(record.get(id).unwrap_or(""));
+            }
+            push_scores(&mut line, scored, spec, &mut buf);
+            writer
+                .write_record(&line)
+                .context("cannot write the output")
+        },
+    )?;
     writer.flush().context("cannot write the output")?;
-    Ok(rows)
+    if let Some(r) = rejects.as_mut() {
+        r.flush().context("cannot write the rejects file")?;
+    }
+    Ok((rows, rejected))
 }
 
 /// A byte-count progress bar on stderr.
