@@ -161,3 +161,83 @@ impl ConnectArgs {
         Ok(InterceptedService::new(channel, token))
     }
 }
+
+/// A gRPC status as a command prints it: the server's message and the status's standard name
+/// (`NOT_FOUND`), without the code's generic sentence.
+pub fn status_text(status: &tonic::Status) -> String {
+    use tonic::Code;
+    let name = match status.code() {
+        Code::Ok => "OK",
+        Code::Cancelled => "CANCELLED",
+        Code::Unknown => "UNKNOWN",
+        Code::InvalidArgument => "INVALID_ARGUMENT",
+        Code::DeadlineExceeded => "DEADLINE_EXCEEDED",
+        Code::NotFound => "NOT_FOUND",
+        Code::AlreadyExists => "ALREADY_EXISTS",
+        Code::PermissionDenied => "PERMISSION_DENIED",
+        Code::ResourceExhausted => "RESOURCE_EXHAUSTED",
+        Code::FailedPrecondition => "FAILED_PRECONDITION",
+        Code::Aborted => "ABORTED",
+        Code::OutOfRange => "OUT_OF_RANGE",
+        Code::Unimplemented => "UNIMPLEMENTED",
+        Code::Internal => "INTERNAL",
+        Code::Unavailable => "UNAVAILABLE",
+        Code::DataLoss => "DATA_LOSS",
+        Code::Unauthenticated => "UNAUTHENTICATED",
+    };
+    if status.message().is_empty() {
+        name.to_string()
+    } else {
+        format!("{} ({name})", status.message())
+    }
+}
+
+/// An error chain on one line, outermost first, joined by `: `; a cause whose text the line already ends with
+/// (an error that prints its own source) is said once.
+pub fn error_line(err: &anyhow::Error) -> String {
+    let mut line = String::new();
+    for cause in err.chain() {
+        let text = cause.to_string();
+        if text.is_empty() || line.ends_with(&text) {
+            continue;
+        }
+        if !line.is_empty() {
+            line.push_str(": ");
+        }
+        line.push_str(&text);
+    }
+    line
+}
+
+#[cfg(test)]
+mod line_tests {
+    use super::{error_line, status_text};
+
+    #[test]
+    fn a_cause_repeated_by_its_parent_is_said_once() {
+        #[derive(Debug, thiserror::Error)]
+        #[error("tcp connect error")]
+        struct Inner;
+        #[derive(Debug, thiserror::Error)]
+        #[error("tcp connect error")]
+        struct Outer(#[source] Inner);
+        let e = anyhow::Error::new(Outer(Inner)).context("--server: cannot connect to http://x");
+        assert_eq!(
+            error_line(&e),
+            "--server: cannot connect to http://x: tcp connect error"
+        );
+        let io = std::io::Error::other("disk full");
+        let e = anyhow::Error::new(io).context("writing out.csv");
+        assert_eq!(error_line(&e), "writing out.csv: disk full");
+    }
+
+    #[test]
+    fn statuses_print_the_message_and_the_standard_name() {
+        let s = tonic::Status::not_found("route `fraud` is not configured");
+        assert_eq!(
+            status_text(&s),
+            "route `fraud` is not configured (NOT_FOUND)"
+        );
+        assert_eq!(status_text(&tonic::Status::unavailable("")), "UNAVAILABLE");
+    }
+}

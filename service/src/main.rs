@@ -67,7 +67,7 @@ fn main() -> ExitCode {
         Err(err) if cli::is_broken_pipe(&err) => ExitCode::SUCCESS,
         Err(err) => {
             // One line: the error and its causes, outermost first.
-            eprintln!("error: {err:#}");
+            eprintln!("error: {}", probity::client::error_line(&err));
             ExitCode::FAILURE
         }
     }

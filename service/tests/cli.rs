@@ -879,3 +879,48 @@ fn skip_policy_scores_the_good_rows_and_lists_the_bad_ones() {
     ]);
     assert_eq!(o.status.code(), Some(1));
 }
+
+/// Log lines to a pipe (a process manager's journal, a file) carry no terminal colour codes.
+#[test]
+fn serve_logs_plain_text_when_stderr_is_not_a_terminal() {
+    use std::io::BufRead as _;
+    let config = Path::new(env!("CARGO_MANIFEST_DIR")).join("../deploy/probity.toml");
+    let mut child = Command::new(env!("CARGO_BIN_EXE_probity"))
+        .args(["serve", "--config", s(&config)])
+        .args([
+            "--grpc-listen",
+            "127.0.0.1:0",
+            "--metrics-listen",
+            "127.0.0.1:0",
+        ])
+        .current_dir(Path::new(env!("CARGO_MANIFEST_DIR")).join(".."))
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .unwrap();
+    let mut lines = std::io::BufReader::new(child.stderr.take().unwrap()).lines();
+    let first: Vec<String> = lines.by_ref().take(2).map(|l| l.unwrap()).collect();
+    let _ = child.kill();
+    let _ = child.wait();
+    assert_eq!(first.len(), 2, "{first:?}");
+    for line in &first {
+        assert!(!line.contains('\u{1b}'), "colour codes in {line:?}");
+        assert!(line.contains("INFO") || line.contains("WARN"), "{line:?}");
+    }
+}
+
+/// A refused configuration is said once, naming the key (it was printed twice, once per error in the chain).
+#[test]
+fn a_refused_configuration_is_said_once() {
+    let dir = tempfile::tempdir().unwrap();
+    let config = dir.path().join("bad.toml");
+    std::fs::write(&config, "[limits]\nmax_batch_row = 5\n").unwrap();
+    let o = probity(&["serve", "--config", s(&config)]);
+    assert_eq!(o.status.code(), Some(1));
+    let err = stderr(&o);
+    assert_eq!(err.matches("max_batch_row`").count(), 1, "{err}");
+    assert!(
+        err.starts_with("error: invalid configuration: limits.max_batch_row"),
+        "{err}"
+    );
+}

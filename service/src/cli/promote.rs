@@ -111,9 +111,8 @@ pub fn run_promote(args: &PromoteArgs) -> anyhow::Result<()> {
                 }
             }
             Err(s) => super::emit(&format!(
-                "comparison verdict: unknown ({}: {})\n",
-                s.code(),
-                s.message()
+                "comparison verdict: unknown ({})\n",
+                probity::client::status_text(s)
             ))?,
         }
         c.promote(tonic::Request::new(pb::PromoteRequest {
@@ -123,7 +122,7 @@ pub fn run_promote(args: &PromoteArgs) -> anyhow::Result<()> {
             reason: args.reason.clone(),
         }))
         .await
-        .map_err(|s| anyhow::anyhow!("{}: {}", s.code(), s.message()))
+        .map_err(|s| anyhow::anyhow!(probity::client::status_text(&s)))
     })?;
     match changed.into_inner().change {
         Some(c) => super::emit(&format!("promoted: {}\n", line(&c)))?,
@@ -140,7 +139,7 @@ pub fn run_history(args: &HistoryArgs) -> anyhow::Result<()> {
             route: args.route.clone(),
         })
         .await
-        .map_err(|s| anyhow::anyhow!("{}: {}", s.code(), s.message()))
+        .map_err(|s| anyhow::anyhow!(probity::client::status_text(&s)))
     })?;
     let changes = answer.into_inner().changes;
     if changes.is_empty() && !args.json {

@@ -65,13 +65,13 @@ pub struct ServeArgs {
 #[derive(Debug, thiserror::Error)]
 pub enum RunError {
     /// The configuration was refused.
-    #[error("invalid configuration: {0}")]
+    #[error("invalid configuration")]
     Config(#[from] ConfigError),
     /// The server did not start.
-    #[error("cannot start: {0}")]
+    #[error("cannot start")]
     Start(#[from] StartError),
     /// The async runtime or a signal handler could not be set up.
-    #[error("runtime: {0}")]
+    #[error("runtime")]
     Runtime(#[from] std::io::Error),
 }
 
@@ -128,8 +128,10 @@ pub fn run(args: &ServeArgs) -> Result<(), RunError> {
 pub fn init_logging(logging: &Logging) {
     let filter = tracing_subscriber::EnvFilter::try_new(&logging.level)
         .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info"));
+    // Colours only for a person at a terminal: a file, a pipe or a process manager's journal gets plain text.
     let builder = tracing_subscriber::fmt()
         .with_env_filter(filter)
+        .with_ansi(std::io::IsTerminal::is_terminal(&std::io::stderr()))
         .with_writer(std::io::stderr);
     let _ = match logging.format {
         LogFormat::Text => builder.try_init(),
