@@ -26,5 +26,5 @@ pub use error::{CellError, EvalError, ModelError};
 pub use model::{
     BodyKind, MarginScale, Model, ModelSummary, OddsOf, ReferenceDistribution, ScoreScale,
 };
-pub use schema::{Feature, FeatureKind, Schema, UNKNOWN_CATEGORY};
+pub use schema::{Cell, CellNote, Feature, FeatureKind, Schema, UNKNOWN_CATEGORY};
 pub use transform::{OutputSpec, Scored};

@@ -146,12 +146,27 @@ impl Schema {
             .copied()
     }
 
-    /// Encodes one text cell for feature `feature` as a dense-row value.
-    ///
-    /// Numeric: after trimming, an empty cell, `NA`, `NaN`, `nan` or `null` is missing (`NaN`); anything else must
-    /// parse as a number. Categorical: a known category (matched exactly, then trimmed) gives its index; otherwise
-    /// an empty cell, `NA` or `null` (trimmed) is missing; anything else is [`UNKNOWN_CATEGORY`].
+    /// The index of category `text` of feature `feature`: matched exactly, then with surrounding blanks trimmed.
+    /// Case matters (the training libraries' category lists are case-sensitive): `CHIP` is not `chip`.
+    pub fn category_of(&self, feature: usize, text: &str) -> Option<usize> {
+        let map = self.category_maps.get(feature)?.as_ref()?;
+        map.get(text).or_else(|| map.get(text.trim())).copied()
+    }
+
+    /// Encodes one text cell for feature `feature` as a dense-row value; see [`Schema::read_text`].
     pub fn encode_text(&self, feature: usize, text: &str) -> Result<f64, CellError> {
+        self.read_text(feature, text).map(|c| c.value)
+    }
+
+    /// Reads one text cell for feature `feature`: its dense-row value and what was noticed on the way. This is the
+    /// one rule for a cell, offline and over gRPC:
+    ///
+    /// - numeric: after trimming, an empty cell, `NA`, `NaN`, `nan` or `null` is missing ([`CellNote::Missing`]);
+    ///   a number that is not finite (`inf`, `-infinity`) is missing too ([`CellNote::NonFinite`]); anything else
+    ///   must parse as a number;
+    /// - categorical: a known category ([`Schema::category_of`]) gives its index; otherwise an empty cell, `NA` or
+    ///   `null` (trimmed) is missing; anything else is [`UNKNOWN_CATEGORY`] ([`CellNote::UnknownCategory`]).
+    pub fn read_text(&self, feature: usize, text: &str) -> Result<Cell, CellError> {
         let Some(f) = self.features.get(feature) else {
             return Err(CellError::NoSuchFeature {
                 index: feature,
@@ -159,28 +174,66 @@ impl Schema {
             });
         };
         let trimmed = text.trim();
-        match self.category_maps.get(feature).and_then(Option::as_ref) {
-            None => {
-                if NUMERIC_MISSING.contains(&trimmed) {
-                    return Ok(f64::NAN);
-                }
-                trimmed.parse::<f64>().map_err(|_| CellError::NotANumber {
-                    feature: f.name.clone(),
-                    text: text.to_string(),
-                })
+        if self
+            .category_maps
+            .get(feature)
+            .and_then(Option::as_ref)
+            .is_none()
+        {
+            if NUMERIC_MISSING.contains(&trimmed) {
+                return Ok(Cell::noted(f64::NAN, CellNote::Missing));
             }
-            Some(map) => {
-                if let Some(&i) = map.get(text).or_else(|| map.get(trimmed)) {
-                    return Ok(i as f64);
-                }
-                if CATEGORICAL_MISSING.contains(&trimmed) {
-                    Ok(f64::NAN)
-                } else {
-                    Ok(UNKNOWN_CATEGORY)
-                }
+            let x = trimmed.parse::<f64>().map_err(|_| CellError::NotANumber {
+                feature: f.name.clone(),
+                text: text.to_string(),
+            })?;
+            return Ok(if x.is_finite() {
+                Cell::plain(x)
+            } else {
+                Cell::noted(f64::NAN, CellNote::NonFinite)
+            });
+        }
+        Ok(match self.category_of(feature, text) {
+            Some(i) => Cell::plain(i as f64),
+            None if CATEGORICAL_MISSING.contains(&trimmed) => {
+                Cell::noted(f64::NAN, CellNote::Missing)
             }
+            None => Cell::noted(UNKNOWN_CATEGORY, CellNote::UnknownCategory),
+        })
+    }
+}
+
+/// One cell read by [`Schema::read_text`].
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Cell {
+    /// Its dense-row value.
+    pub value: f64,
+    /// What was noticed: `None` for an ordinary value.
+    pub note: Option<CellNote>,
+}
+
+impl Cell {
+    fn plain(value: f64) -> Self {
+        Cell { value, note: None }
+    }
+
+    fn noted(value: f64, note: CellNote) -> Self {
+        Cell {
+            value,
+            note: Some(note),
         }
     }
+}
+
+/// What reading a cell noticed beyond its value: the same kinds a gRPC answer warns of.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash)]
+pub enum CellNote {
+    /// No value; routed as missing.
+    Missing,
+    /// A number that is not finite; routed as missing.
+    NonFinite,
+    /// A category the model does not know; routed as unknown.
+    UnknownCategory,
 }
 
 /// Checks one feature's category list and builds its lookup.
@@ -255,6 +308,14 @@ mod tests {
             }
         );
         assert!(err.to_string().contains("`12,5` is not a number"));
+        // Not finite: missing, and said so (the gRPC path's rule for a number that is not finite).
+        for text in ["inf", "-inf", "Infinity", " -infinity "] {
+            let cell = s.read_text(0, text).unwrap();
+            assert!(cell.value.is_nan(), "{text:?}");
+            assert_eq!(cell.note, Some(CellNote::NonFinite), "{text:?}");
+        }
+        assert_eq!(s.read_text(0, "NA").unwrap().note, Some(CellNote::Missing));
+        assert_eq!(s.read_text(0, "1e308").unwrap().note, None);
     }
 
     #[test]
@@ -267,6 +328,19 @@ mod tests {
         assert!(s.encode_text(1, "").unwrap().is_nan());
         assert!(s.encode_text(1, "null").unwrap().is_nan());
         assert_eq!(s.encode_text(1, "atm").unwrap(), UNKNOWN_CATEGORY);
+        assert_eq!(
+            s.read_text(1, "atm").unwrap().note,
+            Some(CellNote::UnknownCategory)
+        );
+        // Case matters, and it is said: `ONLINE` is an unknown category, not `online`.
+        assert_eq!(
+            s.read_text(1, "ONLINE").unwrap(),
+            Cell {
+                value: UNKNOWN_CATEGORY,
+                note: Some(CellNote::UnknownCategory)
+            }
+        );
+        assert_eq!(s.category_of(1, " online "), Some(1));
         assert_eq!(
             s.encode_text(2, "x"),
             Err(CellError::NoSuchFeature { index: 2, len: 2 })

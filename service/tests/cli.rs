@@ -924,3 +924,56 @@ fn a_refused_configuration_is_said_once() {
         "{err}"
     );
 }
+
+/// One rule for a cell offline and over gRPC (`Schema::read_text`): a number that is not finite is read as
+/// missing, a category in the wrong case is an unknown category, and both are said: in a summary by kind and column,
+/// and with --warnings-column on each row.
+#[test]
+fn bad_cells_are_read_by_the_grpc_rule_and_said() {
+    let dir = tempfile::tempdir().unwrap();
+    let input = dir.path().join("in.csv");
+    std::fs::write(
+        &input,
+        "id,amount,hour,channel,foreign\n\
+         a,inf,3,chip,0\n\
+         b,,3,chip,0\n\
+         c,12,4,CHIP,1\n\
+         d,12,4,atm,1\n\
+         e,,,,\n",
+    )
+    .unwrap();
+    let out = dir.path().join("out.csv");
+    let o = ok(&[
+        "score",
+        "--keep-training-base-rate",
+        "--warnings-column",
+        "--model",
+        s(&data("small-trees.json")),
+        "--input",
+        s(&input),
+        "--output",
+        s(&out),
+    ]);
+    let (h, rows) = read_csv(&out);
+    let p = col(&h, "probability");
+    let w = col(&h, "warnings");
+    // `inf` scores exactly as an empty (missing) cell; `CHIP` exactly as the unknown `atm`.
+    assert_eq!(&rows[0][p], &rows[1][p]);
+    assert_eq!(&rows[2][p], &rows[3][p]);
+    assert_eq!(&rows[0][w], "amount: not finite, read as missing");
+    assert_eq!(&rows[1][w], "amount: missing");
+    assert_eq!(&rows[2][w], "channel: unknown category");
+    assert_eq!(
+        &rows[4][w],
+        "amount: missing; hour: missing; channel: missing; foreign: missing; every feature missing"
+    );
+    let err = stderr(&o);
+    for line in [
+        "2 rows: column `channel`: unknown category",
+        "1 row: column `amount`: not finite, read as missing",
+        "2 rows: column `amount`: missing",
+        "1 row with every feature missing",
+    ] {
+        assert!(err.contains(line), "{line:?} not in:\n{err}");
+    }
+}

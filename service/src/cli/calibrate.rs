@@ -256,7 +256,7 @@ fn read_holdout(model: &Model, args: &CalibrateArgs) -> anyhow::Result<(Vec<f64>
                 &OutputSpec::default(),
                 &mut reader,
                 None,
-                |record, scored| {
+                |record, scored, _| {
                     row += 1;
                     h.push(scored.log_odds);
                     y.push(label(record, row)?);

@@ -9,7 +9,9 @@ use std::io::Read;
 
 use anyhow::{anyhow, bail, Context};
 use csv::StringRecord;
-use probity_models::{CellError, EvalError, Model, OutputSpec, Schema, Scored};
+use std::collections::BTreeMap;
+
+use probity_models::{CellError, CellNote, EvalError, Model, OutputSpec, Schema, Scored};
 
 /// Rows evaluated together: large enough to amortise the call, small enough to stay in cache.
 pub const BLOCK_ROWS: usize = 1024;
@@ -84,20 +86,27 @@ impl ColumnMap {
             .map(|(n, _)| n.as_str())
     }
 
-    /// Encodes `record` into `row` (one value per feature). `number` is the 1-based data row, for errors.
+    /// Encodes `record` into `row` (one value per feature) under [`Schema::read_text`]'s rule, and lists in `notes`
+    /// what was noticed (feature index and note; an absent column is a missing cell). `number` is the 1-based data
+    /// row, for errors.
     fn encode(
         &self,
         schema: &Schema,
         record: &StringRecord,
         number: u64,
         row: &mut [f64],
+        notes: &mut RowNotes,
     ) -> Result<(), BadCell> {
+        notes.cells.clear();
         for (f, (slot, col)) in row.iter_mut().zip(&self.features).enumerate() {
-            *slot = match col {
-                None => f64::NAN,
+            let cell = match col {
+                None => probity_models::Cell {
+                    value: f64::NAN,
+                    note: Some(CellNote::Missing),
+                },
                 Some(c) => {
                     let text = record.get(*c).unwrap_or("");
-                    schema.encode_text(f, text).map_err(|e| {
+                    schema.read_text(f, text).map_err(|e| {
                         let why = match e {
                             CellError::NotANumber { text, .. } => {
                                 format!("`{text}` is not a number")
@@ -111,8 +120,103 @@ impl ColumnMap {
                     })?
                 }
             };
+            *slot = cell.value;
+            if let Some(note) = cell.note {
+                notes.cells.push((f, note));
+            }
         }
+        notes.every_feature_missing = !row.is_empty() && row.iter().all(|x| x.is_nan());
         Ok(())
+    }
+
+    /// The feature names, in schema order.
+    pub fn names(&self) -> &[String] {
+        &self.names
+    }
+}
+
+/// What reading one row noticed: (feature index, note) per cell, and whether no feature had a value.
+#[derive(Debug, Clone, Default)]
+pub struct RowNotes {
+    /// Cells with a note, in feature order.
+    pub cells: Vec<(usize, CellNote)>,
+    /// Every feature was missing: the row scores as the model's all-missing path.
+    pub every_feature_missing: bool,
+}
+
+impl RowNotes {
+    /// `channel: unknown category; amount: not finite, read as missing`, for an output column; empty when nothing
+    /// was noticed.
+    pub fn describe(&self, names: &[String]) -> String {
+        let mut parts: Vec<String> = self
+            .cells
+            .iter()
+            .map(|&(f, note)| {
+                format!(
+                    "{}: {}",
+                    names.get(f).map_or("?", String::as_str),
+                    note_words(note)
+                )
+            })
+            .collect();
+        if self.every_feature_missing {
+            parts.push("every feature missing".into());
+        }
+        parts.join("; ")
+    }
+}
+
+fn note_words(note: CellNote) -> &'static str {
+    match note {
+        CellNote::Missing => "missing",
+        CellNote::NonFinite => "not finite, read as missing",
+        CellNote::UnknownCategory => "unknown category",
+    }
+}
+
+/// Counts of what a run noticed, by kind and column, for the summary at its end.
+#[derive(Debug, Clone, Default)]
+pub struct RunNotes {
+    by_cell: BTreeMap<(CellNote, usize), u64>,
+    every_feature_missing: u64,
+}
+
+impl RunNotes {
+    /// Adds one row's notes.
+    pub fn add(&mut self, row: &RowNotes) {
+        for &(f, note) in &row.cells {
+            *self.by_cell.entry((note, f)).or_default() += 1;
+        }
+        self.every_feature_missing += u64::from(row.every_feature_missing);
+    }
+
+    /// One line per kind and column (`12 rows: column `channel`: unknown category`), rows with every feature
+    /// missing last; no lines when nothing was noticed.
+    pub fn summary(&self, names: &[String]) -> Vec<String> {
+        let mut lines: Vec<String> = self
+            .by_cell
+            .iter()
+            .map(|(&(note, f), n)| {
+                format!(
+                    "{n} row{}: column `{}`: {}",
+                    if *n == 1 { "" } else { "s" },
+                    names.get(f).map_or("?", String::as_str),
+                    note_words(note)
+                )
+            })
+            .collect();
+        if self.every_feature_missing > 0 {
+            lines.push(format!(
+                "{} row{} with every feature missing (scored on the model's all-missing path)",
+                self.every_feature_missing,
+                if self.every_feature_missing == 1 {
+                    ""
+                } else {
+                    "s"
+                }
+            ));
+        }
+        lines
     }
 }
 
@@ -161,11 +265,12 @@ pub fn score_records<R: Read>(
     spec: &OutputSpec,
     reader: &mut csv::Reader<R>,
     mut on_reject: OnReject<'_>,
-    mut sink: impl FnMut(&StringRecord, &Scored) -> anyhow::Result<()>,
+    mut sink: impl FnMut(&StringRecord, &Scored, &RowNotes) -> anyhow::Result<()>,
 ) -> anyhow::Result<u64> {
     let schema = model.schema();
     let n = schema.len();
     let mut records = vec![StringRecord::new(); BLOCK_ROWS];
+    let mut notes = vec![RowNotes::default(); BLOCK_ROWS];
     let mut numbers = vec![0u64; BLOCK_ROWS];
     let mut rows = vec![0.0; BLOCK_ROWS * n];
     let mut margins = vec![0.0; BLOCK_ROWS];
@@ -189,6 +294,7 @@ pub fn score_records<R: Read>(
                 &records[filled],
                 number,
                 &mut rows[filled * n..(filled + 1) * n],
+                &mut notes[filled],
             );
             match (encoded, on_reject.as_deref_mut()) {
                 (Ok(()), _) => {
@@ -207,8 +313,10 @@ pub fn score_records<R: Read>(
             let block = model.margins(&rows[..filled * n], &mut margins[..filled]);
             match (block, on_reject.as_deref_mut()) {
                 (Ok(()), _) => {
-                    for (record, &margin) in records.iter().zip(&margins[..filled]) {
-                        sink(record, &model.finish(margin, spec))?;
+                    for ((record, &margin), row_notes) in
+                        records.iter().zip(&margins[..filled]).zip(&notes)
+                    {
+                        sink(record, &model.finish(margin, spec), row_notes)?;
                     }
                     scored += filled as u64;
                 }
@@ -226,7 +334,7 @@ pub fn score_records<R: Read>(
                         let mut one = [0.0];
                         match model.margins(&rows[i * n..(i + 1) * n], &mut one) {
                             Ok(()) => {
-                                sink(&records[i], &model.finish(one[0], spec))?;
+                                sink(&records[i], &model.finish(one[0], spec), &notes[i])?;
                                 scored += 1;
                             }
                             Err(e) => reject(Rejected {

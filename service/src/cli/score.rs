@@ -11,7 +11,7 @@ use csv::StringRecord;
 use indicatif::{ProgressBar, ProgressStyle};
 use probity_models::{DecisionRule, Model, OutputSpec, Scored};
 
-use super::pipeline::{csv_reader, score_records, ColumnMap, OnReject, Rejected};
+use super::pipeline::{csv_reader, score_records, ColumnMap, OnReject, Rejected, RunNotes};
 
 /// Files smaller than this finish before a progress bar is worth drawing.
 const PROGRESS_MIN_BYTES: u64 = 1 << 20;
@@ -63,6 +63,10 @@ pub struct ScoreArgs {
     /// `.rejects.csv` in place of its extension].
     #[arg(long, value_name = "FILE")]
     pub rejects: Option<PathBuf>,
+    /// Add a `warnings` column saying, per row, what reading it noticed (missing cells, numbers that are not finite,
+    /// unknown categories, every feature missing); a summary by kind and column is printed either way.
+    #[arg(long)]
+    pub warnings_column: bool,
     /// No progress bar and no summary line.
     #[arg(long, short)]
     pub quiet: bool,
@@ -135,7 +139,7 @@ pub fn run(args: &ScoreArgs) -> anyhow::Result<()> {
         rejects.as_ref().map(|r| BufWriter::new(r.file())),
     );
     progress.finish_and_clear();
-    let (rows, rejected) =
+    let (rows, rejected, notes) =
         result.with_context(|| format!("cannot score {}", args.input.display()))?;
     output.commit()?;
     if let Some(r) = rejects {
@@ -148,6 +152,20 @@ pub fn run(args: &ScoreArgs) -> anyhow::Result<()> {
             rows as f64 / seconds.max(1e-9),
             args.output.display()
         );
+        let summary = notes.summary(
+            &model
+                .schema()
+                .features()
+                .iter()
+                .map(|f| f.name.clone())
+                .collect::<Vec<_>>(),
+        );
+        if !summary.is_empty() {
+            eprintln!("noticed while reading (same rule as the gRPC warnings):");
+            for line in summary {
+                eprintln!("  {line}");
+            }
+        }
         if let Some(path) = &rejects_path {
             eprintln!(
                 "left out {rejected} rows that could not be scored: listed in {}",
@@ -310,7 +328,7 @@ fn score_file<R: Read, W: Write>(
     reader: &mut csv::Reader<R>,
     output: W,
     rejects: Option<W>,
-) -> anyhow::Result<(u64, u64)> {
+) -> anyhow::Result<(u64, u64, RunNotes)> {
     let header = reader
         .headers()
         .context("cannot read the header row")?
@@ -339,6 +357,13 @@ fn score_file<R: Read, W: Write>(
         out_header.push_field(&header[id]);
     }
     out_header.extend(scores.iter());
+    if args.warnings_column {
+        if header.iter().any(|h| h == "warnings") && args.keep_columns {
+            bail!("input column `warnings` has the name of an output column; rename it or drop --keep-columns");
+        }
+        out_header.push_field("warnings");
+    }
+    let mut run_notes = RunNotes::default();
 
     let mut writer = csv::Writer::from_writer(output);
     writer.write_record(&out_header)?;
@@ -374,7 +399,8 @@ fn score_file<R: Read, W: Write>(
         spec,
         reader,
         on_reject,
-        |record, scored| {
+        |record, scored, notes| {
+            run_notes.add(notes);
             line.clear();
             if args.keep_columns {
                 line.extend(record.iter());
@@ -382,6 +408,9 @@ fn score_file<R: Read, W: Write>(
                 line.push_field(record.get(id).unwrap_or(""));
             }
             push_scores(&mut line, scored, spec, &mut buf);
+            if args.warnings_column {
+                line.push_field(&notes.describe(columns.names()));
+            }
             writer
                 .write_record(&line)
                 .context("cannot write the output")
@@ -391,7 +420,7 @@ fn score_file<R: Read, W: Write>(
     if let Some(r) = rejects.as_mut() {
         r.flush().context("cannot write the rejects file")?;
     }
-    Ok((rows, rejected))
+    Ok((rows, rejected, run_notes))
 }
 
 /// A byte-count progress bar on stderr.

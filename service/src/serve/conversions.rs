@@ -248,8 +248,16 @@ fn named_row(
             (
                 FeatureKind::Categorical { categories },
                 Some(Some(pb::feature_value::Kind::Category(text))),
-            ) => match schema.category_index(index, text) {
+            ) => match schema.category_of(index, text) {
                 Some(i) => i as f64,
+                // The offline rule for a cell (`Schema::read_text`): an empty, `NA` or `null` category is missing.
+                None if matches!(
+                    schema.read_text(index, text).map(|c| c.note),
+                    Ok(Some(probity_models::CellNote::Missing))
+                ) =>
+                {
+                    missing(route, path, name, WarningKind::MissingFeature, warnings)?
+                }
                 None if text.len() > MAX_CATEGORY_BYTES => {
                     return Err(ServeError::invalid(
                         path(),

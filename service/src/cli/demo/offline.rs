@@ -40,7 +40,7 @@ pub fn score_demo(model: &Model, data: &DemoData) -> anyhow::Result<DemoRun> {
     let (mut probabilities, mut log_odds) = (Vec::with_capacity(n), Vec::with_capacity(n));
     let mut fields = Vec::with_capacity(n);
     let mut buf = String::new();
-    score_records(model, &columns, &spec, &mut reader, None, |_, s| {
+    score_records(model, &columns, &spec, &mut reader, None, |_, s, _| {
         probabilities.push(s.probability);
         log_odds.push(s.adjusted_log_odds);
         let mut record = StringRecord::new();
