@@ -94,8 +94,10 @@ fn check_prints_a_summary_of_a_good_model() {
         "test-card-trees 1.0.0",
         "2 trees, 10 nodes, 6 leaves, max depth 2",
         "channel",
-        "4 categories",
+        "4 categories: \"chip\", \"contactless\", \"online\", \"phone\"",
         "platt",
+        // Metadata one key a line, not one long JSON line.
+        "metadata\n  purpose: hand-made model for the command-line tests\n",
     ] {
         assert!(text.contains(want), "missing {want:?} in:\n{text}");
     }
@@ -976,4 +978,54 @@ fn bad_cells_are_read_by_the_grpc_rule_and_said() {
     ] {
         assert!(err.contains(line), "{line:?} not in:\n{err}");
     }
+}
+
+/// Files that are not what `score` and `check` expect get a message saying what they look like.
+#[test]
+fn a_wrong_kind_of_file_is_named_for_what_it_looks_like() {
+    let dir = tempfile::tempdir().unwrap();
+    let model = data("small-trees.json");
+    let out = dir.path().join("out.csv");
+    let score = |input: &Path| {
+        probity(&[
+            "score",
+            "--keep-training-base-rate",
+            "--model",
+            s(&model),
+            "--input",
+            s(input),
+            "--output",
+            s(&out),
+        ])
+    };
+    let semi = dir.path().join("semi.csv");
+    std::fs::write(&semi, "id;amount;hour;channel;foreign\na;1;2;chip;0\n").unwrap();
+    let err = stderr(&score(&semi));
+    assert!(err.contains("looks separated by `;`"), "{err}");
+    let tabs = dir.path().join("tabs.csv");
+    std::fs::write(
+        &tabs,
+        "id\tamount\thour\tchannel\tforeign\na\t1\t2\tchip\t0\n",
+    )
+    .unwrap();
+    let err = stderr(&score(&tabs));
+    assert!(err.contains("looks separated by tabs"), "{err}");
+    let empty = dir.path().join("empty.csv");
+    std::fs::write(&empty, "").unwrap();
+    let err = stderr(&score(&empty));
+    assert!(err.contains("the input is empty"), "{err}");
+
+    let commented = dir.path().join("commented.json");
+    let text = std::fs::read_to_string(&model).unwrap();
+    std::fs::write(&commented, format!("// the test model\n{text}")).unwrap();
+    let o = probity(&["check", s(&commented)]);
+    assert_eq!(o.status.code(), Some(1));
+    assert!(
+        stderr(&o).contains("line 1, column 1") && stderr(&o).contains("no comments"),
+        "{}",
+        stderr(&o)
+    );
+    std::fs::write(&commented, text.replacen("{", "{ # the test model\n", 1)).unwrap();
+    let o = probity(&["check", s(&commented)]);
+    assert!(stderr(&o).contains("no comments"), "{}", stderr(&o));
 }

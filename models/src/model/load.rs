@@ -55,15 +55,15 @@ fn parse(bytes: &[u8]) -> Result<RawModel, ModelError> {
     let mut de = serde_json::Deserializer::from_slice(bytes);
     let raw: RawModel = serde_path_to_error::deserialize(&mut de).map_err(|e| {
         let path = e.path().to_string();
-        structural(path, e.into_inner())
+        structural(path, e.into_inner(), bytes)
     })?;
     // Trailing characters after the document.
-    de.end().map_err(|e| structural(String::new(), e))?;
+    de.end().map_err(|e| structural(String::new(), e, bytes))?;
     Ok(raw)
 }
 
 /// Classifies a serde_json error as a syntax error (with position) or a structural one (with path).
-fn structural(path: String, e: serde_json::Error) -> ModelError {
+fn structural(path: String, e: serde_json::Error, bytes: &[u8]) -> ModelError {
     let (line, column) = (e.line(), e.column());
     let mut message = e.to_string();
     // serde_json appends the position; the path (or our own line/column fields) already says where.
@@ -86,6 +86,12 @@ fn structural(path: String, e: serde_json::Error) -> ModelError {
             if !path.is_empty() && path != "." {
                 message = format!("{message} (inside {path})");
             }
+            if e.classify() == serde_json::error::Category::Syntax
+                && comment_at(bytes, line, column)
+            {
+                message =
+                    format!("{message}: a comment? A model file is JSON, which has no comments");
+            }
             ModelError::Syntax {
                 line,
                 column,
@@ -93,6 +99,21 @@ fn structural(path: String, e: serde_json::Error) -> ModelError {
             }
         }
     }
+}
+
+/// Whether the text at 1-based `line` and `column` (where serde_json stopped; the column may point at the
+/// character after the one that failed) starts a comment: `//`, `/*` or `#`.
+fn comment_at(bytes: &[u8], line: usize, column: usize) -> bool {
+    let Some(text) = bytes.split(|&b| b == b'\n').nth(line.saturating_sub(1)) else {
+        return false;
+    };
+    let from = column.saturating_sub(2).min(text.len());
+    [from, column.saturating_sub(1).min(text.len())]
+        .iter()
+        .any(|&i| {
+            let rest = &text[i..];
+            rest.starts_with(b"//") || rest.starts_with(b"/*") || rest.starts_with(b"#")
+        })
 }
 
 /// Fails unless `v` is finite.

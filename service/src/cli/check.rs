@@ -104,7 +104,11 @@ pub fn summary_text(model: &Model) -> String {
         let kind = match &f.kind {
             FeatureKind::Numeric => "numeric".to_string(),
             FeatureKind::Categorical { categories } => {
-                format!("categorical, {} categories", categories.len())
+                format!(
+                    "categorical, {} categories: {}",
+                    categories.len(),
+                    category_list(categories)
+                )
             }
         };
         out += &format!("  {:width$}  {kind}\n", f.name);
@@ -153,9 +157,56 @@ pub fn summary_text(model: &Model) -> String {
     );
     let metadata = model.metadata();
     if !metadata.is_null() {
-        out += &format!("metadata       {metadata}\n");
+        out += "metadata\n";
+        metadata_lines(metadata, 1, &mut out);
     }
     out
+}
+
+/// The first categories, quoted, and how many more: a list of 65,536 stays one line.
+fn category_list(categories: &[String]) -> String {
+    const SHOWN: usize = 12;
+    let mut list: Vec<String> = categories
+        .iter()
+        .take(SHOWN)
+        .map(|c| format!("{c:?}"))
+        .collect();
+    if categories.len() > SHOWN {
+        list.push(format!("... ({} more)", categories.len() - SHOWN));
+    }
+    list.join(", ")
+}
+
+/// Metadata one key a line, nested objects indented, long text cut with its length said.
+fn metadata_lines(value: &serde_json::Value, depth: usize, out: &mut String) {
+    const LONGEST: usize = 100;
+    let indent = "  ".repeat(depth);
+    match value {
+        serde_json::Value::Object(map) => {
+            for (k, v) in map {
+                if v.is_object() {
+                    out.push_str(&format!("{indent}{k}\n"));
+                    metadata_lines(v, depth + 1, out);
+                } else {
+                    let text = match v {
+                        serde_json::Value::String(s) => s.clone(),
+                        other => other.to_string(),
+                    };
+                    let shown = if text.chars().count() > LONGEST {
+                        format!(
+                            "{}... ({} characters)",
+                            text.chars().take(LONGEST).collect::<String>(),
+                            text.chars().count()
+                        )
+                    } else {
+                        text
+                    };
+                    out.push_str(&format!("{indent}{k}: {shown}\n"));
+                }
+            }
+        }
+        other => out.push_str(&format!("{indent}{other}\n")),
+    }
 }
 
 fn isotonic_input(i: IsotonicInput) -> &'static str {

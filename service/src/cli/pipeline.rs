@@ -47,6 +47,24 @@ impl ColumnMap {
             }
         }
         let names: Vec<String> = schema.features().iter().map(|f| f.name.clone()).collect();
+        if header.iter().all(str::is_empty) {
+            bail!(
+                "the input is empty: a CSV file with a header row naming its columns is expected"
+            );
+        }
+        if header.len() == 1 && features.iter().all(Option::is_none) {
+            if let Some(d) = [';', '\t', '|']
+                .into_iter()
+                .find(|d| header[0].contains(*d))
+            {
+                bail!(
+                    "the header is one column `{}`: the file looks separated by {}; probity reads comma-separated \
+                     files",
+                    header[0].chars().take(80).collect::<String>(),
+                    if d == '\t' { "tabs".to_string() } else { format!("`{d}`") }
+                );
+            }
+        }
         if !allow_missing {
             let absent: Vec<&str> = names
                 .iter()

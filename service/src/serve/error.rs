@@ -24,12 +24,14 @@ pub enum ServeError {
         known: String,
     },
     /// The route exists but the model it serves is not loaded.
-    #[error("route `{route}` is not ready: model `{model}` is not loaded")]
+    #[error("route `{route}` is not ready: model `{model}` is not loaded (loaded: {loaded})")]
     RouteNotReady {
         /// The route asked for.
         route: String,
         /// The model it serves.
         model: String,
+        /// The loaded models' names, comma-separated, or `none`.
+        loaded: String,
     },
     /// No loaded model has this name.
     #[error("model `{model}` is not loaded")]

@@ -203,6 +203,16 @@ impl Scorer {
             None => Err(ServeError::RouteNotReady {
                 route: route.to_string(),
                 model: config.model.clone(),
+                loaded: if snapshot.models.is_empty() {
+                    "none".into()
+                } else {
+                    snapshot
+                        .models
+                        .keys()
+                        .map(String::as_str)
+                        .collect::<Vec<_>>()
+                        .join(", ")
+                },
             }),
         }
     }

@@ -68,7 +68,11 @@ pub fn code_of(error: &ServeError) -> Code {
             message: _,
         } => Code::InvalidArgument,
         ServeError::RouteNotFound { route: _, known: _ } => Code::NotFound,
-        ServeError::RouteNotReady { route: _, model: _ } => Code::Unavailable,
+        ServeError::RouteNotReady {
+            route: _,
+            model: _,
+            loaded: _,
+        } => Code::Unavailable,
         ServeError::ModelNotFound { model: _ } => Code::NotFound,
         ServeError::Eval { field: _, error } => eval_code(error),
         ServeError::DeadlineExceeded {

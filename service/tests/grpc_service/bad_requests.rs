@@ -45,7 +45,7 @@ fn table() -> Vec<(&'static str, Call, Code, &'static str)> {
             "route without model",
             Call::Score(score_request("orphan", fraud_row(""))),
             Code::Unavailable,
-            "route `orphan`",
+            "route `orphan` is not ready: model `grpc-absent` is not loaded (loaded: grpc-credit, grpc-fraud)",
         ),
         (
             "no row",
