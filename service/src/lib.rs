@@ -3,9 +3,9 @@
 //! matching; [`report`] the exact reports from the log; [`client`] how the command-line tools dial a server.
 #![warn(clippy::unwrap_used, clippy::expect_used)]
 
+pub mod charts;
 pub mod client;
 pub mod compare;
 pub mod report;
 pub mod serve;
 pub mod store;
-pub mod svg;

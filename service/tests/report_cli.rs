@@ -216,9 +216,12 @@ fn svg_pictures_have_axes_diagonal_and_one_marker_per_bin_and_render() {
             .count()
     };
     let reliability = read("reliability");
-    assert_eq!(count(&reliability, "line", "axis"), 2);
+    assert_eq!(count(&reliability, "rect", "axis"), 1);
     assert_eq!(count(&reliability, "line", "diagonal"), 1);
     assert_eq!(count(&reliability, "circle", "bin"), bins);
+    // A 95% Wilson interval per bin, and tick labels on both axes.
+    assert_eq!(count(&reliability, "path", "interval"), bins);
+    assert!(count(&reliability, "text", "tick") >= 4);
     let histograms = read("histograms");
     assert_eq!(count(&histograms, "rect", "bar-negative"), 20);
     assert_eq!(count(&histograms, "rect", "bar-positive"), 20);

@@ -502,3 +502,32 @@ fn psi_matches_numpy_with_both_empty_bin_rules() {
         .any(|c| c == 0));
     assert!((f(&shifted["psi_floor_1e-4"]) - f(&shifted["psi_add_0.5"])).abs() > 1.0);
 }
+
+/// Wilson (1927) score interval against statsmodels 0.15.0
+/// `statsmodels.stats.proportion.proportion_confint(count, nobs, alpha=0.05, method="wilson")`
+/// (tests/fixtures/gen_intervals.py), counts 0 and n included.
+#[test]
+fn wilson_interval_equals_statsmodels() {
+    let path = concat!(
+        env!("CARGO_MANIFEST_DIR"),
+        "/fixtures/intervals/wilson.json"
+    );
+    let doc: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(path).unwrap()).unwrap();
+    let cases = doc["cases"].as_array().unwrap();
+    assert!(cases.len() > 20);
+    for c in cases {
+        let (k, n) = (c["positives"].as_u64().unwrap(), c["n"].as_u64().unwrap());
+        let (lo, hi) =
+            probity_models::metrics::wilson_interval(k, n, probity_models::metrics::Z_95).unwrap();
+        let (want_lo, want_hi) = (c["lower"].as_f64().unwrap(), c["upper"].as_f64().unwrap());
+        assert!(
+            (lo - want_lo).abs() <= 1e-12,
+            "{k}/{n}: lower {lo} vs {want_lo}"
+        );
+        assert!(
+            (hi - want_hi).abs() <= 1e-12,
+            "{k}/{n}: upper {hi} vs {want_hi}"
+        );
+    }
+}

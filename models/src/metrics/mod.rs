@@ -16,6 +16,7 @@
 pub mod calibration_table;
 pub mod drift;
 pub mod hosmer_lemeshow;
+pub mod interval;
 pub mod loss;
 pub mod quantile;
 pub mod ranking;
@@ -26,6 +27,7 @@ pub use drift::{
     EmptyBinRule,
 };
 pub use hosmer_lemeshow::{chi2_sf, hosmer_lemeshow, HlGroup, HlGrouping, HosmerLemeshow};
+pub use interval::{wilson_interval, Z_95};
 pub use loss::{
     brier_decomposition, brier_score, log_loss_from_log_odds, log_loss_term_pm1, log_loss_terms,
     BrierDecomposition,
