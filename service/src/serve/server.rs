@@ -254,6 +254,7 @@ async fn start_inner(
         transport,
         reflection,
         shutdown_grace,
+        max_connection_age,
         access,
         model_dir,
         watch: watch_dir,
@@ -375,8 +376,14 @@ async fn start_inner(
 
     let (shutdown, shutdown_rx) = watch::channel(false);
     // The access check is the outermost layer: a refused call never takes a concurrency slot.
-    let router = tonic::transport::Server::builder()
-        .timeout(limits.default_deadline)
+    let mut builder = tonic::transport::Server::builder().timeout(limits.default_deadline);
+    if let Some(age) = max_connection_age {
+        // Past its age a connection gets GOAWAY; its calls in flight then have the shutdown grace to finish.
+        builder = builder
+            .max_connection_age(age)
+            .max_connection_age_grace(shutdown_grace);
+    }
+    let router = builder
         .layer(AccessLayer::new(Arc::clone(&security)))
         .layer(tower::limit::GlobalConcurrencyLimitLayer::new(
             limits.max_concurrent_requests,

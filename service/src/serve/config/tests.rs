@@ -356,3 +356,51 @@ fn deploy_example_security_block_is_valid_when_uncommented() {
     assert!(files.client_ca_file.is_some());
     assert_eq!(c.access.callers.len(), 2);
 }
+
+#[test]
+fn max_connection_age_is_off_by_default_and_layered_like_the_other_keys() {
+    assert_eq!(load(MINIMAL, &[], &[]).unwrap().max_connection_age, None);
+    let text = format!("[server]\nmax_connection_age_ms = 300000\n{MINIMAL}");
+    assert_eq!(
+        load(&text, &[], &[]).unwrap().max_connection_age,
+        Some(Duration::from_secs(300)),
+        "file"
+    );
+    let c = load(
+        &text,
+        &[("PROBITY_SERVER_MAX_CONNECTION_AGE_MS", "600000")],
+        &[],
+    )
+    .unwrap();
+    assert_eq!(
+        c.max_connection_age,
+        Some(Duration::from_secs(600)),
+        "env wins over file"
+    );
+    let c = load(
+        &text,
+        &[("PROBITY_SERVER_MAX_CONNECTION_AGE_MS", "600000")],
+        &[("server.max_connection_age_ms", "0")],
+    )
+    .unwrap();
+    assert_eq!(
+        c.max_connection_age, None,
+        "a flag of 0 turns the limit off again"
+    );
+    for (value, expected) in [
+        (
+            "999",
+            "server.max_connection_age_ms: must be 0 (no limit) or at least 1000, got 999",
+        ),
+        (
+            "604800001",
+            "server.max_connection_age_ms: must be in [0, 604800000], got 604800001",
+        ),
+        ("\"5m\"", "server.max_connection_age_ms: invalid type"),
+    ] {
+        let err = load(MINIMAL, &[], &[("server.max_connection_age_ms", value)])
+            .unwrap_err()
+            .to_string();
+        assert!(err.starts_with(expected), "{value}: {err}");
+    }
+}
