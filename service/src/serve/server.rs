@@ -312,6 +312,7 @@ async fn start_inner(
         }
         (None, None) => None,
     };
+    crate::serve::base_rate::publish_configured(&routes);
     let scorer = Arc::new(
         Scorer::new(Arc::clone(&registry), routes, limits)
             .with_log(log.clone())
