@@ -191,12 +191,12 @@ pub struct Config {
     pub transport: Transport,
     /// Whether gRPC server reflection is on.
     pub reflection: bool,
-    /// How long a shutdown waits for in-flight calls before closing them; also how long a connection past its
-    /// maximum age has for its calls.
+    /// How long a shutdown waits for in-flight calls before closing them.
     pub shutdown_grace: Duration,
     /// The longest a gRPC connection lives (`server.max_connection_age_ms`; 0, the default, is no limit). Past it the
-    /// server sends HTTP/2 GOAWAY, the client reconnects (possibly to another replica) and calls in flight get
-    /// `shutdown_grace` to finish. Long-lived HTTP/2 connections are balanced per connection, so a fleet behind a
+    /// server sends HTTP/2 GOAWAY: the client opens a new connection for its next calls (possibly to another
+    /// replica), and the old one closes once its calls in flight have finished (a long stream keeps it until the
+    /// stream ends). Long-lived HTTP/2 connections are balanced per connection, so a fleet behind a
     /// connection-level load balancer needs this to spread load again after replicas are added or restarted.
     pub max_connection_age: Option<Duration>,
     /// The callers and their roles (`[[access.callers]]`).
