@@ -278,13 +278,22 @@ fn outcomes(range: std::ops::Range<usize>, flip: bool) -> Vec<pb::Outcome> {
         .collect()
 }
 
-fn series<'a>(report: &'a Value, route: &str, model: &str) -> &'a Value {
+fn find_series<'a>(report: &'a Value, route: &str, model: &str) -> Option<&'a Value> {
     report["series"]
         .as_array()
         .unwrap()
         .iter()
         .find(|s| s["route"] == route && s["model"] == model)
+}
+
+fn series<'a>(report: &'a Value, route: &str, model: &str) -> &'a Value {
+    find_series(report, route, model)
         .unwrap_or_else(|| panic!("no series {route}/{model} in {report}"))
+}
+
+/// A field of a series that may not be in the report yet (the writer commits in the background).
+fn field(report: &Value, route: &str, model: &str, key: &str) -> Value {
+    find_series(report, route, model).map_or(Value::Null, |s| s[key].clone())
 }
 
 /// Scores, repeats ids (drops), records outcomes and corrections, and waits until the log has settled all of it:
@@ -317,7 +326,19 @@ async fn drive(server: &Server) -> Value {
         .await
         .unwrap();
     let deadline = Instant::now() + Duration::from_secs(20);
-    while series(&server.report().await, "card-auth", "fleet-b")["predictions"] != 300 {
+    while field(
+        &server.report().await,
+        "card-auth",
+        "fleet-b",
+        "predictions",
+    ) != 300
+        || field(
+            &server.report().await,
+            "card-auth",
+            "fleet-a",
+            "predictions",
+        ) != 300
+    {
         assert!(Instant::now() < deadline, "predictions not logged");
         tokio::time::sleep(Duration::from_millis(50)).await;
     }
@@ -346,9 +367,9 @@ async fn drive(server: &Server) -> Value {
     loop {
         let report = server.report().await;
         let (_, text) = http_get(&server.metrics, "/metrics").unwrap();
-        let done = series(&report, "card-auth", "fleet-a")["with_outcome"] == 250
-            && series(&report, "card-auth", "fleet-b")["with_outcome"] == 250
-            && series(&report, "aged", "fleet-a")["settled_by_maturity"] == 40
+        let done = field(&report, "card-auth", "fleet-a", "with_outcome") == 250
+            && field(&report, "card-auth", "fleet-b", "with_outcome") == 250
+            && field(&report, "aged", "fleet-a", "settled_by_maturity") == 40
             && text.contains("probity_compare_log_loss_p_value")
             && text.contains("probity_psi{")
             && text.contains("probity_base_rate_estimate{");
@@ -548,13 +569,15 @@ async fn prometheus_records_the_servers_own_figures() {
     ] {
         let s = series(&report, route, model);
         let labels = [("route", route), ("model", model), ("version", "1")];
-        let figure = |record: &str, extra: Option<(&str, &str)>| loop {
+        // The recorded value, once it equals `want`, or the last one seen at the deadline. (The report reads the
+        // log, the counters move just after the same commit: a scrape in between sees them a moment behind.)
+        let figure = |record: &str, extra: Option<(&str, &str)>, want: f64| loop {
             let mut l = labels.to_vec();
             l.extend(extra);
-            if let Some(v) = prometheus.value(record, &l) {
-                return v;
+            let got = prometheus.value(record, &l);
+            if got.is_some_and(|v| close(v, want)) || Instant::now() >= deadline {
+                return got.unwrap_or_else(|| panic!("{record} {l:?} never recorded"));
             }
-            assert!(Instant::now() < deadline, "{record} {l:?} never recorded");
             std::thread::sleep(Duration::from_millis(200));
         };
         let pairs = s["with_outcome"].as_f64().unwrap();
@@ -578,7 +601,7 @@ async fn prometheus_records_the_servers_own_figures() {
             ),
         ];
         for (record, want) in expected {
-            let got = figure(record, None);
+            let got = figure(record, None, want);
             println!("{route}/{model} {record}: recorded {got}, report {want}");
             assert!(
                 close(got, want),
@@ -615,7 +638,7 @@ async fn prometheus_records_the_servers_own_figures() {
                     bin["fraction_positive"].as_f64().unwrap(),
                 ),
             ] {
-                let got = figure(record, b);
+                let got = figure(record, b, want);
                 assert!(
                     close(got, want),
                     "{route}/{model} bin {} {record}: recorded {got}, report {want}",
