@@ -20,7 +20,8 @@ use serde::Deserialize;
 use crate::serve::promotion::RouteTable;
 use crate::store::PredictionLog;
 
-/// The effective target base rate of a route that applies the estimate.
+/// The target base rate in force on a route: the configured `target_base_rate` from the start, then the applied
+/// estimate on a route that opts in.
 pub const EFFECTIVE_TARGET: &str = "probity_effective_target_base_rate";
 /// How often the task looks at the estimates.
 const EVERY: Duration = Duration::from_secs(1);
@@ -142,7 +143,7 @@ pub fn task(
 ) -> tokio::task::JoinHandle<()> {
     metrics::describe_gauge!(
         EFFECTIVE_TARGET,
-        "Target base rate in force on a route that applies the live base-rate estimate."
+        "Target base rate in force on a route (configured, or the applied estimate)."
     );
     let routes = table.load();
     for name in opted_in.keys() {
@@ -164,3 +165,18 @@ pub fn task(
 
 #[cfg(test)]
 mod tests;
+
+/// Sets [`EFFECTIVE_TARGET`] for every route with a configured `target_base_rate`, at start, so that a monitoring
+/// system can set the live estimate (`probity_base_rate_estimate`) against it; routes that apply the estimate move
+/// it on from there ([`task`]). A route without a configured target has no series.
+pub fn publish_configured(routes: &BTreeMap<String, crate::serve::config::Route>) {
+    metrics::describe_gauge!(
+        EFFECTIVE_TARGET,
+        "Target base rate in force on a route (configured, or the applied estimate)."
+    );
+    for (name, route) in routes {
+        if let Some(t) = route.output.target_base_rate {
+            metrics::gauge!(EFFECTIVE_TARGET, "route" => name.clone()).set(t);
+        }
+    }
+}

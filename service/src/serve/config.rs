@@ -82,6 +82,7 @@ struct RawServer {
     metrics_listen: String,
     reflection: bool,
     shutdown_grace_ms: u64,
+    max_connection_age_ms: u64,
     admin_token_file: Option<String>,
     plaintext: Option<String>,
     tls: Option<crate::serve::security::config::RawTls>,
@@ -94,6 +95,7 @@ impl Default for RawServer {
             metrics_listen: "127.0.0.1:9464".into(),
             reflection: true,
             shutdown_grace_ms: 10_000,
+            max_connection_age_ms: 0,
             admin_token_file: None,
             plaintext: None,
             tls: None,
@@ -191,6 +193,12 @@ pub struct Config {
     pub reflection: bool,
     /// How long a shutdown waits for in-flight calls before closing them.
     pub shutdown_grace: Duration,
+    /// The longest a gRPC connection lives (`server.max_connection_age_ms`; 0, the default, is no limit). Past it the
+    /// server sends HTTP/2 GOAWAY: the client opens a new connection for its next calls (possibly to another
+    /// replica), and the old one closes once its calls in flight have finished (a long stream keeps it until the
+    /// stream ends). Long-lived HTTP/2 connections are balanced per connection, so a fleet behind a
+    /// connection-level load balancer needs this to spread load again after replicas are added or restarted.
+    pub max_connection_age: Option<Duration>,
     /// The callers and their roles (`[[access.callers]]`).
     pub access: crate::serve::security::config::AccessConfig,
     /// Where the model files are (`*.json`).
@@ -387,6 +395,7 @@ impl Config {
             metrics_listen,
             reflection,
             shutdown_grace_ms,
+            max_connection_age_ms,
             admin_token_file,
             plaintext,
             tls,
@@ -446,6 +455,24 @@ impl Config {
             transport,
             reflection,
             shutdown_grace: Duration::from_millis(shutdown_grace_ms),
+            max_connection_age: match in_range(
+                "server.max_connection_age_ms",
+                max_connection_age_ms,
+                0,
+                7 * 24 * 3_600_000,
+            )? {
+                0 => None,
+                1..1_000 => {
+                    return Err(invalid(
+                        "server.max_connection_age_ms",
+                        format!(
+                            "must be 0 (no limit) or at least 1000, got {max_connection_age_ms}: \
+                             shorter connections spend the calls on handshakes"
+                        ),
+                    ))
+                }
+                ms => Some(Duration::from_millis(ms)),
+            },
             access,
             model_dir: directory,
             watch,

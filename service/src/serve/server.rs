@@ -254,6 +254,7 @@ async fn start_inner(
         transport,
         reflection,
         shutdown_grace,
+        max_connection_age,
         access,
         model_dir,
         watch: watch_dir,
@@ -311,6 +312,7 @@ async fn start_inner(
         }
         (None, None) => None,
     };
+    crate::serve::base_rate::publish_configured(&routes);
     let scorer = Arc::new(
         Scorer::new(Arc::clone(&registry), routes, limits)
             .with_log(log.clone())
@@ -375,8 +377,14 @@ async fn start_inner(
 
     let (shutdown, shutdown_rx) = watch::channel(false);
     // The access check is the outermost layer: a refused call never takes a concurrency slot.
-    let router = tonic::transport::Server::builder()
-        .timeout(limits.default_deadline)
+    let mut builder = tonic::transport::Server::builder().timeout(limits.default_deadline);
+    if let Some(age) = max_connection_age {
+        // Past its age a connection gets GOAWAY and closes once its calls in flight have finished. No
+        // `max_connection_age_grace`: in tonic 0.14 setting it replaces the GOAWAY by a plain close at age + grace,
+        // cutting calls in flight (tests/connection_age.rs sees the GOAWAY).
+        builder = builder.max_connection_age(age);
+    }
+    let router = builder
         .layer(AccessLayer::new(Arc::clone(&security)))
         .layer(tower::limit::GlobalConcurrencyLimitLayer::new(
             limits.max_concurrent_requests,

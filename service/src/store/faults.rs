@@ -34,6 +34,14 @@ pub enum Operation {
 }
 
 impl Operation {
+    /// Every operation.
+    pub const ALL: [Operation; 4] = [
+        Operation::Predictions,
+        Operation::ModelVersion,
+        Operation::Outcomes,
+        Operation::Sweep,
+    ];
+
     /// The metric label.
     pub fn as_str(self) -> &'static str {
         match self {
@@ -69,6 +77,11 @@ impl Failures {
             FAILING,
             "1 while the last write of an operation to the prediction log failed."
         );
+        // Every operation's gauge exists from the start at 0, so an alert on it (deploy/prometheus) sees the series
+        // before the first failure, and a missing series means a missing log rather than a healthy one.
+        for operation in Operation::ALL {
+            metrics::gauge!(FAILING, "operation" => operation.as_str()).set(0.0);
+        }
     }
 
     /// Counts a failed write (and logs it if it is the first of its reason in this run); returns its reason.

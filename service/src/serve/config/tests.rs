@@ -356,3 +356,92 @@ fn deploy_example_security_block_is_valid_when_uncommented() {
     assert!(files.client_ca_file.is_some());
     assert_eq!(c.access.callers.len(), 2);
 }
+
+#[test]
+fn max_connection_age_is_off_by_default_and_layered_like_the_other_keys() {
+    assert_eq!(load(MINIMAL, &[], &[]).unwrap().max_connection_age, None);
+    let text = format!("[server]\nmax_connection_age_ms = 300000\n{MINIMAL}");
+    assert_eq!(
+        load(&text, &[], &[]).unwrap().max_connection_age,
+        Some(Duration::from_secs(300)),
+        "file"
+    );
+    let c = load(
+        &text,
+        &[("PROBITY_SERVER_MAX_CONNECTION_AGE_MS", "600000")],
+        &[],
+    )
+    .unwrap();
+    assert_eq!(
+        c.max_connection_age,
+        Some(Duration::from_secs(600)),
+        "env wins over file"
+    );
+    let c = load(
+        &text,
+        &[("PROBITY_SERVER_MAX_CONNECTION_AGE_MS", "600000")],
+        &[("server.max_connection_age_ms", "0")],
+    )
+    .unwrap();
+    assert_eq!(
+        c.max_connection_age, None,
+        "a flag of 0 turns the limit off again"
+    );
+    for (value, expected) in [
+        (
+            "999",
+            "server.max_connection_age_ms: must be 0 (no limit) or at least 1000, got 999",
+        ),
+        (
+            "604800001",
+            "server.max_connection_age_ms: must be in [0, 604800000], got 604800001",
+        ),
+        ("\"5m\"", "server.max_connection_age_ms: invalid type"),
+    ] {
+        let err = load(MINIMAL, &[], &[("server.max_connection_age_ms", value)])
+            .unwrap_err()
+            .to_string();
+        assert!(err.starts_with(expected), "{value}: {err}");
+    }
+}
+
+#[test]
+fn container_configuration_is_valid() {
+    let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("../deploy/container/probity.toml");
+    let c = Config::load(&Sources {
+        file: Some(path),
+        ..Sources::default()
+    })
+    .unwrap();
+    assert!(matches!(c.transport, Transport::Tls(_)));
+    assert_eq!(c.max_connection_age, Some(Duration::from_secs(300)));
+    assert_eq!(c.model_dir, PathBuf::from("/models"));
+}
+
+/// The TOML of the fleet's ConfigMap (deploy/kubernetes/configmap.yaml). Its `[log]` names the shared PostgreSQL
+/// store (`backend`, `postgres_url_file`), a backend this build does not have yet: those two keys are taken out
+/// here, and everything else must load as it is.
+#[test]
+fn kubernetes_configmap_configuration_is_valid_but_for_the_shared_store_keys() {
+    let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("../deploy/kubernetes/configmap.yaml");
+    let yaml = std::fs::read_to_string(path).unwrap();
+    let mut lines = yaml.lines().skip_while(|l| l.trim() != "probity.toml: |");
+    assert!(lines.next().is_some(), "no probity.toml in the ConfigMap");
+    let toml: String = lines
+        .take_while(|l| l.is_empty() || l.starts_with("    "))
+        .map(|l| l.strip_prefix("    ").unwrap_or(l))
+        .filter(|l| !l.starts_with("backend =") && !l.starts_with("postgres_url_file ="))
+        .map(|l| format!("{l}\n"))
+        .collect();
+    assert!(toml.contains("[routes.card-auth]"));
+    let (_dir, path) = write(&toml);
+    let c = Config::load(&Sources {
+        file: Some(path),
+        ..Sources::default()
+    })
+    .unwrap();
+    assert!(matches!(c.transport, Transport::Tls(_)));
+    assert_eq!(c.access.callers.len(), 3);
+    assert_eq!(c.max_connection_age, Some(Duration::from_secs(300)));
+    assert_eq!(c.routes["card-auth"].challengers.list.len(), 1);
+}

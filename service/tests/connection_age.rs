@@ -1,0 +1,140 @@
+//! `server.max_connection_age_ms`: past the age the server ends an HTTP/2 connection with GOAWAY (RFC 9113,
+//! section 6.8, frame type 0x7) and closes it once no call is in flight (here: none), so a client reconnects and, behind a
+//! connection-level balancer, may land on another replica. Without the key a connection stays open.
+//!
+//! The client side here is a bare TCP connection speaking the HTTP/2 frame layer (RFC 9113, sections 3.4 and 4.1:
+//! the connection preface, then 9-byte frame headers), so what is observed is the server's own frames.
+
+#![allow(clippy::unwrap_used)]
+
+use std::io::{ErrorKind, Read, Write};
+use std::net::TcpStream;
+use std::process::{Child, Command, Stdio};
+use std::time::{Duration, Instant};
+
+fn free_port() -> u16 {
+    std::net::TcpListener::bind("127.0.0.1:0")
+        .unwrap()
+        .local_addr()
+        .unwrap()
+        .port()
+}
+
+struct Server {
+    child: Child,
+    port: u16,
+    _dir: tempfile::TempDir,
+}
+
+impl Drop for Server {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+fn start(max_connection_age_ms: u64) -> Server {
+    let dir = tempfile::tempdir().unwrap();
+    std::fs::write(
+        dir.path().join("m.json"),
+        r#"{"format": "probity.model", "format_version": 1, "name": "m", "version": "1",
+            "features": [{"name": "x", "type": "numeric"}], "margin_scale": "log_odds", "base_rate": 0.5,
+            "linear": {"intercept": 0.0, "terms": [{"numeric": {"feature": 0, "coefficient": 1.0}}]}}"#,
+    )
+    .unwrap();
+    let port = free_port();
+    let config = dir.path().join("probity.toml");
+    std::fs::write(
+        &config,
+        format!(
+            "[server]\nplaintext = \"loopback\"\ngrpc_listen = \"127.0.0.1:{port}\"\n\
+             metrics_listen = \"127.0.0.1:0\"\nshutdown_grace_ms = 500\n\
+             max_connection_age_ms = {max_connection_age_ms}\n\
+             [models]\ndirectory = {}\nwatch = false\n[routes.r]\nmodel = \"m\"\n",
+            toml::Value::from(dir.path().display().to_string())
+        ),
+    )
+    .unwrap();
+    let child = Command::new(env!("CARGO_BIN_EXE_probity"))
+        .args(["serve", "--config"])
+        .arg(&config)
+        .stdout(Stdio::null())
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap();
+    let server = Server {
+        child,
+        port,
+        _dir: dir,
+    };
+    for _ in 0..300 {
+        if TcpStream::connect(("127.0.0.1", port)).is_ok() {
+            return server;
+        }
+        std::thread::sleep(Duration::from_millis(50));
+    }
+    panic!("the server did not start");
+}
+
+/// What the server sent on one HTTP/2 connection within `watch`: the time of its GOAWAY frame, if any, and
+/// whether it closed the connection after it.
+fn watch_connection(port: u16, watch: Duration) -> (Option<Duration>, bool) {
+    let mut s = TcpStream::connect(("127.0.0.1", port)).unwrap();
+    let opened = Instant::now();
+    s.write_all(b"PRI * HTTP/2.0\r\n\r\nSM\r\n\r\n").unwrap();
+    s.write_all(&[0, 0, 0, 0x4, 0, 0, 0, 0, 0]).unwrap(); // an empty SETTINGS frame
+    s.set_read_timeout(Some(Duration::from_millis(100)))
+        .unwrap();
+    let mut buf = Vec::new();
+    let mut goaway = None;
+    let mut settings_acked = false;
+    while opened.elapsed() < watch {
+        let mut chunk = [0u8; 4096];
+        match s.read(&mut chunk) {
+            Ok(0) => return (goaway, true),
+            Ok(n) => buf.extend_from_slice(&chunk[..n]),
+            Err(e) if matches!(e.kind(), ErrorKind::WouldBlock | ErrorKind::TimedOut) => continue,
+            Err(_) => return (goaway, true),
+        }
+        // Whole frames: 3-byte length, type, flags, 4-byte stream id, then the payload.
+        while buf.len() >= 9 {
+            let len = usize::from(buf[0]) << 16 | usize::from(buf[1]) << 8 | usize::from(buf[2]);
+            if buf.len() < 9 + len {
+                break;
+            }
+            let (kind, flags) = (buf[3], buf[4]);
+            if kind == 0x4 && flags & 0x1 == 0 && !settings_acked {
+                s.write_all(&[0, 0, 0, 0x4, 0x1, 0, 0, 0, 0]).unwrap(); // SETTINGS ACK
+                settings_acked = true;
+            }
+            if kind == 0x6 && flags & 0x1 == 0 && len == 8 {
+                // PING: answered with a PING ACK carrying the same 8 bytes (the server's graceful close waits for it).
+                let mut ack = vec![0, 0, 8, 0x6, 0x1, 0, 0, 0, 0];
+                ack.extend_from_slice(&buf[9..17]);
+                s.write_all(&ack).unwrap();
+            }
+            if kind == 0x7 && goaway.is_none() {
+                goaway = Some(opened.elapsed());
+            }
+            buf.drain(..9 + len);
+        }
+    }
+    (goaway, false)
+}
+
+#[test]
+fn a_connection_past_its_age_gets_goaway_and_is_closed() {
+    let server = start(1_000);
+    let (goaway, closed) = watch_connection(server.port, Duration::from_secs(8));
+    let at = goaway.expect("no GOAWAY within 8 s with max_connection_age_ms = 1000");
+    assert!(at >= Duration::from_millis(900), "GOAWAY after {at:?}");
+    assert!(closed, "the connection was not closed after GOAWAY");
+}
+
+#[test]
+fn without_the_key_a_connection_stays_open() {
+    let server = start(0);
+    let (goaway, closed) = watch_connection(server.port, Duration::from_secs(3));
+    assert_eq!(goaway, None);
+    assert!(!closed);
+}
