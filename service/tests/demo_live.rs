@@ -291,7 +291,7 @@ fn live_demo_answers_equal_probity_score_bit_for_bit() {
         "ScoreBatch (100 rows)",
         "Score (1 row)",
         "AUC",
-        "reflection is on",
+        "(reflection on)",
     ] {
         assert!(text.contains(want), "missing {want:?} in:\n{text}");
     }
@@ -401,6 +401,18 @@ fn live_demo_serves_given_models_on_routes_named_after_them() {
     assert!(after(&text, "  with outcome", "").parse::<u64>().unwrap() > 0);
     assert!(!text.contains("Challengers.Compare"), "{text}");
     assert_eq!(std::fs::read_dir(&svg_dir).unwrap().count(), 3);
+    // After --exit-after-run without --data-dir, "where to look next" lists only what still exists.
+    let next = text.split("where to look next").nth(1).unwrap();
+    assert!(
+        !next.contains("http://"),
+        "a stopped server listed:\n{next}"
+    );
+    assert!(
+        !next.contains("config ") && !next.contains("probity report --log"),
+        "{next}"
+    );
+    assert!(next.contains("pictures  3 SVG files"), "{next}");
+    assert!(next.contains("--data-dir keeps the log"), "{next}");
 }
 
 /// One plain HTTP/1.0 GET; returns the body.

@@ -134,33 +134,48 @@ async fn serve_and_drive(
             return Err(e.context("the demo's outcome loop stopped"));
         }
     };
+    // Only what still exists after the run: with --exit-after-run the server stops and a temporary folder goes.
+    let serving = !args.exit_after_run;
+    let kept = args.data_dir.is_some();
     println!("\nwhere to look next");
-    println!("  metrics   http://{metrics}/metrics (Prometheus text format); /livez and /readyz beside it");
-    println!(
-        "  gRPC      {grpc}: any gRPC client; server reflection is on (probity.v1.Scoring, probity.v1.Models, \
-         probity.v1.Outcomes, probity.v1.Challengers, grpc.health.v1.Health)"
-    );
-    println!(
-        "  models    {}: a new model file version here is served without a restart",
-        dir.join("models").display()
-    );
-    println!("  config    {}", dir.join(CONFIG_FILE).display());
-    println!(
-        "  log       probity report --log {0} (add --json), probity compare --log {0} --route {1}{2}",
-        log_dir.display(),
-        models.first().map_or("", |m| m.route.as_str()),
-        if args.data_dir.is_none() {
-            " (a temporary folder, removed when the demo stops; --data-dir keeps it)"
-        } else {
-            ""
-        }
-    );
+    if serving {
+        println!("  metrics   http://{metrics}/metrics (Prometheus text format); /livez and /readyz beside it");
+        println!(
+            "  gRPC      {grpc}: any gRPC client; server reflection is on (probity.v1.Scoring, probity.v1.Models, \
+             probity.v1.Outcomes, probity.v1.Challengers, grpc.health.v1.Health)"
+        );
+    }
+    if serving || kept {
+        println!(
+            "  models    {}{}",
+            dir.join("models").display(),
+            if serving {
+                ": a new model file version here is served without a restart"
+            } else {
+                ""
+            }
+        );
+        println!("  config    {}", dir.join(CONFIG_FILE).display());
+        println!(
+            "  log       probity report --log {0} (add --json), probity compare --log {0} --route {1}{2}",
+            log_dir.display(),
+            models.first().map_or("", |m| m.route.as_str()),
+            if kept {
+                ""
+            } else {
+                " (a temporary folder, removed when the demo stops; --data-dir keeps it)"
+            }
+        );
+    }
     if !pictures.is_empty() {
         println!(
             "  pictures  {} SVG files in {}",
             pictures.len(),
             args.svg_dir.display()
         );
+    }
+    if !serving && !kept {
+        println!("  (the server has stopped and its temporary folder is removed; --data-dir keeps the log)");
     }
     println!("\n{CAUTIONS}");
 
