@@ -156,6 +156,7 @@ def train_trees(train: pd.DataFrame, hold: pd.DataFrame, target: float, common: 
         reference_distribution=ref,
         category_names=cats,
     )
+    doc["serving_base_rate"] = target
     check(doc, hold, margins, 1e-9)
     return doc
 
@@ -255,6 +256,7 @@ def train_scorecard(train: pd.DataFrame, hold: pd.DataFrame, target: float, comm
         reference_distribution=ref,
         score_scale=SCORE_SCALE,
     )
+    doc["serving_base_rate"] = target
     check(doc, hold, margins, 1e-9)
     return doc
 

@@ -132,6 +132,7 @@ pub struct Model {
     pub(crate) schema: Schema,
     pub(crate) margin_scale: MarginScale,
     pub(crate) base_rate: f64,
+    pub(crate) serving_base_rate: Option<f64>,
     pub(crate) body: Body,
     pub(crate) calibration: Option<Calibration>,
     pub(crate) reference: Option<ReferenceDistribution>,
@@ -162,6 +163,11 @@ impl Model {
     /// Base rate of the data the model (or its calibration) was fitted on.
     pub fn base_rate(&self) -> f64 {
         self.base_rate
+    }
+    /// The base rate of the population the model is meant to serve, when the file says it (`serving_base_rate`):
+    /// the target that offline scoring uses when none is given.
+    pub fn serving_base_rate(&self) -> Option<f64> {
+        self.serving_base_rate
     }
     /// The calibration map, if any.
     pub fn calibration(&self) -> Option<&Calibration> {

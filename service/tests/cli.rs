@@ -1029,3 +1029,61 @@ fn a_wrong_kind_of_file_is_named_for_what_it_looks_like() {
     let o = probity(&["check", s(&commented)]);
     assert!(stderr(&o).contains("no comments"), "{}", stderr(&o));
 }
+
+/// A model file may state the base rate it serves at; `score` then shifts to it without an option (saying so), the
+/// option still wins, and `check` says which rate applies.
+#[test]
+fn a_serving_base_rate_in_the_model_file_is_used_and_shown() {
+    let dir = tempfile::tempdir().unwrap();
+    let text = std::fs::read_to_string(data("small-trees.json")).unwrap();
+    let mut doc: serde_json::Value = serde_json::from_str(&text).unwrap();
+    doc["serving_base_rate"] = serde_json::json!(0.015);
+    let model = dir.path().join("serving.json");
+    std::fs::write(&model, doc.to_string()).unwrap();
+    let input = demo_csv(dir.path(), 40, 9, &[]);
+    let (a, b) = (dir.path().join("a.csv"), dir.path().join("b.csv"));
+    let o = ok(&[
+        "score",
+        "--model",
+        s(&model),
+        "--input",
+        s(&input),
+        "--output",
+        s(&a),
+    ]);
+    assert!(
+        stderr(&o).contains("serving_base_rate 0.015"),
+        "{}",
+        stderr(&o)
+    );
+    ok(&[
+        "score",
+        "-q",
+        "--target-base-rate",
+        "0.015",
+        "--model",
+        s(&data("small-trees.json")),
+        "--input",
+        s(&input),
+        "--output",
+        s(&b),
+    ]);
+    assert_eq!(std::fs::read(&a).unwrap(), std::fs::read(&b).unwrap());
+    let shown = stdout(&ok(&["check", s(&model)]));
+    assert!(
+        shown.contains(
+            "trained at 0.1; `probity score` serves at the file's serving_base_rate 0.015"
+        ),
+        "{shown}"
+    );
+    let shown = stdout(&ok(&["check", s(&data("small-trees.json"))]));
+    assert!(
+        shown.contains("no serving_base_rate in the file"),
+        "{shown}"
+    );
+    // Out of range: refused naming the key.
+    doc["serving_base_rate"] = serde_json::json!(1.5);
+    std::fs::write(&model, doc.to_string()).unwrap();
+    let o = probity(&["check", s(&model)]);
+    assert!(stderr(&o).contains("serving_base_rate"), "{}", stderr(&o));
+}

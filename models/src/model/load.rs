@@ -185,6 +185,20 @@ fn build(raw: RawModel) -> Result<Model, ModelError> {
             format!("must be strictly between 0 and 1, got {base_rate}"),
         ));
     }
+    let serving_base_rate = raw
+        .serving_base_rate
+        .map(|p| {
+            let p = finite(p, || "serving_base_rate".into())?;
+            if p > 0.0 && p < 1.0 {
+                Ok(p)
+            } else {
+                Err(ModelError::rule(
+                    "serving_base_rate",
+                    format!("must be strictly between 0 and 1, got {p}"),
+                ))
+            }
+        })
+        .transpose()?;
     let body = match (raw.ensemble, raw.linear) {
         (Some(e), None) => Body::Ensemble(Box::new(trees::ensemble(e, &schema)?)),
         (None, Some(l)) => Body::Linear(linear::linear(l, &schema)?),
@@ -214,6 +228,7 @@ fn build(raw: RawModel) -> Result<Model, ModelError> {
         schema,
         margin_scale,
         base_rate,
+        serving_base_rate,
         body,
         calibration,
         reference,

@@ -76,6 +76,7 @@ pub fn summary_json(model: &Model) -> Value {
         "features": features,
         "margin_scale": model.margin_scale().as_str(),
         "base_rate": model.base_rate(),
+        "serving_base_rate": model.serving_base_rate(),
         "calibration": calibration,
         "reference_distribution": reference,
         "score_scale": score_scale,
@@ -114,7 +115,18 @@ pub fn summary_text(model: &Model) -> String {
         out += &format!("  {:width$}  {kind}\n", f.name);
     }
     out += &format!("margin scale   {}\n", model.margin_scale().as_str());
-    out += &format!("base rate      {}\n", model.base_rate());
+    out += &format!(
+        "base rate      trained at {}; {}\n",
+        model.base_rate(),
+        match model.serving_base_rate() {
+            Some(p) => format!(
+                "`probity score` serves at the file's serving_base_rate {p} unless --target-base-rate is given"
+            ),
+            None => "no serving_base_rate in the file: `probity score` needs --target-base-rate (or \
+                     --keep-training-base-rate)"
+                .to_string(),
+        }
+    );
     out += &format!(
         "calibration    {}\n",
         match model.calibration() {

@@ -32,12 +32,13 @@ pub struct ScoreArgs {
     #[arg(long)]
     pub id_column: Option<String>,
     /// Base rate of the population being scored; shifts the log-odds by logit(P) - logit(model base rate).
-    /// One of this and --keep-training-base-rate is required: a model trained on re-sampled data answers at its
-    /// training rate otherwise, which can be many times the live one.
+    /// Without it, the model file's `serving_base_rate`; where the file has none, one of this and
+    /// --keep-training-base-rate is required: a model trained on re-sampled data answers at its training rate
+    /// otherwise, which can be many times the live one.
     #[arg(long, value_name = "P")]
     pub target_base_rate: Option<f64>,
-    /// Serve at the base rate the model was trained (or calibrated) on: right only when that rate is the scored
-    /// population's own.
+    /// Serve at the base rate the model was trained (or calibrated) on, even when the file names a serving base
+    /// rate: right only when the training rate is the scored population's own.
     #[arg(long, conflicts_with = "target_base_rate")]
     pub keep_training_base_rate: bool,
     /// Decide `positive` when the probability is above T.
@@ -84,17 +85,28 @@ pub enum OnError {
 /// Runs `probity score`.
 pub fn run(args: &ScoreArgs) -> anyhow::Result<()> {
     let model = load_model(&args.model)?;
-    if args.target_base_rate.is_none() && !args.keep_training_base_rate {
-        bail!(
+    let target_base_rate = match (args.target_base_rate, model.serving_base_rate()) {
+        (Some(p), _) => Some(p),
+        (None, _) if args.keep_training_base_rate => None,
+        (None, Some(p)) => {
+            if !args.quiet {
+                eprintln!(
+                    "serving at the model file's serving_base_rate {p} (trained at {}); --target-base-rate overrides it",
+                    model.base_rate()
+                );
+            }
+            Some(p)
+        }
+        (None, None) => bail!(
             "no base rate given: {} was trained (or calibrated) at a base rate of {}, and a model trained on \
              re-sampled data overstates every probability when served at it; give --target-base-rate P (the scored \
              population's base rate) or --keep-training-base-rate",
             args.model.display(),
             model.base_rate()
-        );
-    }
+        ),
+    };
     let spec = output_spec(
-        args.target_base_rate,
+        target_base_rate,
         args.threshold,
         args.cost_false_positive,
         args.cost_false_negative,

@@ -17,6 +17,7 @@ pub(crate) struct RawModel {
     pub features: Vec<RawFeature>,
     pub margin_scale: RawMarginScale,
     pub base_rate: f64,
+    pub serving_base_rate: Option<f64>,
     pub ensemble: Option<RawEnsemble>,
     pub linear: Option<RawLinear>,
     pub calibration: Option<RawCalibration>,
