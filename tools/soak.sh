@@ -11,6 +11,6 @@ set -euo pipefail
 cd "$(dirname "$0")/.."
 MINUTES=${1:-10}
 shift || true
-cargo build --release -p probity --bin probity --bin probity-load
+cargo build --release -p probity --bin probity -p probity-load --bin probity-load
 TARGET=${CARGO_TARGET_DIR:-target}
 exec "$TARGET/release/probity-load" soak --minutes "$MINUTES" --warmup 120 --probity "$TARGET/release/probity" "$@"

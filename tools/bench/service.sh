@@ -14,7 +14,7 @@ PY=${PY:-.venv/bin/python}
 OUT=target/bench-results; mkdir -p "$OUT"
 M=target/bench-models
 [ -f $M/manifest.json ] || "$PY" tools/bench/make_bench_models.py
-cargo build --release -p probity --bin probity --bin probity-load
+cargo build --release -p probity --bin probity -p probity-load --bin probity-load
 BIN=target/release
 DUR=${DUR:-8}; SOAK=${SOAK:-60}; WARM=1
 if [ -n "${QUICK:-}" ]; then DUR=1; SOAK=3; WARM=0.3; SETTLE=${SETTLE:-1}; fi

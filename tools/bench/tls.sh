@@ -11,7 +11,7 @@ cd "$(dirname "$0")/../.."
 PY=.venv/bin/python
 M=target/bench-models
 [ -f $M/manifest.json ] || "$PY" tools/bench/make_bench_models.py
-cargo build --release -p probity --bin probity --bin probity-load
+cargo build --release -p probity --bin probity -p probity-load --bin probity-load
 BIN=target/release
 PAIRS=${PAIRS:-5}; SECS=${SECONDS_EACH:-5}; CONC=${CONCURRENCY:-16}
 WORK=$(mktemp -d); PIDS=()

@@ -36,6 +36,7 @@ fn fill(path: &std::path::Path, limit: u64) -> u64 {
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+#[ignore = "needs root to mount a tmpfs: .ci/run (as root) runs it with --ignored"]
 async fn a_full_disk_is_a_counted_logging_failure_scoring_goes_on_and_the_log_resumes() {
     if !mounts_allowed("full disk") {
         return;

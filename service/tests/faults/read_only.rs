@@ -49,6 +49,7 @@ fn assert_refused(success: bool, stderr: &str, dir: &std::path::Path) {
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+#[ignore = "needs root to mount a tmpfs: .ci/run (as root) runs it with --ignored"]
 async fn a_read_only_data_directory_refuses_to_start_with_a_clear_error() {
     if !mounts_allowed("read-only data directory") {
         return;
@@ -134,6 +135,7 @@ fn mount_source(pid: u32, mount_point: &std::path::Path) -> Option<(String, Stri
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+#[ignore = "needs root to mount a tmpfs: .ci/run (as root) runs it with --ignored"]
 async fn a_file_system_turning_read_only_under_the_server_is_counted_and_scoring_goes_on() {
     if !mounts_allowed("file system turning read-only") {
         return;

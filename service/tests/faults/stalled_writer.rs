@@ -98,6 +98,7 @@ fn batches(gate: &Gate) -> Vec<usize> {
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+#[ignore = "long (a writer stalled for seconds under load): .ci/run runs it with --ignored"]
 async fn a_stalled_log_writer_never_stalls_scoring_and_every_drop_is_counted() {
     let dir = tempfile::tempdir().unwrap();
     let models = dir.path().join("models");

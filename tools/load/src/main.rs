@@ -16,7 +16,13 @@
 //! it (scoring, outcome streams, reloads, reports), failing on any failed request, a stalled p99 or growing
 //! memory ([`soak`]).
 
+#![warn(clippy::unwrap_used, clippy::expect_used)]
+
 mod soak;
+
+/// The `probity` binary's allocator (mimalloc), so that the bare server and probity differ only in their work.
+#[global_allocator]
+static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
 
 use std::collections::HashMap;
 use std::path::PathBuf;
