@@ -36,7 +36,7 @@ const OUTCOME_DELAY: Duration = Duration::from_secs(1);
 /// The demo tree ensemble (100 trees of depth up to 5, eight features), the default model.
 const DEFAULT_MODEL: &str = concat!(
     env!("CARGO_MANIFEST_DIR"),
-    "/demo/harbourline-fraud-trees.json"
+    "/../../service/demo/harbourline-fraud-trees.json"
 );
 
 #[derive(clap::Args)]
