@@ -9,6 +9,7 @@ use tonic::{Request, Response, Status};
 use crate::compare::{self, CompareRequest};
 use crate::serve::error::ServeError;
 use crate::serve::grpc::finish;
+use crate::serve::limits;
 use crate::serve::promotion::RouteChange;
 use crate::serve::proto as pb;
 use crate::serve::scoring::Scorer;
@@ -38,6 +39,9 @@ impl ChallengersApi {
             requested_by,
             reason,
         } = request;
+        limits::names(&[("route", &route), ("challenger", &challenger)])?;
+        limits::text("requested_by", &requested_by, limits::REQUESTED_BY)?;
+        limits::text("reason", &reason, limits::REASON)?;
         if requested_by.trim().is_empty() {
             return Err(ServeError::invalid(
                 "requested_by",
@@ -65,6 +69,7 @@ fn compare_on(
         from_unix_ms,
         to_unix_ms,
     } = request;
+    limits::names(&[("route", &route), ("challenger", &challenger)])?;
     let (config, _) = scorer.resolve(&route)?;
     let log = scorer.log().ok_or(ServeError::LogDisabled)?;
     // The flip share uses the route's threshold.
@@ -166,18 +171,20 @@ impl pb::challengers_server::Challengers for ChallengersApi {
     ) -> Result<Response<pb::RouteHistoryResponse>, Status> {
         let started = Instant::now();
         let route = request.into_inner().route;
-        let changes = self
-            .scorer
-            .route_table()
-            .history(&route)
-            .into_iter()
-            .map(change)
-            .collect();
+        let result = limits::names(&[("route", &route)]).map(|()| pb::RouteHistoryResponse {
+            changes: self
+                .scorer
+                .route_table()
+                .history(&route)
+                .into_iter()
+                .map(change)
+                .collect(),
+        });
         finish(
             "RouteHistory",
             &self.scorer.route_label(&route),
             started,
-            Ok(pb::RouteHistoryResponse { changes }),
+            result,
         )
     }
 }

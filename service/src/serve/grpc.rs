@@ -9,6 +9,7 @@ use tonic::{Request, Response, Status, Streaming};
 
 use crate::serve::conversions::{feature_infos, model_info, route_info, row_error, ModelTarget};
 use crate::serve::error::ServeError;
+use crate::serve::limits;
 use crate::serve::metrics;
 use crate::serve::proto as pb;
 use crate::serve::scoring::Scorer;
@@ -212,6 +213,10 @@ impl pb::models_server::Models for ModelsApi {
     ) -> Result<Response<pb::DescribeModelResponse>, Status> {
         let started = Instant::now();
         let result = ModelTarget::try_from(request.into_inner()).and_then(|target| {
+            match &target {
+                ModelTarget::Route(route) => limits::names(&[("route", route)])?,
+                ModelTarget::Model(model) => limits::names(&[("model", model)])?,
+            }
             let loaded = match target {
                 ModelTarget::Route(route) => self.scorer.resolve(&route)?.1,
                 ModelTarget::Model(model) => self
@@ -221,9 +226,7 @@ impl pb::models_server::Models for ModelsApi {
                     .models
                     .get(&model)
                     .cloned()
-                    .ok_or(ServeError::ModelNotFound {
-                        model: model.chars().take(128).collect(),
-                    })?,
+                    .ok_or(ServeError::ModelNotFound { model })?,
             };
             let features = feature_infos(loaded.model.schema());
             Ok(pb::DescribeModelResponse {

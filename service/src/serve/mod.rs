@@ -19,6 +19,7 @@ pub mod config;
 pub mod conversions;
 pub mod error;
 pub mod grpc;
+pub mod limits;
 pub mod metrics;
 pub mod outcomes;
 pub mod promotion;

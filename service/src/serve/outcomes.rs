@@ -11,6 +11,7 @@ use tonic::{Request, Response, Status, Streaming};
 use crate::report::{self, Report};
 use crate::serve::config::Route;
 use crate::serve::error::ServeError;
+use crate::serve::limits;
 use crate::serve::metrics;
 use crate::serve::proto as pb;
 use crate::serve::registry::LoadedModel;
@@ -360,9 +361,16 @@ impl pb::outcomes_server::Outcomes for OutcomesApi {
         request: Request<pb::ReportRequest>,
     ) -> Result<Response<pb::ReportResponse>, Status> {
         let started = Instant::now();
-        let filter = filter_of(request.into_inner());
+        let request = request.into_inner();
+        let checked = limits::names(&[
+            ("route", &request.route),
+            ("model", &request.model),
+            ("version", &request.version),
+        ]);
+        let filter = filter_of(request);
         let configured = self.configured_base_rates();
         let result = async {
+            checked?;
             let log = self.log()?;
             let report = on_store(&self.slots, log, move |log| {
                 log.with_store(|store| report::build_with(store, &filter, &configured))

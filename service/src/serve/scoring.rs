@@ -192,8 +192,10 @@ impl Scorer {
         let routes = self.routes.load();
         let Some(config) = routes.get(route).cloned() else {
             let known = routes.keys().cloned().collect::<Vec<_>>().join(", ");
+            // Bounded before it is quoted back.
+            crate::serve::limits::names(&[("route", route)])?;
             return Err(ServeError::RouteNotFound {
-                route: route.chars().take(128).collect(),
+                route: route.to_string(),
                 known,
             });
         };

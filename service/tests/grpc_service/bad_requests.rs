@@ -10,6 +10,10 @@ enum Call {
     Score(pb::ScoreRequest),
     Batch(pb::ScoreBatchRequest),
     Describe(pb::DescribeModelRequest),
+    Compare(pb::CompareRequest),
+    Promote(pb::PromoteRequest),
+    History(pb::RouteHistoryRequest),
+    Report(pb::ReportRequest),
 }
 
 fn with<F: FnOnce(&mut pb::Row)>(mut row: pb::Row, f: F) -> pb::Row {
@@ -250,6 +254,74 @@ fn table() -> Vec<(&'static str, Call, Code, &'static str)> {
             Code::NotFound,
             "model `ghost`",
         ),
+        // Every caller-given text has a documented maximum (docs/limits.md), refused naming field and limit, and a
+        // message never repeats the whole value (a 100,000-character field once made a status too large to send).
+        (
+            "compare: 100,000-character challenger",
+            Call::Compare(pb::CompareRequest {
+                route: "fraud".into(),
+                challenger: "c".repeat(100_000),
+                ..Default::default()
+            }),
+            Code::InvalidArgument,
+            "challenger: is 100000 characters long; the limit is 128",
+        ),
+        (
+            "promote: 100,000-character route",
+            Call::Promote(pb::PromoteRequest {
+                route: "r".repeat(100_000),
+                challenger: "m2".into(),
+                requested_by: "t".into(),
+                reason: String::new(),
+            }),
+            Code::InvalidArgument,
+            "route: is 100000 characters long; the limit is 128",
+        ),
+        (
+            "promote: 1,000,000-character reason",
+            Call::Promote(pb::PromoteRequest {
+                route: "fraud".into(),
+                challenger: "m2".into(),
+                requested_by: "t".into(),
+                reason: "x".repeat(1_000_000),
+            }),
+            Code::InvalidArgument,
+            "reason: is 1000000 characters long; the limit is 1024",
+        ),
+        (
+            "promote: long requested_by",
+            Call::Promote(pb::PromoteRequest {
+                route: "fraud".into(),
+                challenger: "m2".into(),
+                requested_by: "y".repeat(1_000_000),
+                reason: String::new(),
+            }),
+            Code::InvalidArgument,
+            "requested_by: is 1000000 characters long; the limit is 256",
+        ),
+        (
+            "route history: long route",
+            Call::History(pb::RouteHistoryRequest {
+                route: "h".repeat(5_000),
+            }),
+            Code::InvalidArgument,
+            "route: is 5000 characters long; the limit is 128",
+        ),
+        (
+            "report: long version",
+            Call::Report(pb::ReportRequest {
+                version: "v".repeat(129),
+                ..Default::default()
+            }),
+            Code::InvalidArgument,
+            "version: is 129 characters long; the limit is 128",
+        ),
+        (
+            "score: long route",
+            Call::Score(score_request(&"s".repeat(100_000), fraud_row(""))),
+            Code::InvalidArgument,
+            "route: is 100000 characters long; the limit is 128",
+        ),
     ]
 }
 
@@ -258,6 +330,9 @@ async fn bad_requests_get_the_right_status_and_the_server_keeps_serving() {
     let t = TestServer::start(false).await;
     let mut scoring = t.scoring().await;
     let mut models = t.models_client().await;
+    let channel = t.channel().await;
+    let mut challengers = pb::challengers_client::ChallengersClient::new(channel.clone());
+    let mut outcomes = pb::outcomes_client::OutcomesClient::new(channel);
     let cases = table();
     assert!(cases.len() >= 15);
     let mut failures = Vec::new();
@@ -266,9 +341,16 @@ async fn bad_requests_get_the_right_status_and_the_server_keeps_serving() {
             Call::Score(r) => scoring.score(r).await.map(|_| ()),
             Call::Batch(r) => scoring.score_batch(r).await.map(|_| ()),
             Call::Describe(r) => models.describe_model(r).await.map(|_| ()),
+            Call::Compare(r) => challengers.compare(r).await.map(|_| ()),
+            Call::Promote(r) => challengers.promote(r).await.map(|_| ()),
+            Call::History(r) => challengers.route_history(r).await.map(|_| ()),
+            Call::Report(r) => outcomes.report(r).await.map(|_| ()),
         };
         match status {
             Ok(()) => failures.push(format!("{name}: succeeded")),
+            Err(s) if s.message().len() > 1_000 => {
+                failures.push(format!("{name}: a {}-byte message", s.message().len()))
+            }
             Err(s) if s.code() != code || !s.message().contains(needle) => failures.push(format!(
                 "{name}:\n  expected: {code:?} containing {needle:?}\n  actual:   {:?} {:?}",
                 s.code(),
