@@ -152,6 +152,7 @@ fn assert_same_as_library(
     let mut args = vec![
         "score",
         "--quiet",
+        "--full-precision",
         "--model",
         s(&model_path),
         "--input",
@@ -467,6 +468,7 @@ fn a_missing_feature_column_is_an_error_unless_allowed() {
         "--keep-training-base-rate",
         "-q",
         "--allow-missing-columns",
+        "--full-precision",
         "--model",
         s(&model),
         "--input",
@@ -1086,4 +1088,56 @@ fn a_serving_base_rate_in_the_model_file_is_used_and_shown() {
     std::fs::write(&model, doc.to_string()).unwrap();
     let o = probity(&["check", s(&model)]);
     assert!(stderr(&o).contains("serving_base_rate"), "{}", stderr(&o));
+}
+
+/// By default the score columns carry 6 significant digits and points are whole; --digits and --full-precision
+/// choose otherwise (the latter reads back to the library's bits, as the bit-for-bit tests above check).
+#[test]
+fn score_prints_readable_digits_unless_asked_for_full_precision() {
+    let dir = tempfile::tempdir().unwrap();
+    let input = demo_csv(dir.path(), 200, 21, &[]);
+    let out = dir.path().join("out.csv");
+    // small-trees.json has a points scale.
+    let model = data("small-trees.json");
+    let run = |extra: &[&str]| {
+        let mut args = vec![
+            "score",
+            "-q",
+            "--target-base-rate",
+            "0.015",
+            "--model",
+            s(&model),
+            "--input",
+            s(&input),
+            "--output",
+            s(&out),
+        ];
+        args.extend_from_slice(extra);
+        ok(&args);
+        read_csv(&out)
+    };
+    let digits = |text: &str| {
+        text.trim_start_matches('-')
+            .replace('.', "")
+            .trim_start_matches('0')
+            .trim_end_matches('0')
+            .len()
+    };
+    let (h, rows) = run(&[]);
+    let (p, points) = (col(&h, "probability"), col(&h, "score"));
+    let mut longest = 0;
+    for r in &rows {
+        longest = longest.max(digits(&r[p]));
+        assert!(!r[points].contains('.'), "points {}", &r[points]);
+    }
+    assert!((1..=6).contains(&longest), "{longest}");
+    let (_, rows3) = run(&["--digits", "3"]);
+    assert!(rows3.iter().all(|r| digits(&r[p]) <= 3));
+    let (_, full) = run(&["--full-precision"]);
+    assert!(full.iter().map(|r| digits(&r[p])).max().unwrap() > 6);
+    // Rounded and full agree to the rounding.
+    for (a, b) in rows.iter().zip(&full) {
+        let (a, b): (f64, f64) = (a[p].parse().unwrap(), b[p].parse().unwrap());
+        assert!((a - b).abs() <= b.abs() * 5e-6, "{a} vs {b}");
+    }
 }

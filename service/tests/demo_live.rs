@@ -341,6 +341,7 @@ fn live_demo_answers_equal_probity_score_bit_for_bit() {
         ok(&[
             "score",
             "-q",
+            "--full-precision",
             "--model",
             s(&demo_model(&format!("{model}.json"))),
             "--input",

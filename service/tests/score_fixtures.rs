@@ -57,7 +57,13 @@ fn probity_score_reproduces_every_library_on_the_fixture_rows() {
         let tol = tolerance(&library);
         let out = dir.path().join(format!("{name}.csv"));
         let status = Command::new(env!("CARGO_BIN_EXE_probity"))
-            .args(["score", "--quiet", "--keep-training-base-rate", "--model"])
+            .args([
+                "score",
+                "--quiet",
+                "--keep-training-base-rate",
+                "--full-precision",
+                "--model",
+            ])
             .arg(root.join(case["model"].as_str().unwrap()))
             .arg("--input")
             .arg(root.join(case["rows"].as_str().unwrap()))

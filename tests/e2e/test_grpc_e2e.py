@@ -47,7 +47,7 @@ def test_probabilities_equal_probity_score_to_the_last_bit(server, stubs, tmp_pa
     out = tmp_path / "scored.csv"
     subprocess.run(
         [binary(), "score", "--model", str(DATA / "grpc-fraud-v1.json"), "--input", str(src), "--output", str(out),
-         "--target-base-rate", "0.01", "--threshold", "0.5", "--quiet"],
+         "--target-base-rate", "0.01", "--threshold", "0.5", "--quiet", "--full-precision"],
         check=True,
     )
     with out.open() as f:

@@ -64,6 +64,12 @@ pub struct ScoreArgs {
     /// `.rejects.csv` in place of its extension].
     #[arg(long, value_name = "FILE")]
     pub rejects: Option<PathBuf>,
+    /// Significant digits of the margin, log-odds and probability columns (points are rounded to whole points).
+    #[arg(long, value_name = "N", default_value_t = 6, value_parser = clap::value_parser!(u8).range(1..=17))]
+    pub digits: u8,
+    /// Full precision instead: every number in the shortest form that reads back to the same bits.
+    #[arg(long, conflicts_with = "digits")]
+    pub full_precision: bool,
     /// Add a `warnings` column saying, per row, what reading it noticed (missing cells, numbers that are not finite,
     /// unknown categories, every feature missing); a summary by kind and column is printed either way.
     #[arg(long)]
@@ -311,10 +317,39 @@ pub fn score_columns(model: &Model, spec: &OutputSpec) -> Vec<&'static str> {
     cols
 }
 
-/// Appends the score fields of `s` to `out`; floats in Rust's shortest form that reads back to the same bits.
-pub fn push_scores(out: &mut StringRecord, s: &Scored, spec: &OutputSpec, buf: &mut String) {
+/// How many digits the score columns carry.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Precision {
+    /// Rust's shortest form that reads back to the same bits (up to 17 significant digits).
+    Full,
+    /// This many significant digits for margins, log-odds and probabilities; points rounded to whole points.
+    Digits(usize),
+}
+
+/// `v` rounded to `digits` significant digits, printed in the shortest form of the rounded value.
+fn significant(v: f64, digits: usize) -> f64 {
+    if !v.is_finite() || v == 0.0 {
+        return v;
+    }
+    format!("{:.*e}", digits.saturating_sub(1), v)
+        .parse()
+        .unwrap_or(v)
+}
+
+/// Appends the score fields of `s` to `out` at `precision`.
+pub fn push_scores(
+    out: &mut StringRecord,
+    s: &Scored,
+    spec: &OutputSpec,
+    precision: Precision,
+    buf: &mut String,
+) {
     let mut float = |out: &mut StringRecord, v: f64| {
         buf.clear();
+        let v = match precision {
+            Precision::Full => v,
+            Precision::Digits(d) => significant(v, d),
+        };
         let _ = write!(buf, "{v}");
         out.push_field(buf);
     };
@@ -324,7 +359,14 @@ pub fn push_scores(out: &mut StringRecord, s: &Scored, spec: &OutputSpec, buf: &
     float(out, s.adjusted_log_odds);
     float(out, s.probability);
     if let Some(score) = s.score {
-        float(out, score);
+        match precision {
+            Precision::Full => float(out, score),
+            Precision::Digits(_) => {
+                buf.clear();
+                let _ = write!(buf, "{}", score.round());
+                out.push_field(buf);
+            }
+        }
     }
     if spec.decision.is_some() {
         out.push_field(s.decision.as_ref().map(|d| d.as_str()).unwrap_or(""));
@@ -376,6 +418,11 @@ fn score_file<R: Read, W: Write>(
         out_header.push_field("warnings");
     }
     let mut run_notes = RunNotes::default();
+    let precision = if args.full_precision {
+        Precision::Full
+    } else {
+        Precision::Digits(usize::from(args.digits))
+    };
 
     let mut writer = csv::Writer::from_writer(output);
     writer.write_record(&out_header)?;
@@ -419,7 +466,7 @@ fn score_file<R: Read, W: Write>(
             } else if let Some(id) = columns.id {
                 line.push_field(record.get(id).unwrap_or(""));
             }
-            push_scores(&mut line, scored, spec, &mut buf);
+            push_scores(&mut line, scored, spec, precision, &mut buf);
             if args.warnings_column {
                 line.push_field(&notes.describe(columns.names()));
             }

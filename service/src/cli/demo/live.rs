@@ -269,7 +269,13 @@ fn run_of(data: &DemoData, answers: &[Option<probity_models::Scored>]) -> Option
         run.probabilities.push(s.probability);
         run.log_odds.push(s.adjusted_log_odds);
         let mut record = csv::StringRecord::new();
-        crate::cli::score::push_scores(&mut record, s, &spec, &mut buf);
+        crate::cli::score::push_scores(
+            &mut record,
+            s,
+            &spec,
+            crate::cli::score::Precision::Full,
+            &mut buf,
+        );
         run.fields.push(record);
     }
     Some(run)

@@ -10,7 +10,7 @@ use probity_models::Model;
 
 use super::{summary, DemoData, DemoModel, DemoRun, CAUTIONS};
 use crate::cli::pipeline::{csv_reader, score_records, ColumnMap};
-use crate::cli::score::{push_scores, score_columns};
+use crate::cli::score::{push_scores, score_columns, Precision};
 
 /// Scores the demo data with every model in process and prints the report.
 pub fn run(args: &super::DemoArgs, data: &DemoData, models: &[DemoModel]) -> anyhow::Result<()> {
@@ -44,7 +44,7 @@ pub fn score_demo(model: &Model, data: &DemoData) -> anyhow::Result<DemoRun> {
         probabilities.push(s.probability);
         log_odds.push(s.adjusted_log_odds);
         let mut record = StringRecord::new();
-        push_scores(&mut record, s, &spec, &mut buf);
+        push_scores(&mut record, s, &spec, Precision::Full, &mut buf);
         fields.push(record);
         Ok(())
     })
