@@ -117,6 +117,7 @@ fn log_code(error: &crate::store::StoreError) -> Code {
             found: _,
             supported: _,
         } => Code::Internal,
+        StoreError::Corrupt { what: _ } => Code::Internal,
     }
 }
 

@@ -22,6 +22,7 @@
 pub mod clock;
 pub mod config;
 pub mod faults;
+pub mod matching;
 pub mod running;
 pub mod sqlite;
 pub mod writer;
@@ -273,6 +274,12 @@ pub enum StoreError {
         /// Version this build writes.
         supported: i64,
     },
+    /// A stored row holds a value no build writes.
+    #[error("prediction log holds an unreadable row: {what}")]
+    Corrupt {
+        /// Which row and value.
+        what: String,
+    },
     /// The writer thread is gone (the server is stopping).
     #[error("the prediction log is closed")]
     Closed,
@@ -330,6 +337,7 @@ impl StoreError {
                 found: _,
                 supported: _,
             }
+            | StoreError::Corrupt { what: _ }
             | StoreError::Closed => WriteFailure::Other,
         }
     }
