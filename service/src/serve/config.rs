@@ -425,7 +425,7 @@ impl Config {
         let names = routes.keys().cloned().collect();
         let log = crate::store::LogConfig::from_raw(log, &names)
             .map_err(|(key, message)| invalid(key, message))?;
-        let window = log.directory.is_some().then_some(log.prior_window);
+        let window = log.enabled().then_some(log.prior_window);
         let base_rate_from_estimate = estimate_bounds
             .into_iter()
             .map(|(name, raw)| {

@@ -118,6 +118,18 @@ fn log_code(error: &crate::store::StoreError) -> Code {
             supported: _,
         } => Code::Internal,
         StoreError::Corrupt { what: _ } => Code::Internal,
+        StoreError::Postgres {
+            what: _,
+            message: _,
+            code: _,
+            lost: true,
+        } => Code::Unavailable,
+        StoreError::Postgres {
+            what: _,
+            message: _,
+            code: _,
+            lost: false,
+        } => by_failure(error),
     }
 }
 

@@ -23,6 +23,7 @@ pub mod clock;
 pub mod config;
 pub mod faults;
 pub mod matching;
+pub mod postgres;
 pub mod running;
 pub mod sqlite;
 pub mod writer;
@@ -274,6 +275,19 @@ pub enum StoreError {
         /// Version this build writes.
         supported: i64,
     },
+    /// The PostgreSQL database refused an operation or could not be reached. The message never holds the
+    /// connection URL's password.
+    #[error("prediction log database ({what}): {message}")]
+    Postgres {
+        /// What was being done.
+        what: &'static str,
+        /// The database's message.
+        message: String,
+        /// The SQLSTATE code, when the server answered.
+        code: Option<String>,
+        /// Whether the connection was lost (or never made): the operation may work once the database is back.
+        lost: bool,
+    },
     /// A stored row holds a value no build writes.
     #[error("prediction log holds an unreadable row: {what}")]
     Corrupt {
@@ -338,7 +352,24 @@ impl StoreError {
                 supported: _,
             }
             | StoreError::Corrupt { what: _ }
-            | StoreError::Closed => WriteFailure::Other,
+            | StoreError::Postgres {
+                what: _,
+                message: _,
+                code: None,
+                lost: _,
+            } => WriteFailure::Other,
+            StoreError::Postgres {
+                what: _,
+                message: _,
+                code: Some(code),
+                lost: _,
+            } => match code.as_str() {
+                // disk_full, and read_only_sql_transaction (a standby, or default_transaction_read_only)
+                "53100" => WriteFailure::DiskFull,
+                "25006" => WriteFailure::ReadOnly,
+                _ => WriteFailure::Other,
+            },
+            StoreError::Closed => WriteFailure::Other,
         }
     }
 }
@@ -392,4 +423,25 @@ pub trait Store: Send {
 
     /// Pending and unmatched outcome counts.
     fn outcome_counts(&mut self) -> Result<OutcomeCounts, StoreError>;
+
+    /// Whether this replica runs the sweeps now. A store of one process always does; a shared store lets one
+    /// replica at a time (the one holding its lock), and another takes over when that one is gone.
+    fn lead_sweeps(&mut self) -> Result<bool, StoreError> {
+        Ok(true)
+    }
+}
+
+/// Why an outcome is refused, or `None`.
+pub(crate) fn invalid_outcome(o: &OutcomeInput) -> Option<String> {
+    let id = &o.prediction_id;
+    if id.is_empty() {
+        return Some("prediction_id: is empty".into());
+    }
+    if id.len() > 128 || !id.bytes().all(|b| (0x21..=0x7e).contains(&b)) {
+        return Some("prediction_id: must be 1 to 128 printable ASCII characters".into());
+    }
+    if o.time_ms.is_some_and(|t| t < 0) {
+        return Some("outcome_time: must not be before 1970".into());
+    }
+    None
 }

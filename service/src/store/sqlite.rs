@@ -467,7 +467,7 @@ impl SqliteStore {
         let mut results = Vec::with_capacity(outcomes.len());
         let mut pairs = Vec::new();
         for o in outcomes {
-            if let Some(message) = invalid_outcome(o) {
+            if let Some(message) = super::invalid_outcome(o) {
                 results.push(OutcomeResult {
                     status: OutcomeStatus::Invalid,
                     predictions_matched: 0,
@@ -678,19 +678,4 @@ impl SqliteStore {
             unmatched: count(OutcomeState::Unmatched.as_str())?,
         })
     }
-}
-
-/// Why an outcome is refused, or `None`.
-fn invalid_outcome(o: &OutcomeInput) -> Option<String> {
-    let id = &o.prediction_id;
-    if id.is_empty() {
-        return Some("prediction_id: is empty".into());
-    }
-    if id.len() > 128 || !id.bytes().all(|b| (0x21..=0x7e).contains(&b)) {
-        return Some("prediction_id: must be 1 to 128 printable ASCII characters".into());
-    }
-    if o.time_ms.is_some_and(|t| t < 0) {
-        return Some("outcome_time: must not be before 1970".into());
-    }
-    None
 }
