@@ -1,0 +1,462 @@
+//! Three `probity serve` replicas on one PostgreSQL database (`log.backend = "postgres"`): scoring spread over all
+//! three, each outcome sent to a different replica than the one that scored it, one replica killed with SIGKILL
+//! and started again while scoring and outcomes keep coming. Afterwards every acknowledged outcome is recorded once
+//! with its label, matched to its prediction when that prediction is in the log, no prediction is logged twice, and
+//! the fleet report (the Report call on any replica) equals the report the SQLite backend makes from the same rows.
+//!
+//! Needs PostgreSQL at 127.0.0.1:5432 (see `store_postgres.rs`; `PROBITY_SKIP_POSTGRES=1` skips).
+
+#![allow(clippy::unwrap_used, clippy::expect_used)]
+
+use std::collections::HashMap;
+use std::process::{Child, Command, Stdio};
+use std::sync::{Arc, Mutex};
+use std::time::Duration;
+
+use probity::serve::proto as pb;
+use probity::store::sqlite::Durability;
+use probity::store::{ModelVersionInfo, OutcomeInput, PredictionRecord, SqliteStore, Store};
+use serde_json::Value;
+
+fn admin_url() -> String {
+    std::env::var("PROBITY_TEST_POSTGRES")
+        .unwrap_or_else(|_| "postgresql://postgres@127.0.0.1:5432/postgres".into())
+}
+
+struct TestDb {
+    name: String,
+}
+
+impl TestDb {
+    fn create() -> Option<TestDb> {
+        let mut admin = match postgres::Client::connect(&admin_url(), postgres::NoTls) {
+            Ok(c) => c,
+            Err(e) if std::env::var("PROBITY_SKIP_POSTGRES").as_deref() == Ok("1") => {
+                eprintln!("PROBITY_SKIP_POSTGRES=1: skipping, PostgreSQL is not reachable ({e})");
+                return None;
+            }
+            Err(e) => panic!(
+                "this test needs PostgreSQL 15 at {} (trust authentication; PROBITY_TEST_POSTGRES names another \
+                 administrative URL, PROBITY_SKIP_POSTGRES=1 skips): {e}",
+                admin_url()
+            ),
+        };
+        let name = format!("probity_t_fleet_{}", std::process::id());
+        admin
+            .batch_execute(&format!("DROP DATABASE IF EXISTS {name} WITH (FORCE)"))
+            .unwrap();
+        admin
+            .batch_execute(&format!("CREATE DATABASE {name}"))
+            .unwrap();
+        Some(TestDb { name })
+    }
+
+    fn url(&self) -> String {
+        let admin = admin_url();
+        let base = admin
+            .rsplit_once('/')
+            .map_or(admin.as_str(), |(b, _)| b)
+            .to_string();
+        format!("{base}/{}", self.name)
+    }
+}
+
+impl Drop for TestDb {
+    fn drop(&mut self) {
+        if let Ok(mut admin) = postgres::Client::connect(&admin_url(), postgres::NoTls) {
+            let _ = admin.batch_execute(&format!(
+                "DROP DATABASE IF EXISTS {} WITH (FORCE)",
+                self.name
+            ));
+        }
+    }
+}
+
+fn free_port() -> u16 {
+    std::net::TcpListener::bind("127.0.0.1:0")
+        .unwrap()
+        .local_addr()
+        .unwrap()
+        .port()
+}
+
+struct Server {
+    child: Child,
+    url: String,
+}
+
+impl Drop for Server {
+    /// SIGKILL and reap, also when an assertion fails first.
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+async fn start(config: &std::path::Path) -> Server {
+    let port = free_port();
+    let mut child = Command::new(env!("CARGO_BIN_EXE_probity"))
+        .args(["serve", "--config"])
+        .arg(config)
+        .args(["--grpc-listen", &format!("127.0.0.1:{port}")])
+        .args(["--metrics-listen", &format!("127.0.0.1:{}", free_port())])
+        .stdout(Stdio::null())
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap();
+    let url = format!("http://127.0.0.1:{port}");
+    for _ in 0..400 {
+        if tonic::transport::Channel::from_shared(url.clone())
+            .unwrap()
+            .connect()
+            .await
+            .is_ok()
+        {
+            return Server { child, url };
+        }
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+    let _ = child.kill();
+    let _ = child.wait();
+    panic!("the server did not start");
+}
+
+async fn channel(url: &str) -> Option<tonic::transport::Channel> {
+    tonic::transport::Channel::from_shared(url.to_string())
+        .unwrap()
+        .connect()
+        .await
+        .ok()
+}
+
+fn rows(range: std::ops::Range<usize>) -> Vec<pb::Row> {
+    range
+        .map(|i| pb::Row {
+            prediction_id: format!("f-{i}"),
+            features: Some(pb::row::Features::Dense(pb::DenseFeatures {
+                values: vec![((i % 97) as f64 - 48.0) / 20.0],
+            })),
+            ..Default::default()
+        })
+        .collect()
+}
+
+/// Deterministic labels with both classes, not a function of the score alone.
+fn label(i: usize) -> bool {
+    i.is_multiple_of(3) || i % 97 > 70
+}
+
+const BATCHES: usize = 60;
+const PER_BATCH: usize = 50;
+
+#[test]
+fn three_replicas_one_database_every_acknowledged_outcome_matched_once() {
+    // The blocking PostgreSQL client of the checks runs outside the runtime that drives the replicas.
+    let Some(db) = TestDb::create() else {
+        return;
+    };
+    let rt = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()
+        .unwrap();
+    let loaded = rt.block_on(load(&db));
+    check(&rt, &db, loaded);
+}
+
+/// Starts the replicas and runs the load; returns the replicas and the acknowledged outcomes.
+async fn load(
+    db: &TestDb,
+) -> (
+    Vec<Server>,
+    HashMap<String, (bool, i32)>,
+    tempfile::TempDir,
+    tempfile::TempDir,
+) {
+    let models = tempfile::tempdir().unwrap();
+    std::fs::write(
+        models.path().join("linear.json"),
+        r#"{"format": "probity.model", "format_version": 1, "name": "linear", "version": "1",
+            "features": [{"name": "x", "type": "numeric"}], "margin_scale": "log_odds", "base_rate": 0.3,
+            "linear": {"intercept": -0.5, "terms": [{"numeric": {"feature": 0, "coefficient": 1.2}}]}}"#,
+    )
+    .unwrap();
+    let data = tempfile::tempdir().unwrap();
+    let url_file = data.path().join("db-url");
+    std::fs::write(&url_file, db.url()).unwrap();
+    let config = data.path().join("probity.toml");
+    std::fs::write(
+        &config,
+        format!(
+            "[server]\nplaintext = \"loopback\"\n\
+             [models]\ndirectory = {:?}\nwatch = false\n\
+             [log]\nbackend = \"postgres\"\npostgres_url_file = {:?}\nflush_interval = \"10ms\"\n\
+             outcome_hold = \"1h\"\nsweep_interval = \"1s\"\n\
+             [routes.r]\nmodel = \"linear\"\n",
+            models.path().display().to_string(),
+            url_file.display().to_string()
+        ),
+    )
+    .unwrap();
+
+    let mut servers = Vec::new();
+    for _ in 0..3 {
+        servers.push(start(&config).await);
+    }
+    let urls: Arc<Mutex<Vec<String>>> =
+        Arc::new(Mutex::new(servers.iter().map(|s| s.url.clone()).collect()));
+
+    // Outcomes: for each scored batch, sent to the next replica (never the one that scored it); a replica that
+    // does not answer (the killed one) is skipped for the one after it, still not the scorer.
+    let (scored_tx, mut scored_rx) = tokio::sync::mpsc::unbounded_channel::<(usize, usize)>();
+    let outcome_urls = Arc::clone(&urls);
+    let sender = tokio::spawn(async move {
+        let mut acknowledged: HashMap<String, (bool, i32)> = HashMap::new();
+        while let Some((batch, scorer)) = scored_rx.recv().await {
+            let outcomes: Vec<pb::Outcome> = (batch * PER_BATCH..(batch + 1) * PER_BATCH)
+                .map(|i| pb::Outcome {
+                    prediction_id: format!("f-{i}"),
+                    label: label(i),
+                    outcome_time_unix_ms: 0,
+                })
+                .collect();
+            let mut sent = false;
+            for attempt in 0..40 {
+                let target = (scorer + 1 + attempt % 2) % 3;
+                let url = outcome_urls.lock().unwrap()[target].clone();
+                let Some(ch) = channel(&url).await else {
+                    tokio::time::sleep(Duration::from_millis(50)).await;
+                    continue;
+                };
+                let mut client = pb::outcomes_client::OutcomesClient::new(ch);
+                if let Ok(answer) = client
+                    .record_outcomes(pb::RecordOutcomesRequest {
+                        outcomes: outcomes.clone(),
+                    })
+                    .await
+                {
+                    for (o, r) in outcomes.iter().zip(answer.into_inner().results) {
+                        acknowledged.insert(o.prediction_id.clone(), (o.label, r.status));
+                    }
+                    sent = true;
+                    break;
+                }
+                tokio::time::sleep(Duration::from_millis(50)).await;
+            }
+            assert!(sent, "batch {batch}: no replica took its outcomes");
+        }
+        acknowledged
+    });
+
+    let mut scored_by: HashMap<usize, usize> = HashMap::new();
+    for batch in 0..BATCHES {
+        let scorer = batch % 3;
+        if batch == BATCHES / 2 {
+            // SIGKILL replica 1 while the outcomes of earlier batches are still arriving, then start it again.
+            let old = std::mem::replace(&mut servers[1], start(&config).await);
+            drop(old);
+            urls.lock().unwrap()[1] = servers[1].url.clone();
+        }
+        let ch = channel(&servers[scorer].url).await.unwrap();
+        let mut scoring = pb::scoring_client::ScoringClient::new(ch);
+        scoring
+            .score_batch(pb::ScoreBatchRequest {
+                route: "r".into(),
+                rows: rows(batch * PER_BATCH..(batch + 1) * PER_BATCH),
+            })
+            .await
+            .unwrap();
+        scored_by.insert(batch, scorer);
+        scored_tx.send((batch, scorer)).unwrap();
+    }
+    drop(scored_tx);
+    let acknowledged = sender.await.unwrap();
+    assert_eq!(acknowledged.len(), BATCHES * PER_BATCH);
+    (servers, acknowledged, models, data)
+}
+
+fn check(
+    rt: &tokio::runtime::Runtime,
+    db: &TestDb,
+    (servers, acknowledged, _models, _data): (
+        Vec<Server>,
+        HashMap<String, (bool, i32)>,
+        tempfile::TempDir,
+        tempfile::TempDir,
+    ),
+) {
+    // Let the writers commit what they hold, and the held outcomes find their predictions.
+    let mut pg = postgres::Client::connect(&db.url(), postgres::NoTls).unwrap();
+    let mut last = -1i64;
+    for _ in 0..100 {
+        std::thread::sleep(Duration::from_millis(100));
+        let n: i64 = pg
+            .query_one("SELECT count(*) FROM predictions", &[])
+            .unwrap()
+            .get(0);
+        if n == last {
+            break;
+        }
+        last = n;
+    }
+
+    // No prediction twice; every acknowledged outcome is one row with its label, matched exactly when its
+    // prediction is in the log.
+    let dup: i64 = pg
+        .query_one(
+            "SELECT count(*) FROM (SELECT prediction_id FROM predictions GROUP BY prediction_id HAVING count(*) > 1) d",
+            &[],
+        )
+        .unwrap()
+        .get(0);
+    assert_eq!(dup, 0);
+    let logged: std::collections::HashSet<String> = pg
+        .query("SELECT prediction_id FROM predictions", &[])
+        .unwrap()
+        .iter()
+        .map(|r| r.get(0))
+        .collect();
+    let stored: HashMap<String, (bool, String, i64)> = pg
+        .query(
+            "SELECT prediction_id, label, state, revision FROM outcomes",
+            &[],
+        )
+        .unwrap()
+        .iter()
+        .map(|r| (r.get(0), (r.get(1), r.get(2), r.get(3))))
+        .collect();
+    assert_eq!(stored.len(), acknowledged.len());
+    for (id, (label, _status)) in &acknowledged {
+        let (stored_label, state, revision) = stored.get(id).unwrap();
+        assert_eq!(stored_label, label, "{id}");
+        assert_eq!(*revision, 0, "{id}: recorded once");
+        let want = if logged.contains(id) {
+            "matched"
+        } else {
+            "pending"
+        };
+        assert_eq!(state, want, "{id}");
+    }
+    // Only the replica killed mid-load may have lost predictions it had queued; the others lost none.
+    let lost: Vec<&String> = acknowledged
+        .keys()
+        .filter(|id| !logged.contains(*id))
+        .collect();
+    let statuses = acknowledged.values().fold(HashMap::new(), |mut m, (_, s)| {
+        *m.entry(*s).or_insert(0) += 1;
+        m
+    });
+    eprintln!(
+        "logged {}, lost in the kill {}, outcome statuses {statuses:?}",
+        logged.len(),
+        lost.len()
+    );
+    assert!(lost.len() <= 2 * PER_BATCH, "lost {}", lost.len());
+    assert!(logged.len() >= BATCHES * PER_BATCH - 2 * PER_BATCH);
+
+    // The fleet report from a replica (every replica reads the same database) ...
+    let fleet: Value = rt.block_on(async {
+        let ch = channel(&servers[2].url).await.unwrap();
+        let mut outcomes = pb::outcomes_client::OutcomesClient::new(ch);
+        serde_json::from_str(
+            &outcomes
+                .report(pb::ReportRequest::default())
+                .await
+                .unwrap()
+                .into_inner()
+                .json,
+        )
+        .unwrap()
+    });
+    assert_eq!(
+        fleet["series"][0]["with_outcome"].as_u64(),
+        Some(logged.len() as u64),
+        "every logged prediction has its outcome"
+    );
+
+    // ... equals the SQLite backend's report over the same rows: the predictions in the order PostgreSQL logged
+    // them, the model facts, then every stored outcome.
+    let dir = tempfile::tempdir().unwrap();
+    let mut lite = SqliteStore::open(dir.path(), Durability::Normal).unwrap();
+    for r in pg.query("SELECT info FROM model_versions", &[]).unwrap() {
+        let info: ModelVersionInfo = serde_json::from_str(r.get(0)).unwrap();
+        lite.register_model(&info).unwrap();
+    }
+    let records: Vec<PredictionRecord> = pg
+        .query(
+            "SELECT prediction_id, route, model, version, role, time_ms, margin, log_odds, adjusted_log_odds,
+                    probability, entity_key, tags FROM predictions ORDER BY seq",
+            &[],
+        )
+        .unwrap()
+        .iter()
+        .map(|r| PredictionRecord {
+            prediction_id: r.get(0),
+            route: r.get(1),
+            model: r.get(2),
+            version: r.get(3),
+            role: r.get(4),
+            time_ms: r.get(5),
+            margin: r.get(6),
+            log_odds: r.get(7),
+            adjusted_log_odds: r.get(8),
+            probability: r.get(9),
+            entity_key: r.get(10),
+            tags: serde_json::from_str(r.get(11)).unwrap(),
+        })
+        .collect();
+    lite.insert_predictions(&records).unwrap();
+    let copied: Vec<(OutcomeInput, i64)> = pg
+        .query("SELECT prediction_id, label, outcome_time_ms, received_ms FROM outcomes ORDER BY received_ms", &[])
+        .unwrap()
+        .iter()
+        .map(|r| {
+            (
+                OutcomeInput {
+                    prediction_id: r.get(0),
+                    label: r.get(1),
+                    time_ms: Some(r.get(2)),
+                },
+                r.get(3),
+            )
+        })
+        .collect();
+    for (o, received) in copied {
+        lite.record_outcomes(&[o], received).unwrap();
+    }
+    let local =
+        serde_json::to_value(probity::report::build(&mut lite, &Default::default()).unwrap())
+            .unwrap();
+    assert_close(&fleet, &local, "report");
+    drop(servers);
+}
+
+/// Equal JSON, numbers within 1e-9 relative (the two databases sum in the same order; the slack covers
+/// the last bit of a float printed and parsed).
+fn assert_close(a: &Value, b: &Value, at: &str) {
+    match (a, b) {
+        (Value::Number(x), Value::Number(y)) => {
+            let (x, y) = (x.as_f64().unwrap(), y.as_f64().unwrap());
+            assert!(
+                (x - y).abs() <= 1e-9 * x.abs().max(y.abs()).max(1e-300),
+                "{at}: {x} vs {y}"
+            );
+        }
+        (Value::Array(x), Value::Array(y)) => {
+            assert_eq!(x.len(), y.len(), "{at}: lengths");
+            for (i, (u, v)) in x.iter().zip(y).enumerate() {
+                assert_close(u, v, &format!("{at}[{i}]"));
+            }
+        }
+        (Value::Object(x), Value::Object(y)) => {
+            let keys: std::collections::BTreeSet<&String> = x.keys().chain(y.keys()).collect();
+            for k in keys {
+                match (x.get(k), y.get(k)) {
+                    (Some(u), Some(v)) => assert_close(u, v, &format!("{at}.{k}")),
+                    _ => panic!("{at}.{k}: only on one side"),
+                }
+            }
+        }
+        _ => assert_eq!(a, b, "{at}"),
+    }
+}
