@@ -146,6 +146,14 @@ fn label(i: usize) -> bool {
     i.is_multiple_of(3) || i % 97 > 70
 }
 
+/// The replicas, the acknowledged outcomes (id -> label, status), and the directories the replicas use.
+type Loaded = (
+    Vec<Server>,
+    HashMap<String, (bool, i32)>,
+    tempfile::TempDir,
+    tempfile::TempDir,
+);
+
 const BATCHES: usize = 60;
 const PER_BATCH: usize = 50;
 
@@ -165,14 +173,7 @@ fn three_replicas_one_database_every_acknowledged_outcome_matched_once() {
 }
 
 /// Starts the replicas and runs the load; returns the replicas and the acknowledged outcomes.
-async fn load(
-    db: &TestDb,
-) -> (
-    Vec<Server>,
-    HashMap<String, (bool, i32)>,
-    tempfile::TempDir,
-    tempfile::TempDir,
-) {
+async fn load(db: &TestDb) -> Loaded {
     let models = tempfile::tempdir().unwrap();
     std::fs::write(
         models.path().join("linear.json"),
@@ -278,12 +279,7 @@ async fn load(
 fn check(
     rt: &tokio::runtime::Runtime,
     db: &TestDb,
-    (servers, acknowledged, _models, _data): (
-        Vec<Server>,
-        HashMap<String, (bool, i32)>,
-        tempfile::TempDir,
-        tempfile::TempDir,
-    ),
+    (servers, acknowledged, _models, _data): Loaded,
 ) {
     // Let the writers commit what they hold, and the held outcomes find their predictions.
     let mut pg = postgres::Client::connect(&db.url(), postgres::NoTls).unwrap();
