@@ -381,7 +381,7 @@ fn check(
     let records: Vec<PredictionRecord> = pg
         .query(
             "SELECT prediction_id, route, model, version, role, time_ms, margin, log_odds, adjusted_log_odds,
-                    probability, entity_key, tags FROM predictions ORDER BY seq",
+                    probability, entity_key, tags, served_prior, decision FROM predictions ORDER BY seq",
             &[],
         )
         .unwrap()
@@ -399,6 +399,10 @@ fn check(
             probability: r.get(9),
             entity_key: r.get(10),
             tags: serde_json::from_str(r.get(11)).unwrap(),
+            served: probity::store::Served {
+                prior: r.get(12),
+                decision: r.get(13),
+            },
         })
         .collect();
     lite.insert_predictions(&records).unwrap();

@@ -113,6 +113,10 @@ fn record(id: &str, route: &str, role: &str, time_ms: i64, h: f64) -> Prediction
         probability: 1.0 / (1.0 + (-h).exp()),
         entity_key: String::new(),
         tags: BTreeMap::new(),
+        served: probity::store::Served {
+            prior: Some(if route == "fraud" { 0.02 } else { 0.1 }),
+            decision: "threshold 0.5".into(),
+        },
     }
 }
 
@@ -322,7 +326,7 @@ fn a_database_at_a_newer_schema_is_refused() {
         .unwrap();
     match PgStore::open(ConnectionUrl::new(&db.url()).unwrap(), None, T0) {
         Err(StoreError::Schema { found, supported }) => {
-            assert_eq!((found, supported), (99, 1));
+            assert_eq!((found, supported), (99, 2));
         }
         Err(other) => panic!("wrong error: {other}"),
         Ok(_) => panic!("a newer schema was accepted"),

@@ -132,6 +132,7 @@ mod tests {
             probability: 0.5,
             entity_key: String::new(),
             tags: Default::default(),
+            served: Default::default(),
         }
     }
 

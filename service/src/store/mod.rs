@@ -62,6 +62,37 @@ pub struct PredictionRecord {
     pub entity_key: String,
     /// Free-form tags.
     pub tags: BTreeMap<String, String>,
+    /// What it was served under.
+    pub served: Served,
+}
+
+/// What a prediction was served under, kept with it so that a report over a range in which the route's settings
+/// moved uses each prediction's own. The model and calibration are named by the record's model and version (the
+/// calibration map is part of the model file) and the champion or challenger by its role.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct Served {
+    /// The base rate its probability is calibrated to: the route's target base rate when one was applied, else the
+    /// model's. `None` in rows logged before the log kept it.
+    pub prior: Option<f64>,
+    /// The route's decision rule (threshold, costs or bands) in the words of [`decision_words`]; empty when none.
+    pub decision: String,
+}
+
+/// A decision rule in the log's words: `threshold 0.5`, `costs false_positive=1 false_negative=5`,
+/// `bands 0.2,0.6 low,medium,high`.
+pub fn decision_words(rule: &probity_models::DecisionRule) -> String {
+    use probity_models::DecisionRule;
+    match rule {
+        DecisionRule::Threshold { threshold } => format!("threshold {threshold}"),
+        DecisionRule::Costs {
+            false_positive,
+            false_negative,
+        } => format!("costs false_positive={false_positive} false_negative={false_negative}"),
+        DecisionRule::Bands { edges, labels } => {
+            let edges: Vec<String> = edges.iter().map(f64::to_string).collect();
+            format!("bands {} {}", edges.join(","), labels.join(","))
+        }
+    }
 }
 
 /// What the log keeps about a model version, so that a report needs nothing but the log file.
@@ -227,6 +258,8 @@ pub struct LoggedPrediction {
     pub by_maturity: bool,
     /// Whether the label was corrected at least once.
     pub corrected: bool,
+    /// The base rate its probability is calibrated to, when the log kept it ([`Served::prior`]).
+    pub served_prior: Option<f64>,
 }
 
 /// Counts of the outcome table, for reports and gauges.

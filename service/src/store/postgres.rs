@@ -39,7 +39,7 @@ use super::{
 };
 
 /// The newest schema version this build knows.
-pub const SCHEMA_VERSION: i32 = 1;
+pub const SCHEMA_VERSION: i32 = 2;
 
 const DAY_MS: i64 = 86_400_000;
 
@@ -49,9 +49,10 @@ const MIGRATION_LOCK: i64 = 0x7072_6f62_0001;
 const SWEEP_LOCK: i64 = 0x7072_6f62_0002;
 
 /// The migrations, in order: version and statements.
-const MIGRATIONS: &[(i32, &str)] = &[(
-    1,
-    "
+const MIGRATIONS: &[(i32, &str)] = &[
+    (
+        1,
+        "
 CREATE SEQUENCE prediction_seq;
 CREATE TABLE predictions (
     seq bigint NOT NULL DEFAULT nextval('prediction_seq'),
@@ -96,7 +97,15 @@ CREATE TABLE model_versions (
     PRIMARY KEY (model, version)
 );
 ",
-)];
+    ),
+    (
+        2,
+        "
+ALTER TABLE predictions ADD COLUMN served_prior double precision,
+    ADD COLUMN decision text NOT NULL DEFAULT '';
+",
+    ),
+];
 
 /// The staging table of a session: the binary COPY lands here, then moves into `predictions`.
 const STAGING: &str = "
@@ -113,10 +122,12 @@ CREATE TEMPORARY TABLE IF NOT EXISTS staging_predictions (
     probability double precision NOT NULL,
     entity_key text NOT NULL,
     tags text NOT NULL,
+    served_prior double precision,
+    decision text NOT NULL,
     ord integer NOT NULL
 ) ON COMMIT DELETE ROWS";
 
-const STAGING_TYPES: [Type; 13] = [
+const STAGING_TYPES: [Type; 15] = [
     Type::TEXT,
     Type::TEXT,
     Type::TEXT,
@@ -128,6 +139,8 @@ const STAGING_TYPES: [Type; 13] = [
     Type::FLOAT8,
     Type::FLOAT8,
     Type::TEXT,
+    Type::TEXT,
+    Type::FLOAT8,
     Type::TEXT,
     Type::INT4,
 ];
@@ -614,6 +627,8 @@ impl Store for PgStore {
                     &r.probability,
                     &r.entity_key,
                     &tags,
+                    &r.served.prior,
+                    &r.served.decision,
                     &ord,
                 ])?;
             }
@@ -629,9 +644,9 @@ impl Store for PgStore {
             // time: the unique key holds the time too, since a partitioned table's keys must).
             let inserted = tx.query(
                 "INSERT INTO predictions (prediction_id, route, model, version, role, time_ms, margin, log_odds,
-                   adjusted_log_odds, probability, entity_key, tags)
+                   adjusted_log_odds, probability, entity_key, tags, served_prior, decision)
                  SELECT prediction_id, route, model, version, role, time_ms, margin, log_odds, adjusted_log_odds,
-                   probability, entity_key, tags
+                   probability, entity_key, tags, served_prior, decision
                  FROM (SELECT DISTINCT ON (prediction_id, route, model, role) * FROM staging_predictions
                        ORDER BY prediction_id, route, model, role, ord) s
                  WHERE NOT EXISTS (SELECT 1 FROM predictions p WHERE p.prediction_id = s.prediction_id
@@ -884,7 +899,7 @@ impl Store for PgStore {
         self.transact("report query", |tx, _| {
             let rows = tx.query(
                 "SELECT p.route, p.model, p.version, p.role, p.time_ms, p.adjusted_log_odds, p.probability,
-                        o.label, o.source, o.revision, p.prediction_id
+                        o.label, o.source, o.revision, p.prediction_id, p.served_prior
                  FROM predictions p
                  LEFT JOIN outcomes o ON o.prediction_id = p.prediction_id AND o.state = $6
                  WHERE ($1::int8 IS NULL OR p.time_ms >= $1) AND ($2::int8 IS NULL OR p.time_ms < $2)
@@ -917,6 +932,7 @@ impl Store for PgStore {
                         label: r.get(7),
                         by_maturity: source.and_then(Source::parse) == Some(Source::Maturity),
                         corrected: revision.unwrap_or(0) > 0,
+                        served_prior: r.get(11),
                     }
                 })
                 .collect())

@@ -18,8 +18,15 @@ use super::{
     PredictionRecord, ReportFilter, Settled, Store, StoreError,
 };
 
-/// The table layout this build writes; kept in `PRAGMA user_version`.
-const SCHEMA_VERSION: i64 = 1;
+/// The table layout this build writes; kept in `PRAGMA user_version`. Version 2 added what each prediction was
+/// served under (`served_prior`, `decision`); a version 1 file gets the columns at open ([`MIGRATE_1_2`]).
+const SCHEMA_VERSION: i64 = 2;
+
+/// From version 1: the served-under columns (NULL prior and no decision in the rows already there).
+const MIGRATE_1_2: &str = "
+ALTER TABLE predictions ADD COLUMN served_prior REAL;
+ALTER TABLE predictions ADD COLUMN decision TEXT NOT NULL DEFAULT '';
+";
 
 /// The database file name inside the data directory.
 pub const FILE_NAME: &str = "predictions.db";
@@ -39,6 +46,8 @@ CREATE TABLE IF NOT EXISTS predictions (
     probability REAL NOT NULL,
     entity_key TEXT NOT NULL,
     tags TEXT NOT NULL,
+    served_prior REAL,
+    decision TEXT NOT NULL DEFAULT '',
     UNIQUE (prediction_id, route, model, role)
 );
 CREATE INDEX IF NOT EXISTS predictions_time ON predictions (time_ms);
@@ -151,6 +160,10 @@ impl SqliteStore {
                 found,
                 supported: SCHEMA_VERSION,
             });
+        }
+        if found == 1 {
+            conn.execute_batch(MIGRATE_1_2)
+                .map_err(db("schema migration 1 to 2"))?;
         }
         conn.execute_batch(SCHEMA).map_err(db("create tables"))?;
         if found != SCHEMA_VERSION {
@@ -399,8 +412,8 @@ impl SqliteStore {
             let mut insert = tx
                 .prepare_cached(
                     "INSERT OR IGNORE INTO predictions (prediction_id, route, model, version, role, time_ms,
-                     margin, log_odds, adjusted_log_odds, probability, entity_key, tags)
-                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12)",
+                     margin, log_odds, adjusted_log_odds, probability, entity_key, tags, served_prior, decision)
+                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14)",
                 )
                 .map_err(db("insert prediction"))?;
             for r in records {
@@ -418,7 +431,9 @@ impl SqliteStore {
                         r.adjusted_log_odds,
                         r.probability,
                         r.entity_key,
-                        tags
+                        tags,
+                        r.served.prior,
+                        r.served.decision
                     ])
                     .map_err(db("insert prediction"))?;
                 written.push(n > 0);
@@ -599,7 +614,7 @@ impl SqliteStore {
             .conn
             .prepare(
                 "SELECT p.route, p.model, p.version, p.role, p.time_ms, p.adjusted_log_odds, p.probability,
-                        o.label, o.source, o.revision, p.prediction_id
+                        o.label, o.source, o.revision, p.prediction_id, p.served_prior
                  FROM predictions p
                  LEFT JOIN outcomes o ON o.prediction_id = p.prediction_id AND o.state = ?6
                  WHERE (?1 IS NULL OR p.time_ms >= ?1) AND (?2 IS NULL OR p.time_ms < ?2)
@@ -635,6 +650,7 @@ impl SqliteStore {
                         by_maturity: source.as_deref().and_then(Source::parse)
                             == Some(Source::Maturity),
                         corrected: revision.unwrap_or(0) > 0,
+                        served_prior: r.get(11)?,
                     })
                 },
             )
