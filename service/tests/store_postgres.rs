@@ -433,3 +433,117 @@ fn one_connection_leads_the_sweeps_and_another_takes_over() {
     // A status the answers are made of: checked here so the enum stays in step with the shared rules.
     assert_eq!(OutcomeStatus::Matched.as_str(), "matched");
 }
+
+/// A measurement, not a check (`cargo test --release -p probity --test store_postgres -- --ignored --nocapture
+/// measure`): the same run on both backends. Predictions logged per second through the queue and writer thread
+/// (batches of `log.batch_size` = 1,000), outcomes matched per second (calls of 1,000 outcomes, each matching one
+/// prediction), and bytes stored per prediction (SQLite: the files; PostgreSQL: predictions partitions, indexes and
+/// outcomes).
+#[test]
+#[ignore]
+fn measure_both_backends() {
+    use probity::store::writer::{ModelFacts, Queued};
+    use probity::store::{Clock, LogConfig, ModelVersionInfo, PredictionLog};
+    use std::sync::atomic::AtomicI64;
+
+    struct Facts;
+    impl ModelFacts for Facts {
+        fn version_info(&self) -> ModelVersionInfo {
+            ModelVersionInfo {
+                model: "m".into(),
+                version: "v1".into(),
+                base_rate: 0.1,
+                reference: None,
+            }
+        }
+    }
+    let n: usize = std::env::var("PROBITY_MEASURE_N")
+        .ok()
+        .and_then(|v| v.parse().ok())
+        .unwrap_or(300_000);
+    let run = |name: &str, store: Box<dyn Store>, size: &dyn Fn() -> u64| {
+        let dir = tempfile::tempdir().unwrap();
+        let clock = Arc::new(AtomicI64::new(T0));
+        let cfg = LogConfig {
+            directory: Some(dir.path().to_path_buf()),
+            queue_size: 1 << 21,
+            ..LogConfig::default()
+        };
+        let log = PredictionLog::start(store, cfg, Clock::manual(clock));
+        let started = std::time::Instant::now();
+        for i in 0..n {
+            let mut r = record(
+                &format!("0190b3c2-7d4e-7000-8000-{i:012}"),
+                "fraud",
+                "champion",
+                T0 + (i as i64) * 10,
+                ((i % 1000) as f64 - 500.0) / 100.0,
+            );
+            r.entity_key = format!("card-{}", i % 10_000);
+            log.log(Queued {
+                record: r,
+                prior: 0.02,
+                facts: Arc::new(Facts),
+            });
+        }
+        log.flush().unwrap();
+        let logged = started.elapsed().as_secs_f64();
+        let started = std::time::Instant::now();
+        let mut matched = 0;
+        for chunk in (0..n).collect::<Vec<_>>().chunks(1000) {
+            let batch: Vec<OutcomeInput> = chunk
+                .iter()
+                .map(|i| {
+                    outcome(
+                        &format!("0190b3c2-7d4e-7000-8000-{i:012}"),
+                        i % 7 == 0,
+                        None,
+                    )
+                })
+                .collect();
+            let results = log.record_outcomes(&batch).unwrap();
+            matched += results
+                .iter()
+                .filter(|r| r.status == OutcomeStatus::Matched)
+                .count();
+        }
+        let matching = started.elapsed().as_secs_f64();
+        assert_eq!(matched, n);
+        log.close();
+        let bytes = size();
+        println!(
+            "{name}: {n} predictions logged in {logged:.2} s = {:.0}/s; {n} outcomes matched in {matching:.2} s = \
+             {:.0}/s; {:.0} bytes per prediction",
+            n as f64 / logged,
+            n as f64 / matching,
+            bytes as f64 / n as f64
+        );
+    };
+    let lite_dir = tempfile::tempdir().unwrap();
+    let lite = SqliteStore::open(lite_dir.path(), Durability::Normal).unwrap();
+    let lite_path = lite_dir.path().to_path_buf();
+    run("sqlite", Box::new(lite), &|| {
+        std::fs::read_dir(&lite_path)
+            .unwrap()
+            .map(|e| e.unwrap().metadata().unwrap().len())
+            .sum()
+    });
+    let Some(db) = TestDb::create("measure") else {
+        return;
+    };
+    let pg = db.open(T0);
+    run("postgres", Box::new(pg), &|| {
+        let mut c = db.client();
+        c.batch_execute("CHECKPOINT").ok();
+        let v: i64 = c
+            .query_one(
+                "SELECT (SELECT coalesce(sum(pg_total_relation_size(i.inhrelid)), 0) FROM pg_inherits i
+                         WHERE i.inhparent = 'predictions'::regclass)::int8
+                      + pg_total_relation_size('outcomes')",
+                &[],
+            )
+            .unwrap()
+            .get(0);
+        u64::try_from(v).unwrap()
+    });
+}
