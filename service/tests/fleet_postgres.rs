@@ -1,6 +1,7 @@
 //! Three `probity serve` replicas on one PostgreSQL database (`log.backend = "postgres"`): scoring spread over all
 //! three, each outcome sent to a different replica than the one that scored it, one replica killed with SIGKILL
-//! and started again while scoring and outcomes keep coming. Afterwards every acknowledged outcome is recorded once
+//! and started again while scoring and outcomes keep coming, then every replica's database session cut at once
+//! (`pg_terminate_backend`, what a restart of PostgreSQL does to them). Afterwards every acknowledged outcome is recorded once
 //! with its label, matched to its prediction when that prediction is in the log, no prediction is logged twice, and
 //! the fleet report (the Report call on any replica) equals the report the SQLite backend makes from the same rows.
 //!
@@ -250,6 +251,7 @@ async fn load(db: &TestDb) -> Loaded {
     });
 
     let mut scored_by: HashMap<usize, usize> = HashMap::new();
+    let (db_url, db_name) = (db.url(), db.name.clone());
     for batch in 0..BATCHES {
         let scorer = batch % 3;
         if batch == BATCHES / 2 {
@@ -257,6 +259,25 @@ async fn load(db: &TestDb) -> Loaded {
             let old = std::mem::replace(&mut servers[1], start(&config).await);
             drop(old);
             urls.lock().unwrap()[1] = servers[1].url.clone();
+        }
+        if batch == BATCHES * 3 / 4 {
+            // Every replica loses its database session at once (what a PostgreSQL restart does to them, without
+            // restarting the machine's shared server): they must connect again by themselves.
+            let url = db_url.clone();
+            let name = db_name.clone();
+            let cut = std::thread::spawn(move || {
+                let mut c = postgres::Client::connect(&url, postgres::NoTls).unwrap();
+                c.query(
+                    "SELECT pg_terminate_backend(pid) FROM pg_stat_activity
+                     WHERE datname = $1 AND pid <> pg_backend_pid()",
+                    &[&name],
+                )
+                .unwrap()
+                .len()
+            })
+            .join()
+            .unwrap();
+            assert!(cut >= 3, "sessions cut: {cut}");
         }
         let ch = channel(&servers[scorer].url).await.unwrap();
         let mut scoring = pb::scoring_client::ScoringClient::new(ch);
@@ -347,8 +368,9 @@ fn check(
         logged.len(),
         lost.len()
     );
-    assert!(lost.len() <= 2 * PER_BATCH, "lost {}", lost.len());
-    assert!(logged.len() >= BATCHES * PER_BATCH - 2 * PER_BATCH);
+    // Lost: what the killed replica had queued, and the batches in flight when the sessions were cut (dropped and
+    // counted as write_error); their outcomes stay held (checked above).
+    assert!(lost.len() <= 8 * PER_BATCH, "lost {}", lost.len());
 
     // The fleet report from a replica (every replica reads the same database) ...
     let fleet: Value = rt.block_on(async {

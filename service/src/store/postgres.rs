@@ -331,7 +331,12 @@ impl PgStore {
     fn error(&self, what: &'static str) -> impl Fn(postgres::Error) -> StoreError + '_ {
         move |e: postgres::Error| {
             let code = e.code().map(|c| c.code().to_string());
-            let lost = e.is_closed() || code.is_none();
+            // No answer at all, a closed connection, a connection exception (class 08) or the server shutting the
+            // session down (57P01 admin_shutdown, 57P02 crash_shutdown, 57P03 cannot_connect_now).
+            let lost = e.is_closed()
+                || code.as_deref().is_none_or(|c| {
+                    c.starts_with("08") || matches!(c, "57P01" | "57P02" | "57P03")
+                });
             let text = match e.as_db_error() {
                 Some(db) => format!("{}: {}", db.severity(), db.message()),
                 None => {
@@ -376,8 +381,9 @@ impl PgStore {
         self.client.as_mut().ok_or(StoreError::Closed)
     }
 
-    /// Runs `f` in a transaction; a deadlock or serialization failure runs it again (up to 5 times), a lost
-    /// connection drops the client so that the next call connects again.
+    /// Runs `f` in a transaction; a deadlock or serialization failure runs it again (up to 5 times); a lost
+    /// connection is opened again and the operation run once more, and if that fails too the client is dropped so
+    /// that the next call connects again.
     fn transact<T>(
         &mut self,
         what: &'static str,
@@ -402,6 +408,12 @@ impl PgStore {
                     if matches!(error, StoreError::Postgres { lost: true, .. }) {
                         self.client = None;
                         self.leading = false;
+                        // The session was cut (a database restart, a failover): connect again and run the whole
+                        // operation once more; every write is idempotent, so one the database did commit before
+                        // the answer was lost writes nothing twice.
+                        if attempt == 1 {
+                            continue;
+                        }
                     }
                     return Err(error);
                 }
