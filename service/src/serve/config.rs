@@ -510,8 +510,12 @@ fn read_file(path: &Path) -> Result<toml::Table, ConfigError> {
         })
 }
 
-/// `PROBITY_LIMITS_MAX_BATCH_ROWS` -> `limits.max_batch_rows`; other variables -> `None`.
+/// `PROBITY_LIMITS_MAX_BATCH_ROWS` -> `limits.max_batch_rows`; other variables -> `None`. The shared log's
+/// connection URL (`PROBITY_LOG_POSTGRES_URL`) is a secret read by the log itself, not a configuration key.
 fn env_key(name: &str) -> Option<String> {
+    if name == crate::store::postgres::ENV_URL {
+        return None;
+    }
     let rest = name.strip_prefix("PROBITY_")?.to_ascii_lowercase();
     ENV_SECTIONS.iter().find_map(|section| {
         let key = rest.strip_prefix(section)?.strip_prefix('_')?;

@@ -286,4 +286,22 @@ mod tests {
         );
         assert_eq!(LogConfig::default().maturity.len(), 0);
     }
+
+    #[test]
+    fn backend_words() {
+        let parse = |text: &str| toml::from_str::<RawLog>(text);
+        let raw = parse("backend = \"postgres\"\npostgres_url_file = \"/run/url\"").unwrap();
+        let cfg = LogConfig::from_raw(raw, &BTreeSet::new()).unwrap();
+        assert_eq!(cfg.backend, Backend::Postgres);
+        assert!(cfg.enabled(), "the shared log needs no directory");
+        assert_eq!(cfg.postgres_url_file, Some(PathBuf::from("/run/url")));
+        let cfg = LogConfig::from_raw(parse("").unwrap(), &BTreeSet::new()).unwrap();
+        assert_eq!(cfg.backend, Backend::Sqlite);
+        assert!(!cfg.enabled());
+        let error = parse("backend = \"mysql\"").unwrap_err().to_string();
+        assert!(
+            error.contains("sqlite") && error.contains("postgres"),
+            "{error}"
+        );
+    }
 }
