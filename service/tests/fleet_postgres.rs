@@ -102,7 +102,11 @@ async fn start(config: &std::path::Path) -> Server {
         .args(["--grpc-listen", &format!("127.0.0.1:{port}")])
         .args(["--metrics-listen", &format!("127.0.0.1:{}", free_port())])
         .stdout(Stdio::null())
-        .stderr(Stdio::null())
+        .stderr(
+            std::fs::File::create(config.with_file_name(format!("replica-{port}.log")))
+                .map(Stdio::from)
+                .unwrap_or_else(|_| Stdio::null()),
+        )
         .spawn()
         .unwrap();
     let url = format!("http://127.0.0.1:{port}");
@@ -294,6 +298,17 @@ async fn load(db: &TestDb) -> Loaded {
     drop(scored_tx);
     let acknowledged = sender.await.unwrap();
     assert_eq!(acknowledged.len(), BATCHES * PER_BATCH);
+    if std::env::var("PROBITY_KEEP_TEST_DIR").is_ok() {
+        eprintln!("replica logs in {}", data.path().display());
+        std::mem::forget(tempfile::TempDir::new_in(data.path()));
+        let kept = data.keep();
+        return (
+            servers,
+            acknowledged,
+            models,
+            tempfile::TempDir::new_in(kept).unwrap(),
+        );
+    }
     (servers, acknowledged, models, data)
 }
 
@@ -304,17 +319,20 @@ fn check(
 ) {
     // Let the writers commit what they hold, and the held outcomes find their predictions.
     let mut pg = postgres::Client::connect(&db.url(), postgres::NoTls).unwrap();
-    let mut last = -1i64;
-    for _ in 0..100 {
+    // Every scored prediction, or (if the kill or the cut lost some) no change for 5 s, within 60 s: a replica
+    // on a busy machine can take seconds to commit what it holds.
+    let (mut last, mut still) = (-1i64, 0);
+    for _ in 0..600 {
         std::thread::sleep(Duration::from_millis(100));
         let n: i64 = pg
             .query_one("SELECT count(*) FROM predictions", &[])
             .unwrap()
             .get(0);
-        if n == last {
+        still = if n == last { still + 1 } else { 0 };
+        last = n;
+        if n == (BATCHES * PER_BATCH) as i64 || still >= 50 {
             break;
         }
-        last = n;
     }
 
     // No prediction twice; every acknowledged outcome is one row with its label, matched exactly when its
@@ -363,8 +381,15 @@ fn check(
         *m.entry(*s).or_insert(0) += 1;
         m
     });
+    let mut lost_batches: Vec<usize> = lost
+        .iter()
+        .filter_map(|id| id.strip_prefix("f-")?.parse::<usize>().ok())
+        .map(|i| i / PER_BATCH)
+        .collect();
+    lost_batches.sort_unstable();
+    lost_batches.dedup();
     eprintln!(
-        "logged {}, lost in the kill {}, outcome statuses {statuses:?}",
+        "logged {}, lost {} (batches {lost_batches:?}), outcome statuses {statuses:?}",
         logged.len(),
         lost.len()
     );
@@ -450,7 +475,65 @@ fn check(
         serde_json::to_value(probity::report::build(&mut lite, &Default::default()).unwrap())
             .unwrap();
     assert_close(&fleet, &local, "report");
+    references(&mut pg, &fleet["series"][0]);
     drop(servers);
+}
+
+/// The fleet report's log-loss, Brier score and ROC AUC against scikit-learn (`sklearn.metrics.log_loss`,
+/// `brier_score_loss`, `roc_auc_score`, scikit-learn 1.9.1 as pinned in tests/fixtures/requirements.txt) over the
+/// matched pairs read straight from the database, within 1e-9 relative. Runs with the venv `tests/run` makes
+/// (`PROBITY_VENV`); without one it says so and checks nothing more (the report's metrics are checked against the
+/// same references by the fixture tests).
+fn references(pg: &mut postgres::Client, series: &Value) {
+    let Ok(venv) = std::env::var("PROBITY_VENV") else {
+        eprintln!(
+            "PROBITY_VENV not set: the scikit-learn comparison of the fleet report is not run"
+        );
+        return;
+    };
+    let pairs: Vec<(f64, f64, bool)> = pg
+        .query(
+            "SELECT p.probability, p.adjusted_log_odds, o.label FROM predictions p
+             JOIN outcomes o ON o.prediction_id = p.prediction_id AND o.state = 'matched'",
+            &[],
+        )
+        .unwrap()
+        .iter()
+        .map(|r| (r.get(0), r.get(1), r.get(2)))
+        .collect();
+    let dir = tempfile::tempdir().unwrap();
+    let csv = dir.path().join("pairs.csv");
+    let text: String = pairs
+        .iter()
+        .map(|(p, h, y)| format!("{p:.17e},{h:.17e},{}\n", u8::from(*y)))
+        .collect();
+    std::fs::write(&csv, text).unwrap();
+    let script = "import sys, numpy as np\n\
+from sklearn.metrics import log_loss, brier_score_loss, roc_auc_score\n\
+d = np.loadtxt(sys.argv[1], delimiter=',')\n\
+p, h, y = d[:, 0], d[:, 1], d[:, 2].astype(int)\n\
+print(log_loss(y, p), brier_score_loss(y, p), roc_auc_score(y, h))\n";
+    let out = Command::new(format!("{venv}/bin/python"))
+        .args(["-c", script])
+        .arg(&csv)
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let values: Vec<f64> = String::from_utf8_lossy(&out.stdout)
+        .split_whitespace()
+        .map(|v| v.parse().unwrap())
+        .collect();
+    for (name, reference) in ["log_loss", "brier", "roc_auc"].iter().zip(values) {
+        let ours = series[*name].as_f64().unwrap();
+        assert!(
+            (ours - reference).abs() <= 1e-9 * reference.abs(),
+            "{name}: report {ours}, scikit-learn {reference}"
+        );
+    }
 }
 
 /// Equal JSON, numbers within 1e-9 relative (the two databases sum in the same order; the slack covers
