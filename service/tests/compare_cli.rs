@@ -76,6 +76,7 @@ fn write_log(dir: &std::path::Path, labelled_from: usize) -> Value {
         probability: 1.0 / (1.0 + (-h).exp()),
         entity_key: String::new(),
         tags: BTreeMap::new(),
+        served: Default::default(),
     };
     let mut records = Vec::new();
     for i in 0..ha.len() {

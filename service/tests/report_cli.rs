@@ -77,6 +77,7 @@ fn write_log(dir: &std::path::Path) -> (Vec<f64>, Vec<bool>) {
         probability: sigmoid(h[i]),
         entity_key: String::new(),
         tags: BTreeMap::new(),
+        served: Default::default(),
     };
     let mut records: Vec<PredictionRecord> = (0..h.len()).map(|i| record(i, "a")).collect();
     records.extend((0..10).map(|i| record(i, "b")));

@@ -47,6 +47,7 @@ fn record(id: &str, route: &str, time_ms: i64, h: f64) -> PredictionRecord {
         probability: 1.0 / (1.0 + (-h).exp()),
         entity_key: String::new(),
         tags: BTreeMap::new(),
+        served: Default::default(),
     }
 }
 
@@ -316,4 +317,48 @@ fn measure_log_throughput_and_size() {
         n as f64 / seconds,
         bytes as f64 / n as f64 * 1e6 / 1e6
     );
+}
+
+/// A log written by a build at schema version 1 (no served-under columns) opens, gains the columns, keeps its rows
+/// (without a prior) and logs new rows with theirs; the report takes each row's own prior.
+#[test]
+fn a_version_1_log_is_migrated_and_keeps_its_rows() {
+    let dir = tempfile::tempdir().unwrap();
+    {
+        let conn = rusqlite::Connection::open(dir.path().join("predictions.db")).unwrap();
+        conn.execute_batch(
+            "CREATE TABLE predictions (seq INTEGER PRIMARY KEY, prediction_id TEXT NOT NULL, route TEXT NOT NULL,
+               model TEXT NOT NULL, version TEXT NOT NULL, role TEXT NOT NULL, time_ms INTEGER NOT NULL,
+               margin REAL NOT NULL, log_odds REAL NOT NULL, adjusted_log_odds REAL NOT NULL,
+               probability REAL NOT NULL, entity_key TEXT NOT NULL, tags TEXT NOT NULL,
+               UNIQUE (prediction_id, route, model, role));
+             INSERT INTO predictions VALUES (1, 'old', 'fraud', 'm', 'v1', 'champion', 1, 0.5, 0.5, 0.5, 0.6225, '', '{}');
+             PRAGMA user_version = 1;",
+        )
+        .unwrap();
+    }
+    let mut store = SqliteStore::open(dir.path(), Durability::Normal).unwrap();
+    let mut new = record("new", "fraud", T0, 0.1);
+    new.served.prior = Some(0.25);
+    new.served.decision = "threshold 0.4".into();
+    store.insert_predictions(&[new]).unwrap();
+    let rows = store.load(&ReportFilter::default()).unwrap();
+    assert_eq!(rows.len(), 2);
+    assert_eq!(rows[0].prediction_id, "old");
+    assert_eq!(rows[0].served_prior, None);
+    assert_eq!(rows[1].served_prior, Some(0.25));
+    drop(store);
+    let conn = rusqlite::Connection::open(dir.path().join("predictions.db")).unwrap();
+    let version: i64 = conn
+        .pragma_query_value(None, "user_version", |r| r.get(0))
+        .unwrap();
+    assert_eq!(version, 2);
+    let decision: String = conn
+        .query_row(
+            "SELECT decision FROM predictions WHERE prediction_id = 'new'",
+            [],
+            |r| r.get(0),
+        )
+        .unwrap();
+    assert_eq!(decision, "threshold 0.4");
 }

@@ -32,9 +32,9 @@ pub struct ReportArgs {
     /// Only this model version.
     #[arg(long)]
     pub version: Option<String>,
-    /// A route's configured target base rate, as ROUTE=RATE (repeatable): the prior its served probabilities are
-    /// calibrated under, which the base-rate estimate starts from. A route without one is taken to have served under
-    /// its model's base rate.
+    /// Only for predictions logged by a build that did not keep what they were served under: a route's target
+    /// base rate, as ROUTE=RATE (repeatable). The log keeps each prediction's own prior, and the report uses it;
+    /// a row without one is taken to have served under this, else its model's base rate.
     #[arg(long = "base-rate", value_name = "ROUTE=RATE", value_parser = route_rate)]
     pub base_rates: Vec<(String, f64)>,
     /// Print JSON instead of the table.

@@ -39,6 +39,7 @@ fn simulate(served: f64, seed: u64) -> Vec<LoggedPrediction> {
                 label: Some(label),
                 by_maturity: false,
                 corrected: false,
+                served_prior: None,
             }
         })
         .collect()
@@ -120,4 +121,59 @@ fn estimate_is_absent_with_a_note_when_no_prior_is_known() {
     let r = report(&rows, BaseRates::default());
     assert_eq!(r.base_rate_estimate, None);
     assert!(r.notes.iter().any(|n| n.starts_with("base-rate estimate")));
+}
+
+/// The route's target moved half-way through the range: the first half served under 0.5, the second under 0.2,
+/// each row with the prior the log kept. Nothing is configured: the report takes each row's own prior, shifts the
+/// first half to the latest prior (Saerens et al. 2002, eq. 2.4) and recovers the population's base rate; the
+/// estimate equals the EM over the same population served under 0.2 throughout, and a report that took one prior
+/// for every row (the old behaviour) misses it.
+#[test]
+fn a_target_that_moved_in_the_range_uses_each_prediction_s_own_prior() {
+    let mut moved = simulate(0.5, 11);
+    let served_late = simulate(0.2, 11);
+    for (i, (row, late)) in moved.iter_mut().zip(&served_late).enumerate() {
+        if i >= ROWS / 2 {
+            *row = late.clone();
+            row.served_prior = Some(0.2);
+        } else {
+            row.served_prior = Some(0.5);
+        }
+    }
+    let rates = BaseRates {
+        configured: None,
+        model: Some(0.3),
+    };
+    let r = report(&moved, rates);
+    let estimate = r.base_rate_estimate.unwrap();
+    assert!(
+        (estimate - TRUTH).abs() / TRUTH < 0.1,
+        "estimate {estimate}, truth {TRUTH}"
+    );
+    let p: Vec<f64> = served_late.iter().map(|r| r.probability).collect();
+    let direct = estimate_prior(&p, 0.2, EmOptions::default()).unwrap().prior;
+    assert!(
+        (estimate - direct).abs() <= 1e-9 * direct,
+        "{estimate} vs {direct}"
+    );
+    assert_eq!(r.served_base_rate, Some(0.2));
+    assert!(
+        r.notes.iter().any(|n| n.contains("5000 of 10000")),
+        "{:?}",
+        r.notes
+    );
+    // One prior for all rows (what the report did before the log kept them) is far off.
+    let mut unknown = moved.clone();
+    for row in &mut unknown {
+        row.served_prior = None;
+    }
+    let blind = report(
+        &unknown,
+        BaseRates {
+            configured: Some(0.2),
+            model: Some(0.3),
+        },
+    );
+    let off = blind.base_rate_estimate.unwrap();
+    assert!((off - TRUTH).abs() / TRUTH > 0.3, "blind estimate {off}");
 }

@@ -305,6 +305,65 @@ impl BaseRates {
     }
 }
 
+/// The probabilities of `rows` on one prior, for the base-rate EM, and the rates with that prior as the served
+/// one. Each row's prior is the one the log kept with it ([`LoggedPrediction::served_prior`]), else `rates`'s
+/// served prior (rows logged before the log kept it). The common prior is the latest row's; a row served under
+/// another is moved to it by the base-rate shift of its log-odds, `logit(p') = logit(p) - logit(prior) +
+/// logit(common)` (Saerens, Latinne and Decaestecker 2002, "Adjusting the outputs of a classifier to new a priori
+/// probabilities", eq. 2.4, the same shift the scorer applies). With one prior throughout nothing moves.
+fn on_one_prior(
+    notes: &mut Vec<String>,
+    rows: &[LoggedPrediction],
+    rates: BaseRates,
+) -> (Vec<f64>, BaseRates) {
+    let prior_of = |r: &LoggedPrediction| r.served_prior.or(rates.served());
+    let Some(common) = rows.last().and_then(prior_of) else {
+        return (rows.iter().map(|r| r.probability).collect(), rates);
+    };
+    let logit = |q: f64| (q / (1.0 - q)).ln();
+    let mut moved = 0usize;
+    let p = rows
+        .iter()
+        .map(|r| match prior_of(r) {
+            Some(own) if own != common => {
+                moved += 1;
+                let h = r.adjusted_log_odds - logit(own) + logit(common);
+                1.0 / (1.0 + (-h).exp())
+            }
+            _ => r.probability,
+        })
+        .collect();
+    if moved > 0 {
+        notes.push(format!(
+            "base-rate estimate: {moved} of {} predictions were served under another base rate than the latest              ({common}); their probabilities were shifted to it first",
+            rows.len()
+        ));
+    }
+    let rates = BaseRates {
+        configured: rates.configured.or_else(|| {
+            // The target the log says the latest prediction was served under, when it is not the model's own.
+            (rows.last().and_then(|r| r.served_prior).is_some() && Some(common) != rates.model)
+                .then_some(common)
+        }),
+        model: rates.model,
+    };
+    (p, rates.with_served(common))
+}
+
+impl BaseRates {
+    /// These rates with `served` as the prior the probabilities are calibrated under.
+    fn with_served(self, served: f64) -> BaseRates {
+        if self.served() == Some(served) {
+            self
+        } else {
+            BaseRates {
+                configured: Some(served),
+                model: self.model,
+            }
+        }
+    }
+}
+
 /// The EM estimate over `probabilities` served under `rates`, or `None` with the reason noted.
 fn em_estimate(notes: &mut Vec<String>, probabilities: &[f64], rates: BaseRates) -> Option<f64> {
     let Some(served) = rates.served() else {
@@ -446,7 +505,8 @@ pub fn section(
         }
     }
     let all_p: Vec<f64> = rows.iter().map(|r| r.probability).collect();
-    let base_rate_estimate = em_estimate(&mut notes, &all_p, rates);
+    let (em_p, rates) = on_one_prior(&mut notes, rows, rates);
+    let base_rate_estimate = em_estimate(&mut notes, &em_p, rates);
     SeriesReport {
         route,
         model,

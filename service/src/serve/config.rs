@@ -434,7 +434,7 @@ impl Config {
         let names = routes.keys().cloned().collect();
         let log = crate::store::LogConfig::from_raw(log, &names)
             .map_err(|(key, message)| invalid(key, message))?;
-        let window = log.directory.is_some().then_some(log.prior_window);
+        let window = log.enabled().then_some(log.prior_window);
         let base_rate_from_estimate = estimate_bounds
             .into_iter()
             .map(|(name, raw)| {
@@ -537,8 +537,12 @@ fn read_file(path: &Path) -> Result<toml::Table, ConfigError> {
         })
 }
 
-/// `PROBITY_LIMITS_MAX_BATCH_ROWS` -> `limits.max_batch_rows`; other variables -> `None`.
+/// `PROBITY_LIMITS_MAX_BATCH_ROWS` -> `limits.max_batch_rows`; other variables -> `None`. The shared log's
+/// connection URL (`PROBITY_LOG_POSTGRES_URL`) is a secret read by the log itself, not a configuration key.
 fn env_key(name: &str) -> Option<String> {
+    if name == crate::store::postgres::ENV_URL {
+        return None;
+    }
     let rest = name.strip_prefix("PROBITY_")?.to_ascii_lowercase();
     ENV_SECTIONS.iter().find_map(|section| {
         let key = rest.strip_prefix(section)?.strip_prefix('_')?;

@@ -47,6 +47,10 @@ pub fn queued(
     row: &mut PreparedRow,
     scored: &probity_models::Scored,
 ) -> Queued {
+    let prior = route
+        .output
+        .target_base_rate
+        .unwrap_or_else(|| loaded.model.base_rate());
     Queued {
         record: PredictionRecord {
             prediction_id: row.prediction_id.clone(),
@@ -61,11 +65,17 @@ pub fn queued(
             probability: scored.probability,
             entity_key: std::mem::take(&mut row.entity_key),
             tags: std::mem::take(&mut row.tags).into_iter().collect(),
+            served: crate::store::Served {
+                prior: Some(prior),
+                decision: route
+                    .output
+                    .decision
+                    .as_ref()
+                    .map(crate::store::decision_words)
+                    .unwrap_or_default(),
+            },
         },
-        prior: route
-            .output
-            .target_base_rate
-            .unwrap_or_else(|| loaded.model.base_rate()),
+        prior,
         facts: Arc::clone(loaded) as Arc<dyn ModelFacts>,
     }
 }

@@ -52,6 +52,10 @@ pub enum StartError {
     /// The prediction log could not be opened.
     #[error("log.directory: {0}")]
     Log(crate::store::StoreError),
+    /// The shared prediction log (PostgreSQL) could not be opened: no URL, the database unreachable, or its
+    /// schema newer than this build. The message never holds the password.
+    #[error("log.backend = \"postgres\": {0}")]
+    SharedLog(String),
     /// The prediction log's directory cannot be written (read-only file system, permissions).
     #[error(
         "log.directory: {0}; the server does not start without the log it is configured to keep: make the \
@@ -229,6 +233,26 @@ impl RunningServer {
     }
 }
 
+/// Opens the PostgreSQL prediction log on a thread of its own (the blocking client runs its own small runtime, which
+/// cannot start inside this one). An unreachable database stops the start with an error that says so: a server
+/// configured to keep a shared log does not serve without it, and the process supervisor restarts it.
+async fn open_shared(
+    log: &crate::store::LogConfig,
+) -> Result<crate::store::postgres::PgStore, StartError> {
+    use crate::store::postgres::{ConnectionUrl, PgStore};
+    let url =
+        ConnectionUrl::load(log.postgres_url_file.as_deref()).map_err(StartError::SharedLog)?;
+    let target = url.describe();
+    let ca = log.postgres_ca_file.clone();
+    let now = Clock::system().now_ms();
+    let store = tokio::task::spawn_blocking(move || PgStore::open(url, ca.as_deref(), now))
+        .await
+        .map_err(|e| StartError::SharedLog(format!("opening thread failed: {e}")))?
+        .map_err(|e| StartError::SharedLog(format!("{target}: {e}")))?;
+    tracing::info!(database = %target, "prediction log open (PostgreSQL)");
+    Ok(store)
+}
+
 /// Loads the models, binds both listeners and starts serving.
 pub async fn start(config: Config) -> Result<RunningServer, StartError> {
     start_inner(config, None).await
@@ -295,6 +319,14 @@ async fn start_inner(
             log_config.clone(),
             Clock::system(),
         )),
+        (None, _) if log_config.backend == crate::store::config::Backend::Postgres => {
+            let store = open_shared(&log_config).await?;
+            Some(PredictionLog::start(
+                Box::new(store),
+                log_config.clone(),
+                Clock::system(),
+            ))
+        }
         (None, Some(dir)) => {
             let store =
                 SqliteStore::open(dir, log_config.durability).map_err(|error| match error {

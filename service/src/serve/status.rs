@@ -121,6 +121,19 @@ fn log_code(error: &crate::store::StoreError) -> Code {
             found: _,
             supported: _,
         } => Code::Internal,
+        StoreError::Corrupt { what: _ } => Code::Internal,
+        StoreError::Postgres {
+            what: _,
+            message: _,
+            code: _,
+            lost: true,
+        } => Code::Unavailable,
+        StoreError::Postgres {
+            what: _,
+            message: _,
+            code: _,
+            lost: false,
+        } => by_failure(error),
     }
 }
 

@@ -1,9 +1,14 @@
 //! The `[log]` section of the server configuration: where the prediction log lives and how it is written, swept
-//! and monitored. Without `log.directory` the log is off and nothing is written.
+//! and monitored. With the SQLite backend (the default) and without `log.directory` the log is off and nothing
+//! is written; the PostgreSQL backend is always on.
 //!
 //! ```toml
 //! [log]
-//! directory = "/var/lib/probity"   # predictions.db goes here
+//! backend = "sqlite"               # or "postgres": one database shared by every replica (DEVELOPERS.md)
+//! postgres_url_file = "/run/secrets/probity-log-url"  # postgres: file holding the connection URL; without it
+//!                                  # the URL is read from PROBITY_LOG_POSTGRES_URL
+//! postgres_ca_file = "/etc/probity/db-ca.pem"  # postgres: CA certificates for TLS (`?sslmode=require`)
+//! directory = "/var/lib/probity"   # sqlite: predictions.db goes here; both: the route history
 //! durability = "normal"            # or "full" (see DEVELOPERS.md, "Prediction log")
 //! queue_size = 65536               # predictions waiting for the writer; when full, new ones are dropped and counted
 //! batch_size = 1000                # most predictions per transaction
@@ -29,6 +34,9 @@ use super::sqlite::Durability;
 #[derive(Debug, Deserialize)]
 #[serde(deny_unknown_fields, default)]
 pub struct RawLog {
+    backend: Backend,
+    postgres_url_file: Option<PathBuf>,
+    postgres_ca_file: Option<PathBuf>,
     directory: Option<PathBuf>,
     durability: String,
     queue_size: u64,
@@ -45,6 +53,9 @@ pub struct RawLog {
 impl Default for RawLog {
     fn default() -> Self {
         RawLog {
+            backend: Backend::Sqlite,
+            postgres_url_file: None,
+            postgres_ca_file: None,
             directory: None,
             durability: "normal".into(),
             queue_size: 65_536,
@@ -60,9 +71,26 @@ impl Default for RawLog {
     }
 }
 
+/// Where the prediction log is kept.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Backend {
+    /// One SQLite file under `log.directory` per replica.
+    #[default]
+    Sqlite,
+    /// One PostgreSQL database shared by every replica.
+    Postgres,
+}
+
 /// The validated section.
 #[derive(Debug, Clone, PartialEq)]
 pub struct LogConfig {
+    /// Where the log is kept.
+    pub backend: Backend,
+    /// PostgreSQL: the file holding the connection URL (else `PROBITY_LOG_POSTGRES_URL`).
+    pub postgres_url_file: Option<PathBuf>,
+    /// PostgreSQL: CA certificates for TLS to the database.
+    pub postgres_ca_file: Option<PathBuf>,
     /// The data directory; `None` turns the log off.
     pub directory: Option<PathBuf>,
     /// Disk flush policy.
@@ -91,6 +119,9 @@ impl Default for LogConfig {
     fn default() -> Self {
         // The raw defaults always validate.
         LogConfig::from_raw(RawLog::default(), &BTreeSet::new()).unwrap_or(LogConfig {
+            backend: Backend::Sqlite,
+            postgres_url_file: None,
+            postgres_ca_file: None,
             directory: None,
             durability: Durability::Normal,
             queue_size: 65_536,
@@ -151,9 +182,17 @@ fn duration(key: &str, text: &str, min: Duration) -> Result<Duration, KeyError> 
 }
 
 impl LogConfig {
+    /// Whether a prediction log is kept at all.
+    pub fn enabled(&self) -> bool {
+        self.backend == Backend::Postgres || self.directory.is_some()
+    }
+
     /// Validates the section; maturity keys must be configured routes.
     pub fn from_raw(raw: RawLog, routes: &BTreeSet<String>) -> Result<LogConfig, KeyError> {
         let RawLog {
+            backend,
+            postgres_url_file,
+            postgres_ca_file,
             directory,
             durability,
             queue_size,
@@ -191,6 +230,9 @@ impl LogConfig {
             by_route.insert(route, duration(&key, &text, Duration::from_millis(1))?);
         }
         Ok(LogConfig {
+            backend,
+            postgres_url_file,
+            postgres_ca_file,
             directory,
             durability,
             queue_size: range("log.queue_size", queue_size, 1, 100_000_000)?,
@@ -243,5 +285,23 @@ mod tests {
             "log.durability"
         );
         assert_eq!(LogConfig::default().maturity.len(), 0);
+    }
+
+    #[test]
+    fn backend_words() {
+        let parse = |text: &str| toml::from_str::<RawLog>(text);
+        let raw = parse("backend = \"postgres\"\npostgres_url_file = \"/run/url\"").unwrap();
+        let cfg = LogConfig::from_raw(raw, &BTreeSet::new()).unwrap();
+        assert_eq!(cfg.backend, Backend::Postgres);
+        assert!(cfg.enabled(), "the shared log needs no directory");
+        assert_eq!(cfg.postgres_url_file, Some(PathBuf::from("/run/url")));
+        let cfg = LogConfig::from_raw(parse("").unwrap(), &BTreeSet::new()).unwrap();
+        assert_eq!(cfg.backend, Backend::Sqlite);
+        assert!(!cfg.enabled());
+        let error = parse("backend = \"mysql\"").unwrap_err().to_string();
+        assert!(
+            error.contains("sqlite") && error.contains("postgres"),
+            "{error}"
+        );
     }
 }

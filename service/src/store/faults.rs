@@ -145,6 +145,7 @@ mod tests {
             probability: 0.5,
             entity_key: String::new(),
             tags: Default::default(),
+            served: Default::default(),
         }
     }
 

@@ -22,6 +22,8 @@
 pub mod clock;
 pub mod config;
 pub mod faults;
+pub mod matching;
+pub mod postgres;
 pub mod running;
 pub mod sqlite;
 pub mod writer;
@@ -60,6 +62,37 @@ pub struct PredictionRecord {
     pub entity_key: String,
     /// Free-form tags.
     pub tags: BTreeMap<String, String>,
+    /// What it was served under.
+    pub served: Served,
+}
+
+/// What a prediction was served under, kept with it so that a report over a range in which the route's settings
+/// moved uses each prediction's own. The model and calibration are named by the record's model and version (the
+/// calibration map is part of the model file) and the champion or challenger by its role.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct Served {
+    /// The base rate its probability is calibrated to: the route's target base rate when one was applied, else the
+    /// model's. `None` in rows logged before the log kept it.
+    pub prior: Option<f64>,
+    /// The route's decision rule (threshold, costs or bands) in the words of [`decision_words`]; empty when none.
+    pub decision: String,
+}
+
+/// A decision rule in the log's words: `threshold 0.5`, `costs false_positive=1 false_negative=5`,
+/// `bands 0.2,0.6 low,medium,high`.
+pub fn decision_words(rule: &probity_models::DecisionRule) -> String {
+    use probity_models::DecisionRule;
+    match rule {
+        DecisionRule::Threshold { threshold } => format!("threshold {threshold}"),
+        DecisionRule::Costs {
+            false_positive,
+            false_negative,
+        } => format!("costs false_positive={false_positive} false_negative={false_negative}"),
+        DecisionRule::Bands { edges, labels } => {
+            let edges: Vec<String> = edges.iter().map(f64::to_string).collect();
+            format!("bands {} {}", edges.join(","), labels.join(","))
+        }
+    }
 }
 
 /// What the log keeps about a model version, so that a report needs nothing but the log file.
@@ -225,6 +258,8 @@ pub struct LoggedPrediction {
     pub by_maturity: bool,
     /// Whether the label was corrected at least once.
     pub corrected: bool,
+    /// The base rate its probability is calibrated to, when the log kept it ([`Served::prior`]).
+    pub served_prior: Option<f64>,
 }
 
 /// Counts of the outcome table, for reports and gauges.
@@ -272,6 +307,25 @@ pub enum StoreError {
         found: i64,
         /// Version this build writes.
         supported: i64,
+    },
+    /// The PostgreSQL database refused an operation or could not be reached. The message never holds the
+    /// connection URL's password.
+    #[error("prediction log database ({what}): {message}")]
+    Postgres {
+        /// What was being done.
+        what: &'static str,
+        /// The database's message.
+        message: String,
+        /// The SQLSTATE code, when the server answered.
+        code: Option<String>,
+        /// Whether the connection was lost (or never made): the operation may work once the database is back.
+        lost: bool,
+    },
+    /// A stored row holds a value no build writes.
+    #[error("prediction log holds an unreadable row: {what}")]
+    Corrupt {
+        /// Which row and value.
+        what: String,
     },
     /// The writer thread is gone (the server is stopping).
     #[error("the prediction log is closed")]
@@ -330,7 +384,25 @@ impl StoreError {
                 found: _,
                 supported: _,
             }
-            | StoreError::Closed => WriteFailure::Other,
+            | StoreError::Corrupt { what: _ }
+            | StoreError::Postgres {
+                what: _,
+                message: _,
+                code: None,
+                lost: _,
+            } => WriteFailure::Other,
+            StoreError::Postgres {
+                what: _,
+                message: _,
+                code: Some(code),
+                lost: _,
+            } => match code.as_str() {
+                // disk_full, and read_only_sql_transaction (a standby, or default_transaction_read_only)
+                "53100" => WriteFailure::DiskFull,
+                "25006" => WriteFailure::ReadOnly,
+                _ => WriteFailure::Other,
+            },
+            StoreError::Closed => WriteFailure::Other,
         }
     }
 }
@@ -384,4 +456,25 @@ pub trait Store: Send {
 
     /// Pending and unmatched outcome counts.
     fn outcome_counts(&mut self) -> Result<OutcomeCounts, StoreError>;
+
+    /// Whether this replica runs the sweeps now. A store of one process always does; a shared store lets one
+    /// replica at a time (the one holding its lock), and another takes over when that one is gone.
+    fn lead_sweeps(&mut self) -> Result<bool, StoreError> {
+        Ok(true)
+    }
+}
+
+/// Why an outcome is refused, or `None`.
+pub(crate) fn invalid_outcome(o: &OutcomeInput) -> Option<String> {
+    let id = &o.prediction_id;
+    if id.is_empty() {
+        return Some("prediction_id: is empty".into());
+    }
+    if id.len() > 128 || !id.bytes().all(|b| (0x21..=0x7e).contains(&b)) {
+        return Some("prediction_id: must be 1 to 128 printable ASCII characters".into());
+    }
+    if o.time_ms.is_some_and(|t| t < 0) {
+        return Some("outcome_time: must not be before 1970".into());
+    }
+    None
 }

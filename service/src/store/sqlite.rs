@@ -12,13 +12,21 @@ use std::path::Path;
 
 use rusqlite::{params, Connection, OptionalExtension};
 
+use super::matching::{self, Outcome, OutcomeState, Source};
 use super::{
     LoggedPrediction, ModelVersionInfo, OutcomeCounts, OutcomeInput, OutcomeResult, OutcomeStatus,
     PredictionRecord, ReportFilter, Settled, Store, StoreError,
 };
 
-/// The table layout this build writes; kept in `PRAGMA user_version`.
-const SCHEMA_VERSION: i64 = 1;
+/// The table layout this build writes; kept in `PRAGMA user_version`. Version 2 added what each prediction was
+/// served under (`served_prior`, `decision`); a version 1 file gets the columns at open ([`MIGRATE_1_2`]).
+const SCHEMA_VERSION: i64 = 2;
+
+/// From version 1: the served-under columns (NULL prior and no decision in the rows already there).
+const MIGRATE_1_2: &str = "
+ALTER TABLE predictions ADD COLUMN served_prior REAL;
+ALTER TABLE predictions ADD COLUMN decision TEXT NOT NULL DEFAULT '';
+";
 
 /// The database file name inside the data directory.
 pub const FILE_NAME: &str = "predictions.db";
@@ -38,6 +46,8 @@ CREATE TABLE IF NOT EXISTS predictions (
     probability REAL NOT NULL,
     entity_key TEXT NOT NULL,
     tags TEXT NOT NULL,
+    served_prior REAL,
+    decision TEXT NOT NULL DEFAULT '',
     UNIQUE (prediction_id, route, model, role)
 );
 CREATE INDEX IF NOT EXISTS predictions_time ON predictions (time_ms);
@@ -151,6 +161,10 @@ impl SqliteStore {
                 supported: SCHEMA_VERSION,
             });
         }
+        if found == 1 {
+            conn.execute_batch(MIGRATE_1_2)
+                .map_err(db("schema migration 1 to 2"))?;
+        }
         conn.execute_batch(SCHEMA).map_err(db("create tables"))?;
         if found != SCHEMA_VERSION {
             // Written only when it changes, so an existing log opens without a write (on a full disk too).
@@ -253,18 +267,65 @@ fn predictions_of(tx: &rusqlite::Transaction<'_>, id: &str) -> Result<Vec<Row>, 
     Ok(rows)
 }
 
-/// The recorded outcome of an id: label, state, outcome time.
-fn outcome_of(
-    tx: &rusqlite::Transaction<'_>,
-    id: &str,
-) -> Result<Option<(bool, String, i64)>, StoreError> {
-    tx.prepare_cached("SELECT label, state, outcome_time_ms FROM outcomes WHERE prediction_id = ?1")
+/// The recorded outcome row of an id.
+fn outcome_of(tx: &rusqlite::Transaction<'_>, id: &str) -> Result<Option<Outcome>, StoreError> {
+    let row = tx
+        .prepare_cached(
+            "SELECT label, outcome_time_ms, received_ms, source, revision, state
+             FROM outcomes WHERE prediction_id = ?1",
+        )
         .map_err(db("read outcome"))?
         .query_row([id], |r| {
-            Ok((r.get::<_, i64>(0)? != 0, r.get(1)?, r.get(2)?))
+            Ok((
+                r.get::<_, i64>(0)? != 0,
+                r.get::<_, i64>(1)?,
+                r.get::<_, i64>(2)?,
+                r.get::<_, String>(3)?,
+                r.get::<_, i64>(4)?,
+                r.get::<_, String>(5)?,
+            ))
         })
         .optional()
-        .map_err(db("read outcome"))
+        .map_err(db("read outcome"))?;
+    let Some((label, outcome_time_ms, received_ms, source, revision, state)) = row else {
+        return Ok(None);
+    };
+    let (Some(source), Some(state)) = (Source::parse(&source), OutcomeState::parse(&state)) else {
+        return Err(StoreError::Corrupt {
+            what: format!("outcome of prediction id {id}: source `{source}`, state `{state}`"),
+        });
+    };
+    Ok(Some(Outcome {
+        label,
+        outcome_time_ms,
+        received_ms,
+        source,
+        revision,
+        state,
+    }))
+}
+
+/// Stores an id's outcome row (inserted, or replacing the one there).
+fn put_outcome(tx: &rusqlite::Transaction<'_>, id: &str, o: &Outcome) -> Result<(), StoreError> {
+    tx.prepare_cached(
+        "INSERT INTO outcomes (prediction_id, label, outcome_time_ms, received_ms, source, revision, state)
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)
+         ON CONFLICT (prediction_id) DO UPDATE SET label = excluded.label,
+           outcome_time_ms = excluded.outcome_time_ms, received_ms = excluded.received_ms,
+           source = excluded.source, revision = excluded.revision, state = excluded.state",
+    )
+    .map_err(db("write outcome"))?
+    .execute(params![
+        id,
+        i64::from(o.label),
+        o.outcome_time_ms,
+        o.received_ms,
+        o.source.as_str(),
+        o.revision,
+        o.state.as_str()
+    ])
+    .map_err(db("write outcome"))?;
+    Ok(())
 }
 
 fn history(tx: &rusqlite::Transaction<'_>, id: &str) -> Result<(), StoreError> {
@@ -351,15 +412,10 @@ impl SqliteStore {
             let mut insert = tx
                 .prepare_cached(
                     "INSERT OR IGNORE INTO predictions (prediction_id, route, model, version, role, time_ms,
-                     margin, log_odds, adjusted_log_odds, probability, entity_key, tags)
-                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12)",
+                     margin, log_odds, adjusted_log_odds, probability, entity_key, tags, served_prior, decision)
+                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14)",
                 )
                 .map_err(db("insert prediction"))?;
-            let mut matched = tx
-                .prepare_cached(
-                    "UPDATE outcomes SET state = 'matched' WHERE prediction_id = ?1 AND state != 'matched'",
-                )
-                .map_err(db("match outcome"))?;
             for r in records {
                 let tags = serde_json::to_string(&r.tags).unwrap_or_else(|_| "{}".into());
                 let n = insert
@@ -375,7 +431,9 @@ impl SqliteStore {
                         r.adjusted_log_odds,
                         r.probability,
                         r.entity_key,
-                        tags
+                        tags,
+                        r.served.prior,
+                        r.served.decision
                     ])
                     .map_err(db("insert prediction"))?;
                 written.push(n > 0);
@@ -384,10 +442,10 @@ impl SqliteStore {
                 }
                 // A held outcome (or one already matched to another prediction with this id) settles it now.
                 let outcome = outcome_of(&tx, &r.prediction_id)?;
-                if let Some((label, _, outcome_time)) = outcome.filter(|o| o.1 != "unmatched") {
-                    matched
-                        .execute([&r.prediction_id])
-                        .map_err(db("match outcome"))?;
+                if let Some(next) = matching::prediction_written(outcome.as_ref()) {
+                    if outcome != Some(next) {
+                        put_outcome(&tx, &r.prediction_id, &next)?;
+                    }
                     let row = Row {
                         route: r.route.clone(),
                         model: r.model.clone(),
@@ -396,7 +454,7 @@ impl SqliteStore {
                         adjusted_log_odds: r.adjusted_log_odds,
                         probability: r.probability,
                     };
-                    pairs.push(settled(row, label, None, outcome_time));
+                    pairs.push(settled(row, next.label, None, next.outcome_time_ms));
                 }
             }
         }
@@ -424,7 +482,7 @@ impl SqliteStore {
         let mut results = Vec::with_capacity(outcomes.len());
         let mut pairs = Vec::new();
         for o in outcomes {
-            if let Some(message) = invalid_outcome(o) {
+            if let Some(message) = super::invalid_outcome(o) {
                 results.push(OutcomeResult {
                     status: OutcomeStatus::Invalid,
                     predictions_matched: 0,
@@ -434,88 +492,24 @@ impl SqliteStore {
             }
             let id = o.prediction_id.as_str();
             let time = o.time_ms.unwrap_or(now_ms);
-            let label = i64::from(o.label);
             let existing = outcome_of(&tx, id)?;
             let rows = predictions_of(&tx, id)?;
-            let state = if rows.is_empty() {
-                "pending"
-            } else {
-                "matched"
-            };
-            let (status, previous) = match &existing {
-                None => {
-                    tx.execute(
-                        "INSERT INTO outcomes VALUES (?1, ?2, ?3, ?4, 'reported', 0, ?5)",
-                        params![id, label, time, now_ms, state],
-                    )
-                    .map_err(db("insert outcome"))?;
-                    let status = if rows.is_empty() {
-                        OutcomeStatus::Pending
-                    } else {
-                        OutcomeStatus::Matched
-                    };
-                    (status, None)
+            let step =
+                matching::receive(existing.as_ref(), !rows.is_empty(), o.label, time, now_ms);
+            if step.archive {
+                history(&tx, id)?;
+            }
+            if existing != Some(step.next) {
+                put_outcome(&tx, id, &step.next)?;
+            }
+            let n = step.predictions_matched(rows.len());
+            if step.settles {
+                for row in rows {
+                    pairs.push(settled(row, o.label, step.previous, time));
                 }
-                Some((_, old_state, _)) if old_state == "unmatched" => {
-                    // Sent again after its hold ran out: a fresh start, not a correction.
-                    tx.execute(
-                        "UPDATE outcomes SET label = ?2, outcome_time_ms = ?3, received_ms = ?4,
-                         source = 'reported', state = ?5 WHERE prediction_id = ?1",
-                        params![id, label, time, now_ms, state],
-                    )
-                    .map_err(db("update outcome"))?;
-                    let status = if rows.is_empty() {
-                        OutcomeStatus::Pending
-                    } else {
-                        OutcomeStatus::Matched
-                    };
-                    (status, None)
-                }
-                Some((old, old_state, _)) => {
-                    let was_matched = old_state == "matched";
-                    if *old == o.label {
-                        // Same label: a maturity-settled negative now confirmed by the client is kept as reported.
-                        tx.execute(
-                            "UPDATE outcomes SET source = 'reported' WHERE prediction_id = ?1",
-                            [id],
-                        )
-                        .map_err(db("update outcome"))?;
-                        let status = if was_matched {
-                            OutcomeStatus::Duplicate
-                        } else {
-                            OutcomeStatus::Pending
-                        };
-                        results.push(OutcomeResult {
-                            status,
-                            predictions_matched: 0,
-                            message: String::new(),
-                        });
-                        continue;
-                    }
-                    history(&tx, id)?;
-                    tx.execute(
-                        "UPDATE outcomes SET label = ?2, outcome_time_ms = ?3, received_ms = ?4,
-                         source = 'reported', revision = revision + 1, state = ?5 WHERE prediction_id = ?1",
-                        params![id, label, time, now_ms, state],
-                    )
-                    .map_err(db("update outcome"))?;
-                    match (was_matched, rows.is_empty()) {
-                        (true, _) => (OutcomeStatus::Corrected, Some(*old)),
-                        (false, true) => (OutcomeStatus::Pending, None),
-                        (false, false) => (OutcomeStatus::Matched, None),
-                    }
-                }
-            };
-            let n = if status == OutcomeStatus::Pending {
-                0
-            } else {
-                rows.len()
-            };
-            for row in rows {
-                pairs.push(settled(row, o.label, previous, time));
             }
             results.push(OutcomeResult {
-                status,
+                status: step.status,
                 predictions_matched: n,
                 message: String::new(),
             });
@@ -542,7 +536,7 @@ impl SqliteStore {
                     .prepare_cached(
                         "SELECT p.prediction_id, MIN(p.time_ms) FROM predictions p
                          WHERE p.route = ?1 AND p.time_ms <= ?2 AND NOT EXISTS
-                           (SELECT 1 FROM outcomes o WHERE o.prediction_id = p.prediction_id AND o.state = 'matched')
+                           (SELECT 1 FROM outcomes o WHERE o.prediction_id = p.prediction_id AND o.state = ?4)
                          GROUP BY p.prediction_id LIMIT ?3",
                     )
                     .map_err(db("find matured"))?;
@@ -551,7 +545,8 @@ impl SqliteStore {
                         params![
                             route,
                             now_ms - maturity,
-                            i64::try_from(left).unwrap_or(i64::MAX)
+                            i64::try_from(left).unwrap_or(i64::MAX),
+                            OutcomeState::Matched.as_str()
                         ],
                         |r| Ok((r.get(0)?, r.get(1)?)),
                     )
@@ -562,16 +557,14 @@ impl SqliteStore {
             };
             left = left.saturating_sub(due.len());
             for (id, first_time) in due {
-                let outcome_time = first_time + maturity;
-                tx.execute(
-                    "INSERT INTO outcomes VALUES (?1, 0, ?2, ?3, 'maturity', 0, 'matched')
-                     ON CONFLICT (prediction_id) DO UPDATE SET label = 0, outcome_time_ms = ?2, received_ms = ?3,
-                     source = 'maturity', state = 'matched'",
-                    params![id, outcome_time, now_ms],
-                )
-                .map_err(db("settle matured"))?;
+                let existing = outcome_of(&tx, &id)?;
+                let Some(next) = matching::mature(existing.as_ref(), first_time, maturity, now_ms)
+                else {
+                    continue;
+                };
+                put_outcome(&tx, &id, &next)?;
                 for row in predictions_of(&tx, &id)? {
-                    pairs.push(settled(row, false, None, outcome_time));
+                    pairs.push(settled(row, next.label, None, next.outcome_time_ms));
                 }
             }
         }
@@ -583,8 +576,12 @@ impl SqliteStore {
         let n = self
             .conn
             .execute(
-                "UPDATE outcomes SET state = 'unmatched' WHERE state = 'pending' AND received_ms <= ?1",
-                [now_ms - hold_ms],
+                "UPDATE outcomes SET state = ?1 WHERE state = ?2 AND received_ms <= ?3",
+                params![
+                    OutcomeState::Unmatched.as_str(),
+                    OutcomeState::Pending.as_str(),
+                    matching::expiry_cutoff(hold_ms, now_ms)
+                ],
             )
             .map_err(db("expire pending"))?;
         Ok(n as u64)
@@ -598,9 +595,9 @@ impl SqliteStore {
             .map_err(db("remove predictions"))?;
         // Outcomes that no prediction refers to any more, and that are not waiting for one.
         tx.execute(
-            "DELETE FROM outcomes WHERE state != 'pending' AND received_ms < ?1 AND NOT EXISTS
+            "DELETE FROM outcomes WHERE state != ?2 AND received_ms < ?1 AND NOT EXISTS
              (SELECT 1 FROM predictions p WHERE p.prediction_id = outcomes.prediction_id)",
-            [cutoff],
+            params![cutoff, OutcomeState::Pending.as_str()],
         )
         .map_err(db("remove outcomes"))?;
         tx.execute(
@@ -617,9 +614,9 @@ impl SqliteStore {
             .conn
             .prepare(
                 "SELECT p.route, p.model, p.version, p.role, p.time_ms, p.adjusted_log_odds, p.probability,
-                        o.label, o.source, o.revision, p.prediction_id
+                        o.label, o.source, o.revision, p.prediction_id, p.served_prior
                  FROM predictions p
-                 LEFT JOIN outcomes o ON o.prediction_id = p.prediction_id AND o.state = 'matched'
+                 LEFT JOIN outcomes o ON o.prediction_id = p.prediction_id AND o.state = ?6
                  WHERE (?1 IS NULL OR p.time_ms >= ?1) AND (?2 IS NULL OR p.time_ms < ?2)
                    AND (?3 IS NULL OR p.route = ?3) AND (?4 IS NULL OR p.model = ?4)
                    AND (?5 IS NULL OR p.version = ?5)
@@ -633,7 +630,8 @@ impl SqliteStore {
                     filter.to_ms,
                     filter.route,
                     filter.model,
-                    filter.version
+                    filter.version,
+                    OutcomeState::Matched.as_str()
                 ],
                 |r| {
                     let label: Option<i64> = r.get(7)?;
@@ -649,8 +647,10 @@ impl SqliteStore {
                         adjusted_log_odds: r.get(5)?,
                         probability: r.get(6)?,
                         label: label.map(|l| l != 0),
-                        by_maturity: source.as_deref() == Some("maturity"),
+                        by_maturity: source.as_deref().and_then(Source::parse)
+                            == Some(Source::Maturity),
                         corrected: revision.unwrap_or(0) > 0,
+                        served_prior: r.get(11)?,
                     })
                 },
             )
@@ -690,23 +690,8 @@ impl SqliteStore {
             Ok(u64::try_from(n).unwrap_or(0))
         };
         Ok(OutcomeCounts {
-            pending: count("pending")?,
-            unmatched: count("unmatched")?,
+            pending: count(OutcomeState::Pending.as_str())?,
+            unmatched: count(OutcomeState::Unmatched.as_str())?,
         })
     }
-}
-
-/// Why an outcome is refused, or `None`.
-fn invalid_outcome(o: &OutcomeInput) -> Option<String> {
-    let id = &o.prediction_id;
-    if id.is_empty() {
-        return Some("prediction_id: is empty".into());
-    }
-    if id.len() > 128 || !id.bytes().all(|b| (0x21..=0x7e).contains(&b)) {
-        return Some("prediction_id: must be 1 to 128 printable ASCII characters".into());
-    }
-    if o.time_ms.is_some_and(|t| t < 0) {
-        return Some("outcome_time: must not be before 1970".into());
-    }
-    None
 }

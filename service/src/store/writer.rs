@@ -271,6 +271,10 @@ impl PredictionLog {
     }
 
     fn sweep_once(&self) -> Result<(usize, u64, u64), StoreError> {
+        if !lock(&self.store).lead_sweeps()? {
+            // Another replica of a shared store runs them.
+            return Ok((0, 0, 0));
+        }
         let now = self.clock.now_ms();
         let ms = |d: Duration| i64::try_from(d.as_millis()).unwrap_or(i64::MAX);
         let maturity: BTreeMap<String, i64> = self
