@@ -167,6 +167,26 @@ fn report_figures_equal_the_metrics_module_on_the_matched_pairs() {
     assert_eq!(num(&s["psi"]["value"]), psi);
     let observed = yy.iter().filter(|&&b| b).count() as f64 / yy.len() as f64;
     assert_eq!(num(&s["observed_base_rate"]), observed);
+    // Calibration tests (Spiegelhalter 1986; Cox 1958): probity_models::monitor on the same pairs, to the last bit
+    // (checked against statsmodels in tests/tests/monitor_reference.rs and through the service in report_grpc.rs).
+    let z = probity_models::monitor::spiegelhalter_z(&pp, &yy).unwrap();
+    let ct = &s["calibration_tests"];
+    assert_eq!(num(&ct["spiegelhalter"]["z"]), z.z.unwrap());
+    let r = probity_models::monitor::logistic_recalibration(&hh, &yy, 0.95).unwrap();
+    assert_eq!(num(&ct["recalibration"]["slope"]["upper"]), r.slope.upper);
+    assert_eq!(
+        num(&ct["recalibration"]["in_the_large"]["estimate"]),
+        r.in_the_large.estimate
+    );
+    let text = Command::new(env!("CARGO_BIN_EXE_probity"))
+        .args(["report", "--log", log, "--route", "a"])
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&text.stdout);
+    assert!(
+        text.contains("Spiegelhalter z") && text.contains("calibration-in-the-large"),
+        "{text}"
+    );
 
     // A time range: the first 100 rows only.
     let early = report(&[

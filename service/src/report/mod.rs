@@ -19,6 +19,7 @@
 //!
 //! [`text`] renders the terminal table, [`svg`] the pictures; the JSON is this module's types through serde.
 
+pub mod calibration_tests;
 pub mod svg;
 pub mod text;
 
@@ -122,6 +123,8 @@ pub struct SeriesReport {
     pub histogram_positive: Vec<u64>,
     /// Why a figure is missing.
     pub notes: Vec<String>,
+    /// Calibration tests on the pairs with an outcome (Spiegelhalter 1986; Cox 1958).
+    pub calibration_tests: calibration_tests::CalibrationTests,
 }
 
 /// Murphy's decomposition with the two within-bin terms.
@@ -447,6 +450,7 @@ pub fn section(
     }
     let all_p: Vec<f64> = rows.iter().map(|r| r.probability).collect();
     let base_rate_estimate = em_estimate(&mut notes, &all_p, rates);
+    let calibration_tests = calibration_tests::compute(&p, &h, &y, &mut notes);
     SeriesReport {
         route,
         model,
@@ -475,6 +479,7 @@ pub fn section(
         histogram_negative,
         histogram_positive,
         notes,
+        calibration_tests,
     }
 }
 

@@ -139,6 +139,25 @@ async fn record(
     on_store(slots, log, move |log| log.record_outcomes(&inputs)).await
 }
 
+/// The calibration-test fields of a report section's wire message (the others at their defaults).
+fn calibration_test_fields(
+    t: &crate::report::calibration_tests::CalibrationTests,
+) -> pb::ReportSeries {
+    let r = t.recalibration.as_ref();
+    pb::ReportSeries {
+        spiegelhalter_z: t.spiegelhalter.as_ref().map(|z| z.z),
+        spiegelhalter_p_value: t.spiegelhalter.as_ref().map(|z| z.p_value),
+        calibration_slope: r.map(|r| r.slope.estimate),
+        calibration_slope_lower: r.map(|r| r.slope.lower),
+        calibration_slope_upper: r.map(|r| r.slope.upper),
+        calibration_in_the_large: r.map(|r| r.in_the_large.estimate),
+        calibration_in_the_large_lower: r.map(|r| r.in_the_large.lower),
+        calibration_in_the_large_upper: r.map(|r| r.in_the_large.upper),
+        recalibration_p_value: r.map(|r| r.joint_p_value),
+        ..pb::ReportSeries::default()
+    }
+}
+
 /// The report as its wire message.
 pub fn report_response(report: &Report) -> pb::ReportResponse {
     let series = report
@@ -166,6 +185,7 @@ pub fn report_response(report: &Report) -> pb::ReportResponse {
             psi: s.psi.as_ref().map(|p| p.value),
             base_rate_estimate: s.base_rate_estimate,
             configured_base_rate: s.configured_base_rate,
+            ..calibration_test_fields(&s.calibration_tests)
         })
         .collect();
     pb::ReportResponse {
