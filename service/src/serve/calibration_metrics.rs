@@ -1,5 +1,5 @@
 //! Calibration tests exported as gauges, for alert rules: every `log.sweep_interval`, each route's logged
-//! predictions with an outcome are grouped by model, version and role, and Spiegelhalter's z (1986) and the
+//! matched pairs (read in a lean form, [`crate::store::Store::labelled_pairs`]) are grouped by model, version and role, and Spiegelhalter's z (1986) and the
 //! logistic recalibration (Cox 1958) of [`crate::report::calibration_tests`] are set as gauges labelled `route`,
 //! `model`, `version`, `role`. Reads run on the log's thread, like the comparison gauges.
 //!
@@ -13,7 +13,6 @@ use tokio::task::JoinHandle;
 
 use crate::report::calibration_tests::{self, CalibrationTests};
 use crate::serve::scoring::Scorer;
-use crate::store::ReportFilter;
 
 /// Prefix of the gauges, e.g. `probity_calibration_slope`.
 pub const PREFIX: &str = "probity_calibration_";
@@ -51,46 +50,30 @@ pub fn refresh(scorer: &Scorer) {
         return;
     };
     for route in scorer.routes().keys() {
-        let filter = ReportFilter {
-            route: Some(route.clone()),
-            ..ReportFilter::default()
-        };
+        let name = route.clone();
         let result = log.read_blocking(move |store| {
-            let rows = store.load(&filter)?;
-            let mut groups: Vec<Series> = Vec::new();
-            // (labels, p, h, y) per series, found by a scan (a handful of series per route).
-            let mut data: Vec<(Vec<f64>, Vec<f64>, Vec<bool>)> = Vec::new();
-            for r in rows.iter().filter(|r| r.label.is_some()) {
-                let i = match groups.iter().position(|g| {
-                    g.labels[1].1 == r.model
-                        && g.labels[2].1 == r.version
-                        && g.labels[3].1 == r.role
-                }) {
-                    Some(i) => i,
-                    None => {
-                        groups.push(Series {
-                            labels: [
-                                ("route", r.route.clone()),
-                                ("model", r.model.clone()),
-                                ("version", r.version.clone()),
-                                ("role", r.role.clone()),
-                            ],
-                            outcomes: 0,
-                            tests: CalibrationTests::default(),
-                        });
-                        data.push((Vec::new(), Vec::new(), Vec::new()));
-                        groups.len() - 1
-                    }
-                };
-                data[i].0.push(r.probability);
-                data[i].1.push(r.adjusted_log_odds);
-                data[i].2.push(r.label == Some(true));
+            let pairs = store.labelled_pairs(&name)?;
+            let mut data = vec![(Vec::new(), Vec::new(), Vec::new()); pairs.series.len()];
+            for &(i, p, h, y) in &pairs.rows {
+                data[i].0.push(p);
+                data[i].1.push(h);
+                data[i].2.push(y);
             }
-            for (g, (p, h, y)) in groups.iter_mut().zip(&data) {
-                g.outcomes = y.len();
-                g.tests = calibration_tests::compute(p, h, y, &mut Vec::new());
-            }
-            Ok(groups)
+            Ok(pairs
+                .series
+                .into_iter()
+                .zip(&data)
+                .map(|((model, version, role), (p, h, y))| Series {
+                    labels: [
+                        ("route", name.clone()),
+                        ("model", model),
+                        ("version", version),
+                        ("role", role),
+                    ],
+                    outcomes: y.len(),
+                    tests: calibration_tests::compute(p, h, y, &mut Vec::new()),
+                })
+                .collect::<Vec<_>>())
         });
         match result {
             Ok(groups) => groups.iter().for_each(set),
