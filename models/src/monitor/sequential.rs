@@ -262,6 +262,34 @@ mod tests {
     }
 
     #[test]
+    fn a_fixed_sample_significance_is_not_enough_for_the_always_valid_verdict() {
+        use crate::compare::VarianceEstimator;
+        // Made-up test results: z = -2.5 on the log-loss (fixed-sample p = 0.012) after 1,000 cases.
+        let ll = PairedTest {
+            cases: 1000,
+            mean: -0.01,
+            standard_error: 0.004,
+            statistic: Some(-2.5),
+            p_value: Some(crate::compare::normal_two_sided_p(-2.5)),
+            estimator: VarianceEstimator::Independent,
+        };
+        let fixed = VerdictRule::default().judge(100, 900, Some(&ll), None);
+        assert_eq!(fixed.code(), "challenger_better");
+        let seq = loss_sequence(&ll, &SequentialOptions::default()).unwrap();
+        let v = always_valid_verdict(Minimums::default(), 100, 900, Some((&ll, &seq)), None);
+        assert_eq!(v.code(), "no_clear_difference", "{seq:?}");
+        // At z = -5 both agree.
+        let strong = PairedTest {
+            statistic: Some(-5.0),
+            mean: -0.02,
+            ..ll.clone()
+        };
+        let seq = loss_sequence(&strong, &SequentialOptions::default()).unwrap();
+        let v = always_valid_verdict(Minimums::default(), 100, 900, Some((&strong, &seq)), None);
+        assert_eq!(v.code(), "challenger_better");
+    }
+
+    #[test]
     fn mixture_ratio_hand_computed() {
         // rho = 100 (alpha 0.05, tuned_for = 100 u), n = 300, z = 3: log LR = 0.5 ln(100/400) + 300 * 9 / 800.
         let o = SequentialOptions::default();
