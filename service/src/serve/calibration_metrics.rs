@@ -77,6 +77,8 @@ pub fn refresh(scorer: &Scorer) {
         });
         match result {
             Ok(groups) => groups.iter().for_each(set),
+            // The log is closing (the server is stopping): nothing to refresh.
+            Err(crate::store::StoreError::Closed) => return,
             Err(error) => {
                 tracing::warn!(route = %route, %error, "calibration gauges not refreshed")
             }
