@@ -23,25 +23,31 @@ const HORIZON: f64 = 30.0;
 const WINDOW: f64 = 7.0;
 const RATE: f64 = 0.08;
 
-fn simulate(rng: &mut StdRng, per_day: usize) -> (Vec<DelayObservation>, Vec<WindowCase>) {
+/// Every prediction of a simulated route: its age today and, if its positive outcome has arrived, the delay.
+fn simulate(rng: &mut StdRng, per_day: usize) -> Vec<DelayObservation> {
     let gamma = Gamma::new(2.0, 4.0).unwrap();
-    let (mut reference, mut window) = (Vec::new(), Vec::new());
-    for _ in 0..(per_day as f64 * DAYS) as usize {
-        let age = DAYS * rng.random::<f64>();
-        let delay = (rng.random::<f64>() < RATE).then(|| gamma.sample(rng));
-        let arrived = delay.filter(|&d| d <= age);
-        if age < WINDOW {
-            window.push(WindowCase {
+    (0..(per_day as f64 * DAYS) as usize)
+        .map(|_| {
+            let age = DAYS * rng.random::<f64>();
+            let delay = (rng.random::<f64>() < RATE).then(|| gamma.sample(rng));
+            DelayObservation {
                 age,
-                positive: arrived.is_some_and(|d| d <= HORIZON),
-            });
-        } else {
-            reference.push(DelayObservation {
-                age,
-                positive_after: arrived,
-            });
-        }
-    }
+                positive_after: delay.filter(|&d| d <= age),
+            }
+        })
+        .collect()
+}
+
+/// The reference (older than the window) and the window (the last 7 days).
+fn split(all: Vec<DelayObservation>) -> (Vec<DelayObservation>, Vec<WindowCase>) {
+    let (window, reference): (Vec<_>, Vec<_>) = all.into_iter().partition(|o| o.age < WINDOW);
+    let window = window
+        .into_iter()
+        .map(|o| WindowCase {
+            age: o.age,
+            positive: o.positive_after.is_some_and(|d| d <= HORIZON),
+        })
+        .collect();
     (reference, window)
 }
 
@@ -52,7 +58,7 @@ fn eventual_rate_intervals_cover_the_truth() {
     let mut rng = StdRng::seed_from_u64(20261203);
     let (mut covered, mut estimates, mut observed) = (0usize, 0.0, 0.0);
     for _ in 0..routes {
-        let (reference, window) = simulate(&mut rng, 50);
+        let (reference, window) = split(simulate(&mut rng, 50));
         let km = kaplan_meier(&reference, HORIZON).unwrap();
         let e = eventual_rate(&km, &window, 0.95).unwrap();
         covered += usize::from(e.lower <= truth && truth <= e.upper);
@@ -66,6 +72,29 @@ fn eventual_rate_intervals_cover_the_truth() {
         observed / routes as f64,
         estimates / routes as f64
     );
+    let margin = 3.0 * (0.95f64 * 0.05 / routes as f64).sqrt();
+    assert!(
+        (coverage - 0.95).abs() <= margin,
+        "coverage {coverage} outside 0.95 +- {margin:.4}"
+    );
+}
+
+/// The eventual positive share of a whole cohort, straight from the Kaplan-Meier estimate at the horizon with
+/// Greenwood's variance (Wald interval): every prediction of the 120 days, censored by today and the horizon.
+#[test]
+fn eventual_share_of_a_cohort_covers_the_truth() {
+    let truth = RATE * (1.0 - (-7.5f64).exp() * (1.0 + 7.5));
+    let routes = 1000;
+    let mut rng = StdRng::seed_from_u64(99);
+    let mut covered = 0usize;
+    for _ in 0..routes {
+        let all = simulate(&mut rng, 20);
+        let km = kaplan_meier(&all, HORIZON).unwrap();
+        let (_, lower, upper) = km.eventual_share_interval(0.95).unwrap();
+        covered += usize::from(lower <= truth && truth <= upper);
+    }
+    let coverage = covered as f64 / routes as f64;
+    println!("{routes} cohorts of 2,400 predictions: Greenwood 95% interval coverage of the eventual share {coverage:.3}");
     let margin = 3.0 * (0.95f64 * 0.05 / routes as f64).sqrt();
     assert!(
         (coverage - 0.95).abs() <= margin,

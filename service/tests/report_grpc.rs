@@ -535,6 +535,13 @@ async fn outcomes_through_the_service_give_the_reference_report_and_matching_sum
         &rs["z"],
         "JSON Spiegelhalter z",
     );
+    // The eventual positive rate (Kaplan-Meier; checked in report_cli.rs and models/tests/delay_sim.rs) travels
+    // in the RPC as in the JSON.
+    let ev = &bc["eventual_positive_rate"];
+    assert_eq!(rpc.eventual_positive_rate, ev["estimate"].as_f64());
+    assert_eq!(rpc.eventual_positive_rate_lower, ev["lower"].as_f64());
+    assert_eq!(rpc.eventual_positive_rate_upper, ev["upper"].as_f64());
+    assert!(rpc.eventual_positive_rate.is_some(), "{ev}");
     let started = std::time::Instant::now();
     loop {
         let text = http_get(server.metrics_addr(), "/metrics").await;

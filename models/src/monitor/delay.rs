@@ -85,6 +85,23 @@ impl KaplanMeier {
         1.0 - self.survival_at(self.horizon)
     }
 
+    /// The eventual positive share with a Wald interval at `level` from Greenwood's variance, `G(horizon) +- z
+    /// S(horizon) sqrt(V(horizon))`, clipped to [0, 1]: `(estimate, lower, upper)`. Valid when the predictions have
+    /// been followed for longer than positives take to arrive (the estimate cannot see beyond the longest follow-up).
+    pub fn eventual_share_interval(&self, level: f64) -> Result<(f64, f64, f64), MonitorError> {
+        if !(level > 0.0 && level < 1.0) {
+            return Err(MonitorError::BadOption {
+                name: "confidence level",
+                value: level,
+                reason: "must lie strictly between 0 and 1",
+            });
+        }
+        let z = normal_upper_point((1.0 - level) / 2.0)?;
+        let g = self.eventual_share();
+        let se = self.survival_se_at(self.horizon);
+        Ok((g, (g - z * se).max(0.0), (g + z * se).min(1.0)))
+    }
+
     /// `F(t) = G(t) / G(horizon)`: the share of eventual positives that have arrived by delay `t`; `None` when no
     /// positive has arrived at all.
     pub fn arrived_share(&self, t: f64) -> Option<f64> {

@@ -39,6 +39,7 @@ fn simulate(served: f64, seed: u64) -> Vec<LoggedPrediction> {
                 label: Some(label),
                 by_maturity: false,
                 corrected: false,
+                outcome_received_ms: Some(i as i64),
             }
         })
         .collect()

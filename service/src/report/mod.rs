@@ -20,6 +20,7 @@
 //! [`text`] renders the terminal table, [`svg`] the pictures; the JSON is this module's types through serde.
 
 pub mod calibration_tests;
+pub mod immature;
 pub mod svg;
 pub mod text;
 
@@ -125,6 +126,9 @@ pub struct SeriesReport {
     pub notes: Vec<String>,
     /// Calibration tests on the pairs with an outcome (Spiegelhalter 1986; Cox 1958).
     pub calibration_tests: calibration_tests::CalibrationTests,
+    /// Estimated eventual positive rate of all the section's predictions, outcomes still arriving included
+    /// (Kaplan-Meier; see [`immature`]).
+    pub eventual_positive_rate: Option<immature::EventualRate>,
 }
 
 /// Murphy's decomposition with the two within-bin terms.
@@ -451,6 +455,7 @@ pub fn section(
     let all_p: Vec<f64> = rows.iter().map(|r| r.probability).collect();
     let base_rate_estimate = em_estimate(&mut notes, &all_p, rates);
     let calibration_tests = calibration_tests::compute(&p, &h, &y, &mut notes);
+    let eventual_positive_rate = immature::compute(rows, &mut notes);
     SeriesReport {
         route,
         model,
@@ -480,6 +485,7 @@ pub fn section(
         histogram_positive,
         notes,
         calibration_tests,
+        eventual_positive_rate,
     }
 }
 

@@ -139,11 +139,12 @@ async fn record(
     on_store(slots, log, move |log| log.record_outcomes(&inputs)).await
 }
 
-/// The calibration-test fields of a report section's wire message (the others at their defaults).
-fn calibration_test_fields(
-    t: &crate::report::calibration_tests::CalibrationTests,
-) -> pb::ReportSeries {
+/// The calibration-test and eventual-rate fields of a report section's wire message (the others at their
+/// defaults).
+fn monitor_fields(s: &crate::report::SeriesReport) -> pb::ReportSeries {
+    let t = &s.calibration_tests;
     let r = t.recalibration.as_ref();
+    let e = s.eventual_positive_rate.as_ref();
     pb::ReportSeries {
         spiegelhalter_z: t.spiegelhalter.as_ref().map(|z| z.z),
         spiegelhalter_p_value: t.spiegelhalter.as_ref().map(|z| z.p_value),
@@ -154,6 +155,9 @@ fn calibration_test_fields(
         calibration_in_the_large_lower: r.map(|r| r.in_the_large.lower),
         calibration_in_the_large_upper: r.map(|r| r.in_the_large.upper),
         recalibration_p_value: r.map(|r| r.joint_p_value),
+        eventual_positive_rate: e.map(|e| e.estimate),
+        eventual_positive_rate_lower: e.map(|e| e.lower),
+        eventual_positive_rate_upper: e.map(|e| e.upper),
         ..pb::ReportSeries::default()
     }
 }
@@ -185,7 +189,7 @@ pub fn report_response(report: &Report) -> pb::ReportResponse {
             psi: s.psi.as_ref().map(|p| p.value),
             base_rate_estimate: s.base_rate_estimate,
             configured_base_rate: s.configured_base_rate,
-            ..calibration_test_fields(&s.calibration_tests)
+            ..monitor_fields(s)
         })
         .collect();
     pb::ReportResponse {

@@ -225,6 +225,8 @@ pub struct LoggedPrediction {
     pub by_maturity: bool,
     /// Whether the label was corrected at least once.
     pub corrected: bool,
+    /// When the latest label was received (ms), if the outcome is known.
+    pub outcome_received_ms: Option<i64>,
 }
 
 /// Counts of the outcome table, for reports and gauges.

@@ -651,7 +651,7 @@ impl SqliteStore {
             .conn
             .prepare(
                 "SELECT p.route, p.model, p.version, p.role, p.time_ms, p.adjusted_log_odds, p.probability,
-                        o.label, o.source, o.revision, p.prediction_id
+                        o.label, o.source, o.revision, p.prediction_id, o.received_ms
                  FROM predictions p
                  LEFT JOIN outcomes o ON o.prediction_id = p.prediction_id AND o.state = 'matched'
                  WHERE (?1 IS NULL OR p.time_ms >= ?1) AND (?2 IS NULL OR p.time_ms < ?2)
@@ -685,6 +685,7 @@ impl SqliteStore {
                         label: label.map(|l| l != 0),
                         by_maturity: source.as_deref() == Some("maturity"),
                         corrected: revision.unwrap_or(0) > 0,
+                        outcome_received_ms: r.get(11)?,
                     })
                 },
             )
