@@ -17,6 +17,7 @@ pub mod fit;
 pub mod link;
 pub mod metrics;
 pub mod model;
+pub mod monitor;
 pub mod schema;
 pub mod transform;
 

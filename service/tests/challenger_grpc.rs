@@ -265,6 +265,50 @@ async fn mirrored_and_split_challengers_through_the_service() {
         "DM p",
     );
     assert_eq!(cmp.verdict_code, "no_clear_difference", "{}", cmp.verdict);
+    assert_eq!(cmp.fixed_sample_verdict_code, "no_clear_difference");
+
+    // The always-valid figures the verdict rests on: the two-sided normal-mixture boundary of Howard, Ramdas,
+    // McAuliffe and Sekhon (2021, "Time-uniform, nonparametric, nonasymptotic confidence sequences", Annals of
+    // Statistics 49, section 3.2), written out here and applied to the fixture's reference Diebold-Mariano mean and
+    // standard error and 1988 DeLong difference and standard error: half-width se * sqrt((n + rho)/n *
+    // ln((n + rho) / (rho alpha^2))), alpha = 0.05, rho = 1000 / u with u = 2 ln(1/alpha) + ln(1 + u) (tightest
+    // at 1,000 cases); the mixture likelihood ratio sqrt(rho/(n + rho)) exp(n z^2 / (2 (n + rho))) gives p = 1/ratio.
+    let nf = n as f64;
+    let two_l = 2.0 * 20f64.ln();
+    let mut u = two_l;
+    for _ in 0..100 {
+        u = two_l + (1.0 + u).ln();
+    }
+    let rho = 1000.0 / u;
+    let width = |se: f64| se * ((nf + rho) / nf * ((nf + rho) / (rho * 0.0025)).ln()).sqrt();
+    let p_of = |z: f64| ((nf + rho) / rho).sqrt() * (-nf * z * z / (2.0 * (nf + rho))).exp();
+    let av = serde_json::to_value(&cmp.always_valid).unwrap();
+    let num = |x: &Value| x.as_f64().unwrap();
+    for (key, est, se, z) in [
+        (
+            "log_loss",
+            &ll["mean"],
+            &ll["standard_error"],
+            &ll["statistic"],
+        ),
+        ("auc", &d["difference"], &d["standard_error"], &d["z"]),
+    ] {
+        close(
+            num(&av[key]["lower"]),
+            num(est) - width(num(se)),
+            &format!("{key} always-valid lower"),
+        );
+        close(
+            num(&av[key]["upper"]),
+            num(est) + width(num(se)),
+            &format!("{key} always-valid upper"),
+        );
+        close(
+            num(&av[key]["p_value"]),
+            p_of(num(z)).min(1.0),
+            &format!("{key} always-valid p"),
+        );
+    }
 
     // The comparison agrees with each model's own report from the same log.
     let rep = log
@@ -363,6 +407,16 @@ async fn mirrored_and_split_challengers_through_the_service() {
                 ),
                 Some(1.0)
             );
+            close(
+                gauge(&text, "probity_compare_log_loss_difference_upper", "").unwrap(),
+                num(&av["log_loss"]["upper"]),
+                "exported always-valid log-loss upper end",
+            );
+            close(
+                gauge(&text, "probity_compare_auc_always_valid_p_value", "").unwrap(),
+                num(&av["auc"]["p_value"]),
+                "exported always-valid AUC p",
+            );
             assert_eq!(
                 gauge(
                     &text,
@@ -390,6 +444,18 @@ async fn mirrored_and_split_challengers_through_the_service() {
         .unwrap()
         .into_inner();
     assert_eq!(rpc.verdict_code, "no_clear_difference");
+    assert_eq!(rpc.fixed_sample_verdict_code, "no_clear_difference");
+    close(
+        rpc.log_loss_difference_lower.unwrap(),
+        num(&av["log_loss"]["lower"]),
+        "Compare RPC always-valid log-loss lower end",
+    );
+    close(
+        rpc.auc_always_valid_p_value.unwrap(),
+        num(&av["auc"]["p_value"]),
+        "Compare RPC always-valid AUC p",
+    );
+    assert!(rpc.table.contains("always valid"), "{}", rpc.table);
     let json: Value = serde_json::from_str(&rpc.report_json).unwrap();
     close(
         json["outcomes"]["delong"]["p_value"].as_f64().unwrap(),

@@ -171,6 +171,31 @@ fn compare_json_table_and_svg() {
         "Brier",
     );
     assert_eq!(r["verdict_code"], "no_clear_difference");
+    assert_eq!(r["fixed_sample_verdict_code"], "no_clear_difference");
+    // The always-valid figures come from the reference tests' estimates and standard errors through the
+    // normal-mixture boundary (probity_models::monitor::normal_mixture; its formula is written out against the
+    // fixture in challenger_grpc.rs).
+    let options = probity_models::monitor::SequentialOptions::default();
+    let cases = o["cases"].as_u64().unwrap() as usize;
+    let ll = probity_models::monitor::normal_mixture(
+        v["log_loss"]["mean"].as_f64().unwrap(),
+        v["log_loss"]["standard_error"].as_f64().unwrap(),
+        cases,
+        &options,
+    )
+    .unwrap();
+    let av = &r["always_valid"];
+    close(
+        av["log_loss"]["lower"].as_f64().unwrap(),
+        ll.lower,
+        "always-valid lower",
+    );
+    close(
+        av["log_loss"]["upper"].as_f64().unwrap(),
+        ll.upper,
+        "always-valid upper",
+    );
+    assert!(av["auc"]["p_value"].as_f64().unwrap() >= v["delong"]["p_value"].as_f64().unwrap());
 
     // The Newey-West variant: statsmodels OLS HAC with 4 lags, use_correction=False.
     let (stdout, _) = compare(&[
@@ -202,6 +227,7 @@ fn compare_json_table_and_svg() {
     ]);
     assert!(out.status.success());
     assert!(table.contains("verdict: no clear difference"), "{table}");
+    assert!(table.contains("always valid"), "{table}");
     assert!(table.contains("Spearman rank correlation"), "{table}");
     let svg = std::fs::read_to_string(&svg_path).unwrap();
     let doc = roxmltree::Document::parse(&svg).unwrap();

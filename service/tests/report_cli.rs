@@ -168,6 +168,26 @@ fn report_figures_equal_the_metrics_module_on_the_matched_pairs() {
     assert_eq!(num(&s["psi"]["value"]), psi);
     let observed = yy.iter().filter(|&&b| b).count() as f64 / yy.len() as f64;
     assert_eq!(num(&s["observed_base_rate"]), observed);
+    // Calibration tests (Spiegelhalter 1986; Cox 1958): probity_models::monitor on the same pairs, to the last bit
+    // (checked against statsmodels in tests/tests/monitor_reference.rs and through the service in report_grpc.rs).
+    let z = probity_models::monitor::spiegelhalter_z(&pp, &yy).unwrap();
+    let ct = &s["calibration_tests"];
+    assert_eq!(num(&ct["spiegelhalter"]["z"]), z.z.unwrap());
+    let r = probity_models::monitor::logistic_recalibration(&hh, &yy, 0.95).unwrap();
+    assert_eq!(num(&ct["recalibration"]["slope"]["upper"]), r.slope.upper);
+    assert_eq!(
+        num(&ct["recalibration"]["in_the_large"]["estimate"]),
+        r.in_the_large.estimate
+    );
+    let text = Command::new(env!("CARGO_BIN_EXE_probity"))
+        .args(["report", "--log", log, "--route", "a"])
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&text.stdout);
+    assert!(
+        text.contains("Spiegelhalter z") && text.contains("calibration-in-the-large"),
+        "{text}"
+    );
 
     // A time range: the first 100 rows only.
     let early = report(&[
@@ -345,4 +365,119 @@ fn time_text(ms: i64) -> String {
         rem % 3600 / 60,
         rem % 60
     )
+}
+
+/// A section whose outcomes are still arriving: 3,000 predictions spread over 120 days, each turning positive with
+/// probability 0.1 after an exponential delay of mean 10 days, its outcome received then if that is before "now"
+/// (day 120). The report's eventual positive rate (within the horizon: the follow-up of the oldest tenth) equals `probity_models::monitor` (Kaplan-Meier with Greenwood's
+/// variance; that estimator is checked against statsmodels `SurvfuncRight` in tests/tests/monitor_reference.rs and
+/// its interval's coverage in models/tests/delay_sim.rs) on the same follow-up, is above the share received so far,
+/// and its interval holds the simulation's truth (the share of the section's predictions that turn positive within
+/// the horizon, arrived or not; one seeded draw, so this is a check of the wiring, not of coverage).
+#[test]
+fn eventual_positive_rate_of_a_section_with_outcomes_still_arriving() {
+    use probity_models::monitor::{kaplan_meier, DelayObservation};
+    use rand::{Rng, SeedableRng};
+    use rand_distr::{Distribution, Exp};
+
+    const DAY: f64 = 86_400_000.0;
+    let dir = tempfile::tempdir().unwrap();
+    let mut store = SqliteStore::open(dir.path(), Durability::Normal).unwrap();
+    store
+        .register_model(&ModelVersionInfo {
+            model: "m".into(),
+            version: "1".into(),
+            base_rate: 0.1,
+            reference: None,
+        })
+        .unwrap();
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(20261203);
+    let delay = Exp::new(1.0 / (10.0 * DAY)).unwrap();
+    let now = T0 + (120.0 * DAY) as i64;
+    let mut records = Vec::new();
+    let mut arrivals: Vec<(i64, String)> = Vec::new();
+    // Every simulated positive, arrived or not: (prediction time, delay).
+    let mut eventual: Vec<(i64, i64)> = Vec::new();
+    for i in 0..3000 {
+        let time_ms = T0 + (rng.random::<f64>() * 120.0 * DAY) as i64;
+        let id = format!("d-{i}");
+        if rng.random::<f64>() < 0.1 {
+            let d = delay.sample(&mut rng) as i64;
+            eventual.push((time_ms, d));
+            let at = time_ms + d;
+            if at <= now {
+                arrivals.push((at, id.clone()));
+            }
+        }
+        records.push(PredictionRecord {
+            prediction_id: id,
+            route: "d".into(),
+            model: "m".into(),
+            version: "1".into(),
+            role: "champion".into(),
+            time_ms,
+            margin: 0.0,
+            log_odds: 0.0,
+            adjusted_log_odds: 0.0,
+            probability: 0.5,
+            entity_key: String::new(),
+            tags: BTreeMap::new(),
+            served: Default::default(),
+        });
+    }
+    let times: std::collections::HashMap<String, i64> = records
+        .iter()
+        .map(|r| (r.prediction_id.clone(), r.time_ms))
+        .collect();
+    store.insert_predictions(&records).unwrap();
+    for (at, id) in &arrivals {
+        let outcome = OutcomeInput {
+            prediction_id: id.clone(),
+            label: true,
+            time_ms: None,
+        };
+        store.record_outcomes(&[outcome], *at).unwrap();
+    }
+    drop(store);
+    let doc = report(&["--log", dir.path().to_str().unwrap(), "--json"]);
+    let e = &doc["series"][0]["eventual_positive_rate"];
+    // The same follow-up, built here from the simulation: now = the latest event.
+    let latest = records
+        .iter()
+        .map(|r| r.time_ms)
+        .chain(arrivals.iter().map(|a| a.0))
+        .max()
+        .unwrap();
+    assert_eq!(e["now_ms"], latest);
+    // Horizon: the age of the 300th oldest prediction (a tenth of 3,000), the report's stated rule.
+    let mut ages: Vec<i64> = records.iter().map(|r| latest - r.time_ms).collect();
+    ages.sort_unstable();
+    let horizon = ages[3000 - 300];
+    assert_eq!(e["horizon_ms"], horizon);
+    let arrived: std::collections::HashMap<&str, i64> =
+        arrivals.iter().map(|(at, id)| (id.as_str(), *at)).collect();
+    let obs: Vec<DelayObservation> = records
+        .iter()
+        .map(|r| DelayObservation {
+            age: (latest - r.time_ms) as f64,
+            positive_after: arrived
+                .get(r.prediction_id.as_str())
+                .map(|at| (at - times[&r.prediction_id]) as f64),
+        })
+        .collect();
+    let km = kaplan_meier(&obs, horizon as f64).unwrap();
+    let (estimate, lower, upper) = km.eventual_share_interval(0.95).unwrap();
+    assert_eq!(num(&e["estimate"]), estimate);
+    assert_eq!((num(&e["lower"]), num(&e["upper"])), (lower, upper));
+    let within = obs
+        .iter()
+        .filter(|o| o.positive_after.is_some_and(|d| d <= horizon as f64))
+        .count();
+    assert_eq!(e["positives_so_far"], within);
+    let so_far = arrivals.len() as f64 / 3000.0;
+    // The truth of this section: the share of its predictions that turn positive within the horizon.
+    let truth = eventual.iter().filter(|e| e.1 <= horizon).count() as f64 / 3000.0;
+    assert!(estimate > so_far, "{estimate} vs {so_far}");
+    assert!(lower <= truth && truth <= upper, "{lower} {truth} {upper}");
+    println!("eventual rate {estimate:.4} ({lower:.4} to {upper:.4}), received so far {so_far:.4}, truth {truth:.4}");
 }

@@ -461,5 +461,109 @@ async fn outcomes_through_the_service_give_the_reference_report_and_matching_sum
     }
     assert!(sample_sum(&text, "probity_psi", &[("route", "drift")]) > 0.0);
     assert!(text.contains("probity_base_rate_estimate{"));
+
+    // Calibration tests (Spiegelhalter 1986; Cox 1958) in the Report RPC, its JSON, and as gauges for alert rules,
+    // against tests/fixtures/monitor/report_model.json: statsmodels 0.15.0 Logit (slope, Wald interval) and GLM with
+    // offset (calibration-in-the-large), and Spiegelhalter's z by numpy from the 1986 formula, all on the log-odds
+    // served here. Tolerance 1e-7 relative (statsmodels' Newton stops at its own tolerance).
+    let cal: Value = serde_json::from_str(
+        &std::fs::read_to_string(concat!(
+            env!("CARGO_MANIFEST_DIR"),
+            "/../tests/fixtures/monitor/report_model.json"
+        ))
+        .unwrap(),
+    )
+    .unwrap();
+    let near = |a: f64, e: &Value, what: &str| {
+        let e = e.as_f64().unwrap();
+        assert!(
+            (a - e).abs() <= 1e-7 * e.abs().max(1.0),
+            "{what}: expected {e}, actual {a}"
+        );
+    };
+    let rpc = report.series.iter().find(|s| s.route == "bc").unwrap();
+    let (rs, rc) = (&cal["spiegelhalter"], &cal["recalibration"]);
+    near(rpc.spiegelhalter_z.unwrap(), &rs["z"], "Spiegelhalter z");
+    near(
+        rpc.spiegelhalter_p_value.unwrap(),
+        &rs["p_value"],
+        "Spiegelhalter p",
+    );
+    near(
+        rpc.calibration_slope.unwrap(),
+        &rc["slope"]["estimate"],
+        "slope",
+    );
+    near(
+        rpc.calibration_slope_lower.unwrap(),
+        &rc["slope"]["lower"],
+        "slope lower",
+    );
+    near(
+        rpc.calibration_slope_upper.unwrap(),
+        &rc["slope"]["upper"],
+        "slope upper",
+    );
+    near(
+        rpc.calibration_in_the_large.unwrap(),
+        &rc["in_the_large"]["estimate"],
+        "in the large",
+    );
+    near(
+        rpc.calibration_in_the_large_lower.unwrap(),
+        &rc["in_the_large"]["lower"],
+        "in the large lower",
+    );
+    near(
+        rpc.calibration_in_the_large_upper.unwrap(),
+        &rc["in_the_large"]["upper"],
+        "in the large upper",
+    );
+    near(
+        rpc.recalibration_p_value.unwrap(),
+        &rc["joint_p_value"],
+        "joint p",
+    );
+    let tests = &bc["calibration_tests"];
+    near(
+        g(&tests["recalibration"]["slope"]["standard_error"]),
+        &rc["slope"]["standard_error"],
+        "JSON slope standard error",
+    );
+    near(
+        g(&tests["spiegelhalter"]["z"]),
+        &rs["z"],
+        "JSON Spiegelhalter z",
+    );
+    // The eventual positive rate (Kaplan-Meier; checked in report_cli.rs and models/tests/delay_sim.rs) travels
+    // in the RPC as in the JSON.
+    let ev = &bc["eventual_positive_rate"];
+    assert_eq!(rpc.eventual_positive_rate, ev["estimate"].as_f64());
+    assert_eq!(rpc.eventual_positive_rate_lower, ev["lower"].as_f64());
+    assert_eq!(rpc.eventual_positive_rate_upper, ev["upper"].as_f64());
+    assert!(rpc.eventual_positive_rate.is_some(), "{ev}");
+    let started = std::time::Instant::now();
+    loop {
+        let text = http_get(server.metrics_addr(), "/metrics").await;
+        let labels = [("route", "bc"), ("role", "champion")];
+        if sample_sum(&text, "probity_calibration_outcomes", &labels) == n as f64 {
+            near(
+                sample_sum(&text, "probity_calibration_slope_upper", &labels),
+                &rc["slope"]["upper"],
+                "exported slope upper",
+            );
+            near(
+                sample_sum(&text, "probity_calibration_spiegelhalter_p_value", &labels),
+                &rs["p_value"],
+                "exported Spiegelhalter p",
+            );
+            break;
+        }
+        assert!(
+            started.elapsed() < Duration::from_secs(30),
+            "calibration gauges not exported"
+        );
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
     server.shutdown().await;
 }

@@ -9,6 +9,7 @@
 //! [`text`] renders the table, [`svg`] the picture of both reliability curves and the paired-difference distribution;
 //! the report itself serializes to JSON.
 
+pub mod always_valid;
 pub mod svg;
 pub mod text;
 
@@ -88,6 +89,12 @@ pub struct CompareReport {
     pub differences: Vec<f64>,
     /// What `differences` holds.
     pub differences_kind: String,
+    /// The always-valid figures the verdict is based on.
+    pub always_valid: always_valid::AlwaysValid,
+    /// The verdict of the fixed-sample tests (valid at one planned look only), beside it.
+    pub fixed_sample_verdict_code: String,
+    /// The same in words.
+    pub fixed_sample_verdict: String,
 }
 
 fn most_frequent<'a>(it: impl Iterator<Item = &'a str>) -> Option<String> {
@@ -258,6 +265,7 @@ pub fn build(
         ..OutcomeOptions::default()
     };
     let outcomes = compare_outcomes(&la, &lb, &y, &options)?;
+    let (always_valid, verdict) = always_valid::compute(&outcomes);
     let reliability = if y.is_empty() {
         None
     } else {
@@ -291,10 +299,13 @@ pub fn build(
         paired_with_outcome: labelled.len(),
         agreement: agreement.as_ref().map(agreement_json),
         outcomes: outcomes_json(&outcomes),
-        verdict_code: outcomes.verdict.code().to_string(),
-        verdict: outcomes.verdict.to_string(),
+        verdict_code: verdict.code().to_string(),
+        verdict: format!("{verdict} (always-valid p-values)"),
         reliability,
         differences,
         differences_kind: differences_kind.to_string(),
+        always_valid,
+        fixed_sample_verdict_code: outcomes.verdict.code().to_string(),
+        fixed_sample_verdict: outcomes.verdict.to_string(),
     })
 }

@@ -115,6 +115,7 @@ pub fn render(r: &CompareReport) -> String {
             );
         }
     }
+    super::always_valid::render(&mut s, &r.always_valid, &r.fixed_sample_verdict);
     let _ = writeln!(s, "\nverdict: {}", r.verdict);
     s
 }

@@ -19,6 +19,8 @@
 //!
 //! [`text`] renders the terminal table, [`svg`] the pictures; the JSON is this module's types through serde.
 
+pub mod calibration_tests;
+pub mod immature;
 pub mod svg;
 pub mod text;
 
@@ -122,6 +124,11 @@ pub struct SeriesReport {
     pub histogram_positive: Vec<u64>,
     /// Why a figure is missing.
     pub notes: Vec<String>,
+    /// Calibration tests on the pairs with an outcome (Spiegelhalter 1986; Cox 1958).
+    pub calibration_tests: calibration_tests::CalibrationTests,
+    /// Estimated eventual positive rate of all the section's predictions, outcomes still arriving included
+    /// (Kaplan-Meier; see [`immature`]).
+    pub eventual_positive_rate: Option<immature::EventualRate>,
 }
 
 /// Murphy's decomposition with the two within-bin terms.
@@ -507,6 +514,8 @@ pub fn section(
     let all_p: Vec<f64> = rows.iter().map(|r| r.probability).collect();
     let (em_p, rates) = on_one_prior(&mut notes, rows, rates);
     let base_rate_estimate = em_estimate(&mut notes, &em_p, rates);
+    let calibration_tests = calibration_tests::compute(&p, &h, &y, &mut notes);
+    let eventual_positive_rate = immature::compute(rows, &mut notes);
     SeriesReport {
         route,
         model,
@@ -535,6 +544,8 @@ pub fn section(
         histogram_negative,
         histogram_positive,
         notes,
+        calibration_tests,
+        eventual_positive_rate,
     }
 }
 

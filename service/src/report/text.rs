@@ -92,6 +92,8 @@ fn section(s: &mut String, r: &SeriesReport) {
             hl.statistic, hl.degrees_of_freedom, hl.p_value
         );
     }
+    super::calibration_tests::render(s, &r.calibration_tests);
+    super::immature::render(s, &r.eventual_positive_rate);
     if !r.gains.is_empty() {
         let _ = writeln!(
             s,

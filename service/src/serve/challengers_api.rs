@@ -94,7 +94,23 @@ fn compare_on(
         verdict: report.verdict.clone(),
         report_json: serde_json::to_string(&report).unwrap_or_default(),
         table: compare::text::render(&report),
+        ..always_valid_fields(&report)
     })
+}
+
+/// The always-valid fields of the Compare answer (the others at their defaults).
+fn always_valid_fields(report: &compare::CompareReport) -> pb::CompareResponse {
+    let a = &report.always_valid;
+    pb::CompareResponse {
+        fixed_sample_verdict_code: report.fixed_sample_verdict_code.clone(),
+        log_loss_always_valid_p_value: a.log_loss.as_ref().and_then(|s| s.p_value),
+        log_loss_difference_lower: a.log_loss.as_ref().map(|s| s.lower),
+        log_loss_difference_upper: a.log_loss.as_ref().map(|s| s.upper),
+        auc_always_valid_p_value: a.auc.as_ref().and_then(|s| s.p_value),
+        auc_difference_lower: a.auc.as_ref().map(|s| s.lower),
+        auc_difference_upper: a.auc.as_ref().map(|s| s.upper),
+        ..pb::CompareResponse::default()
+    }
 }
 
 impl From<compare::CompareReportError> for ServeError {

@@ -70,6 +70,15 @@ fn set(report: &CompareReport) {
     gauge("log_loss_p_value", o["log_loss_test"]["p_value"].as_f64());
     gauge("auc_difference", o["delong"]["difference"].as_f64());
     gauge("auc_p_value", o["delong"]["p_value"].as_f64());
+    // The always-valid figures the verdict rests on (may be read at every refresh).
+    let a = &report.always_valid;
+    for (name, seq) in [("log_loss", &a.log_loss), ("auc", &a.auc)] {
+        if let Some(q) = seq {
+            gauge(&format!("{name}_always_valid_p_value"), q.p_value);
+            gauge(&format!("{name}_difference_lower"), Some(q.lower));
+            gauge(&format!("{name}_difference_upper"), Some(q.upper));
+        }
+    }
     for code in VERDICTS {
         let mut l = labels.to_vec();
         l.push(("verdict", code.to_string()));

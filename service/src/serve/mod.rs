@@ -12,6 +12,7 @@
 //!   ([`server::start_with_store`] is the same with the prediction log in a given [`crate::store::Store`]).
 
 pub mod base_rate;
+pub mod calibration_metrics;
 pub mod challenger;
 pub mod challengers_api;
 pub mod compare_metrics;

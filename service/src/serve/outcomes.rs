@@ -150,6 +150,29 @@ async fn record(
     on_store(slots, log, move |log| log.record_outcomes(&inputs)).await
 }
 
+/// The calibration-test and eventual-rate fields of a report section's wire message (the others at their
+/// defaults).
+fn monitor_fields(s: &crate::report::SeriesReport) -> pb::ReportSeries {
+    let t = &s.calibration_tests;
+    let r = t.recalibration.as_ref();
+    let e = s.eventual_positive_rate.as_ref();
+    pb::ReportSeries {
+        spiegelhalter_z: t.spiegelhalter.as_ref().map(|z| z.z),
+        spiegelhalter_p_value: t.spiegelhalter.as_ref().map(|z| z.p_value),
+        calibration_slope: r.map(|r| r.slope.estimate),
+        calibration_slope_lower: r.map(|r| r.slope.lower),
+        calibration_slope_upper: r.map(|r| r.slope.upper),
+        calibration_in_the_large: r.map(|r| r.in_the_large.estimate),
+        calibration_in_the_large_lower: r.map(|r| r.in_the_large.lower),
+        calibration_in_the_large_upper: r.map(|r| r.in_the_large.upper),
+        recalibration_p_value: r.map(|r| r.joint_p_value),
+        eventual_positive_rate: e.map(|e| e.estimate),
+        eventual_positive_rate_lower: e.map(|e| e.lower),
+        eventual_positive_rate_upper: e.map(|e| e.upper),
+        ..pb::ReportSeries::default()
+    }
+}
+
 /// The report as its wire message.
 pub fn report_response(report: &Report) -> pb::ReportResponse {
     let series = report
@@ -177,6 +200,7 @@ pub fn report_response(report: &Report) -> pb::ReportResponse {
             psi: s.psi.as_ref().map(|p| p.value),
             base_rate_estimate: s.base_rate_estimate,
             configured_base_rate: s.configured_base_rate,
+            ..monitor_fields(s)
         })
         .collect();
     pb::ReportResponse {

@@ -463,6 +463,10 @@ async fn start_inner(
                 base_rate_from_estimate,
             ));
         }
+        background.push(crate::serve::calibration_metrics::task(
+            Arc::clone(&scorer),
+            log_config.sweep_interval,
+        ));
         if scorer.routes().values().any(|r| !r.challengers.is_empty()) {
             background.push(crate::serve::compare_metrics::task(
                 Arc::clone(&scorer),

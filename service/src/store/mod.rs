@@ -260,6 +260,8 @@ pub struct LoggedPrediction {
     pub corrected: bool,
     /// The base rate its probability is calibrated to, when the log kept it ([`Served::prior`]).
     pub served_prior: Option<f64>,
+    /// When the latest label was received (ms), if the outcome is known.
+    pub outcome_received_ms: Option<i64>,
 }
 
 /// Counts of the outcome table, for reports and gauges.
@@ -462,6 +464,29 @@ pub trait Store: Send {
     fn lead_sweeps(&mut self) -> Result<bool, StoreError> {
         Ok(true)
     }
+
+    /// The matched pairs of one route in a lean form (no names or ids per row), for figures refreshed often (the
+    /// calibration gauges). By default taken from [`Store::load`].
+    fn labelled_pairs(&mut self, route: &str) -> Result<LabelledPairs, StoreError> {
+        let rows = self.load(&ReportFilter {
+            route: Some(route.to_string()),
+            ..ReportFilter::default()
+        })?;
+        let mut out = LabelledPairs::default();
+        for r in rows {
+            if let Some(label) = r.label {
+                out.push(
+                    &r.model,
+                    &r.version,
+                    &r.role,
+                    r.probability,
+                    r.adjusted_log_odds,
+                    label,
+                );
+            }
+        }
+        Ok(out)
+    }
 }
 
 /// Why an outcome is refused, or `None`.
@@ -477,4 +502,40 @@ pub(crate) fn invalid_outcome(o: &OutcomeInput) -> Option<String> {
         return Some("outcome_time: must not be before 1970".into());
     }
     None
+}
+
+/// Matched pairs of one route grouped by series, without per-row names.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct LabelledPairs {
+    /// (model, version, role) of each series.
+    pub series: Vec<(String, String, String)>,
+    /// (series index, probability, final log-odds, label) of each pair.
+    pub rows: Vec<(usize, f64, f64, bool)>,
+}
+
+impl LabelledPairs {
+    /// Adds one pair, finding or adding its series (a handful per route, so a scan).
+    pub fn push(
+        &mut self,
+        model: &str,
+        version: &str,
+        role: &str,
+        probability: f64,
+        log_odds: f64,
+        label: bool,
+    ) {
+        let i = match self
+            .series
+            .iter()
+            .position(|(m, v, r)| m == model && v == version && r == role)
+        {
+            Some(i) => i,
+            None => {
+                self.series
+                    .push((model.to_string(), version.to_string(), role.to_string()));
+                self.series.len() - 1
+            }
+        };
+        self.rows.push((i, probability, log_odds, label));
+    }
 }

@@ -386,6 +386,40 @@ impl Store for SqliteStore {
         self.load_inner(filter)
     }
 
+    fn labelled_pairs(&mut self, route: &str) -> Result<super::LabelledPairs, StoreError> {
+        let mut stmt = self
+            .conn
+            .prepare_cached(
+                "SELECT p.model, p.version, p.role, p.probability, p.adjusted_log_odds, o.label
+                 FROM predictions p
+                 JOIN outcomes o ON o.prediction_id = p.prediction_id AND o.state = 'matched'
+                 WHERE p.route = ?1
+                 ORDER BY p.seq",
+            )
+            .map_err(db("labelled pairs query"))?;
+        let mut rows = stmt
+            .query(params![route])
+            .map_err(db("labelled pairs query"))?;
+        let mut out = super::LabelledPairs::default();
+        while let Some(r) = rows.next().map_err(db("labelled pairs query"))? {
+            let text = |i: usize| -> Result<&str, StoreError> {
+                r.get_ref(i)
+                    .and_then(|v| v.as_str().map_err(Into::into))
+                    .map_err(db("labelled pairs query"))
+            };
+            let label: i64 = r.get(5).map_err(db("labelled pairs query"))?;
+            out.push(
+                text(0)?,
+                text(1)?,
+                text(2)?,
+                r.get(3).map_err(db("labelled pairs query"))?,
+                r.get(4).map_err(db("labelled pairs query"))?,
+                label != 0,
+            );
+        }
+        Ok(out)
+    }
+
     fn model_version(
         &mut self,
         model: &str,
@@ -614,7 +648,7 @@ impl SqliteStore {
             .conn
             .prepare(
                 "SELECT p.route, p.model, p.version, p.role, p.time_ms, p.adjusted_log_odds, p.probability,
-                        o.label, o.source, o.revision, p.prediction_id, p.served_prior
+                        o.label, o.source, o.revision, p.prediction_id, p.served_prior, o.received_ms
                  FROM predictions p
                  LEFT JOIN outcomes o ON o.prediction_id = p.prediction_id AND o.state = ?6
                  WHERE (?1 IS NULL OR p.time_ms >= ?1) AND (?2 IS NULL OR p.time_ms < ?2)
@@ -651,6 +685,7 @@ impl SqliteStore {
                             == Some(Source::Maturity),
                         corrected: revision.unwrap_or(0) > 0,
                         served_prior: r.get(11)?,
+                        outcome_received_ms: r.get(12)?,
                     })
                 },
             )
