@@ -40,6 +40,8 @@ enum Command {
     Report(cli::report::ReportArgs),
     /// Champion against challenger on one route, from a prediction log (table, JSON, SVG).
     Compare(cli::compare::CompareArgs),
+    /// Send outcomes (prediction id, label, optional time) from a CSV file to a running server, in batches.
+    SendOutcomes(cli::send_outcomes::SendOutcomesArgs),
     /// Make a challenger a route's champion on a running server (the `admin` role); recorded in the history.
     Promote(cli::promote::PromoteArgs),
     /// A running server's route promotion history.
@@ -58,6 +60,7 @@ fn run() -> anyhow::Result<()> {
         Command::Evaluate(args) => cli::evaluate::run(&args),
         Command::Report(args) => cli::report::run(&args),
         Command::Compare(args) => cli::compare::run(&args),
+        Command::SendOutcomes(args) => cli::send_outcomes::run(&args),
         Command::Promote(args) => cli::promote::run_promote(&args),
         Command::RouteHistory(args) => cli::promote::run_history(&args),
         Command::Serve(args) => Ok(probity::serve::run(&args)?),

@@ -12,6 +12,7 @@ pub mod promote;
 pub mod reliability;
 pub mod report;
 pub mod score;
+pub mod send_outcomes;
 pub mod when;
 
 /// Said once at the end of every human-readable report (demo, report, compare, calibrate, evaluate).
