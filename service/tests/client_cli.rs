@@ -183,3 +183,104 @@ async fn send_outcomes_reports_each_status_and_names_bad_rows() {
     let text = String::from_utf8_lossy(&out.stdout);
     assert!(text.contains("duplicate 1"), "{text}");
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn score_through_the_server_writes_what_offline_scoring_writes() {
+    let s = serve().await;
+    let url = format!("http://{}", s.server.grpc_addr());
+    let dir = tempfile::tempdir().unwrap();
+    let input = fixture("labelled.csv").to_string_lossy().into_owned();
+    let model = fixture("champion.json").to_string_lossy().into_owned();
+    let offline = dir
+        .path()
+        .join("offline.csv")
+        .to_string_lossy()
+        .into_owned();
+    let remote = dir.path().join("remote.csv").to_string_lossy().into_owned();
+    let out = probity(strings(&[
+        "score",
+        "--model",
+        &model,
+        "--input",
+        &input,
+        "--output",
+        &offline,
+        "--keep-training-base-rate",
+        "--warnings-column",
+        "-q",
+    ]))
+    .await;
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    // 284 rows in batches of 100: three calls.
+    let out = probity(strings(&[
+        "score",
+        "--server",
+        &url,
+        "--route",
+        "bc",
+        "--input",
+        &input,
+        "--output",
+        &remote,
+        "--batch-size",
+        "100",
+        "--warnings-column",
+        "-q",
+    ]))
+    .await;
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let (a, b) = (
+        std::fs::read_to_string(&offline).unwrap(),
+        std::fs::read_to_string(&remote).unwrap(),
+    );
+    assert_eq!(a.lines().count(), 285);
+    assert_eq!(a, b, "the server's output differs from offline scoring");
+
+    // A bad cell: the same error, naming row and column, from both; no output is left behind.
+    let body = std::fs::read_to_string(&input).unwrap();
+    let header = body.lines().next().unwrap();
+    let col = header.split(',').position(|c| c == "mean_texture").unwrap();
+    let mut lines: Vec<String> = body.lines().map(String::from).collect();
+    let mut cells: Vec<&str> = lines[2].split(',').collect();
+    cells[col] = "abc";
+    lines[2] = cells.join(",");
+    let bad = write(dir.path(), "bad.csv", &(lines.join("\n") + "\n"));
+    let gone = dir.path().join("gone.csv").to_string_lossy().into_owned();
+    let off = probity(strings(&[
+        "score",
+        "--model",
+        &model,
+        "--input",
+        &bad,
+        "--output",
+        &gone,
+        "--keep-training-base-rate",
+    ]))
+    .await;
+    let rem = probity(strings(&[
+        "score", "--server", &url, "--route", "bc", "--input", &bad, "--output", &gone,
+    ]))
+    .await;
+    assert!(!off.status.success() && !rem.status.success());
+    let (e1, e2) = (
+        String::from_utf8_lossy(&off.stderr).into_owned(),
+        String::from_utf8_lossy(&rem.stderr).into_owned(),
+    );
+    assert!(
+        e1.contains("row 2 (line 3), column `mean_texture`: `abc` is not a number"),
+        "{e1}"
+    );
+    assert!(
+        e2.contains("row 2 (line 3), column `mean_texture`: `abc` is not a number"),
+        "{e2}"
+    );
+    assert!(!Path::new(&gone).exists());
+}

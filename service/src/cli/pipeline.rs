@@ -107,7 +107,7 @@ impl ColumnMap {
     /// Encodes `record` into `row` (one value per feature) under [`Schema::read_text`]'s rule, and lists in `notes`
     /// what was noticed (feature index and note; an absent column is a missing cell). `number` is the 1-based data
     /// row, for errors.
-    fn encode(
+    pub fn encode(
         &self,
         schema: &Schema,
         record: &StringRecord,
@@ -240,9 +240,11 @@ impl RunNotes {
 
 /// A cell that could not be read: where (`row N (line L)`) and why (naming the column).
 #[derive(Debug)]
-struct BadCell {
-    place: String,
-    reason: String,
+pub struct BadCell {
+    /// `row N (line L)`.
+    pub place: String,
+    /// Why, naming the column.
+    pub reason: String,
 }
 
 impl std::fmt::Display for BadCell {

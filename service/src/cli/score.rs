@@ -13,15 +13,17 @@ use probity_models::{DecisionRule, Model, OutputSpec, Scored};
 
 use super::pipeline::{csv_reader, score_records, ColumnMap, OnReject, Rejected, RunNotes};
 
+mod remote;
+
 /// Files smaller than this finish before a progress bar is worth drawing.
 const PROGRESS_MIN_BYTES: u64 = 1 << 20;
 
 /// Arguments of `probity score`.
 #[derive(Debug, clap::Args)]
 pub struct ScoreArgs {
-    /// The model file.
-    #[arg(long)]
-    pub model: PathBuf,
+    /// The model file (or --server and --route to score through a running server).
+    #[arg(long, required_unless_present = "server")]
+    pub model: Option<PathBuf>,
     /// The CSV file to score; its header names the columns, and a column per model feature is expected.
     #[arg(long)]
     pub input: PathBuf,
@@ -70,6 +72,37 @@ pub struct ScoreArgs {
     /// No progress bar and no summary line.
     #[arg(long, short)]
     pub quiet: bool,
+    /// Score through a running server instead of a model file (http://HOST:PORT or https://HOST:PORT); the
+    /// route's own base rate and decision rule apply.
+    #[arg(
+        long,
+        value_name = "URL",
+        requires = "route",
+        conflicts_with_all = ["model", "target_base_rate", "keep_training_base_rate", "threshold",
+            "cost_false_positive", "cost_false_negative"]
+    )]
+    pub server: Option<String>,
+    /// With --server: the route that scores.
+    #[arg(long, requires = "server")]
+    pub route: Option<String>,
+    /// With --server: rows per call (at most the server's `limits.max_batch_rows`).
+    #[arg(long, value_name = "N", default_value_t = 500)]
+    pub batch_size: usize,
+    /// With --server: PEM certificate(s) of the authority that signed the server's certificate.
+    #[arg(long, value_name = "FILE", requires = "server")]
+    pub ca_file: Option<PathBuf>,
+    /// With --server: PEM client certificate for mutual TLS (with --client-key).
+    #[arg(long, value_name = "FILE", requires_all = ["server", "client_key"])]
+    pub client_cert: Option<PathBuf>,
+    /// With --server: PEM private key of --client-cert.
+    #[arg(long, value_name = "FILE", requires_all = ["server", "client_cert"])]
+    pub client_key: Option<PathBuf>,
+    /// With --server: a file holding a bearer token of a configured caller.
+    #[arg(long, value_name = "FILE", requires = "server")]
+    pub token_file: Option<PathBuf>,
+    /// With --server: the name to verify the server's certificate against.
+    #[arg(long, value_name = "NAME", requires = "server")]
+    pub tls_server_name: Option<String>,
 }
 
 /// The error policy of a scoring run.
@@ -83,13 +116,16 @@ pub enum OnError {
 
 /// Runs `probity score`.
 pub fn run(args: &ScoreArgs) -> anyhow::Result<()> {
-    let model = load_model(&args.model)?;
+    let Some(model_path) = &args.model else {
+        return remote::run(args);
+    };
+    let model = load_model(model_path)?;
     if args.target_base_rate.is_none() && !args.keep_training_base_rate {
         bail!(
             "no base rate given: {} was trained (or calibrated) at a base rate of {}, and a model trained on \
              re-sampled data overstates every probability when served at it; give --target-base-rate P (the scored \
              population's base rate) or --keep-training-base-rate",
-            args.model.display(),
+            model_path.display(),
             model.base_rate()
         );
     }
