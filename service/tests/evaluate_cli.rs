@@ -319,3 +319,94 @@ fn text_svg_and_bad_labels() {
         "{err}"
     );
 }
+
+#[test]
+fn gzip_and_delimiter_read_the_same_rows() {
+    use std::io::Write as _;
+    let dir = tempfile::tempdir().unwrap();
+    let (model, input) = (fixture("champion.json"), fixture("labelled.csv"));
+    let body = std::fs::read_to_string(&input).unwrap().replace(',', ";");
+    let packed = dir.path().join("labelled.csv.gz");
+    let mut gz = flate2::write::GzEncoder::new(
+        std::fs::File::create(&packed).unwrap(),
+        flate2::Compression::default(),
+    );
+    gz.write_all(body.as_bytes()).unwrap();
+    gz.finish().unwrap();
+    let packed = packed.to_string_lossy().into_owned();
+
+    // evaluate: the same figures from the compressed, semicolon-separated copy.
+    let plain = run_json(&[]);
+    let out = probity(&[
+        "evaluate",
+        "--model",
+        &model,
+        "--input",
+        &packed,
+        "--label-column",
+        "y",
+        "--json",
+        "--delimiter",
+        ";",
+    ]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let packed_json: Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(plain["champion"], packed_json["champion"]);
+
+    // score: the same output file.
+    let (a, b) = (dir.path().join("a.csv"), dir.path().join("b.csv"));
+    for (inp, outp, delim) in [(&input, &a, ","), (&packed, &b, ";")] {
+        let out = probity(&[
+            "score",
+            "--model",
+            &model,
+            "--input",
+            inp,
+            "--output",
+            outp.to_str().unwrap(),
+            "--keep-training-base-rate",
+            "--delimiter",
+            delim,
+            "-q",
+        ]);
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+    }
+    assert_eq!(std::fs::read(&a).unwrap(), std::fs::read(&b).unwrap());
+
+    // Without --delimiter the message says what the file looks like and how to read it.
+    let out = probity(&[
+        "evaluate",
+        "--model",
+        &model,
+        "--input",
+        &packed,
+        "--label-column",
+        "y",
+    ]);
+    assert!(!out.status.success());
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(
+        err.contains("separated by `;`") && err.contains("--delimiter"),
+        "{err}"
+    );
+    let out = probity(&[
+        "score",
+        "--model",
+        &model,
+        "--input",
+        &packed,
+        "--output",
+        "x.csv",
+        "--delimiter",
+        "ab",
+    ]);
+    assert!(String::from_utf8_lossy(&out.stderr).contains("is not a field separator"));
+}

@@ -16,7 +16,7 @@ use probity_models::metrics::{BinStrategy, HlGrouping};
 use probity_models::{Model, OutputSpec};
 use serde_json::{json, Value};
 
-use super::pipeline::{csv_reader, score_records, ColumnMap};
+use super::pipeline::{csv_reader_with, decompressed, score_records, ColumnMap};
 use super::score::load_model;
 use probity::charts::palette;
 use probity::charts::pictures::{self, Curve, ProbabilityAxis};
@@ -79,6 +79,9 @@ pub struct EvaluateArgs {
     /// Read a feature the input has no column for as missing on every row, instead of stopping.
     #[arg(long)]
     pub allow_missing_columns: bool,
+    /// Field separator of the input: one ASCII character, or `tab`. Gzip-compressed input is read as is.
+    #[arg(long, value_name = "CHAR", default_value = ",", value_parser = super::pipeline::parse_delimiter)]
+    pub delimiter: u8,
     /// Print JSON instead of the table.
     #[arg(long)]
     pub json: bool,
@@ -203,11 +206,16 @@ fn read_scored(
 ) -> anyhow::Result<(Vec<f64>, Vec<f64>, Vec<bool>)> {
     let file =
         File::open(&args.input).with_context(|| format!("cannot open {}", args.input.display()))?;
-    let mut reader = csv_reader(file);
+    let mut reader = csv_reader_with(
+        decompressed(file).with_context(|| format!("cannot read {}", args.input.display()))?,
+        args.delimiter,
+    );
     let header = reader
         .headers()
         .with_context(|| format!("cannot read the header row of {}", args.input.display()))?
         .clone();
+    let columns = ColumnMap::new(model.schema(), &header, None, args.allow_missing_columns)
+        .with_context(|| format!("cannot read {}", args.input.display()))?;
     let label_col = header
         .iter()
         .position(|c| c == args.label_column)
@@ -218,8 +226,6 @@ fn read_scored(
                 args.label_column
             )
         })?;
-    let columns = ColumnMap::new(model.schema(), &header, None, args.allow_missing_columns)
-        .with_context(|| format!("cannot read {}", args.input.display()))?;
     let (mut h, mut p, mut y) = (Vec::new(), Vec::new(), Vec::new());
     let mut row = 0u64;
     score_records(

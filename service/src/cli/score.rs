@@ -11,7 +11,9 @@ use csv::StringRecord;
 use indicatif::{ProgressBar, ProgressStyle};
 use probity_models::{DecisionRule, Model, OutputSpec, Scored};
 
-use super::pipeline::{csv_reader, score_records, ColumnMap, OnReject, Rejected, RunNotes};
+use super::pipeline::{
+    csv_reader_with, decompressed, score_records, ColumnMap, OnReject, Rejected, RunNotes,
+};
 
 mod remote;
 
@@ -69,6 +71,9 @@ pub struct ScoreArgs {
     /// unknown categories, every feature missing); a summary by kind and column is printed either way.
     #[arg(long)]
     pub warnings_column: bool,
+    /// Field separator of the input: one ASCII character, or `tab`. Gzip-compressed input is read as is.
+    #[arg(long, value_name = "CHAR", default_value = ",", value_parser = super::pipeline::parse_delimiter)]
+    pub delimiter: u8,
     /// No progress bar and no summary line.
     #[arg(long, short)]
     pub quiet: bool,
@@ -159,7 +164,11 @@ pub fn run(args: &ScoreArgs) -> anyhow::Result<()> {
     } else {
         ProgressBar::hidden()
     };
-    let mut reader = csv_reader(progress.wrap_read(input));
+    let mut reader = csv_reader_with(
+        decompressed(progress.wrap_read(input))
+            .with_context(|| format!("cannot read {}", args.input.display()))?,
+        args.delimiter,
+    );
     // Written beside the target and renamed over it only when the whole run succeeds: a failed run leaves any
     // existing file as it was, and a half-written output never passes for a result.
     let output = Staged::beside(&args.output)?;

@@ -16,7 +16,7 @@ use probity::serve::proto as pb;
 use probity_models::{Feature, FeatureKind, Schema};
 
 use super::{refuse_same_file, OnError, ScoreArgs, Staged};
-use crate::cli::pipeline::{csv_reader, ColumnMap, RowNotes, RunNotes};
+use crate::cli::pipeline::{csv_reader_with, decompressed, ColumnMap, RowNotes, RunNotes};
 
 /// One row read and encoded, waiting for its batch.
 struct Pending {
@@ -143,7 +143,10 @@ async fn score_remote<W: Write>(
     let mut scoring = pb::scoring_client::ScoringClient::new(connection);
     let file =
         File::open(&args.input).with_context(|| format!("cannot open {}", args.input.display()))?;
-    let mut reader = csv_reader(file);
+    let mut reader = csv_reader_with(
+        decompressed(file).with_context(|| format!("cannot read {}", args.input.display()))?,
+        args.delimiter,
+    );
     let header = reader
         .headers()
         .context("cannot read the header row")?
