@@ -13,6 +13,7 @@ pub mod compare;
 pub mod decision;
 pub mod engine;
 pub mod error;
+pub mod evaluate;
 pub mod fit;
 pub mod link;
 pub mod metrics;

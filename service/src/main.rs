@@ -33,10 +33,15 @@ enum Command {
     Demo(cli::demo::DemoArgs),
     /// Fit a calibration map from a labelled holdout CSV and write a new model file version carrying it.
     Calibrate(cli::calibrate::CalibrateArgs),
+    /// The report's figures on a labelled CSV file, offline: calibration, log-loss, Brier, AUC, KS, gains, the
+    /// operating point, and a paired comparison with a challenger (table, JSON, SVG).
+    Evaluate(cli::evaluate::EvaluateArgs),
     /// Report from a prediction log: calibration, log-loss, Brier, AUC, KS, gains, PSI (table, JSON, SVG).
     Report(cli::report::ReportArgs),
     /// Champion against challenger on one route, from a prediction log (table, JSON, SVG).
     Compare(cli::compare::CompareArgs),
+    /// Send outcomes (prediction id, label, optional time) from a CSV file to a running server, in batches.
+    SendOutcomes(cli::send_outcomes::SendOutcomesArgs),
     /// Make a challenger a route's champion on a running server (the `admin` role); recorded in the history.
     Promote(cli::promote::PromoteArgs),
     /// A running server's route promotion history.
@@ -52,8 +57,10 @@ fn run() -> anyhow::Result<()> {
         Command::GenerateDemoData(args) => cli::demo_data::run(&args),
         Command::Demo(args) => cli::demo::run(&args),
         Command::Calibrate(args) => cli::calibrate::run(&args),
+        Command::Evaluate(args) => cli::evaluate::run(&args),
         Command::Report(args) => cli::report::run(&args),
         Command::Compare(args) => cli::compare::run(&args),
+        Command::SendOutcomes(args) => cli::send_outcomes::run(&args),
         Command::Promote(args) => cli::promote::run_promote(&args),
         Command::RouteHistory(args) => cli::promote::run_history(&args),
         Command::Serve(args) => Ok(probity::serve::run(&args)?),

@@ -232,7 +232,7 @@ fn gamma_q(a: f64, x: f64) -> f64 {
 
 /// `ln Gamma(x)` for `x > 0` by the Lanczos approximation with `g = 7` and nine coefficients (relative error near
 /// 1e-15; Lanczos 1964, "A precision approximation of the gamma function", SIAM J. Numerical Analysis B1).
-fn ln_gamma(x: f64) -> f64 {
+pub(crate) fn ln_gamma(x: f64) -> f64 {
     const G: f64 = 7.0;
     const C: [f64; 9] = [
         0.999_999_999_999_809_9,

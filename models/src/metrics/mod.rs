@@ -11,6 +11,7 @@
 //! - [`hosmer_lemeshow`](mod@hosmer_lemeshow): the Hosmer-Lemeshow statistic and the chi-square survival function;
 //! - [`ranking`]: ROC AUC, the two-sample KS statistic, gains and lift, counts at a threshold;
 //! - [`drift`]: population stability index and the binning it uses;
+//! - [`tails`]: the KS p-value (asymptotic Kolmogorov) and Student's t p-value;
 //! - [`quantile`]: sample quantiles with linear interpolation, shared by the binning rules.
 
 pub mod calibration_table;
@@ -20,6 +21,7 @@ pub mod interval;
 pub mod loss;
 pub mod quantile;
 pub mod ranking;
+pub mod tails;
 
 pub use calibration_table::{calibration_table, BinStrategy, CalibrationBin, CalibrationTable};
 pub use drift::{
@@ -35,6 +37,7 @@ pub use loss::{
 pub use ranking::{
     confusion_at_threshold, gains_lift, ks_statistic, roc_auc, ConfusionCounts, GainsRow,
 };
+pub use tails::{kolmogorov_sf, ks_p_value, student_t_two_sided_p};
 
 use std::borrow::Cow;
 

@@ -17,7 +17,7 @@ use probity_models::fit::{self, BaseRateCorrection, FitReport, Method, Sampling}
 use probity_models::{Calibration, IsotonicInput, Model, OutputSpec};
 use serde_json::{json, Value};
 
-use super::pipeline::{csv_reader, score_records, ColumnMap};
+use super::pipeline::{csv_reader_with, decompressed, score_records, ColumnMap};
 use super::reliability::reliability_svg;
 
 /// Arguments of `probity calibrate`.
@@ -35,6 +35,9 @@ pub struct CalibrateArgs {
     /// The label column (values 0 or 1).
     #[arg(long, default_value = "label")]
     pub label_column: String,
+    /// Field separator of the input: one ASCII character, or `tab`. Gzip-compressed input is read as is.
+    #[arg(long, value_name = "CHAR", default_value = ",", value_parser = super::pipeline::parse_delimiter)]
+    pub delimiter: u8,
     /// Read the model's raw margin from this column instead of computing it from the features.
     #[arg(long)]
     pub margin_column: Option<String>,
@@ -205,7 +208,7 @@ pub fn run(args: &CalibrateArgs) -> anyhow::Result<()> {
 /// The raw log-odds and 0/1 labels of the holdout, in file order.
 fn read_holdout(model: &Model, args: &CalibrateArgs) -> anyhow::Result<(Vec<f64>, Vec<f64>)> {
     let file = File::open(&args.holdout).context("cannot open")?;
-    let mut reader = csv_reader(file);
+    let mut reader = csv_reader_with(decompressed(file).context("cannot read")?, args.delimiter);
     let header = reader.headers().context("cannot read the header")?.clone();
     let column = |name: &str| {
         header

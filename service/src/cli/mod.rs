@@ -6,14 +6,16 @@ pub mod check;
 pub mod compare;
 pub mod demo;
 pub mod demo_data;
+pub mod evaluate;
 pub mod pipeline;
 pub mod promote;
 pub mod reliability;
 pub mod report;
 pub mod score;
+pub mod send_outcomes;
 pub mod when;
 
-/// Said once at the end of every human-readable report (demo, report, compare, calibrate).
+/// Said once at the end of every human-readable report (demo, report, compare, calibrate, evaluate).
 pub const CAUTIONS: &str =
     "Probabilities are decision support; thresholds and adverse-action duties follow local \
 law and licensed practice; re-validate a model before using it on a new population.";

@@ -59,7 +59,7 @@ impl ColumnMap {
             {
                 bail!(
                     "the header is one column `{}`: the file looks separated by {}; probity reads comma-separated \
-                     files",
+                     files unless told otherwise (--delimiter)",
                     header[0].chars().take(80).collect::<String>(),
                     if d == '\t' { "tabs".to_string() } else { format!("`{d}`") }
                 );
@@ -107,7 +107,7 @@ impl ColumnMap {
     /// Encodes `record` into `row` (one value per feature) under [`Schema::read_text`]'s rule, and lists in `notes`
     /// what was noticed (feature index and note; an absent column is a missing cell). `number` is the 1-based data
     /// row, for errors.
-    fn encode(
+    pub fn encode(
         &self,
         schema: &Schema,
         record: &StringRecord,
@@ -240,9 +240,11 @@ impl RunNotes {
 
 /// A cell that could not be read: where (`row N (line L)`) and why (naming the column).
 #[derive(Debug)]
-struct BadCell {
-    place: String,
-    reason: String,
+pub struct BadCell {
+    /// `row N (line L)`.
+    pub place: String,
+    /// Why, naming the column.
+    pub reason: String,
 }
 
 impl std::fmt::Display for BadCell {
@@ -376,7 +378,39 @@ pub fn score_records<R: Read>(
 
 /// A CSV reader with the settings every command uses: a header row, header names trimmed.
 pub fn csv_reader<R: Read>(input: R) -> csv::Reader<R> {
+    csv_reader_with(input, b',')
+}
+
+/// [`csv_reader`] with another field separator (`--delimiter`).
+pub fn csv_reader_with<R: Read>(input: R, delimiter: u8) -> csv::Reader<R> {
     csv::ReaderBuilder::new()
+        .delimiter(delimiter)
         .trim(csv::Trim::Headers)
         .from_reader(input)
+}
+
+/// The bytes of an input file, decompressed when the file is gzip (found by its first two bytes, `1f 8b`, not by its
+/// name); members of a multi-member gzip file are read one after another.
+pub fn decompressed<R: Read + 'static>(raw: R) -> std::io::Result<Box<dyn Read>> {
+    use std::io::BufRead as _;
+    let mut buffered = std::io::BufReader::with_capacity(1 << 16, raw);
+    let gzip = buffered.fill_buf()?.starts_with(&[0x1f, 0x8b]);
+    Ok(if gzip {
+        Box::new(flate2::bufread::MultiGzDecoder::new(buffered))
+    } else {
+        Box::new(buffered)
+    })
+}
+
+/// Reads `--delimiter`: one ASCII character, or `tab` (also `\t`).
+pub fn parse_delimiter(text: &str) -> Result<u8, String> {
+    match text {
+        "tab" | "\\t" | "\t" => Ok(b'\t'),
+        _ if text.len() == 1 && text.is_ascii() && text != "\"" && text != "\n" && text != "\r" => {
+            Ok(text.as_bytes()[0])
+        }
+        _ => Err(format!(
+            "`{text}` is not a field separator: give one ASCII character such as `;` or `|`, or `tab`"
+        )),
+    }
 }

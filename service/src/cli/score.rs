@@ -11,7 +11,11 @@ use csv::StringRecord;
 use indicatif::{ProgressBar, ProgressStyle};
 use probity_models::{DecisionRule, Model, OutputSpec, Scored};
 
-use super::pipeline::{csv_reader, score_records, ColumnMap, OnReject, Rejected, RunNotes};
+use super::pipeline::{
+    csv_reader_with, decompressed, score_records, ColumnMap, OnReject, Rejected, RunNotes,
+};
+
+mod remote;
 
 /// Files smaller than this finish before a progress bar is worth drawing.
 const PROGRESS_MIN_BYTES: u64 = 1 << 20;
@@ -19,9 +23,9 @@ const PROGRESS_MIN_BYTES: u64 = 1 << 20;
 /// Arguments of `probity score`.
 #[derive(Debug, clap::Args)]
 pub struct ScoreArgs {
-    /// The model file.
-    #[arg(long)]
-    pub model: PathBuf,
+    /// The model file (or --server and --route to score through a running server).
+    #[arg(long, required_unless_present = "server")]
+    pub model: Option<PathBuf>,
     /// The CSV file to score; its header names the columns, and a column per model feature is expected.
     #[arg(long)]
     pub input: PathBuf,
@@ -74,9 +78,43 @@ pub struct ScoreArgs {
     /// unknown categories, every feature missing); a summary by kind and column is printed either way.
     #[arg(long)]
     pub warnings_column: bool,
+    /// Field separator of the input: one ASCII character, or `tab`. Gzip-compressed input is read as is.
+    #[arg(long, value_name = "CHAR", default_value = ",", value_parser = super::pipeline::parse_delimiter)]
+    pub delimiter: u8,
     /// No progress bar and no summary line.
     #[arg(long, short)]
     pub quiet: bool,
+    /// Score through a running server instead of a model file (http://HOST:PORT or https://HOST:PORT); the
+    /// route's own base rate and decision rule apply.
+    #[arg(
+        long,
+        value_name = "URL",
+        requires = "route",
+        conflicts_with_all = ["model", "target_base_rate", "keep_training_base_rate", "threshold",
+            "cost_false_positive", "cost_false_negative"]
+    )]
+    pub server: Option<String>,
+    /// With --server: the route that scores.
+    #[arg(long, requires = "server")]
+    pub route: Option<String>,
+    /// With --server: rows per call (at most the server's `limits.max_batch_rows`).
+    #[arg(long, value_name = "N", default_value_t = 500)]
+    pub batch_size: usize,
+    /// With --server: PEM certificate(s) of the authority that signed the server's certificate.
+    #[arg(long, value_name = "FILE", requires = "server")]
+    pub ca_file: Option<PathBuf>,
+    /// With --server: PEM client certificate for mutual TLS (with --client-key).
+    #[arg(long, value_name = "FILE", requires_all = ["server", "client_key"])]
+    pub client_cert: Option<PathBuf>,
+    /// With --server: PEM private key of --client-cert.
+    #[arg(long, value_name = "FILE", requires_all = ["server", "client_cert"])]
+    pub client_key: Option<PathBuf>,
+    /// With --server: a file holding a bearer token of a configured caller.
+    #[arg(long, value_name = "FILE", requires = "server")]
+    pub token_file: Option<PathBuf>,
+    /// With --server: the name to verify the server's certificate against.
+    #[arg(long, value_name = "NAME", requires = "server")]
+    pub tls_server_name: Option<String>,
 }
 
 /// The error policy of a scoring run.
@@ -90,7 +128,10 @@ pub enum OnError {
 
 /// Runs `probity score`.
 pub fn run(args: &ScoreArgs) -> anyhow::Result<()> {
-    let model = load_model(&args.model)?;
+    let Some(model_path) = &args.model else {
+        return remote::run(args);
+    };
+    let model = load_model(model_path)?;
     let target_base_rate = match (args.target_base_rate, model.serving_base_rate()) {
         (Some(p), _) => Some(p),
         (None, _) if args.keep_training_base_rate => None,
@@ -107,7 +148,7 @@ pub fn run(args: &ScoreArgs) -> anyhow::Result<()> {
             "no base rate given: {} was trained (or calibrated) at a base rate of {}, and a model trained on \
              re-sampled data overstates every probability when served at it; give --target-base-rate P (the scored \
              population's base rate) or --keep-training-base-rate",
-            args.model.display(),
+            model_path.display(),
             model.base_rate()
         ),
     };
@@ -141,7 +182,11 @@ pub fn run(args: &ScoreArgs) -> anyhow::Result<()> {
     } else {
         ProgressBar::hidden()
     };
-    let mut reader = csv_reader(progress.wrap_read(input));
+    let mut reader = csv_reader_with(
+        decompressed(progress.wrap_read(input))
+            .with_context(|| format!("cannot read {}", args.input.display()))?,
+        args.delimiter,
+    );
     // Written beside the target and renamed over it only when the whole run succeeds: a failed run leaves any
     // existing file as it was, and a half-written output never passes for a result.
     let output = Staged::beside(&args.output)?;
@@ -336,6 +381,40 @@ fn significant(v: f64, digits: usize) -> f64 {
         .unwrap_or(v)
 }
 
+impl Precision {
+    /// The precision `score` was asked for.
+    pub fn of(args: &ScoreArgs) -> Precision {
+        if args.full_precision {
+            Precision::Full
+        } else {
+            Precision::Digits(usize::from(args.digits))
+        }
+    }
+
+    /// Appends a margin, log-odds or probability.
+    pub fn push(self, out: &mut StringRecord, v: f64, buf: &mut String) {
+        buf.clear();
+        let v = match self {
+            Precision::Full => v,
+            Precision::Digits(d) => significant(v, d),
+        };
+        let _ = write!(buf, "{v}");
+        out.push_field(buf);
+    }
+
+    /// Appends points: whole points unless at full precision.
+    pub fn push_points(self, out: &mut StringRecord, v: f64, buf: &mut String) {
+        match self {
+            Precision::Full => self.push(out, v, buf),
+            Precision::Digits(_) => {
+                buf.clear();
+                let _ = write!(buf, "{}", v.round());
+                out.push_field(buf);
+            }
+        }
+    }
+}
+
 /// Appends the score fields of `s` to `out` at `precision`.
 pub fn push_scores(
     out: &mut StringRecord,
@@ -344,29 +423,17 @@ pub fn push_scores(
     precision: Precision,
     buf: &mut String,
 ) {
-    let mut float = |out: &mut StringRecord, v: f64| {
-        buf.clear();
-        let v = match precision {
-            Precision::Full => v,
-            Precision::Digits(d) => significant(v, d),
-        };
-        let _ = write!(buf, "{v}");
-        out.push_field(buf);
-    };
-    float(out, s.margin);
-    float(out, s.log_odds);
-    float(out, s.calibrated_log_odds);
-    float(out, s.adjusted_log_odds);
-    float(out, s.probability);
+    for v in [
+        s.margin,
+        s.log_odds,
+        s.calibrated_log_odds,
+        s.adjusted_log_odds,
+        s.probability,
+    ] {
+        precision.push(out, v, buf);
+    }
     if let Some(score) = s.score {
-        match precision {
-            Precision::Full => float(out, score),
-            Precision::Digits(_) => {
-                buf.clear();
-                let _ = write!(buf, "{}", score.round());
-                out.push_field(buf);
-            }
-        }
+        precision.push_points(out, score, buf);
     }
     if spec.decision.is_some() {
         out.push_field(s.decision.as_ref().map(|d| d.as_str()).unwrap_or(""));
@@ -418,11 +485,7 @@ fn score_file<R: Read, W: Write>(
         out_header.push_field("warnings");
     }
     let mut run_notes = RunNotes::default();
-    let precision = if args.full_precision {
-        Precision::Full
-    } else {
-        Precision::Digits(usize::from(args.digits))
-    };
+    let precision = Precision::of(args);
 
     let mut writer = csv::Writer::from_writer(output);
     writer.write_record(&out_header)?;

@@ -1,0 +1,115 @@
+"""The Python client against a real `probity serve` (started here, stopped at the end), checked against the
+scikit-learn figures of tests/fixtures/evaluate/expected.json (scikit-learn 1.9.1 `log_loss`, `roc_auc_score`,
+computed by tests/fixtures/gen_evaluate.py on `load_breast_cancer`, Street, Wolberg and Mangasarian 1993)."""
+
+import csv
+import json
+import os
+import shutil
+import signal
+import subprocess
+import threading
+import time
+from pathlib import Path
+
+import pytest
+
+from probity_client import Client, Outcome
+
+ROOT = Path(__file__).resolve().parents[3]
+FIXTURE = ROOT / "tests" / "fixtures" / "evaluate"
+
+
+def binary():
+    path = os.environ.get("PROBITY_BIN") or str(ROOT / "target" / "debug" / "probity")
+    if not Path(path).exists():
+        pytest.fail(f"{path} not found: build with `cargo build -p probity`")
+    return path
+
+
+@pytest.fixture(scope="module")
+def server(tmp_path_factory):
+    work = tmp_path_factory.mktemp("serve")
+    models = work / "models"
+    models.mkdir()
+    shutil.copy(FIXTURE / "champion.json", models / "champion.json")
+    config = work / "probity.toml"
+    config.write_text(
+        '[server]\nplaintext = "loopback"\ngrpc_listen = "127.0.0.1:0"\nmetrics_listen = "127.0.0.1:0"\n'
+        f"[models]\ndirectory = {json.dumps(str(models))}\nwatch = false\n"
+        "[limits]\nmax_batch_rows = 1000\n"
+        f'[log]\ndirectory = {json.dumps(str(work / "log"))}\nflush_interval = "5ms"\n'
+        '[routes.bc]\nmodel = "breast_cancer_champion"\n'
+    )
+    proc = subprocess.Popen(
+        [binary(), "serve", "--config", str(config), "--log-format", "json"], stderr=subprocess.PIPE, text=True
+    )
+    found, log, addr = threading.Event(), [], {}
+
+    def read():
+        for line in proc.stderr:
+            log.append(line)
+            try:
+                event = json.loads(line)
+            except ValueError:
+                continue
+            if event.get("message") == "probity serving":
+                addr["grpc"] = event["grpc_addr"]
+                found.set()
+
+    threading.Thread(target=read, daemon=True).start()
+    try:
+        if not found.wait(60):
+            pytest.fail("server did not start:\n" + "".join(log))
+        yield addr["grpc"]
+    finally:
+        proc.send_signal(signal.SIGTERM)
+        try:
+            proc.wait(30)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+
+
+def labelled():
+    features = [f["name"] for f in json.loads((FIXTURE / "champion.json").read_text())["features"]]
+    with open(FIXTURE / "labelled.csv", newline="") as f:
+        rows = list(csv.DictReader(f))
+    return [{n: float(r[n]) for n in features} for r in rows], [r["id"] for r in rows], [r["y"] == "1" for r in rows]
+
+
+def test_score_outcomes_and_report_match_scikit_learn(server):
+    expected = json.loads((FIXTURE / "expected.json").read_text())["champion"]
+    rows, ids, labels = labelled()
+    with Client(server) as c:
+        scores = c.score_batch("bc", rows, prediction_ids=[f"bc-{i}" for i in ids])
+        assert [s.prediction_id for s in scores] == [f"bc-{i}" for i in ids]
+        assert all(s.model == "breast_cancer_champion" and s.role == "champion" for s in scores)
+        one = c.score("bc", rows[0], prediction_id="single")
+        assert one.probability == scores[0].probability and one.log_odds == scores[0].log_odds
+
+        results = c.send_outcomes(Outcome(f"bc-{i}", y) for i, y in zip(ids, labels))
+        assert len(results) == len(ids)
+        assert {r.status for r in results} <= {"matched", "pending"}
+        again = c.send_outcomes([(f"bc-{ids[0]}", labels[0])])
+        assert again[0].status in ("duplicate", "pending")
+
+        deadline = time.monotonic() + 30
+        while True:
+            report = c.report(route="bc")
+            series = [s for s in report.series if s.route == "bc"]
+            if series and series[0].with_outcome == len(ids):
+                break
+            assert time.monotonic() < deadline, f"outcomes not matched in time: {report}"
+            time.sleep(0.1)
+        s = series[0]
+        assert s.predictions == len(ids) + 1  # the batch and the single row
+        # scikit-learn 1.9.1 sklearn.metrics.log_loss and roc_auc_score on the same rows (gen_evaluate.py).
+        assert abs(s.log_loss - expected["log_loss"]) <= 1e-9
+        assert abs(s.roc_auc - expected["auc"]) <= 1e-9
+        assert abs(s.brier - expected["brier"]) <= 1e-9
+        assert report.full["series"][0]["route"] == "bc"
+
+
+def test_bad_feature_type_is_refused_before_sending(server):
+    with Client(server) as c, pytest.raises(TypeError, match="mean_texture"):
+        c.score("bc", {"mean_texture": [1.0]})
