@@ -796,7 +796,6 @@ mod fleet {
         assert_eq!(acknowledged.len(), BATCHES * PER_BATCH);
         if std::env::var("PROBITY_KEEP_TEST_DIR").is_ok() {
             eprintln!("replica logs in {}", data.path().display());
-            std::mem::forget(tempfile::TempDir::new_in(data.path()));
             let kept = data.keep();
             return (
                 servers,
