@@ -226,7 +226,7 @@ const BROKEN_FILES: &[(&str, &str, &str)] = &[
     (
         "format_version",
         "format_version",
-        "unsupported version 2, this reader knows version 1",
+        "unsupported version 3, this reader knows versions 1 to 2",
     ),
     (
         "isotonic_input_missing",
