@@ -48,7 +48,8 @@ fn case_entry(case: &str) -> Value {
 fn max_difference(case: &str) -> f64 {
     let entry = case_entry(case);
     let model_path = format!("{}/{}", dir(), entry["model"].as_str().unwrap_or_default());
-    let model = Model::from_json_str(&read(&model_path)).unwrap_or_else(|e| panic!("{model_path}: {e}"));
+    let model =
+        Model::from_json_str(&read(&model_path)).unwrap_or_else(|e| panic!("{model_path}: {e}"));
     let (header, rows) = csv(&format!("{}/{case}/rows.csv", dir()));
     let (c_header, expected) = csv(&format!("{}/{case}/contributions.csv", dir()));
     let schema = model.schema();

@@ -6,6 +6,7 @@ pub mod check;
 pub mod compare;
 pub mod demo;
 pub mod demo_data;
+pub mod explain;
 pub mod pipeline;
 pub mod promote;
 pub mod reliability;

@@ -1,4 +1,4 @@
-//! The CSV scoring pipeline shared by `probity score` and `probity demo`.
+//! The CSV scoring pipeline shared by `probity score`, `probity explain` and `probity demo`.
 //!
 //! A header is mapped once to the model's features ([`ColumnMap`]); records are then read into blocks of
 //! [`BLOCK_ROWS`] rows, each cell encoded with [`Schema::encode_text`], the block's margins computed in one call to
@@ -134,6 +134,19 @@ pub fn score_records<R: Read>(
     reader: &mut csv::Reader<R>,
     mut sink: impl FnMut(&StringRecord, &Scored) -> anyhow::Result<()>,
 ) -> anyhow::Result<u64> {
+    score_rows(model, columns, spec, reader, |record, _, scored| {
+        sink(record, scored)
+    })
+}
+
+/// [`score_records`], also handing the sink each row as the model scored it (its dense values).
+pub fn score_rows<R: Read>(
+    model: &Model,
+    columns: &ColumnMap,
+    spec: &OutputSpec,
+    reader: &mut csv::Reader<R>,
+    mut sink: impl FnMut(&StringRecord, &[f64], &Scored) -> anyhow::Result<()>,
+) -> anyhow::Result<u64> {
     let schema = model.schema();
     let n = schema.len();
     let mut records = vec![StringRecord::new(); BLOCK_ROWS];
@@ -169,8 +182,12 @@ pub fn score_records<R: Read>(
                 }
                 other => anyhow!(other),
             })?;
-        for (record, &margin) in records.iter().zip(&margins[..filled]) {
-            sink(record, &model.finish(margin, spec))?;
+        for (k, (record, &margin)) in records.iter().zip(&margins[..filled]).enumerate() {
+            sink(
+                record,
+                &rows[k * n..(k + 1) * n],
+                &model.finish(margin, spec),
+            )?;
         }
         done += filled as u64;
         if filled < BLOCK_ROWS {

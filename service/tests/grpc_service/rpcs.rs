@@ -83,6 +83,7 @@ async fn every_rpc_answers() {
     ];
     let batch = scoring
         .score_batch(pb::ScoreBatchRequest {
+            explain: 0,
             route: "fraud".into(),
             rows,
         })
