@@ -109,3 +109,25 @@ pub fn reasons_config(
     };
     Ok(ReasonRequest { limit, adverse })
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn reasons_settings() {
+        let r = reasons_config("routes.a.reasons", None, None).unwrap_or_else(|e| panic!("{e:?}"));
+        assert_eq!(r, ReasonRequest::default());
+        assert_eq!(r.limit, 4);
+        let r = reasons_config("routes.a.reasons", Some(2), Some("lower"))
+            .unwrap_or_else(|e| panic!("{e:?}"));
+        assert_eq!((r.limit, r.adverse), (2, Adverse::Lower));
+        let e = reasons_config("routes.a.reasons", Some(0), None).unwrap_err();
+        assert_eq!(e.0, "routes.a.reasons.limit");
+        let e = reasons_config("routes.a.reasons", None, Some("up")).unwrap_err();
+        assert_eq!(e.0, "routes.a.reasons.adverse");
+        assert!(level(9, "explain").is_err());
+        assert_eq!(level(0, "explain").ok(), Some(None));
+        assert_eq!(level(2, "explain").ok(), Some(Some(Level::Contributions)));
+    }
+}
