@@ -635,6 +635,9 @@ fn demo_with_the_embedded_models_corrects_the_base_rate() {
         "harbourline-fraud-trees",
         "harbourline-fraud-scorecard",
         "the generating model itself",
+        // Reasons for declined transactions, from the demo models' reason families.
+        "declined at probability > 1/41",
+        "H06 Far from home or abroad",
     ] {
         assert!(text.contains(want), "missing {want:?} in:\n{text}");
     }
