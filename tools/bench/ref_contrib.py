@@ -68,10 +68,12 @@ def main() -> None:
             b = xgb.Booster()
             b.load_model(str(d / f"{name}.native"))
             b.set_param({"nthread": 1})
-            dm = xgb.DMatrix(batch, nthread=1)
+            names = b.feature_names
+            dm = xgb.DMatrix(batch, nthread=1, feature_names=names)
             batch_s = median_seconds(lambda: b.predict(dm, pred_contribs=True), args.seconds)
             single_s = median_seconds(
-                lambda: b.predict(xgb.DMatrix(one[next(k) % len(one)], nthread=1), pred_contribs=True), args.seconds)
+                lambda: b.predict(xgb.DMatrix(one[next(k) % len(one)], nthread=1, feature_names=names),
+                                  pred_contribs=True), args.seconds)
         out["models"][name] = {
             "library": m["library"],
             "batch_us_per_row": batch_s / BATCH * 1e6,

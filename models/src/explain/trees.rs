@@ -16,8 +16,8 @@
 //! - A child whose weight is zero for every coalition (zero share of the cover on the side the row does not take)
 //!   adds nothing and is skipped; this also keeps every division of UNWIND away from zero.
 //! - A split with zero cover (never reached in training) shares its weight by its children's covers, or half and
-//!   half when they are zero too. Any fixed shares give an exact decomposition, since the bias below is the
-//!   empty coalition's value under the same shares.
+//!   half when they are zero too; a share is never above 1. Any fixed shares give an exact decomposition, since
+//!   the bias below is the empty coalition's value under the same shares.
 //!
 //! The walk is a loop with an explicit stack (no recursion on input); the path segments of the nodes on the
 //! current root-to-node path live one after another in one buffer.
@@ -69,10 +69,12 @@ pub struct Workspace {
     stack: Vec<Frame>,
 }
 
-/// The shares of a split's weight that go to its children when its feature is left out.
+/// The shares of a split's weight that go to its children when its feature is left out. A share is at most 1: a
+/// child's cover above its parent's (float32 hessian sums can round that way, a damaged file can say anything)
+/// counts as all of it, so weights never grow down a path.
 pub(crate) fn shares(node: f64, left: f64, right: f64) -> (f64, f64) {
     if node > 0.0 {
-        (left / node, right / node)
+        ((left / node).min(1.0), (right / node).min(1.0))
     } else if left + right > 0.0 {
         (left / (left + right), right / (left + right))
     } else {
