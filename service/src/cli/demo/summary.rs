@@ -57,8 +57,8 @@ pub fn reasons_section(model: &Model, run: &DemoRun, data: &DemoData) -> String 
     order.truncate(DECLINES_SHOWN);
     let _ = writeln!(
         out,
-        "  {declined} transactions declined at probability > 1/41; reasons for the {} highest (decision support: \
-         the reasons a notice must give follow local law):",
+        "  {declined} transactions declined at probability > 1/41; reasons for the {} highest (they inform a \
+         review; the reasons a notice must give follow local law):",
         order.len()
     );
     let rows = match dense_rows(model, data, &order) {
