@@ -453,3 +453,43 @@ fn reason_family_rules() {
         assert_eq!(err.path(), Some(path), "{err}");
     }
 }
+
+/// Replaces every cover of the trees with an arbitrary one (zero, tiny, huge, children above their parent), as a
+/// damaged file may.
+fn scramble_covers(trees: &mut [Value], rng: &mut Rng) {
+    for t in trees {
+        let Some(nodes) = t["nodes"].as_array_mut() else {
+            continue;
+        };
+        for n in nodes {
+            let c = match rng.below(6) {
+                0 => 0.0,
+                1 => 1e-300 * rng.unit(),
+                2 => 1e300 * rng.unit(),
+                3 => f64::MIN_POSITIVE,
+                _ => 100.0 * rng.unit(),
+            };
+            n["cover"] = json!(c);
+        }
+    }
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig::with_cases(200))]
+
+    /// Whatever the covers, the contributions are finite and add up to the log-odds (the fuzz target's check).
+    #[test]
+    fn any_covers_still_sum_to_log_odds(seed in 1u64.., trees in 1usize..4, depth in 0usize..7) {
+        let mut rng = Rng(seed);
+        let mut t: Vec<Value> = (0..trees).map(|_| random_tree(&mut rng, depth, true)).collect();
+        scramble_covers(&mut t, &mut rng);
+        let m = model(t, "half_log_odds");
+        for _ in 0..4 {
+            let row = random_row(&mut rng);
+            let c = m.contributions(&row).expect("explainable");
+            prop_assert!(c.features.iter().all(|x| x.is_finite()) && c.bias.is_finite(), "{:?}", c);
+            let magnitude = c.features.iter().fold(c.bias.abs() + c.log_odds.abs(), |a, x| a + x.abs());
+            prop_assert!((c.total() - c.log_odds).abs() <= 1e-9 * magnitude.max(1.0), "{:?}", c);
+        }
+    }
+}
