@@ -13,10 +13,10 @@ CORE=${CORE:-1}
 OUT=target/bench-results
 mkdir -p "$OUT"
 [ -f target/bench-models/manifest.json ] || "$PY" tools/bench/make_bench_models.py
-SECONDS_PER=3; MEASURE_MS=3000; WARMUP_MS=1000
-if [ -n "${QUICK:-}" ]; then SECONDS_PER=0.3; MEASURE_MS=300; WARMUP_MS=100; fi
+SECONDS_PER=3; MEASURE_MS=3000; WARMUP_MS=1000; BATCH=1000
+if [ -n "${QUICK:-}" ]; then SECONDS_PER=0.3; MEASURE_MS=300; WARMUP_MS=100; BATCH=50; fi
 cargo bench -p probity-models --bench explain --no-run
-taskset -c "$CORE" "$PY" tools/bench/ref_contrib.py --seconds "$SECONDS_PER" --out "$OUT/ref_contrib.json"
+taskset -c "$CORE" "$PY" tools/bench/ref_contrib.py --seconds "$SECONDS_PER" --batch "$BATCH" --out "$OUT/ref_contrib.json"
 PROBITY_BENCH_MEASURE_MS=$MEASURE_MS PROBITY_BENCH_WARMUP_MS=$WARMUP_MS \
   taskset -c "$CORE" cargo bench -p probity-models --bench explain
 "$PY" - "$OUT/ref_contrib.json" <<'PY' | tee "$OUT/explain.md"

@@ -47,6 +47,7 @@ def main() -> None:
     ap.add_argument("--models", default="target/bench-models")
     ap.add_argument("--out", default="target/bench-results/ref_contrib.json")
     ap.add_argument("--seconds", type=float, default=3.0)
+    ap.add_argument("--batch", type=int, default=BATCH, help="rows per batch call (default 1000)")
     args = ap.parse_args()
     d = Path(args.models)
     manifest = json.loads((d / "manifest.json").read_text())
@@ -56,7 +57,7 @@ def main() -> None:
             continue
         name = m["name"]
         rows = np.fromfile(d / m["rows_file"], dtype="<f8").reshape(-1, m["features"])
-        batch = np.ascontiguousarray(rows[:BATCH])
+        batch = np.ascontiguousarray(rows[: args.batch])
         one = [np.ascontiguousarray(rows[i : i + 1]) for i in range(200)]
         k = iter(range(10**12))
         if m["library"] == "lightgbm":
@@ -76,10 +77,10 @@ def main() -> None:
                                   pred_contribs=True), args.seconds)
         out["models"][name] = {
             "library": m["library"],
-            "batch_us_per_row": batch_s / BATCH * 1e6,
+            "batch_us_per_row": batch_s / args.batch * 1e6,
             "single_us_per_row": single_s * 1e6,
         }
-        print(f"{name}: {batch_s / BATCH * 1e6:.1f} us/row in batches, {single_s * 1e6:.1f} us one row a call", flush=True)
+        print(f"{name}: {batch_s / args.batch * 1e6:.1f} us/row in batches, {single_s * 1e6:.1f} us one row a call", flush=True)
     Path(args.out).parent.mkdir(parents=True, exist_ok=True)
     Path(args.out).write_text(json.dumps(out, indent=1) + "\n")
 
