@@ -1,4 +1,4 @@
-"""A structural check of a model document against `docs/model-format.md` (format version 1), written from the
+"""A structural check of a model document against `docs/model-format.md` (format version 2), written from the
 spec's tables for the exporter's tests. It raises AssertionError naming the JSON path of the first problem."""
 
 from __future__ import annotations
@@ -7,7 +7,7 @@ import math
 import re
 
 TOP_REQUIRED = {"format", "format_version", "name", "version", "features", "margin_scale", "base_rate"}
-TOP_OPTIONAL = {"metadata", "ensemble", "linear", "calibration", "reference_distribution", "score_scale"}
+TOP_OPTIONAL = {"metadata", "ensemble", "linear", "calibration", "reference_distribution", "score_scale", "reason_families"}
 NAME_RE = re.compile(r"^[A-Za-z0-9._-]{1,128}$")
 
 
@@ -45,12 +45,15 @@ def check_tree(t, nodes, features):
         seen[i] += 1
         assert seen[i] == 1, f"{p}: reached twice"
         node = nodes[i]
+        assert "cover" in node, f"{p}.cover"
+        _finite(f"{p}.cover", node["cover"])
+        assert node["cover"] >= 0, f"{p}.cover"
         if "leaf" in node:
-            assert set(node) == {"leaf"}, p
+            assert set(node) == {"leaf", "cover"}, p
             _finite(f"{p}.leaf", node["leaf"])
             continue
-        (kind,) = set(node) - {"left", "right"}
-        assert set(node) == {kind, "left", "right"}, p
+        (kind,) = set(node) - {"left", "right", "cover"}
+        assert set(node) == {kind, "left", "right", "cover"}, p
         s = node[kind]
         f = features[s["feature"]]
         if kind == "numeric":
@@ -99,7 +102,7 @@ def check_term(j, term, features):
 def check_document(doc):
     keys = set(doc)
     assert TOP_REQUIRED <= keys and keys <= TOP_REQUIRED | TOP_OPTIONAL, f"$: keys {sorted(keys)}"
-    assert doc["format"] == "probity.model" and doc["format_version"] == 1
+    assert doc["format"] == "probity.model" and doc["format_version"] == 2
     assert NAME_RE.match(doc["name"]) and NAME_RE.match(doc["version"])
     assert doc["margin_scale"] in ("log_odds", "half_log_odds")
     assert 0 < doc["base_rate"] < 1
@@ -120,6 +123,16 @@ def check_document(doc):
         _finite("linear.intercept", lin["intercept"])
         for j, term in enumerate(lin["terms"]):
             check_term(j, term, doc["features"])
+    if "reason_families" in doc:
+        seen, codes = set(), set()
+        for k, fam in enumerate(doc["reason_families"]):
+            assert set(fam) == {"code", "text", "features"}, f"reason_families[{k}]"
+            assert 1 <= len(fam["code"]) <= 32 and fam["code"] not in codes, f"reason_families[{k}].code"
+            codes.add(fam["code"])
+            assert 1 <= len(fam["text"]) <= 200, f"reason_families[{k}].text"
+            for j, i in enumerate(fam["features"]):
+                assert 0 <= i < len(doc["features"]) and i not in seen, f"reason_families[{k}].features[{j}]"
+                seen.add(i)
     if "reference_distribution" in doc:
         r = doc["reference_distribution"]
         assert len(r["fractions"]) == len(r["edges"]) + 1 and abs(sum(r["fractions"]) - 1) <= 1e-6

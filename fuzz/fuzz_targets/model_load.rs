@@ -2,7 +2,9 @@
 //! by one and as a batch.
 //!
 //! Checked beyond "no panic": a batch gives bit-identical margins to the same rows scored singly, and a row with
-//! no infinite value (NaN is a missing value, a legal input) never gives a NaN margin or probability.
+//! no infinite value (NaN is a missing value, a legal input) never gives a NaN margin or probability. When the
+//! model can be explained (a linear model, or trees with `cover`), each row's contributions plus the bias give its
+//! log-odds within 1e-9 of their magnitude, unless the arithmetic overflowed, and the reasons are well formed.
 #![no_main]
 
 use std::hash::{Hash, Hasher};
@@ -93,6 +95,9 @@ fuzz_target!(|data: &[u8]| {
             }
             _ => {}
         }
+        if let (Ok(m), Ok(())) = (&single, model.explainable()) {
+            explained(&model, row, *m);
+        }
         if let Ok(m) = single {
             assert!(!m.is_nan(), "NaN margin from row {row:?}");
             for s in [OutputSpec::default(), spec.clone()] {
@@ -109,3 +114,28 @@ fuzz_target!(|data: &[u8]| {
         }
     }
 });
+
+/// The explanation of a row the model scored to margin `m`.
+fn explained(model: &Model, row: &[f64], m: f64) {
+    let c = match model.contributions(row) {
+        Ok(c) => c,
+        Err(e) => panic!("a row that scores must explain: {e} (row {row:?})"),
+    };
+    assert_eq!(c.log_odds.to_bits(), model.margin_scale().to_log_odds(m).to_bits());
+    let magnitude = c.features.iter().fold(c.bias.abs() + c.log_odds.abs(), |a, x| a + x.abs());
+    if magnitude.is_finite() {
+        let gap = (c.total() - c.log_odds).abs();
+        assert!(
+            gap <= 1e-9 * magnitude.max(1.0),
+            "contributions sum to {} but the log-odds is {} (row {row:?})",
+            c.total(),
+            c.log_odds
+        );
+    }
+    for adverse in [probity_models::Adverse::Higher, probity_models::Adverse::Lower] {
+        let reasons = model.reasons(&c, &probity_models::ReasonRequest { limit: 4, adverse });
+        assert!(reasons.len() <= 4);
+        assert!(reasons.iter().all(|r| r.weight > 0.0 && !r.features.is_empty()));
+        assert!(reasons.windows(2).all(|w| w[0].weight >= w[1].weight));
+    }
+}

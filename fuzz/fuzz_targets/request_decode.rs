@@ -60,6 +60,7 @@ fn fixture() -> &'static Fixture {
             for policy in 0..8u8 {
                 let name = format!("r{m}{policy}");
                 let route = Route {
+                    reasons: Default::default(),
                     name: name.clone(),
                     model: model.to_string(),
                     output: OutputSpec {
@@ -133,6 +134,21 @@ fn check_response(response: &pb::ScoreResponse) {
         response.probability,
         response.margin
     );
+    if let Some(e) = &response.explanation {
+        if !e.contributions.is_empty() {
+            let total = e.contributions.iter().fold(e.bias, |a, c| a + c.log_odds);
+            let magnitude = e
+                .contributions
+                .iter()
+                .fold(e.bias.abs() + response.log_odds.abs(), |a, c| a + c.log_odds.abs());
+            assert!(
+                (total - response.log_odds).abs() <= 1e-9 * magnitude.max(1.0),
+                "contributions sum to {total}, log-odds {}",
+                response.log_odds
+            );
+        }
+        assert!(e.reasons.iter().all(|r| r.weight > 0.0));
+    }
 }
 
 fuzz_target!(|data: &[u8]| {

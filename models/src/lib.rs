@@ -14,6 +14,7 @@ pub mod decision;
 pub mod engine;
 pub mod error;
 pub mod evaluate;
+pub mod explain;
 pub mod fit;
 pub mod link;
 pub mod metrics;
@@ -25,6 +26,10 @@ pub mod transform;
 pub use calibration::{Calibration, IsotonicInput};
 pub use decision::{Decision, DecisionRule};
 pub use error::{CellError, EvalError, ModelError};
+pub use explain::{
+    Adverse, Contributions, ExplainError, Reason, ReasonFamilies, ReasonFamily, ReasonRequest,
+    DEFAULT_REASONS,
+};
 pub use model::{
     BodyKind, MarginScale, Model, ModelSummary, OddsOf, ReferenceDistribution, ScoreScale,
 };

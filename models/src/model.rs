@@ -137,6 +137,10 @@ pub struct Model {
     pub(crate) calibration: Option<Calibration>,
     pub(crate) reference: Option<ReferenceDistribution>,
     pub(crate) score_scale: Option<ScoreScale>,
+    /// What explanations need beyond the body (per-node covers of a tree ensemble).
+    pub(crate) attribution: crate::explain::Attribution,
+    /// The deployer's reason families (empty when the file has none).
+    pub(crate) families: crate::explain::ReasonFamilies,
 }
 
 impl Model {

@@ -73,6 +73,8 @@ fn annotated_ensemble_example_loads() {
     assert_eq!(model.schema().index_of("hour"), Some(2));
     assert!(model.calibration().is_some());
     assert!(model.reference_distribution().is_some());
+    assert!(model.explainable().is_ok(), "the example carries cover");
+    assert_eq!(model.reason_families().families().len(), 2);
     assert!(model.score_scale().is_some());
     // Hand-computed from the example's trees: amount 300 > 250 goes right, channel 1 (online) is in {1, 2}
     // so leaf 1.1; hour 3 < 6 so leaf 0.5. Margin = -3.5 + 1.1 + 0.5.
@@ -226,7 +228,7 @@ const BROKEN_FILES: &[(&str, &str, &str)] = &[
     (
         "format_version",
         "format_version",
-        "unsupported version 2, this reader knows version 1",
+        "unsupported version 3, this reader knows versions 1 to 2",
     ),
     (
         "isotonic_input_missing",

@@ -27,6 +27,8 @@ enum Command {
     Check(cli::check::CheckArgs),
     /// Score every row of a CSV file with a model and write the results as CSV.
     Score(cli::score::ScoreArgs),
+    /// Explain every row of a CSV file: each feature's contribution to the log-odds and the top reasons.
+    Explain(cli::explain::ExplainArgs),
     /// Write the demo scenario's invented card transactions (Harbourline Card Services) as CSV.
     GenerateDemoData(cli::demo_data::GenerateArgs),
     /// Run the demo: generate transactions, score them with both demo models, show how well each does.
@@ -54,6 +56,7 @@ fn run() -> anyhow::Result<()> {
     match Cli::parse().command {
         Command::Check(args) => cli::check::run(&args),
         Command::Score(args) => cli::score::run(&args),
+        Command::Explain(args) => cli::explain::run(&args),
         Command::GenerateDemoData(args) => cli::demo_data::run(&args),
         Command::Demo(args) => cli::demo::run(&args),
         Command::Calibrate(args) => cli::calibrate::run(&args),

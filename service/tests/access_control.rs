@@ -323,6 +323,7 @@ fn row(id: &str) -> pb::Row {
 
 fn score_request() -> pb::ScoreRequest {
     pb::ScoreRequest {
+        explain: 0,
         route: "r".into(),
         row: Some(row("")),
     }
@@ -391,6 +392,7 @@ async fn call(conn: &Connection, path: &str) -> Result<(), tonic::Status> {
             .map(drop),
         "/probity.v1.Scoring/ScoreBatch" => pb::scoring_client::ScoringClient::new(c)
             .score_batch(pb::ScoreBatchRequest {
+                explain: 0,
                 route: "r".into(),
                 rows: vec![row(""), row("")],
             })

@@ -48,6 +48,7 @@ async fn probe(
     scoring
         .clone()
         .score(pb::ScoreRequest {
+            explain: 0,
             route: route.into(),
             row: Some(row(0.0)),
         })
@@ -120,6 +121,7 @@ async fn an_opted_in_route_follows_the_estimate_and_another_route_does_not() {
         for chunk in h.chunks(1000) {
             scoring
                 .score_batch(pb::ScoreBatchRequest {
+                    explain: 0,
                     route: route.into(),
                     rows: chunk.iter().map(|&x| row(x)).collect(),
                 })

@@ -154,6 +154,7 @@ async fn mirrored_and_split_challengers_through_the_service() {
     for i in 0..n {
         let r = scoring
             .score(pb::ScoreRequest {
+                explain: 0,
                 route: "bc".into(),
                 row: Some(row(format!("bc-{i}"), format!("cust-{i}"), ha[i], hb[i])),
             })
@@ -351,6 +352,7 @@ async fn mirrored_and_split_challengers_through_the_service() {
         for call in 0..2 {
             let r = scoring
                 .score(pb::ScoreRequest {
+                    explain: 0,
                     route: "split".into(),
                     row: Some(row(
                         format!("s-{i}-{call}"),
@@ -522,6 +524,7 @@ async fn mirrored_and_split_challengers_through_the_service() {
     assert!(change.time_unix_ms > 0);
     let r = scoring
         .score(pb::ScoreRequest {
+            explain: 0,
             route: "bc".into(),
             row: Some(row("after".into(), "cust-1".into(), ha[0], hb[0])),
         })
@@ -559,6 +562,7 @@ async fn mirrored_and_split_challengers_through_the_service() {
     let mut admin = pb::challengers_client::ChallengersClient::new(channel);
     let r = scoring
         .score(pb::ScoreRequest {
+            explain: 0,
             route: "bc".into(),
             row: Some(row("restarted".into(), "cust-1".into(), ha[0], hb[0])),
         })

@@ -649,6 +649,9 @@ fn demo_with_the_embedded_models_corrects_the_base_rate() {
         "harbourline-fraud-trees",
         "harbourline-fraud-scorecard",
         "the generating model itself",
+        // Reasons for declined transactions, from the demo models' reason families.
+        "declined at probability > 1/41",
+        "H06 Far from home or abroad",
     ] {
         assert!(text.contains(want), "missing {want:?} in:\n{text}");
     }
@@ -1140,4 +1143,145 @@ fn score_prints_readable_digits_unless_asked_for_full_precision() {
         let (a, b): (f64, f64) = (a[p].parse().unwrap(), b[p].parse().unwrap());
         assert!((a - b).abs() <= b.abs() * 5e-6, "{a} vs {b}");
     }
+}
+
+fn contrib_fixture(rel: &str) -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("../tests/fixtures/contrib")
+        .join(rel)
+}
+
+#[test]
+fn explain_writes_the_reference_contributions_and_reasons() {
+    // The rows and contributions of LightGBM 4.7.0 `Booster.predict(pred_contrib=True)` recorded by
+    // tests/fixtures/gen_contrib.py (missing values, unknown and missing categories, all-missing rows).
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("explained.csv");
+    let model_path = contrib_fixture("models/lightgbm_nan_cat.json");
+    ok(&[
+        "explain",
+        "--model",
+        s(&model_path),
+        "--input",
+        s(&contrib_fixture("lightgbm_nan_cat/rows.csv")),
+        "--output",
+        s(&out),
+        "--reasons",
+        "3",
+    ]);
+    let (header, rows) = read_csv(&out);
+    let (want_header, want) = read_csv(&contrib_fixture("lightgbm_nan_cat/contributions.csv"));
+    assert_eq!(rows.len(), want.len());
+    let model = Model::from_json_str(&std::fs::read_to_string(&model_path).unwrap()).unwrap();
+    let names: Vec<String> = model
+        .schema()
+        .features()
+        .iter()
+        .map(|f| f.name.clone())
+        .collect();
+    let num = |r: &csv::StringRecord, i: usize| r[i].parse::<f64>().unwrap();
+    for (r, w) in rows.iter().zip(&want) {
+        assert_eq!(r[0], w[0], "ids in order");
+        for name in &names {
+            let ours = num(r, col(&header, &format!("contribution.{name}")));
+            let theirs = num(w, col(&want_header, name));
+            assert!((ours - theirs).abs() <= 1e-9, "{name}: {ours} vs {theirs}");
+        }
+        let bias = num(r, col(&header, "bias"));
+        assert!((bias - num(w, col(&want_header, "bias"))).abs() <= 1e-9);
+        // The reasons: the (at most 3) features of largest positive contribution, largest first.
+        let mut positive: Vec<(f64, &str)> = names
+            .iter()
+            .map(|n| {
+                (
+                    num(r, col(&header, &format!("contribution.{n}"))),
+                    n.as_str(),
+                )
+            })
+            .filter(|(v, _)| *v > 0.0)
+            .collect();
+        positive.sort_by(|a, b| b.0.total_cmp(&a.0).then(a.1.cmp(b.1)));
+        let expected: Vec<&str> = positive.iter().take(3).map(|(_, n)| *n).collect();
+        assert_eq!(&r[col(&header, "reasons")], expected.join(";"));
+    }
+}
+
+#[test]
+fn explain_refuses_bad_input_like_score() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("out.csv");
+    // A tree model without cover (format version 1): the missing key is named, nothing is written.
+    let o = probity(&[
+        "explain",
+        "--model",
+        s(&data("small-trees.json")),
+        "--input",
+        s(&data("small-trees.json")),
+        "--output",
+        s(&out),
+    ]);
+    assert_eq!(o.status.code(), Some(1));
+    let err = stderr(&o);
+    assert!(
+        err.contains("`ensemble.trees[0].nodes[0].cover` is missing"),
+        "{err}"
+    );
+    assert!(!out.exists());
+    // A bad cell: row, line and column named, no partial output.
+    let input = dir.path().join("bad.csv");
+    std::fs::write(
+        &input,
+        "id,amount,channel,card_age_days\na,1,chip,4\nb,2;0,chip,5\n",
+    )
+    .unwrap();
+    let o = probity(&[
+        "explain",
+        "--model",
+        s(&data("small-scorecard.json")),
+        "--input",
+        s(&input),
+        "--output",
+        s(&out),
+    ]);
+    assert_eq!(o.status.code(), Some(1));
+    let err = stderr(&o);
+    assert!(
+        err.contains("row 2 (line 3)") && err.contains("column `amount`"),
+        "{err}"
+    );
+    assert!(!out.exists());
+}
+
+#[test]
+fn explain_a_scorecard_by_points_below_the_best_bin() {
+    let dir = tempfile::tempdir().unwrap();
+    let input = dir.path().join("rows.csv");
+    // card_age_days 10 is in the worst bin (0.6 against the best -0.2); amount 140 adds 0.3 * 1.0;
+    // channel online adds 0.4. Half log-odds model: contributions are doubled to the log-odds.
+    std::fs::write(&input, "id,amount,channel,card_age_days\nx,140,online,10\n").unwrap();
+    let out = dir.path().join("out.csv");
+    ok(&[
+        "explain",
+        "--model",
+        s(&data("small-scorecard.json")),
+        "--input",
+        s(&input),
+        "--output",
+        s(&out),
+        "--quiet",
+    ]);
+    let (header, rows) = read_csv(&out);
+    let r = &rows[0];
+    let num = |name: &str| r[col(&header, name)].parse::<f64>().unwrap();
+    assert!((num("contribution.card_age_days") - 1.2).abs() < 1e-12);
+    assert!((num("contribution.amount") - 0.6).abs() < 1e-12);
+    assert!((num("contribution.channel") - 0.8).abs() < 1e-12);
+    assert_eq!(num("bias"), -2.8);
+    let total = num("bias")
+        + num("contribution.card_age_days")
+        + num("contribution.amount")
+        + num("contribution.channel");
+    assert!((total - num("log_odds")).abs() < 1e-12);
+    // Shortfalls: card age 2 * (0.6 - -0.2) = 1.6, channel 0.8, amount 0.6.
+    assert_eq!(&r[col(&header, "reasons")], "card_age_days;channel;amount");
 }

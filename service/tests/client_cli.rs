@@ -98,6 +98,7 @@ async fn send_outcomes_reports_each_status_and_names_bad_rows() {
         .collect();
     scoring
         .score_batch(pb::ScoreBatchRequest {
+            explain: 0,
             route: "bc".into(),
             rows,
         })

@@ -305,6 +305,7 @@ async fn drive(server: &Server) -> Value {
     let mut out = pb::outcomes_client::OutcomesClient::new(conn);
     scoring
         .score_batch(pb::ScoreBatchRequest {
+            explain: 0,
             route: "card-auth".into(),
             rows: rows("c", 0..300),
         })
@@ -312,6 +313,7 @@ async fn drive(server: &Server) -> Value {
         .unwrap();
     scoring
         .score_batch(pb::ScoreBatchRequest {
+            explain: 0,
             route: "aged".into(),
             rows: rows("g", 0..40),
         })
@@ -320,6 +322,7 @@ async fn drive(server: &Server) -> Value {
     // The same ids again: scored, but not logged a second time (dropped as duplicate_id).
     scoring
         .score_batch(pb::ScoreBatchRequest {
+            explain: 0,
             route: "card-auth".into(),
             rows: rows("c", 0..10),
         })

@@ -49,6 +49,7 @@ async fn mirroring_one_challenger_latency() {
         .unwrap();
     let mut scoring = pb::scoring_client::ScoringClient::new(channel);
     let request = |route: &str, i: usize| pb::ScoreRequest {
+        explain: 0,
         route: route.into(),
         row: Some(pb::Row {
             prediction_id: format!("{route}-{i}"),

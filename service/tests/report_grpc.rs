@@ -184,6 +184,7 @@ async fn outcomes_through_the_service_give_the_reference_report_and_matching_sum
             .collect();
         let r = scoring
             .score_batch(pb::ScoreBatchRequest {
+                explain: 0,
                 route: "bc".into(),
                 rows,
             })
@@ -200,6 +201,7 @@ async fn outcomes_through_the_service_give_the_reference_report_and_matching_sum
         .collect();
     scoring
         .score_batch(pb::ScoreBatchRequest {
+            explain: 0,
             route: "drift".into(),
             rows,
         })
@@ -208,6 +210,7 @@ async fn outcomes_through_the_service_give_the_reference_report_and_matching_sum
     let rows = (0..30).map(|i| row(format!("m-{i}"), h[i])).collect();
     scoring
         .score_batch(pb::ScoreBatchRequest {
+            explain: 0,
             route: "mature".into(),
             rows,
         })

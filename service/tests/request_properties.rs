@@ -23,6 +23,7 @@ fn model() -> Model {
 
 fn route(policy: u8) -> Route {
     Route {
+        reasons: Default::default(),
         name: "prop".into(),
         model: "fuzz-trees".into(),
         output: OutputSpec::default(),

@@ -785,6 +785,7 @@ mod fleet {
                 .score_batch(pb::ScoreBatchRequest {
                     route: "r".into(),
                     rows: rows(batch * PER_BATCH..(batch + 1) * PER_BATCH),
+                    explain: 0,
                 })
                 .await
                 .unwrap();

@@ -177,6 +177,7 @@ async fn sigkill_loses_nothing_acknowledged_and_matching_stays_exactly_once() {
     assert_eq!(held.results[0].status, pb::OutcomeStatus::Pending as i32);
     scoring
         .score_batch(pb::ScoreBatchRequest {
+            explain: 0,
             route: "r".into(),
             rows: rows(0..199),
         })
@@ -235,6 +236,7 @@ async fn sigkill_loses_nothing_acknowledged_and_matching_stays_exactly_once() {
     // The held outcome matches its prediction, scored now.
     scoring
         .score_batch(pb::ScoreBatchRequest {
+            explain: 0,
             route: "r".into(),
             rows: rows(199..200),
         })
@@ -442,6 +444,7 @@ async fn sigkill_under_mixed_load_keeps_every_committed_record_and_matching_exac
                 let answered: Vec<String> = if batch.len() == 1 {
                     match client
                         .score(pb::ScoreRequest {
+                            explain: 0,
                             route: route.into(),
                             row: batch.into_iter().next(),
                         })
@@ -453,6 +456,7 @@ async fn sigkill_under_mixed_load_keeps_every_committed_record_and_matching_exac
                 } else {
                     match client
                         .score_batch(pb::ScoreBatchRequest {
+                            explain: 0,
                             route: route.into(),
                             rows: batch,
                         })

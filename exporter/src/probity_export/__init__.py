@@ -1,4 +1,6 @@
-"""Write fitted binary classifiers as probity model files (format version 1, `docs/model-format.md`).
+"""Write fitted binary classifiers as probity model files (format version 2, `docs/model-format.md`).
+
+Tree nodes carry their training `cover`, which explanations need.
 
 Supported: scikit-learn `GradientBoostingClassifier`, `HistGradientBoostingClassifier` (NaN and native
 categorical features), `LogisticRegression` and `Pipeline(StandardScaler, LogisticRegression)`; LightGBM
@@ -19,6 +21,7 @@ from .document import (
     check_score_scale,
     dumps,
     reference_distribution,
+    with_reason_families,
     write,
 )
 from .lightgbm_trees import export_lightgbm
@@ -41,6 +44,7 @@ __all__ = [
     "export_logistic",
     "export_xgboost",
     "reference_distribution",
+    "with_reason_families",
     "write",
 ]
 
@@ -50,8 +54,17 @@ def export(model, *, name: str, version: str, feature_names=None, **options) -> 
 
     Options (all keyword): `base_rate` (or `y`, the training labels, to use their positive share), `metadata`
     (merged into the library's own), `calibration`, `reference_distribution`, `score_scale` (passed through
-    after checking them against the spec).
+    after checking them against the spec), `reason_families` (the deployer's reason codes: a list of
+    `{"code", "text", "features": [feature names]}`, see `document.with_reason_families`).
     """
+    families = options.pop("reason_families", None)
+    doc = _export(model, name=name, version=version, feature_names=feature_names, **options)
+    if families is not None:
+        with_reason_families(doc, families)
+    return doc
+
+
+def _export(model, *, name: str, version: str, feature_names=None, **options) -> dict:
     kind = type(model).__module__.split(".")[0], type(model).__name__
     opts = dict(name=name, version=version, feature_names_=feature_names, **options)
     if kind[0] == "lightgbm":

@@ -1,4 +1,4 @@
-"""The parts of a probity model file (format version 1) that do not depend on the training library.
+"""The parts of a probity model file (format version 2) that do not depend on the training library.
 
 `docs/model-format.md` in the probity repository is the contract; this module builds its top level, checks the
 options a caller passes through (calibration, reference distribution, points scale) and writes the document.
@@ -11,12 +11,12 @@ import json
 import math
 import re
 from pathlib import Path
-from typing import Any, Iterable, Sequence
+from typing import Any, Iterable, Mapping, Sequence
 
 import numpy as np
 
 FORMAT = "probity.model"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
 EXPORTER = "probity_export 0.1.0"
 
 _NAME_RE = re.compile(r"^[A-Za-z0-9._-]{1,128}$")
@@ -218,11 +218,54 @@ def write(doc: dict, path: str | Path) -> None:
     Path(path).write_text(dumps(doc), encoding="utf-8")
 
 
+def _check_cover(value: Any) -> float:
+    c = _check_finite("cover", value)
+    if c < 0:
+        raise ExportError(f"cover: {c!r} is negative")
+    return c
+
+
+def with_reason_families(doc: dict, families: Sequence[Mapping[str, Any]]) -> dict:
+    """Adds the deployer's reason families to a document: each `{"code": ..., "text": ..., "features": [names]}`,
+    feature names as in the document's `features`. Checks the spec's rules (codes unique, 1 to 32 characters;
+    texts 1 to 200; each feature in one family at most) and writes the features as indices."""
+    index = {f["name"]: i for i, f in enumerate(doc["features"])}
+    out, codes, taken = [], set(), {}
+    for k, fam in enumerate(families):
+        p = f"reason_families[{k}]"
+        unknown = set(fam) - {"code", "text", "features"}
+        if unknown:
+            raise ExportError(f"{p}: unknown keys {sorted(unknown)}")
+        code, text, names = fam.get("code"), fam.get("text"), fam.get("features")
+        if not isinstance(code, str) or not 1 <= len(code) <= 32 or not code.isprintable():
+            raise ExportError(f"{p}.code: 1 to 32 printable characters required, got {code!r}")
+        if code in codes:
+            raise ExportError(f"{p}.code: duplicate code {code!r}")
+        codes.add(code)
+        if not isinstance(text, str) or not 1 <= len(text) <= 200 or not text.isprintable():
+            raise ExportError(f"{p}.text: 1 to 200 printable characters required, got {text!r}")
+        if not names or isinstance(names, str):
+            raise ExportError(f"{p}.features: a non-empty list of feature names required")
+        idx = []
+        for j, name in enumerate(names):
+            if name not in index:
+                raise ExportError(f"{p}.features[{j}]: {name!r} is not a feature of this model")
+            if name in taken:
+                raise ExportError(f"{p}.features[{j}]: {name!r} is already in family {taken[name]!r}")
+            taken[name] = code
+            idx.append(index[name])
+        out.append({"code": code, "text": text, "features": idx})
+    doc["reason_families"] = out
+    return doc
+
+
 def flatten_tree(root: Any, visit) -> list[dict]:
     """Lays out a binary tree as a probity `nodes` array in pre-order, root first.
 
-    `visit(node)` returns `("leaf", value)` or `("split", split_key, split_body, left_node, right_node)`, where
-    `split_key` is `"numeric"` or `"categorical"`. Iterative, so deep trees do not hit the recursion limit.
+    `visit(node)` returns `("leaf", value, cover)` or `("split", split_key, split_body, left_node, right_node,
+    cover)`, where `split_key` is `"numeric"` or `"categorical"` and `cover` is the training weight that reached
+    the node as the library records it (written as the node's `cover`). Iterative, so deep trees do not hit the
+    recursion limit.
     """
     nodes: list[dict | None] = []
     stack = [(root, None, None)]  # (node, parent index, side)
@@ -234,10 +277,10 @@ def flatten_tree(root: Any, visit) -> list[dict]:
             nodes[parent][side] = idx  # type: ignore[index]
         kind = visit(node)
         if kind[0] == "leaf":
-            nodes[idx] = {"leaf": _check_finite("leaf", kind[1])}
+            nodes[idx] = {"leaf": _check_finite("leaf", kind[1]), "cover": _check_cover(kind[2])}
         else:
-            _, split_key, split_body, left, right = kind
-            nodes[idx] = {split_key: split_body, "left": -1, "right": -1}
+            _, split_key, split_body, left, right, cover = kind
+            nodes[idx] = {split_key: split_body, "left": -1, "right": -1, "cover": _check_cover(cover)}
             # Right pushed first so the left subtree is laid out first.
             stack.append((right, idx, "right"))
             stack.append((left, idx, "left"))

@@ -159,13 +159,13 @@ def export_lightgbm(
 
         def visit(node, t_idx=t_idx):
             if "leaf_value" in node:
-                return ("leaf", float(node["leaf_value"]))
+                return ("leaf", float(node["leaf_value"]), float(node["leaf_count"]))
             f = int(node["split_feature"])
             where = f"tree {t_idx}, split {node.get('split_index')}"
             if node["decision_type"] == "==":
                 left = sorted(index_of[f][int(c)] for c in str(node["threshold"]).split("||"))
                 split = {"feature": f, "left_categories": left, "missing": "right", "unknown": "right"}
-                return ("split", "categorical", split, node["left_child"], node["right_child"])
+                return ("split", "categorical", split, node["left_child"], node["right_child"], float(node["internal_count"]))
             if f in codes:
                 raise ExportError(f"{where}: numeric split on categorical feature {lib_names[f]!r}")
             split = {
@@ -174,7 +174,7 @@ def export_lightgbm(
                 "threshold": float(node["threshold"]),
                 "missing": _numeric_missing(node, where),
             }
-            return ("split", "numeric", split, node["left_child"], node["right_child"])
+            return ("split", "numeric", split, node["left_child"], node["right_child"], float(node["internal_count"]))
 
         trees.append({"nodes": flatten_tree(tree["tree_structure"], visit)})
     features = [categorical_feature(x, labels[i]) if i in codes else numeric_feature(x) for i, x in enumerate(names)]

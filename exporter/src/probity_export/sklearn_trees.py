@@ -86,18 +86,19 @@ def export_gradient_boosting(
         left, right, feat, thr = t.children_left, t.children_right, t.feature, t.threshold
         miss_left = t.missing_go_to_left
         value = t.value[:, 0, 0]
+        cover = t.weighted_n_node_samples
 
-        def visit(i, left=left, right=right, feat=feat, thr=thr, miss_left=miss_left, value=value):
+        def visit(i, left=left, right=right, feat=feat, thr=thr, miss_left=miss_left, value=value, cover=cover):
             if left[i] == -1:
                 # Same product sklearn forms in `_predict_regression_tree_inplace_fast_dense`.
-                return ("leaf", lr * float(value[i]))
+                return ("leaf", lr * float(value[i]), float(cover[i]))
             split = {
                 "feature": int(feat[i]),
                 "op": "<=",
                 "threshold": float(thr[i]),
                 "missing": "left" if miss_left[i] else "right",
             }
-            return ("split", "numeric", split, int(left[i]), int(right[i]))
+            return ("split", "numeric", split, int(left[i]), int(right[i]), float(cover[i]))
 
         trees.append({"nodes": flatten_tree(0, visit)})
     names = feature_names(feature_names_, getattr(model, "feature_names_in_", None), n)
@@ -186,7 +187,7 @@ def export_hist_gradient_boosting(
         def visit(i, nodes=nodes, bitsets=bitsets):
             node = nodes[i]
             if node["is_leaf"]:
-                return ("leaf", float(node["value"]))
+                return ("leaf", float(node["value"]), float(node["count"]))
             col = int(node["feature_idx"])
             orig = out_to_orig[col]
             side = "left" if node["missing_go_to_left"] else "right"
@@ -197,9 +198,9 @@ def export_hist_gradient_boosting(
                 if any(c >= n_cats or c not in known_codes for c in left_cats):
                     raise ExportError(f"tree split on feature {orig} names a category code the encoder does not know")
                 split = {"feature": orig, "left_categories": left_cats, "missing": side, "unknown": side}
-                return ("split", "categorical", split, int(node["left"]), int(node["right"]))
+                return ("split", "categorical", split, int(node["left"]), int(node["right"]), float(node["count"]))
             split = {"feature": orig, "op": "<=", "threshold": float(node["num_threshold"]), "missing": side}
-            return ("split", "numeric", split, int(node["left"]), int(node["right"]))
+            return ("split", "numeric", split, int(node["left"]), int(node["right"]), float(node["count"]))
 
         trees.append({"nodes": flatten_tree(0, visit)})
     names = feature_names(feature_names_, getattr(model, "feature_names_in_", None), n)

@@ -102,14 +102,17 @@ def export_xgboost(
             raise ExportError(f"tree {t_idx} has a categorical split, which this exporter does not support")
         lc, rc = tree["left_children"], tree["right_children"]
         feat, cond, dleft = tree["split_indices"], tree["split_conditions"], tree["default_left"]
+        hess = tree["sum_hessian"]
 
-        def visit(i, lc=lc, rc=rc, feat=feat, cond=cond, dleft=dleft):
+        def visit(i, lc=lc, rc=rc, feat=feat, cond=cond, dleft=dleft, hess=hess):
             # Values are float32 in XGBoost; the JSON text is their shortest decimal form, so round back to f32.
             value = float(np.float32(cond[i]))
+            # The cover XGBoost's own contributions use: the node's hessian sum (float32).
+            cover = float(np.float32(hess[i]))
             if lc[i] == -1:
-                return ("leaf", value)
+                return ("leaf", value, cover)
             split = {"feature": int(feat[i]), "op": "<", "threshold": value, "missing": "left" if dleft[i] else "right"}
-            return ("split", "numeric", split, int(lc[i]), int(rc[i]))
+            return ("split", "numeric", split, int(lc[i]), int(rc[i]), cover)
 
         trees.append({"nodes": flatten_tree(0, visit)})
     names = feature_names(feature_names_, learner.get("feature_names") or None, n)

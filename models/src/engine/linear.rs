@@ -69,9 +69,18 @@ fn name(schema: &Schema, feature: usize) -> String {
 }
 
 impl Term {
+    /// The feature this term reads.
+    pub(crate) fn feature(&self) -> usize {
+        match self {
+            Term::Numeric { feature, .. }
+            | Term::Categorical { feature, .. }
+            | Term::Binned { feature, .. } => *feature,
+        }
+    }
+
     /// This term's contribution for one row.
     #[inline]
-    fn contribution(&self, row: &[f64], schema: &Schema) -> Result<f64, EvalError> {
+    pub(crate) fn contribution(&self, row: &[f64], schema: &Schema) -> Result<f64, EvalError> {
         let missing_err = |f: usize| EvalError::MissingValue {
             feature: name(schema, f),
         };

@@ -158,6 +158,20 @@ pub(crate) enum Side {
     Right,
 }
 
+/// One node of the preorder layout as a walk sees it (see [`Ensemble::step`]).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub(crate) enum Step {
+    /// A leaf and its value.
+    Leaf(f64),
+    /// A split: its feature, its children's absolute indices, and whether the row goes left.
+    Split {
+        feature: usize,
+        left: usize,
+        right: usize,
+        goes_left: bool,
+    },
+}
+
 /// A compiled, validated tree ensemble.
 #[derive(Debug, Clone, PartialEq)]
 pub(crate) struct Ensemble {
@@ -339,6 +353,25 @@ impl EnsembleBuilder {
         if let Some(n) = self.e.nodes.get_mut(node as usize) {
             n.right = right;
         }
+    }
+
+    /// Every tree built so far in the preorder layout alone, every node kept: for walks that visit each node
+    /// (explanations, `crate::explain`), which route a row with the same rules as scoring.
+    pub(crate) fn preorder_only(&self) -> Ensemble {
+        let mut e = self.e.clone();
+        let n = e.roots.len();
+        e.n_trees = n;
+        e.n_nodes = e.nodes.len();
+        e.n_features = e.n_categories.len();
+        e.depths = (0..n).map(|t| e.tree_depth(t)).collect();
+        e.groups = (0..n)
+            .step_by(LANES)
+            .map(|first| Group::Preorder {
+                first,
+                trees: LANES.min(n - first),
+            })
+            .collect();
+        e
     }
 
     /// Lays the trees out for evaluation, in groups of [`LANES`] consecutive trees: the complete layout where
@@ -828,6 +861,51 @@ impl Ensemble {
                 self.categorical_left(node, x)
             };
             i = if left { i + 1 } else { node.right as usize };
+        }
+    }
+
+    /// Roots of the trees of the preorder layout (all trees for [`EnsembleBuilder::preorder_only`]).
+    pub(crate) fn preorder_roots(&self) -> &[u32] {
+        &self.roots
+    }
+
+    /// The base margin.
+    pub(crate) fn base_margin(&self) -> f64 {
+        self.base_margin
+    }
+
+    /// Children of node `i` of the preorder layout, `None` for a leaf.
+    #[inline]
+    pub(crate) fn children(&self, i: usize) -> Option<(usize, usize)> {
+        let node = &self.nodes[i];
+        (node.flags & LEAF == 0).then_some((i + 1, node.right as usize))
+    }
+
+    /// Value of leaf `i` of the preorder layout (a split's threshold otherwise: ask [`Self::children`] first).
+    #[inline]
+    pub(crate) fn value(&self, i: usize) -> f64 {
+        self.nodes[i].value
+    }
+
+    /// Node `i` of the preorder layout seen from row `row`: a leaf's value, or a split's feature, children and
+    /// the side the row takes, decided by the same tests as scoring.
+    #[inline]
+    pub(crate) fn step(&self, i: usize, row: &[f64]) -> Step {
+        let node = &self.nodes[i];
+        if node.flags & LEAF != 0 {
+            return Step::Leaf(node.value);
+        }
+        let x = row[node.feature as usize];
+        let goes_left = if node.flags & CATEGORICAL == 0 {
+            numeric_left(node, x)
+        } else {
+            self.categorical_left(node, x)
+        };
+        Step::Split {
+            feature: node.feature as usize,
+            left: i + 1,
+            right: node.right as usize,
+            goes_left,
         }
     }
 

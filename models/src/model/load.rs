@@ -12,6 +12,7 @@ mod trees;
 
 use crate::engine::Body;
 use crate::error::ModelError;
+use crate::explain::{Attribution, ReasonFamilies};
 use crate::model::{MarginScale, Model};
 use crate::schema::{Feature, FeatureKind, Schema};
 
@@ -22,8 +23,10 @@ pub use trees::{MAX_NODES, MAX_TREES};
 
 /// The only `format` value this reader accepts.
 pub const FORMAT_TAG: &str = "probity.model";
-/// The only `format_version` this reader accepts.
-pub const FORMAT_VERSION: u64 = 1;
+/// The newest `format_version` this reader accepts; version 1 (no `cover`, no `reason_families`) is still read.
+pub const FORMAT_VERSION: u64 = 2;
+/// The oldest `format_version` this reader accepts.
+pub const OLDEST_FORMAT_VERSION: u64 = 1;
 /// Largest document accepted, in bytes.
 pub const MAX_DOCUMENT_BYTES: usize = 256 * 1024 * 1024;
 /// Longest `name` or `version`.
@@ -157,15 +160,16 @@ fn build(raw: RawModel) -> Result<Model, ModelError> {
             format!("expected \"{FORMAT_TAG}\", got {:?}", raw.format),
         ));
     }
-    if raw.format_version != FORMAT_VERSION {
+    if !(OLDEST_FORMAT_VERSION..=FORMAT_VERSION).contains(&raw.format_version) {
         return Err(ModelError::rule(
             "format_version",
             format!(
-                "unsupported version {}, this reader knows version {FORMAT_VERSION}",
+                "unsupported version {}, this reader knows versions {OLDEST_FORMAT_VERSION} to {FORMAT_VERSION}",
                 raw.format_version
             ),
         ));
     }
+    let version_2 = raw.format_version >= 2;
     let name = identifier(&raw.name, "name")?;
     let version = identifier(&raw.version, "version")?;
     let metadata = match raw.metadata {
@@ -199,8 +203,13 @@ fn build(raw: RawModel) -> Result<Model, ModelError> {
             }
         })
         .transpose()?;
+    let mut attribution = Attribution::Linear;
     let body = match (raw.ensemble, raw.linear) {
-        (Some(e), None) => Body::Ensemble(Box::new(trees::ensemble(e, &schema)?)),
+        (Some(e), None) => {
+            let (ensemble, paths) = trees::ensemble(e, &schema, version_2)?;
+            attribution = paths;
+            Body::Ensemble(Box::new(ensemble))
+        }
         (None, Some(l)) => Body::Linear(linear::linear(l, &schema)?),
         (None, None) => {
             return Err(ModelError::rule(
@@ -221,6 +230,16 @@ fn build(raw: RawModel) -> Result<Model, ModelError> {
         .map(extras::reference)
         .transpose()?;
     let score_scale = raw.score_scale.map(extras::score_scale).transpose()?;
+    let families = match raw.reason_families {
+        None => ReasonFamilies::default(),
+        Some(_) if !version_2 => {
+            return Err(ModelError::rule(
+                "reason_families",
+                "needs format_version 2 or later",
+            ))
+        }
+        Some(f) => extras::reason_families(f, &schema)?,
+    };
     Ok(Model {
         name,
         version,
@@ -233,6 +252,8 @@ fn build(raw: RawModel) -> Result<Model, ModelError> {
         calibration,
         reference,
         score_scale,
+        attribution,
+        families,
     })
 }
 

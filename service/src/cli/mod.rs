@@ -7,6 +7,7 @@ pub mod compare;
 pub mod demo;
 pub mod demo_data;
 pub mod evaluate;
+pub mod explain;
 pub mod pipeline;
 pub mod promote;
 pub mod reliability;

@@ -284,8 +284,27 @@ pub fn score_records<R: Read>(
     columns: &ColumnMap,
     spec: &OutputSpec,
     reader: &mut csv::Reader<R>,
-    mut on_reject: OnReject<'_>,
+    on_reject: OnReject<'_>,
     mut sink: impl FnMut(&StringRecord, &Scored, &RowNotes) -> anyhow::Result<()>,
+) -> anyhow::Result<u64> {
+    score_rows(
+        model,
+        columns,
+        spec,
+        reader,
+        on_reject,
+        |record, _, scored, notes| sink(record, scored, notes),
+    )
+}
+
+/// [`score_records`], also handing the sink each row as the model scored it (its dense values).
+pub fn score_rows<R: Read>(
+    model: &Model,
+    columns: &ColumnMap,
+    spec: &OutputSpec,
+    reader: &mut csv::Reader<R>,
+    mut on_reject: OnReject<'_>,
+    mut sink: impl FnMut(&StringRecord, &[f64], &Scored, &RowNotes) -> anyhow::Result<()>,
 ) -> anyhow::Result<u64> {
     let schema = model.schema();
     let n = schema.len();
@@ -333,10 +352,18 @@ pub fn score_records<R: Read>(
             let block = model.margins(&rows[..filled * n], &mut margins[..filled]);
             match (block, on_reject.as_deref_mut()) {
                 (Ok(()), _) => {
-                    for ((record, &margin), row_notes) in
-                        records.iter().zip(&margins[..filled]).zip(&notes)
+                    for (k, ((record, &margin), row_notes)) in records
+                        .iter()
+                        .zip(&margins[..filled])
+                        .zip(&notes)
+                        .enumerate()
                     {
-                        sink(record, &model.finish(margin, spec), row_notes)?;
+                        sink(
+                            record,
+                            &rows[k * n..(k + 1) * n],
+                            &model.finish(margin, spec),
+                            row_notes,
+                        )?;
                     }
                     scored += filled as u64;
                 }
@@ -354,7 +381,12 @@ pub fn score_records<R: Read>(
                         let mut one = [0.0];
                         match model.margins(&rows[i * n..(i + 1) * n], &mut one) {
                             Ok(()) => {
-                                sink(&records[i], &model.finish(one[0], spec), &notes[i])?;
+                                sink(
+                                    &records[i],
+                                    &rows[i * n..(i + 1) * n],
+                                    &model.finish(one[0], spec),
+                                    &notes[i],
+                                )?;
                                 scored += 1;
                             }
                             Err(e) => reject(Rejected {

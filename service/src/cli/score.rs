@@ -18,7 +18,7 @@ use super::pipeline::{
 mod remote;
 
 /// Files smaller than this finish before a progress bar is worth drawing.
-const PROGRESS_MIN_BYTES: u64 = 1 << 20;
+pub(crate) const PROGRESS_MIN_BYTES: u64 = 1 << 20;
 
 /// Arguments of `probity score`.
 #[derive(Debug, clap::Args)]
@@ -546,7 +546,7 @@ fn score_file<R: Read, W: Write>(
 }
 
 /// A byte-count progress bar on stderr.
-fn bar(size: u64) -> ProgressBar {
+pub(crate) fn bar(size: u64) -> ProgressBar {
     let style =
         ProgressStyle::with_template("{bar:40} {bytes}/{total_bytes} {bytes_per_sec} eta {eta}")
             .unwrap_or_else(|_| ProgressStyle::default_bar());

@@ -168,6 +168,14 @@ struct RawRoute {
     unknown_features: Option<String>,
     challengers: Vec<crate::serve::challenger::RawChallenger>,
     base_rate_from_estimate: Option<crate::serve::base_rate::RawEstimateBounds>,
+    reasons: Option<RawReasons>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+struct RawReasons {
+    limit: Option<i64>,
+    adverse: Option<String>,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -278,6 +286,8 @@ pub struct Route {
     pub unknown_features: UnknownFeaturePolicy,
     /// Challengers beside the champion (`model`), mirrored or split.
     pub challengers: crate::serve::challenger::Challengers,
+    /// How many reasons an explanation lists and which direction is adverse (`[routes.NAME.reasons]`).
+    pub reasons: probity_models::ReasonRequest,
 }
 
 /// Missing-feature policy.
@@ -706,7 +716,15 @@ fn route(name: &str, raw: RawRoute) -> Result<Route, ConfigError> {
         unknown_features,
         challengers,
         base_rate_from_estimate: _,
+        reasons,
     } = raw;
+    let reasons = reasons.unwrap_or_default();
+    let reasons = crate::serve::explain::reasons_config(
+        &key("reasons"),
+        reasons.limit,
+        reasons.adverse.as_deref(),
+    )
+    .map_err(|(key, message)| invalid(key, message))?;
     let model = model.ok_or_else(|| {
         invalid(
             key("model"),
@@ -773,6 +791,7 @@ fn route(name: &str, raw: RawRoute) -> Result<Route, ConfigError> {
         unknown_categories,
         unknown_features,
         challengers,
+        reasons,
     })
 }
 

@@ -395,6 +395,7 @@ pub fn score_response(
         decision: decision.map(|d| d.as_str().to_string()),
         warnings: warnings.into_iter().map(pb::Warning::from).collect(),
         role: role.to_string(),
+        explanation: None,
     }
 }
 
@@ -483,6 +484,7 @@ pub fn route_info(route: &Route, serving: Option<&LoadedModel>) -> pb::RouteInfo
         unknown_categories,
         unknown_features,
         challengers,
+        reasons: _,
     } = route;
     let decision = match &output.decision {
         None => String::new(),

@@ -47,6 +47,14 @@ pub enum ServeError {
         /// The engine's error.
         error: EvalError,
     },
+    /// An explanation was asked of a model that cannot give one (a tree ensemble without per-node cover).
+    #[error("model `{model}`: {message}")]
+    NotExplainable {
+        /// The model's name.
+        model: String,
+        /// Why, naming the missing key.
+        message: String,
+    },
     /// The deadline passed before all rows were scored.
     #[error("deadline exceeded after {rows_done} of {rows} rows")]
     DeadlineExceeded {

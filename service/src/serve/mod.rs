@@ -19,6 +19,7 @@ pub mod compare_metrics;
 pub mod config;
 pub mod conversions;
 pub mod error;
+pub mod explain;
 pub mod grpc;
 pub mod limits;
 pub mod metrics;

@@ -14,6 +14,7 @@ use crate::serve::challenger::Answer;
 use crate::serve::config::{Limits, Route};
 use crate::serve::conversions::{prepare_row, score_response};
 use crate::serve::error::ServeError;
+use crate::serve::explain;
 use crate::serve::metrics;
 use crate::serve::promotion::{RouteMap, RouteTable};
 use crate::serve::proto as pb;
@@ -221,7 +222,11 @@ impl Scorer {
 
     /// Scores one row.
     pub fn score(&self, request: pb::ScoreRequest) -> Result<pb::ScoreResponse, ServeError> {
-        let pb::ScoreRequest { route, row } = request;
+        let pb::ScoreRequest {
+            route,
+            row,
+            explain,
+        } = request;
         let (route_now, champion) = self.resolve(&route)?;
         let config: &Route = &route_now;
         let row = row.ok_or_else(|| ServeError::invalid("row", "is required"))?;
@@ -235,6 +240,7 @@ impl Scorer {
         };
         let shadows = self.shadows(config, loaded.model.name());
         let kept = (!shadows.is_empty()).then(|| row.clone());
+        let level = explain::level(explain, "explain")?;
         let prepared = prepare_row(row, "row", loaded.model.schema(), config)?;
         let scored = loaded
             .model
@@ -243,7 +249,18 @@ impl Scorer {
                 field: "row".into(),
                 error,
             })?;
-        let response = self.respond(config, &loaded, role, prepared, scored);
+        let explanation = match level {
+            None => None,
+            Some(level) => Some(explain::explain(
+                &loaded.model,
+                &prepared.values,
+                &config.reasons,
+                level,
+                "row",
+            )?),
+        };
+        let mut response = self.respond(config, &loaded, role, prepared, scored);
+        response.explanation = explanation;
         if let Some(mut row) = kept {
             row.prediction_id.clone_from(&response.prediction_id);
             let answered = Answered {
@@ -262,7 +279,12 @@ impl Scorer {
         request: pb::ScoreBatchRequest,
         deadline: Instant,
     ) -> Result<pb::ScoreBatchResponse, ServeError> {
-        let pb::ScoreBatchRequest { route, rows } = request;
+        let pb::ScoreBatchRequest {
+            route,
+            rows,
+            explain,
+        } = request;
+        let level = explain::level(explain, "explain")?;
         let (route_now, loaded) = self.resolve(&route)?;
         let config: &Route = &route_now;
         if rows.is_empty() {
@@ -318,12 +340,35 @@ impl Scorer {
                     },
                 })?;
         }
+        // Explanations first, so a row that cannot be explained fails the call before anything is answered.
+        let mut explanations = Vec::new();
+        if let Some(level) = level {
+            explanations.reserve(total);
+            for (i, row) in prepared.iter().enumerate() {
+                if i % CHUNK_ROWS == 0 && Instant::now() >= deadline {
+                    return Err(ServeError::DeadlineExceeded {
+                        rows_done: i,
+                        rows: total,
+                    });
+                }
+                explanations.push(explain::explain(
+                    &loaded.model,
+                    &row.values,
+                    &config.reasons,
+                    level,
+                    &format!("rows[{i}]"),
+                )?);
+            }
+        }
+        let mut explanations = explanations.into_iter();
         let results: Vec<pb::ScoreResponse> = prepared
             .into_iter()
             .zip(margins)
             .map(|(row, margin)| {
                 let scored = loaded.model.finish(margin, &config.output);
-                self.respond(config, &loaded, "champion", row, scored)
+                let mut response = self.respond(config, &loaded, "champion", row, scored);
+                response.explanation = explanations.next();
+                response
             })
             .collect();
         if let Some(rows) = kept {

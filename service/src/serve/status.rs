@@ -54,6 +54,7 @@ impl From<ServeError> for Status {
             | ServeError::RouteNotFound { .. }
             | ServeError::RouteNotReady { .. }
             | ServeError::ModelNotFound { .. }
+            | ServeError::NotExplainable { .. }
             | ServeError::DeadlineExceeded { .. } => error.to_string(),
         };
         Status::new(code, message)
@@ -75,6 +76,10 @@ pub fn code_of(error: &ServeError) -> Code {
         } => Code::Unavailable,
         ServeError::ModelNotFound { model: _ } => Code::NotFound,
         ServeError::Eval { field: _, error } => eval_code(error),
+        ServeError::NotExplainable {
+            model: _,
+            message: _,
+        } => Code::FailedPrecondition,
         ServeError::DeadlineExceeded {
             rows_done: _,
             rows: _,

@@ -82,6 +82,7 @@ async fn a_full_disk_is_a_counted_logging_failure_scoring_goes_on_and_the_log_re
                 let end = (start + 100).min(range.end);
                 let answer = scoring
                     .score_batch(pb::ScoreBatchRequest {
+                        explain: 0,
                         route: "disk".into(),
                         rows: rows(prefix, start..end),
                     })

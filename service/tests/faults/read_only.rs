@@ -90,6 +90,7 @@ async fn a_read_only_data_directory_refuses_to_start_with_a_clear_error() {
     let server = spawn(serve_command(&config));
     pb::scoring_client::ScoringClient::new(server.channel().await)
         .score_batch(pb::ScoreBatchRequest {
+            explain: 0,
             route: "r".into(),
             rows: rows("p", 0..10),
         })
@@ -198,6 +199,7 @@ async fn a_file_system_turning_read_only_under_the_server_is_counted_and_scoring
     for start in (0..200).step_by(100) {
         scoring
             .score_batch(pb::ScoreBatchRequest {
+                explain: 0,
                 route: "ro".into(),
                 rows: rows("a", start..start + 100),
             })
@@ -226,6 +228,7 @@ async fn a_file_system_turning_read_only_under_the_server_is_counted_and_scoring
     for start in (0..500).step_by(100) {
         let answer = scoring
             .score_batch(pb::ScoreBatchRequest {
+                explain: 0,
                 route: "ro".into(),
                 rows: rows("b", start..start + 100),
             })

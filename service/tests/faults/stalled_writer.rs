@@ -150,6 +150,7 @@ async fn a_stalled_log_writer_never_stalls_scoring_and_every_drop_is_counted() {
     connect()
         .await
         .score(pb::ScoreRequest {
+            explain: 0,
             route: "stalled".into(),
             row: Some(rows("first", 0..1).remove(0)),
         })
@@ -171,6 +172,7 @@ async fn a_stalled_log_writer_never_stalls_scoring_and_every_drop_is_counted() {
             for row in rows(&format!("u{c}"), 0..50) {
                 let answer = client
                     .score(pb::ScoreRequest {
+                        explain: 0,
                         route: "stalled".into(),
                         row: Some(row),
                     })
@@ -186,6 +188,7 @@ async fn a_stalled_log_writer_never_stalls_scoring_and_every_drop_is_counted() {
     let batch = tokio::spawn(async move {
         batch_client
             .score_batch(pb::ScoreBatchRequest {
+                explain: 0,
                 route: "stalled".into(),
                 rows: rows("batch", 0..300),
             })

@@ -27,6 +27,7 @@ fn table() -> Vec<(&'static str, Call, Code, &'static str)> {
     let fraud = |row| Call::Score(score_request("fraud", row));
     let batch = |rows| {
         Call::Batch(pb::ScoreBatchRequest {
+            explain: 0,
             route: "fraud".into(),
             rows,
         })
@@ -54,6 +55,7 @@ fn table() -> Vec<(&'static str, Call, Code, &'static str)> {
         (
             "no row",
             Call::Score(pb::ScoreRequest {
+                explain: 0,
                 route: "fraud".into(),
                 row: None,
             }),
@@ -231,6 +233,7 @@ fn table() -> Vec<(&'static str, Call, Code, &'static str)> {
         (
             "engine error in a batch row",
             Call::Batch(pb::ScoreBatchRequest {
+                explain: 0,
                 route: "credit".into(),
                 rows: vec![
                     named("", &[("income", Num(1.0)), ("region", Cat("north"))]),

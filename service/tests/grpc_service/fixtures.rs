@@ -186,6 +186,7 @@ pub fn fraud_row(id: &str) -> pb::Row {
 
 pub fn score_request(route: &str, row: pb::Row) -> pb::ScoreRequest {
     pb::ScoreRequest {
+        explain: 0,
         route: route.into(),
         row: Some(row),
     }

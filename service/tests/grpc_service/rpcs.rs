@@ -83,6 +83,7 @@ async fn every_rpc_answers() {
     ];
     let batch = scoring
         .score_batch(pb::ScoreBatchRequest {
+            explain: 0,
             route: "fraud".into(),
             rows,
         })
@@ -307,4 +308,153 @@ async fn shutdown_stops_accepting() {
         again.is_err(),
         "a new connection after shutdown should be refused"
     );
+}
+
+/// The test fraud model with per-node cover and reason families (model format version 2).
+fn fraud_model_with_cover() -> String {
+    let text = std::fs::read_to_string(data_dir().join("grpc-fraud-v1.json")).unwrap();
+    let mut doc: serde_json::Value = serde_json::from_str(&text).unwrap();
+    doc["format_version"] = 2.into();
+    doc["version"] = "v2".into();
+    for (t, covers) in [
+        (0, vec![10.0, 6.0, 4.0]),
+        (1, vec![10.0, 3.0, 7.0, 5.0, 2.0]),
+    ] {
+        for (i, c) in covers.into_iter().enumerate() {
+            doc["ensemble"]["trees"][t]["nodes"][i]["cover"] = c.into();
+        }
+    }
+    doc["reason_families"] = serde_json::json!([
+        {"code": "A1", "text": "Amount large for the card", "features": [0]},
+        {"code": "C1", "text": "Channel and time of day", "features": [1, 2]},
+    ]);
+    doc.to_string()
+}
+
+#[tokio::test]
+async fn explanations_on_every_scoring_call() {
+    let t = TestServer::start(false).await;
+    let mut scoring = t.scoring().await;
+    let explained = |row: pb::Row, explain: pb::ExplainLevel| pb::ScoreRequest {
+        explain: explain as i32,
+        ..score_request("fraud", row)
+    };
+
+    // The served model has no cover: asking for an explanation is FAILED_PRECONDITION naming the key, and a
+    // plain score is unaffected.
+    let err = scoring
+        .score(explained(fraud_row(""), pb::ExplainLevel::Reasons))
+        .await
+        .unwrap_err();
+    assert_eq!(err.code(), tonic::Code::FailedPrecondition);
+    assert!(
+        err.message()
+            .contains("`ensemble.trees[0].nodes[0].cover` is missing"),
+        "{}",
+        err.message()
+    );
+    let plain = scoring
+        .score(score_request("fraud", fraud_row("")))
+        .await
+        .unwrap()
+        .into_inner();
+    assert!(plain.explanation.is_none());
+
+    t.put_model("grpc-fraud-v1.json", &fraud_model_with_cover());
+    let mut models = t.models_client().await;
+    models.reload(pb::ReloadRequest {}).await.unwrap();
+
+    // Hand computation of the path-dependent Shapley values (Lundberg, Erion and Lee 2018): tree 0 has mean
+    // 0.6 * -0.5 + 0.4 * 1.0 = 0.1 and the row (amount 150) gets 1.0, so amount gets 0.9. Tree 1: coalition
+    // values v({}) = 0.3 * 0.75 + 0.7 * (5/7 * 0.25 + 2/7 * -0.25) = 0.3, v({channel}) = 0.75,
+    // v({hour}) = 0.3 * 0.75 + 0.7 * 0.25 = 0.4, v({channel, hour}) = 0.75: channel gets
+    // (0.45 + 0.35) / 2 = 0.4, hour (0.1 + 0) / 2 = 0.05. Bias -2 + 0.1 + 0.3 = -1.6; the sum is the margin.
+    let r = scoring
+        .score(explained(fraud_row("e1"), pb::ExplainLevel::Contributions))
+        .await
+        .unwrap()
+        .into_inner();
+    assert_eq!(r.model_version, "v2");
+    let e = r.explanation.expect("an explanation was asked for");
+    let got: Vec<(&str, f64)> = e
+        .contributions
+        .iter()
+        .map(|c| (c.feature.as_str(), c.log_odds))
+        .collect();
+    let want = [("amount", 0.9), ("channel", 0.4), ("hour", 0.05)];
+    for ((gn, gv), (wn, wv)) in got.iter().zip(want) {
+        assert_eq!(*gn, wn);
+        assert!((gv - wv).abs() < 1e-15, "{got:?}");
+    }
+    assert!((e.bias - -1.6).abs() < 1e-15);
+    let total: f64 = e.bias + got.iter().map(|(_, v)| v).sum::<f64>();
+    assert!((total - r.log_odds).abs() < 1e-12);
+    let reasons: Vec<(&str, &str)> = e
+        .reasons
+        .iter()
+        .map(|x| (x.code.as_str(), x.text.as_str()))
+        .collect();
+    assert_eq!(
+        reasons,
+        [
+            ("A1", "Amount large for the card"),
+            ("C1", "Channel and time of day")
+        ]
+    );
+    assert!((e.reasons[1].weight - 0.45).abs() < 1e-15);
+    assert_eq!(e.reasons[1].features, ["channel", "hour"]);
+
+    // ScoreBatch with reasons only: no contributions, the same reasons, every row explained.
+    let batch = scoring
+        .score_batch(pb::ScoreBatchRequest {
+            route: "fraud".into(),
+            rows: vec![fraud_row("b1"), dense(&[50.0, 0.0, 3.0])],
+            explain: pb::ExplainLevel::Reasons as i32,
+        })
+        .await
+        .unwrap()
+        .into_inner();
+    let first = batch.results[0].explanation.as_ref().unwrap();
+    assert!(first.contributions.is_empty());
+    assert_eq!(first.reasons.len(), 2);
+    // Row 2: amount 50 goes left (-0.5, below the mean 0.1: amount gets -0.6); `pos` goes right and hour 3 left
+    // (0.25, below tree 1's mean 0.3): the family of channel and hour sums to -0.05. Nothing is adverse.
+    let second = batch.results[1].explanation.as_ref().unwrap();
+    assert!(second.reasons.is_empty(), "{:?}", second.reasons);
+
+    // ScoreStream: explanations per request; an unknown level is an in-stream INVALID_ARGUMENT.
+    let requests = vec![
+        explained(fraud_row("s0"), pb::ExplainLevel::Reasons),
+        pb::ScoreRequest {
+            explain: 7,
+            ..score_request("fraud", fraud_row("s1"))
+        },
+        score_request("fraud", fraud_row("s2")),
+    ];
+    let mut stream = scoring
+        .score_stream(tokio_stream::iter(requests))
+        .await
+        .unwrap()
+        .into_inner();
+    let mut answers = Vec::new();
+    while let Some(answer) = stream.message().await.unwrap() {
+        answers.push(answer.outcome);
+    }
+    match &answers[0] {
+        Some(pb::score_stream_response::Outcome::Result(r)) => {
+            assert_eq!(r.explanation.as_ref().unwrap().reasons[0].code, "A1");
+        }
+        other => panic!("expected a result, got {other:?}"),
+    }
+    match &answers[1] {
+        Some(pb::score_stream_response::Outcome::Error(e)) => {
+            assert_eq!(e.code, tonic::Code::InvalidArgument as i32);
+            assert!(e.message.contains("explain"), "{}", e.message);
+        }
+        other => panic!("expected an error, got {other:?}"),
+    }
+    match &answers[2] {
+        Some(pb::score_stream_response::Outcome::Result(r)) => assert!(r.explanation.is_none()),
+        other => panic!("expected a result, got {other:?}"),
+    }
 }

@@ -171,6 +171,7 @@ impl pb::scoring_server::Scoring for Bare {
             decision: None,
             warnings: Vec::new(),
             role: "champion".into(),
+            explanation: None,
         }))
     }
 
@@ -245,6 +246,7 @@ fn requests(args: &RunArgs) -> Result<Vec<pb::ScoreRequest>> {
             named.insert(f.name.clone(), pb::FeatureValue { kind: Some(kind) });
         }
         out.push(pb::ScoreRequest {
+            explain: 0,
             route: args.route.clone(),
             row: Some(pb::Row {
                 features: Some(pb::row::Features::Named(pb::NamedFeatures {

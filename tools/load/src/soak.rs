@@ -446,6 +446,7 @@ pub async fn soak(args: SoakArgs) -> Result<bool> {
                         .collect();
                     match client
                         .score_batch(pb::ScoreBatchRequest {
+                            explain: 0,
                             route: "soak".into(),
                             rows,
                         })
@@ -467,6 +468,7 @@ pub async fn soak(args: SoakArgs) -> Result<bool> {
                     }
                 } else {
                     let request = pb::ScoreRequest {
+                        explain: 0,
                         route: "soak".into(),
                         row: Some(row(&model, &mut rng, format!("c{c}-{n}"))),
                     };

@@ -1,12 +1,15 @@
-//! Rules of the optional `calibration`, `reference_distribution` and `score_scale` objects.
+//! Rules of the optional `calibration`, `reference_distribution`, `score_scale` and `reason_families` objects.
 
 use super::finite;
 use super::raw::{
-    RawCalibration, RawDistributionScale, RawIsotonicInput, RawOddsOf, RawReference, RawScoreScale,
+    RawCalibration, RawDistributionScale, RawIsotonicInput, RawOddsOf, RawReasonFamily,
+    RawReference, RawScoreScale,
 };
 use crate::calibration::{Calibration, IsotonicInput};
 use crate::error::ModelError;
+use crate::explain::{ReasonFamilies, ReasonFamily};
 use crate::model::{DistributionScale, OddsOf, ReferenceDistribution, ScoreScale};
+use crate::schema::Schema;
 
 /// How far the reference fractions may sum from 1 (`docs/model-format.md`).
 const FRACTION_SUM_TOLERANCE: f64 = 1e-6;
@@ -160,5 +163,78 @@ pub(super) fn score_scale(raw: RawScoreScale) -> Result<ScoreScale, ModelError> 
             RawOddsOf::Negative => OddsOf::Negative,
             RawOddsOf::Positive => OddsOf::Positive,
         },
+    })
+}
+
+/// Longest reason code.
+pub const MAX_REASON_CODE_CHARS: usize = 32;
+/// Longest reason text.
+pub const MAX_REASON_TEXT_CHARS: usize = 200;
+
+/// Checks the `reason_families` array: codes unique, texts short, every feature in range and in one family at most.
+pub(super) fn reason_families(
+    raw: Vec<RawReasonFamily>,
+    schema: &Schema,
+) -> Result<ReasonFamilies, ModelError> {
+    let mut of_feature: Vec<Option<u32>> = vec![None; schema.len()];
+    let mut families = Vec::with_capacity(raw.len());
+    let mut codes = std::collections::HashSet::new();
+    for (k, f) in raw.into_iter().enumerate() {
+        let path = |rest: &str| format!("reason_families[{k}]{rest}");
+        let n = f.code.chars().count();
+        if n == 0 || n > MAX_REASON_CODE_CHARS || f.code.chars().any(char::is_control) {
+            return Err(ModelError::rule(
+                path(".code"),
+                format!("must be 1 to {MAX_REASON_CODE_CHARS} printable characters, got {n}"),
+            ));
+        }
+        if !codes.insert(f.code.clone()) {
+            return Err(ModelError::rule(
+                path(".code"),
+                format!("duplicate reason code {:?}", f.code),
+            ));
+        }
+        let n = f.text.chars().count();
+        if n == 0 || n > MAX_REASON_TEXT_CHARS || f.text.chars().any(char::is_control) {
+            return Err(ModelError::rule(
+                path(".text"),
+                format!("must be 1 to {MAX_REASON_TEXT_CHARS} printable characters, got {n}"),
+            ));
+        }
+        if f.features.is_empty() {
+            return Err(ModelError::rule(
+                path(".features"),
+                "a family needs at least one feature",
+            ));
+        }
+        let mut features = Vec::with_capacity(f.features.len());
+        for (j, &i) in f.features.iter().enumerate() {
+            let Some(slot) = of_feature.get_mut(i as usize) else {
+                return Err(ModelError::rule(
+                    path(&format!(".features[{j}]")),
+                    format!(
+                        "feature index {i} is out of range (the model has {} features)",
+                        schema.len()
+                    ),
+                ));
+            };
+            if let Some(other) = slot {
+                return Err(ModelError::rule(
+                    path(&format!(".features[{j}]")),
+                    format!("feature {i} is already in reason family {other}"),
+                ));
+            }
+            *slot = Some(k as u32);
+            features.push(i as usize);
+        }
+        families.push(ReasonFamily {
+            code: f.code,
+            text: f.text,
+            features,
+        });
+    }
+    Ok(ReasonFamilies {
+        families,
+        of_feature,
     })
 }

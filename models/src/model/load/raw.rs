@@ -23,6 +23,15 @@ pub(crate) struct RawModel {
     pub calibration: Option<RawCalibration>,
     pub reference_distribution: Option<RawReference>,
     pub score_scale: Option<RawScoreScale>,
+    pub reason_families: Option<Vec<RawReasonFamily>>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(crate) struct RawReasonFamily {
+    pub code: String,
+    pub text: String,
+    pub features: Vec<u32>,
 }
 
 #[derive(Debug, Clone, Copy, Deserialize)]
@@ -77,6 +86,7 @@ pub(crate) struct RawNode {
     pub categorical: Option<Box<RawCategoricalSplit>>,
     pub left: Option<u32>,
     pub right: Option<u32>,
+    pub cover: Option<f64>,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize)]

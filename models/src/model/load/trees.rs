@@ -9,6 +9,7 @@ use super::finite;
 use super::raw::{RawEnsemble, RawNode, RawOp, RawPrecision, RawSide};
 use crate::engine::tree::{Ensemble, EnsembleBuilder, Side};
 use crate::error::ModelError;
+use crate::explain::{Attribution, TreePaths};
 use crate::schema::Schema;
 
 /// Most trees in an ensemble (`docs/model-format.md`, Limits).
@@ -46,8 +47,44 @@ fn limits(trees: usize, nodes: usize) -> Result<(), ModelError> {
     Ok(())
 }
 
-/// Checks and compiles an ensemble.
-pub(super) fn ensemble(raw: RawEnsemble, schema: &Schema) -> Result<Ensemble, ModelError> {
+/// Whether the nodes carry `cover`: all of them (format version 2) or none; the path of a node that breaks the
+/// rule otherwise.
+fn covered(raw: &RawEnsemble, version_2: bool) -> Result<bool, ModelError> {
+    let mut with = None;
+    let mut without = None;
+    for (t, tree) in raw.trees.iter().enumerate() {
+        for (i, node) in tree.nodes.iter().enumerate() {
+            let slot = if node.cover.is_some() {
+                &mut with
+            } else {
+                &mut without
+            };
+            if slot.is_none() {
+                *slot = Some((t, i));
+            }
+        }
+    }
+    let path = |(t, i): (usize, usize)| format!("ensemble.trees[{t}].nodes[{i}].cover");
+    match (with, without) {
+        (Some(at), _) if !version_2 => Err(ModelError::rule(
+            path(at),
+            "`cover` needs format_version 2 or later",
+        )),
+        (Some(_), Some(at)) => Err(ModelError::rule(
+            path(at),
+            "missing: some nodes carry `cover`, so every node needs it",
+        )),
+        (Some(_), None) => Ok(true),
+        (None, _) => Ok(false),
+    }
+}
+
+/// Checks and compiles an ensemble, with what explanations need when the nodes carry `cover`.
+pub(super) fn ensemble(
+    raw: RawEnsemble,
+    schema: &Schema,
+    version_2: bool,
+) -> Result<(Ensemble, Attribution), ModelError> {
     let base_margin = finite(raw.base_margin, || "ensemble.base_margin".into())?;
     if raw.trees.is_empty() {
         return Err(ModelError::rule(
@@ -65,6 +102,11 @@ pub(super) fn ensemble(raw: RawEnsemble, schema: &Schema) -> Result<Ensemble, Mo
     let float32 = matches!(raw.split_precision, RawPrecision::Float32);
     let mut b = EnsembleBuilder::new(base_margin, float32, n_categories, total);
     let mut walk = Walk::default();
+    let mut covers = if covered(&raw, version_2)? {
+        Some(Vec::with_capacity(total))
+    } else {
+        None
+    };
     for (t, tree) in raw.trees.iter().enumerate() {
         let path = |i: usize, rest: &str| format!("ensemble.trees[{t}].nodes[{i}]{rest}");
         if tree.nodes.is_empty() {
@@ -76,9 +118,15 @@ pub(super) fn ensemble(raw: RawEnsemble, schema: &Schema) -> Result<Ensemble, Mo
         for (i, node) in tree.nodes.iter().enumerate() {
             check_node(node, i, tree.nodes.len(), schema, &path)?;
         }
-        walk.run(&tree.nodes, &mut b, &path)?;
+        walk.run(&tree.nodes, &mut b, covers.as_mut(), &path)?;
     }
-    Ok(b.finish())
+    let attribution = match covers {
+        Some(covers) => Attribution::Trees(Box::new(TreePaths::new(b.preorder_only(), covers))),
+        None => Attribution::NoCover {
+            path: "ensemble.trees[0].nodes[0].cover".into(),
+        },
+    };
+    Ok((b.finish(), attribution))
 }
 
 /// The rules a node must meet on its own.
@@ -99,6 +147,15 @@ fn check_node(
             path(i, ""),
             "a node needs exactly one of `leaf`, `numeric` and `categorical`",
         ));
+    }
+    if let Some(c) = node.cover {
+        finite(c, || path(i, ".cover"))?;
+        if c < 0.0 {
+            return Err(ModelError::rule(
+                path(i, ".cover"),
+                format!("must be 0 or more, got {c}"),
+            ));
+        }
     }
     if let Some(v) = node.leaf {
         finite(v, || path(i, ".leaf"))?;
@@ -226,6 +283,7 @@ impl Walk {
         &mut self,
         nodes: &[RawNode],
         b: &mut EnsembleBuilder,
+        mut covers: Option<&mut Vec<f64>>,
         path: &dyn Fn(usize, &str) -> String,
     ) -> Result<(), ModelError> {
         self.parent.clear();
@@ -242,6 +300,10 @@ impl Walk {
                 b.set_right(parent, here);
             }
             let node = &nodes[i as usize];
+            if let Some(c) = covers.as_deref_mut() {
+                // `covered` checked that every node has one.
+                c.push(node.cover.unwrap_or(0.0));
+            }
             if let Some(v) = node.leaf {
                 b.push_leaf(v)?;
                 b.note_depth(depth);

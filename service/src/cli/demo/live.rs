@@ -118,6 +118,7 @@ async fn serve_and_drive(
         Some(runs) => {
             for (model, run) in model_refs.iter().zip(runs) {
                 print!("{}", summary::model_section(model, run, data));
+                print!("{}", summary::reasons_section(model, run, data));
             }
             print!("{}", summary::yardstick(data));
             if let Some(path) = &args.write_scored {

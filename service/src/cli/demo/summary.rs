@@ -1,5 +1,5 @@
 //! What the demo prints: the data, the traffic (live only), each model's probability distribution and quality
-//! figures, and the generating model as the yardstick.
+//! figures, the reasons for a few declined transactions, and the generating model as the yardstick.
 
 use std::fmt::Write as _;
 use std::time::Duration;
@@ -26,9 +26,97 @@ pub fn report(data: &DemoData, models: &[&Model], runs: &[DemoRun]) -> String {
     out += &data_section(data);
     for (model, run) in models.iter().zip(runs) {
         out += &model_section(model, run, data);
+        out += &reasons_section(model, run, data);
     }
     out += &yardstick(data);
     out
+}
+
+/// Declined transactions shown with their reasons.
+const DECLINES_SHOWN: usize = 3;
+
+/// The reasons for the most likely frauds among the transactions the model would decline at the cost rule of
+/// `deploy/probity.toml` (a missed fraud costs 40 times a false alarm: decline above 1/41, Elkan 2001), as the
+/// server gives them with `explain` (the same computation, in process).
+pub fn reasons_section(model: &Model, run: &DemoRun, data: &DemoData) -> String {
+    let mut out = String::new();
+    if let Err(e) = model.explainable() {
+        let _ = writeln!(out, "  no reasons: {e}");
+        return out;
+    }
+    let threshold = 1.0 / 41.0;
+    let declined = run.probabilities.iter().filter(|&&p| p > threshold).count();
+    let mut order: Vec<usize> = (0..run.probabilities.len())
+        .filter(|&i| run.probabilities[i] > threshold)
+        .collect();
+    order.sort_by(|&a, &b| {
+        run.probabilities[b]
+            .total_cmp(&run.probabilities[a])
+            .then(a.cmp(&b))
+    });
+    order.truncate(DECLINES_SHOWN);
+    let _ = writeln!(
+        out,
+        "  {declined} transactions declined at probability > 1/41; reasons for the {} highest (they inform a \
+         review; the reasons a notice must give follow local law):",
+        order.len()
+    );
+    let rows = match dense_rows(model, data, &order) {
+        Ok(rows) => rows,
+        Err(e) => {
+            let _ = writeln!(out, "  no reasons: {e}");
+            return out;
+        }
+    };
+    let request = probity_models::ReasonRequest::default();
+    for (&i, row) in order.iter().zip(&rows) {
+        let Ok(c) = model.contributions(row) else {
+            continue;
+        };
+        let t = &data.transactions[i];
+        let _ = writeln!(
+            out,
+            "    {} (probability {:.1}%, {}):",
+            t.id(),
+            100.0 * run.probabilities[i],
+            if t.fraud { "fraud" } else { "legitimate" }
+        );
+        for r in model.reasons(&c, &request) {
+            let _ = writeln!(
+                out,
+                "      {} {:<36} +{:.2} log-odds",
+                r.code, r.text, r.weight
+            );
+        }
+    }
+    out
+}
+
+/// The dense rows of transactions `wanted` (file order indices), encoded from the demo CSV as scoring encodes them.
+fn dense_rows(model: &Model, data: &DemoData, wanted: &[usize]) -> anyhow::Result<Vec<Vec<f64>>> {
+    let mut reader = crate::cli::pipeline::csv_reader(data.csv.as_slice());
+    let header = reader.headers()?.clone();
+    let schema = model.schema();
+    let columns: Vec<Option<usize>> = schema
+        .features()
+        .iter()
+        .map(|f| header.iter().position(|h| h == f.name))
+        .collect();
+    let mut out = vec![Vec::new(); wanted.len()];
+    for (i, record) in reader.records().enumerate() {
+        let record = record?;
+        for (k, _) in wanted.iter().enumerate().filter(|(_, &w)| w == i) {
+            out[k] = columns
+                .iter()
+                .enumerate()
+                .map(|(f, c)| match c {
+                    Some(c) => schema.encode_text(f, record.get(*c).unwrap_or("")),
+                    None => Ok(f64::NAN),
+                })
+                .collect::<Result<Vec<f64>, _>>()?;
+        }
+    }
+    Ok(out)
 }
 
 /// How many rows, how many frauds, and the live base rate the models are corrected to.

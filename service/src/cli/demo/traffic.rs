@@ -235,6 +235,7 @@ async fn worker(
         let (answer, calls) = match work {
             Work::Unary { .. } => {
                 let request = pb::ScoreRequest {
+                    explain: 0,
                     route: f.route.clone(),
                     row: rows.into_iter().next(),
                 };
@@ -243,6 +244,7 @@ async fn worker(
             }
             Work::Batch { .. } => {
                 let request = pb::ScoreBatchRequest {
+                    explain: 0,
                     route: f.route.clone(),
                     rows,
                 };

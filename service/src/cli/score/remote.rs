@@ -232,6 +232,7 @@ async fn score_remote<W: Write>(
             .collect();
         let answer = scoring
             .score_batch(pb::ScoreBatchRequest {
+                explain: 0,
                 route: route.to_string(),
                 rows,
             })

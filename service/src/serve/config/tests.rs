@@ -445,3 +445,22 @@ fn kubernetes_configmap_configuration_is_valid_but_for_the_shared_store_keys() {
     assert_eq!(c.max_connection_age, Some(Duration::from_secs(300)));
     assert_eq!(c.routes["card-auth"].challengers.list.len(), 1);
 }
+
+#[test]
+fn route_reasons_settings() {
+    let c = load(MINIMAL, &[], &[]).unwrap();
+    assert_eq!(
+        c.routes["fraud"].reasons,
+        probity_models::ReasonRequest::default()
+    );
+    let text = "[routes.fraud]\nmodel = \"m\"\nreasons = { limit = 2, adverse = \"lower\" }\n";
+    let r = &load(text, &[], &[]).unwrap().routes["fraud"];
+    assert_eq!(r.reasons.limit, 2);
+    assert_eq!(r.reasons.adverse, probity_models::Adverse::Lower);
+    let bad = "[routes.fraud]\nmodel = \"m\"\nreasons = { limit = 50 }\n";
+    let e = load(bad, &[], &[]).unwrap_err().to_string();
+    assert!(
+        e.contains("routes.fraud.reasons.limit: must be 1 to 20, got 50"),
+        "{e}"
+    );
+}
