@@ -418,11 +418,10 @@ fn container_configuration_is_valid() {
     assert_eq!(c.model_dir, PathBuf::from("/models"));
 }
 
-/// The TOML of the fleet's ConfigMap (deploy/kubernetes/configmap.yaml). Its `[log]` names the shared PostgreSQL
-/// store (`backend`, `postgres_url_file`), a backend this build does not have yet: those two keys are taken out
-/// here, and everything else must load as it is.
+/// The TOML of the fleet's ConfigMap (deploy/kubernetes/configmap.yaml) loads as it is: TLS, three callers, the
+/// connection age, and the shared PostgreSQL store with its URL from the Secret file.
 #[test]
-fn kubernetes_configmap_configuration_is_valid_but_for_the_shared_store_keys() {
+fn kubernetes_configmap_configuration_is_valid() {
     let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("../deploy/kubernetes/configmap.yaml");
     let yaml = std::fs::read_to_string(path).unwrap();
     let mut lines = yaml.lines().skip_while(|l| l.trim() != "probity.toml: |");
@@ -430,7 +429,6 @@ fn kubernetes_configmap_configuration_is_valid_but_for_the_shared_store_keys() {
     let toml: String = lines
         .take_while(|l| l.is_empty() || l.starts_with("    "))
         .map(|l| l.strip_prefix("    ").unwrap_or(l))
-        .filter(|l| !l.starts_with("backend =") && !l.starts_with("postgres_url_file ="))
         .map(|l| format!("{l}\n"))
         .collect();
     assert!(toml.contains("[routes.card-auth]"));
@@ -444,6 +442,11 @@ fn kubernetes_configmap_configuration_is_valid_but_for_the_shared_store_keys() {
     assert_eq!(c.access.callers.len(), 3);
     assert_eq!(c.max_connection_age, Some(Duration::from_secs(300)));
     assert_eq!(c.routes["card-auth"].challengers.list.len(), 1);
+    assert_eq!(c.log.backend, crate::store::config::Backend::Postgres);
+    assert_eq!(
+        c.log.postgres_url_file.as_deref(),
+        Some(Path::new("/etc/probity/postgres/url"))
+    );
 }
 
 #[test]
