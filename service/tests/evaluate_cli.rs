@@ -410,3 +410,47 @@ fn gzip_and_delimiter_read_the_same_rows() {
     ]);
     assert!(String::from_utf8_lossy(&out.stderr).contains("is not a field separator"));
 }
+
+/// The live report's calibration tests, offline: Spiegelhalter's z against a numpy computation of the 1986
+/// formula, and logistic recalibration (Cox 1958) against statsmodels 0.15.0 `Logit(y, [1, h])` (slope, intercept,
+/// standard errors, 95% Wald intervals) and `GLM(y, 1, Binomial, offset=h)` (calibration-in-the-large), with Cox's
+/// joint likelihood-ratio test (tests/fixtures/gen_evaluate.py, through gen_monitor.py); within 1e-7 relative (the
+/// two Newton fits stop at slightly different points).
+#[test]
+fn calibration_tests_match_statsmodels() {
+    let got = run_json(&["--challenger", &fixture("challenger.json")]);
+    let want = expected();
+    let near = |what: &str, g: &Value, w: &Value| {
+        let (g, w) = (g.as_f64().unwrap(), w.as_f64().unwrap());
+        assert!(
+            (g - w).abs() <= 1e-7 * w.abs().max(1e-3),
+            "{what}: {g} vs {w}"
+        );
+    };
+    for model in ["champion", "challenger"] {
+        let (g, w) = (
+            &got[model]["calibration_tests"],
+            &want[model]["calibration_tests"],
+        );
+        near("z", &g["spiegelhalter"]["z"], &w["spiegelhalter"]["z"]);
+        near(
+            "z p",
+            &g["spiegelhalter"]["p_value"],
+            &w["spiegelhalter"]["p_value"],
+        );
+        for c in ["intercept", "slope", "in_the_large"] {
+            for k in ["estimate", "standard_error", "lower", "upper"] {
+                near(
+                    &format!("{model} {c} {k}"),
+                    &g["recalibration"][c][k],
+                    &w["recalibration"][c][k],
+                );
+            }
+        }
+        near(
+            "joint",
+            &g["recalibration"]["joint_statistic"],
+            &w["recalibration"]["joint_statistic"],
+        );
+    }
+}

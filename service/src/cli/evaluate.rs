@@ -14,6 +14,7 @@ use probity_models::evaluate::{
 };
 use probity_models::metrics::{BinStrategy, HlGrouping};
 use probity_models::{Model, OutputSpec};
+use probity::report::calibration_tests::CalibrationTests;
 use serde_json::{json, Value};
 
 use super::pipeline::{csv_reader_with, decompressed, score_records, ColumnMap};
@@ -101,6 +102,17 @@ struct Outcome {
     challenger_name: Option<String>,
     challenger: Option<Evaluation>,
     comparison: Option<PairedComparison>,
+    /// Spiegelhalter's z and logistic recalibration (Cox 1958), as in the live report; with what could not be
+    /// computed noted.
+    champion_tests: (CalibrationTests, Vec<String>),
+    challenger_tests: Option<(CalibrationTests, Vec<String>)>,
+}
+
+/// The live report's calibration tests on the same pairs.
+fn calibration_tests(p: &[f64], h: &[f64], y: &[bool]) -> (CalibrationTests, Vec<String>) {
+    let mut notes = Vec::new();
+    let tests = probity::report::calibration_tests::compute(p, h, y, &mut notes);
+    (tests, notes)
 }
 
 /// Runs `probity evaluate`.
@@ -170,8 +182,13 @@ pub fn run(args: &EvaluateArgs) -> anyhow::Result<()> {
             let e = evaluate(&h2, &p2, &y2, &options)
                 .with_context(|| format!("cannot evaluate {}", path.display()))?;
             let c = compare_on_labels(&h, &h2, &y, &options).context("paired comparison")?;
-            (Some(name_of(&other)), Some(e), Some(c))
+            let tests = calibration_tests(&p2, &h2, &y2);
+            (Some(name_of(&other)), Some((e, tests)), Some(c))
         }
+    };
+    let (challenger, challenger_tests) = match challenger {
+        Some((e, t)) => (Some(e), Some(t)),
+        None => (None, None),
     };
     let outcome = Outcome {
         options,
@@ -183,6 +200,8 @@ pub fn run(args: &EvaluateArgs) -> anyhow::Result<()> {
         challenger_name,
         challenger,
         comparison,
+        champion_tests: calibration_tests(&p, &h, &y),
+        challenger_tests,
     };
     if let Some(dir) = &args.svg_dir {
         write_pictures(dir, &outcome)?;
@@ -381,6 +400,7 @@ fn point_text(s: &mut String, what: &str, p: &OperatingPoint) {
 fn text(o: &Outcome) -> String {
     let mut s = String::new();
     model_text(&mut s, &o.champion_name, &o.champion, &o.options);
+    tests_text(&mut s, &o.champion_tests);
     if let Some(p) = &o.point {
         let what = match o.costs {
             Some(c) => format!(
@@ -406,6 +426,9 @@ fn text(o: &Outcome) -> String {
     if let (Some(name), Some(e), Some(c)) = (&o.challenger_name, &o.challenger, &o.comparison) {
         s.push('\n');
         model_text(&mut s, &format!("challenger {name}"), e, &o.options);
+        if let Some(t) = &o.challenger_tests {
+            tests_text(&mut s, t);
+        }
         s.push('\n');
         let _ = writeln!(
             s,
@@ -522,6 +545,19 @@ fn model_json(name: &str, e: &Evaluation, o: &EvaluateOptions) -> Value {
     })
 }
 
+fn tests_text(s: &mut String, (tests, notes): &(CalibrationTests, Vec<String>)) {
+    probity::report::calibration_tests::render(s, tests);
+    for n in notes {
+        let _ = writeln!(s, "note: {n}");
+    }
+}
+
+fn tests_json((tests, notes): &(CalibrationTests, Vec<String>)) -> Value {
+    let mut v = serde_json::to_value(tests).unwrap_or_default();
+    v["notes"] = json!(notes);
+    v
+}
+
 fn to_json(o: &Outcome) -> Value {
     let mut v = json!({
         "champion": model_json(&o.champion_name, &o.champion, &o.options),
@@ -537,6 +573,7 @@ fn to_json(o: &Outcome) -> Value {
         })).collect::<Vec<_>>(),
         "cautions": super::CAUTIONS,
     });
+    v["champion"]["calibration_tests"] = tests_json(&o.champion_tests);
     if let (Some(name), Some(e), Some(c)) = (&o.challenger_name, &o.challenger, &o.comparison) {
         let paired = |t: &Option<probity_models::compare::PairedTest>, tp: Option<f64>| {
             t.as_ref().map(|t| {
@@ -552,6 +589,9 @@ fn to_json(o: &Outcome) -> Value {
             })
         };
         v["challenger"] = model_json(name, e, &o.options);
+        if let Some(t) = &o.challenger_tests {
+            v["challenger"]["calibration_tests"] = tests_json(t);
+        }
         v["comparison"] = json!({
             "sign": "challenger minus champion",
             "log_loss": paired(&c.outcomes.log_loss, c.log_loss_t_p_value),
