@@ -8,13 +8,13 @@ use std::fs::File;
 use std::path::{Path, PathBuf};
 
 use anyhow::{anyhow, bail, Context};
+use probity::report::calibration_tests::CalibrationTests;
 use probity_models::evaluate::{
     band_points, compare_on_labels, evaluate, operating_point, BandPoint, Costs, EvaluateOptions,
     Evaluation, OperatingPoint, PairedComparison,
 };
 use probity_models::metrics::{BinStrategy, HlGrouping};
 use probity_models::{Model, OutputSpec};
-use probity::report::calibration_tests::CalibrationTests;
 use serde_json::{json, Value};
 
 use super::pipeline::{csv_reader_with, decompressed, score_records, ColumnMap};
