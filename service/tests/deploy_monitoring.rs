@@ -16,6 +16,7 @@
 
 #![allow(clippy::unwrap_used)]
 
+use std::collections::HashSet;
 use std::collections::{BTreeMap, BTreeSet};
 use std::io::{Read, Write};
 use std::path::{Path, PathBuf};
@@ -462,6 +463,23 @@ async fn every_query_parses_and_every_metric_name_is_on_a_running_server() {
     );
     // The check can fail: a name that no server exports is caught.
     assert!(!exposed.contains("probity_predictions_scored_total"));
+    // Every metric family the server exposes says what it is (a `# HELP` line), as the exposition format expects.
+    let families: Vec<&str> = text
+        .lines()
+        .filter_map(|l| l.strip_prefix("# TYPE "))
+        .filter_map(|l| l.split_whitespace().next())
+        .collect();
+    let helped: HashSet<&str> = text
+        .lines()
+        .filter_map(|l| l.strip_prefix("# HELP "))
+        .filter_map(|l| l.split_whitespace().next())
+        .collect();
+    let undescribed: Vec<&&str> = families.iter().filter(|f| !helped.contains(**f)).collect();
+    assert!(families.len() > 20, "{families:?}");
+    assert!(
+        undescribed.is_empty(),
+        "metric families without HELP text: {undescribed:?}"
+    );
     println!("{} metric names used in deploy/, all exposed", used.len());
 }
 

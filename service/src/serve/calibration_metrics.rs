@@ -24,6 +24,54 @@ struct Series {
     tests: CalibrationTests,
 }
 
+/// The HELP text of the calibration gauges (route, model, version, role labels).
+pub fn describe() {
+    for (name, help) in [
+        (
+            "outcomes",
+            "Matched outcomes the calibration tests are computed on.",
+        ),
+        (
+            "spiegelhalter_z",
+            "Spiegelhalter's (1986) calibration z statistic.",
+        ),
+        (
+            "spiegelhalter_p_value",
+            "Two-sided p-value of Spiegelhalter's z.",
+        ),
+        (
+            "slope",
+            "Calibration slope by logistic recalibration (1 when calibrated).",
+        ),
+        (
+            "slope_lower",
+            "Lower end of the 95% interval of the calibration slope.",
+        ),
+        (
+            "slope_upper",
+            "Upper end of the 95% interval of the calibration slope.",
+        ),
+        (
+            "in_the_large",
+            "Calibration-in-the-large (0 when calibrated).",
+        ),
+        (
+            "in_the_large_lower",
+            "Lower end of the 95% interval of calibration-in-the-large.",
+        ),
+        (
+            "in_the_large_upper",
+            "Upper end of the 95% interval of calibration-in-the-large.",
+        ),
+        (
+            "recalibration_p_value",
+            "p-value of Cox's joint test of intercept 0 and slope 1.",
+        ),
+    ] {
+        metrics::describe_gauge!(format!("{PREFIX}{name}"), help);
+    }
+}
+
 fn set(s: &Series) {
     let gauge = |name: &str, value: Option<f64>| {
         if let Some(v) = value {

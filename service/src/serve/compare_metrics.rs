@@ -40,6 +40,79 @@ pub fn route_threshold(route: &Route) -> Option<f64> {
     }
 }
 
+/// The HELP text of the comparison gauges (route, champion, challenger labels).
+pub fn describe() {
+    for (name, help) in [
+        (
+            "paired_predictions",
+            "Requests scored by both champion and challenger.",
+        ),
+        ("paired_outcomes", "Paired requests whose outcome is known."),
+        (
+            "spearman",
+            "Spearman rank correlation of the two models' scores.",
+        ),
+        (
+            "psi",
+            "PSI of the challenger's scores against the champion's (champion quantile bins).",
+        ),
+        (
+            "mean_abs_log_odds_difference",
+            "Mean absolute difference of the two models' adjusted log-odds.",
+        ),
+        (
+            "decision_flip_share",
+            "Share of paired requests whose decision differs.",
+        ),
+        (
+            "log_loss_difference",
+            "Mean paired log-loss difference, challenger minus champion.",
+        ),
+        (
+            "log_loss_p_value",
+            "Fixed-sample p-value of the paired log-loss test.",
+        ),
+        (
+            "auc_difference",
+            "AUC difference, challenger minus champion (DeLong).",
+        ),
+        (
+            "auc_p_value",
+            "Fixed-sample DeLong p-value of the AUC difference.",
+        ),
+        (
+            "log_loss_always_valid_p_value",
+            "Always-valid p-value of the paired log-loss difference (may be read at any time).",
+        ),
+        (
+            "log_loss_difference_lower",
+            "Lower end of the confidence sequence of the log-loss difference.",
+        ),
+        (
+            "log_loss_difference_upper",
+            "Upper end of the confidence sequence of the log-loss difference.",
+        ),
+        (
+            "auc_always_valid_p_value",
+            "Always-valid p-value of the AUC difference (may be read at any time).",
+        ),
+        (
+            "auc_difference_lower",
+            "Lower end of the confidence sequence of the AUC difference.",
+        ),
+        (
+            "auc_difference_upper",
+            "Upper end of the confidence sequence of the AUC difference.",
+        ),
+        (
+            "verdict",
+            "1 for the comparison's current verdict code, 0 for the others.",
+        ),
+    ] {
+        metrics::describe_gauge!(format!("{PREFIX}{name}"), help);
+    }
+}
+
 fn set(report: &CompareReport) {
     let labels = [
         ("route", report.route.clone()),

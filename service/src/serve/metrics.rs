@@ -104,6 +104,9 @@ fn install_once() -> Result<PrometheusHandle, String> {
 }
 
 fn describe() {
+    crate::serve::shadow::describe();
+    crate::serve::compare_metrics::describe();
+    crate::serve::calibration_metrics::describe();
     metrics::describe_counter!(
         REQUESTS,
         "gRPC calls by method, route and status code (ScoreStream: per message)."

@@ -30,6 +30,30 @@ pub const SHADOW_DECISION_FLIPS: &str = "probity_shadow_decision_flips_total";
 /// Distribution of `|shadow - answer|` adjusted log-odds, by route and model.
 pub const SHADOW_LOG_ODDS_DIFFERENCE: &str = "probity_shadow_log_odds_abs_difference";
 
+/// The HELP text of the challenger-scoring metrics.
+pub fn describe() {
+    metrics::describe_counter!(
+        SHADOW_PREDICTIONS,
+        "Rows scored by challengers beside the champion, by route, model and role."
+    );
+    metrics::describe_counter!(
+        SHADOW_DROPPED,
+        "Challenger scoring jobs dropped because their queue was full, by route."
+    );
+    metrics::describe_counter!(
+        SHADOW_FAILURES,
+        "Rows a challenger could not score, by route, model and reason."
+    );
+    metrics::describe_counter!(
+        SHADOW_DECISION_FLIPS,
+        "Rows whose challenger decision differs from the champion's answer, by route and model."
+    );
+    metrics::describe_histogram!(
+        SHADOW_LOG_ODDS_DIFFERENCE,
+        "Absolute difference of challenger and champion adjusted log-odds on the same row."
+    );
+}
+
 /// Jobs waiting at most; beyond this the request path drops instead of waiting.
 const QUEUE_JOBS: usize = 4_096;
 
