@@ -481,3 +481,47 @@ fn eventual_positive_rate_of_a_section_with_outcomes_still_arriving() {
     assert!(lower <= truth && truth <= upper, "{lower} {truth} {upper}");
     println!("eventual rate {estimate:.4} ({lower:.4} to {upper:.4}), received so far {so_far:.4}, truth {truth:.4}");
 }
+
+/// `--bins` and `--binning equal-count` cut the report's calibration table as the metrics module does with
+/// `BinStrategy::Quantile` (itself checked against scikit-learn's `calibration_curve(strategy="quantile")` in
+/// tests/tests/metrics_reference.rs); `--probability-axis log-odds` draws the reliability picture on log-odds axes.
+#[test]
+fn calibration_bins_and_the_picture_axis_are_chosen() {
+    let dir = tempfile::tempdir().unwrap();
+    let (h, y) = write_log(dir.path());
+    let log = dir.path().to_str().unwrap();
+    let svg_dir = dir.path().join("svg");
+    let doc = report(&[
+        "--log",
+        log,
+        "--json",
+        "--route",
+        "a",
+        "--bins",
+        "5",
+        "--binning",
+        "equal-count",
+        "--probability-axis",
+        "log-odds",
+        "--svg-dir",
+        svg_dir.to_str().unwrap(),
+    ]);
+    let keep: Vec<usize> = (0..h.len()).filter(|i| !i.is_multiple_of(10)).collect();
+    let pp: Vec<f64> = keep.iter().map(|&i| sigmoid(h[i])).collect();
+    let yy: Vec<bool> = keep.iter().map(|&i| y[i]).collect();
+    let t = calibration_table(&pp, &yy, BinStrategy::Quantile(5)).unwrap();
+    let c = &doc["series"][0]["calibration"];
+    assert_eq!(num(&c["ece"]), t.ece);
+    let bins = c["bins"].as_array().unwrap();
+    assert_eq!(bins.len(), t.bins.iter().filter(|b| b.count > 0).count());
+    for (got, want) in bins.iter().zip(t.bins.iter().filter(|b| b.count > 0)) {
+        assert_eq!(got["count"].as_u64().unwrap() as usize, want.count);
+    }
+    let svg = std::fs::read_to_string(svg_dir.join("a-m-7-champion-reliability.svg")).unwrap();
+    assert!(svg.contains("(log-odds scale)"), "{svg}");
+    let bad = Command::new(env!("CARGO_BIN_EXE_probity"))
+        .args(["report", "--log", log, "--bins", "1"])
+        .output()
+        .unwrap();
+    assert!(!bad.status.success());
+}

@@ -4,8 +4,10 @@
 use std::path::PathBuf;
 
 use anyhow::Context;
+use probity::charts::pictures::ProbabilityAxis;
 use probity::report::{self, svg, text};
 use probity::store::{ReportFilter, SqliteStore, Store};
+use probity_models::metrics::BinStrategy;
 
 /// Arguments of `probity report`.
 #[derive(Debug, clap::Args)]
@@ -43,6 +45,28 @@ pub struct ReportArgs {
     /// Write reliability, score-histogram and gains pictures (SVG) for each section here.
     #[arg(long, value_name = "DIR")]
     pub svg_dir: Option<PathBuf>,
+    /// Number of calibration bins (also the Brier decomposition's).
+    #[arg(long, default_value_t = probity::report::CALIBRATION_BINS as u64, value_name = "N",
+          value_parser = clap::value_parser!(u64).range(2..=1000))]
+    pub bins: u64,
+    /// How calibration bins are cut: equal-count bins spread the cases that equal-width bins put in the first one
+    /// at fraud base rates.
+    #[arg(long, value_enum, default_value_t = super::evaluate::Binning::EqualWidth)]
+    pub binning: super::evaluate::Binning,
+    /// The reliability picture's probability axes: `auto` uses log-odds when nine in ten cases are below 0.1.
+    #[arg(long, value_enum, default_value_t = Axis::Auto)]
+    pub probability_axis: Axis,
+}
+
+/// The probability axis of the reliability pictures.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
+pub enum Axis {
+    /// Log-odds when the scores crowd near 0, linear otherwise.
+    Auto,
+    /// Linear from 0 to 1.
+    Linear,
+    /// Log-odds, labelled as probabilities.
+    LogOdds,
 }
 
 /// Parses `ROUTE=RATE` with the rate in (0, 1).
@@ -84,7 +108,16 @@ pub fn run(args: &ReportArgs) -> anyhow::Result<()> {
         version: args.version.clone(),
     };
     let configured = args.base_rates.iter().cloned().collect();
-    let report = report::build_with(&mut store as &mut dyn Store, &filter, &configured)
+    let bins = match args.binning {
+        super::evaluate::Binning::EqualWidth => BinStrategy::Uniform(args.bins as usize),
+        super::evaluate::Binning::EqualCount => BinStrategy::Quantile(args.bins as usize),
+    };
+    let axis = match args.probability_axis {
+        Axis::Auto => ProbabilityAxis::Auto,
+        Axis::Linear => ProbabilityAxis::Linear,
+        Axis::LogOdds => ProbabilityAxis::LogOdds,
+    };
+    let report = report::build_binned(&mut store as &mut dyn Store, &filter, &configured, bins)
         .context("reading the log")?;
     if args.json {
         super::emit(&format!("{}\n", serde_json::to_string_pretty(&report)?))?;
@@ -96,7 +129,7 @@ pub fn run(args: &ReportArgs) -> anyhow::Result<()> {
         for s in &report.series {
             let stem = format!("{}-{}-{}-{}", s.route, s.model, s.version, s.role);
             for (kind, body) in [
-                ("reliability", svg::reliability(s)),
+                ("reliability", svg::reliability_on(s, axis)),
                 ("histograms", svg::histograms(s)),
                 ("gains", svg::gains(s)),
             ] {

@@ -55,6 +55,7 @@ fn report(rows: &[LoggedPrediction], rates: BaseRates) -> super::SeriesReport {
         rows,
         None,
         rates,
+        probity_models::metrics::BinStrategy::Uniform(super::CALIBRATION_BINS),
     )
 }
 

@@ -231,6 +231,22 @@ pub fn build_with(
     filter: &ReportFilter,
     configured: &BTreeMap<String, f64>,
 ) -> Result<Report, StoreError> {
+    build_binned(
+        store,
+        filter,
+        configured,
+        BinStrategy::Uniform(CALIBRATION_BINS),
+    )
+}
+
+/// [`build_with`] with calibration bins (and the Brier decomposition's) cut by `bins`: equal-width, or equal-count
+/// (`BinStrategy::Quantile`), which at fraud base rates spreads the cases that equal-width bins put in the first.
+pub fn build_binned(
+    store: &mut dyn Store,
+    filter: &ReportFilter,
+    configured: &BTreeMap<String, f64>,
+    bins: BinStrategy,
+) -> Result<Report, StoreError> {
     let rows = store.load(filter)?;
     // A handful of series, found by a scan, so that no row's names are copied: four more strings per row were
     // most of a report's memory.
@@ -268,6 +284,7 @@ pub fn build_with(
             &rows,
             reference.as_ref(),
             rates,
+            bins,
         ));
     }
     Ok(Report {
@@ -405,6 +422,7 @@ pub fn section(
     rows: &[LoggedPrediction],
     reference: Option<&crate::store::Reference>,
     rates: BaseRates,
+    bins: BinStrategy,
 ) -> SeriesReport {
     let mut notes = Vec::new();
     let pairs: Vec<&LoggedPrediction> = rows.iter().filter(|r| r.label.is_some()).collect();
@@ -417,7 +435,7 @@ pub fn section(
     let brier = keep(&mut notes, "Brier", brier_score(&p, &y));
     let roc = keep(&mut notes, "AUC", roc_auc(&h, &y));
     let ks = keep(&mut notes, "KS", ks_statistic(&h, &y));
-    let decomposition = brier_decomposition(&p, &y, BinStrategy::Uniform(CALIBRATION_BINS))
+    let decomposition = brier_decomposition(&p, &y, bins)
         .ok()
         .map(|d| Decomposition {
             reliability: d.reliability,
@@ -426,24 +444,22 @@ pub fn section(
             within_bin_variance: d.within_bin_variance,
             within_bin_covariance: d.within_bin_covariance,
         });
-    let calibration = calibration_table(&p, &y, BinStrategy::Uniform(CALIBRATION_BINS))
-        .ok()
-        .map(|t| Calibration {
-            bins: t
-                .bins
-                .iter()
-                .map(|b| CalibrationBin {
-                    lower: b.lower,
-                    upper: b.upper,
-                    count: b.count,
-                    positives: b.positives,
-                    mean_predicted: b.mean_predicted,
-                    fraction_positive: b.fraction_positive,
-                })
-                .collect(),
-            ece: t.ece,
-            mce: t.mce,
-        });
+    let calibration = calibration_table(&p, &y, bins).ok().map(|t| Calibration {
+        bins: t
+            .bins
+            .iter()
+            .map(|b| CalibrationBin {
+                lower: b.lower,
+                upper: b.upper,
+                count: b.count,
+                positives: b.positives,
+                mean_predicted: b.mean_predicted,
+                fraction_positive: b.fraction_positive,
+            })
+            .collect(),
+        ece: t.ece,
+        mce: t.mce,
+    });
     let hl = keep(
         &mut notes,
         "Hosmer-Lemeshow",
