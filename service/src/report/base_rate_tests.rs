@@ -48,10 +48,7 @@ fn simulate(served: f64, seed: u64) -> Vec<LoggedPrediction> {
 
 fn report(rows: &[LoggedPrediction], rates: BaseRates) -> super::SeriesReport {
     section(
-        "cards".into(),
-        "m".into(),
-        "1".into(),
-        "champion".into(),
+        ("cards".into(), "m".into(), "1".into(), "champion".into()),
         rows,
         None,
         rates,

@@ -277,10 +277,7 @@ pub fn build_binned(
         };
         let reference = info.and_then(|i| i.reference);
         series.push(section(
-            route,
-            model,
-            version,
-            role,
+            (route, model, version, role),
             &rows,
             reference.as_ref(),
             rates,
@@ -413,12 +410,12 @@ fn em_estimate(notes: &mut Vec<String>, probabilities: &[f64], rates: BaseRates)
     }
 }
 
+/// A series: route, model, version and role.
+pub type SeriesKey = (String, String, String, String);
+
 /// The figures of one series; `rows` in the order they were written.
 pub fn section(
-    route: String,
-    model: String,
-    version: String,
-    role: String,
+    (route, model, version, role): SeriesKey,
     rows: &[LoggedPrediction],
     reference: Option<&crate::store::Reference>,
     rates: BaseRates,
