@@ -283,7 +283,7 @@ fn store_rejects_nothing_silently_on_duplicate_prediction_ids() {
 /// A measurement, not a check (run with `cargo test --release -p probity --test store_matching -- --ignored
 /// --nocapture`): predictions per second through the queue and writer, and the file size per million.
 #[test]
-#[ignore]
+#[ignore = "a measurement, not a check: run with --release -- --ignored --nocapture"]
 fn measure_log_throughput_and_size() {
     let dir = tempfile::tempdir().unwrap();
     let clock = Arc::new(AtomicI64::new(T0));

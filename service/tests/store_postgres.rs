@@ -441,7 +441,7 @@ fn one_connection_leads_the_sweeps_and_another_takes_over() {
 /// prediction), and bytes stored per prediction (SQLite: the files; PostgreSQL: predictions partitions, indexes and
 /// outcomes).
 #[test]
-#[ignore]
+#[ignore = "a measurement, not a check: run with --release -- --ignored --nocapture measure"]
 fn measure_both_backends() {
     use probity::store::writer::{ModelFacts, Queued};
     use probity::store::{Clock, LogConfig, ModelVersionInfo, PredictionLog};

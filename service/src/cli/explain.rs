@@ -13,7 +13,7 @@ use indicatif::ProgressBar;
 use probity_models::explain::Workspace;
 use probity_models::{Adverse, Model, OutputSpec, ReasonRequest};
 
-use super::pipeline::{csv_reader, score_rows, ColumnMap};
+use super::pipeline::{csv_reader, score_rows};
 use super::score::{bar, load_model, output_spec, PROGRESS_MIN_BYTES};
 
 /// Which direction of the log-odds counts against the subject.
@@ -121,23 +121,13 @@ fn explain_file<R: Read, W: Write>(
     reader: &mut csv::Reader<R>,
     output: W,
 ) -> anyhow::Result<u64> {
-    let header = reader
-        .headers()
-        .context("cannot read the header row")?
-        .clone();
-    let columns = ColumnMap::new(
+    let (header, columns) = super::pipeline::map_header(
+        reader,
         model.schema(),
-        &header,
         args.id_column.as_deref(),
         args.allow_missing_columns,
+        args.quiet,
     )?;
-    let absent: Vec<&str> = columns.absent_features().collect();
-    if !absent.is_empty() && !args.quiet {
-        eprintln!(
-            "no column for `{}`: read as missing on every row",
-            absent.join("`, `")
-        );
-    }
     let mut out_header = StringRecord::new();
     if let Some(id) = columns.id {
         out_header.push_field(&header[id]);

@@ -263,6 +263,31 @@ fn where_(number: u64, record: &StringRecord) -> String {
     }
 }
 
+/// Reads the header of `reader` and maps it to `schema`'s features ([`ColumnMap::new`]); unless `quiet`, says which
+/// features have no column (read as missing on every row). The header and the map, for every command that reads
+/// rows for a model.
+pub fn map_header<R: Read>(
+    reader: &mut csv::Reader<R>,
+    schema: &Schema,
+    id_column: Option<&str>,
+    allow_missing: bool,
+    quiet: bool,
+) -> anyhow::Result<(StringRecord, ColumnMap)> {
+    let header = reader
+        .headers()
+        .context("cannot read the header row")?
+        .clone();
+    let columns = ColumnMap::new(schema, &header, id_column, allow_missing)?;
+    let absent: Vec<&str> = columns.absent_features().collect();
+    if !absent.is_empty() && !quiet {
+        eprintln!(
+            "no column for `{}`: read as missing on every row",
+            absent.join("`, `")
+        );
+    }
+    Ok((header, columns))
+}
+
 /// A row that could not be scored: its 1-based data row number, its record and why.
 pub struct Rejected<'a> {
     /// 1-based data row.

@@ -11,9 +11,7 @@ use csv::StringRecord;
 use indicatif::{ProgressBar, ProgressStyle};
 use probity_models::{DecisionRule, Model, OutputSpec, Scored};
 
-use super::pipeline::{
-    csv_reader_with, decompressed, score_records, ColumnMap, OnReject, Rejected, RunNotes,
-};
+use super::pipeline::{csv_reader_with, decompressed, score_records, OnReject, Rejected, RunNotes};
 
 mod remote;
 
@@ -450,23 +448,13 @@ fn score_file<R: Read, W: Write>(
     output: W,
     rejects: Option<W>,
 ) -> anyhow::Result<(u64, u64, RunNotes)> {
-    let header = reader
-        .headers()
-        .context("cannot read the header row")?
-        .clone();
-    let columns = ColumnMap::new(
+    let (header, columns) = super::pipeline::map_header(
+        reader,
         model.schema(),
-        &header,
         args.id_column.as_deref(),
         args.allow_missing_columns,
+        args.quiet,
     )?;
-    let absent: Vec<&str> = columns.absent_features().collect();
-    if !absent.is_empty() && !args.quiet {
-        eprintln!(
-            "no column for `{}`: read as missing on every row",
-            absent.join("`, `")
-        );
-    }
     let scores = score_columns(model, spec);
     let mut out_header = StringRecord::new();
     if args.keep_columns {

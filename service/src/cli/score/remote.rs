@@ -146,23 +146,13 @@ async fn score_remote<W: Write>(
         decompressed(file).with_context(|| format!("cannot read {}", args.input.display()))?,
         args.delimiter,
     );
-    let header = reader
-        .headers()
-        .context("cannot read the header row")?
-        .clone();
-    let columns = ColumnMap::new(
+    let (header, columns) = super::super::pipeline::map_header(
+        &mut reader,
         &schema,
-        &header,
         args.id_column.as_deref(),
         args.allow_missing_columns,
+        args.quiet,
     )?;
-    let absent: Vec<&str> = columns.absent_features().collect();
-    if !absent.is_empty() && !args.quiet {
-        eprintln!(
-            "no column for `{}`: read as missing on every row",
-            absent.join("`, `")
-        );
-    }
     let mut writer = csv::Writer::from_writer(output);
     let mut rejects = rejects.map(csv::Writer::from_writer);
     if let Some(r) = rejects.as_mut() {
