@@ -20,7 +20,8 @@ pub use calibration_test::{
     Spiegelhalter,
 };
 pub use delay::{
-    eventual_rate, kaplan_meier, DelayObservation, EventualRate, KaplanMeier, WindowCase,
+    eventual_rate, kaplan_meier, DelayObservation, EventualRate, KaplanMeier, KaplanMeierSteps,
+    WindowCase,
 };
 pub use sequential::{
     always_valid_verdict, auc_sequence, loss_sequence, normal_mixture, ConfidenceSequence,

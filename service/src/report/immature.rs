@@ -90,7 +90,23 @@ pub fn compute(rows: &[LoggedPrediction], notes: &mut Vec<String>) -> Option<Eve
             },
         })
         .collect();
-    let result = kaplan_meier(&observations, horizon_ms as f64).and_then(|km| {
+    of_fit(
+        kaplan_meier(&observations, horizon_ms as f64),
+        now_ms,
+        horizon_ms,
+        notes,
+    )
+}
+
+/// The estimate from a Kaplan-Meier fit (from the rows, or from follow-up grouped by the store), or `None` with
+/// the reason noted.
+pub fn of_fit(
+    fit: Result<probity_models::monitor::KaplanMeier, probity_models::monitor::MonitorError>,
+    now_ms: i64,
+    horizon_ms: i64,
+    notes: &mut Vec<String>,
+) -> Option<EventualRate> {
+    let result = fit.and_then(|km| {
         let (estimate, lower, upper) = km.eventual_share_interval(LEVEL)?;
         let median_delay_ms = km
             .times

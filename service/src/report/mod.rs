@@ -21,6 +21,7 @@
 
 pub mod calibration_tests;
 pub mod immature;
+pub mod stream;
 pub mod svg;
 pub mod text;
 
@@ -247,6 +248,18 @@ pub fn build_binned(
     configured: &BTreeMap<String, f64>,
     bins: BinStrategy,
 ) -> Result<Report, StoreError> {
+    stream::build(store, filter, configured, bins)
+}
+
+/// [`build_binned`] computed from the whole range loaded at once ([`Store::load`], about 1 KB a prediction
+/// while it runs): the plain form of every figure, which the streamed report is checked against
+/// (`tests/report_stream.rs`).
+pub fn build_loaded(
+    store: &mut dyn Store,
+    filter: &ReportFilter,
+    configured: &BTreeMap<String, f64>,
+    bins: BinStrategy,
+) -> Result<Report, StoreError> {
     let rows = store.load(filter)?;
     // A handful of series, found by a scan, so that no row's names are copied: four more strings per row were
     // most of a report's memory.
@@ -355,20 +368,31 @@ fn on_one_prior(
         })
         .collect();
     if moved > 0 {
-        notes.push(format!(
-            "base-rate estimate: {moved} of {} predictions were served under another base rate than the latest              ({common}); their probabilities were shifted to it first",
-            rows.len()
-        ));
+        notes.push(moved_note(moved, rows.len(), common));
     }
+    (
+        p,
+        rates_on(rates, rows.last().and_then(|r| r.served_prior), common),
+    )
+}
+
+/// The note of [`on_one_prior`] when `moved` of `rows` predictions were shifted to `common`.
+fn moved_note(moved: usize, rows: usize, common: f64) -> String {
+    format!(
+        "base-rate estimate: {moved} of {rows} predictions were served under another base rate than the latest              ({common}); their probabilities were shifted to it first"
+    )
+}
+
+/// The rates with `common` as the served prior, given the prior the latest prediction was served under.
+fn rates_on(rates: BaseRates, latest: Option<f64>, common: f64) -> BaseRates {
     let rates = BaseRates {
         configured: rates.configured.or_else(|| {
             // The target the log says the latest prediction was served under, when it is not the model's own.
-            (rows.last().and_then(|r| r.served_prior).is_some() && Some(common) != rates.model)
-                .then_some(common)
+            (latest.is_some() && Some(common) != rates.model).then_some(common)
         }),
         model: rates.model,
     };
-    (p, rates.with_served(common))
+    rates.with_served(common)
 }
 
 impl BaseRates {
