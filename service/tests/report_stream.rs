@@ -10,6 +10,7 @@
 
 use std::collections::BTreeMap;
 
+use probity::compare::CompareRequest;
 use probity::report::{build_binned, build_loaded};
 use probity::store::postgres::{ConnectionUrl, PgStore};
 use probity::store::{
@@ -286,6 +287,87 @@ fn check(store: &mut dyn Store, backend: &str) {
     assert!(limits.settled_by_maturity > 0);
     let tiny = all.series.iter().find(|s| s.route == "tiny").unwrap();
     assert!(tiny.roc_auc.is_none() && !tiny.notes.is_empty());
+    compare(store, backend);
+}
+
+/// The streamed comparison equals the loaded one. Sums in floating point are taken in the same order; Spearman's
+/// correlation and DeLong's covariances come from exact integer sums here and from floating-point sums of centred
+/// values there, so those agree to rounding (1e-9 relative is far above it and far below any figure's precision).
+fn compare(store: &mut dyn Store, backend: &str) {
+    for (window, lag, threshold) in [
+        ((None, None), None, Some(0.5)),
+        (
+            (Some(NOW - 15 * 86_400_000), Some(NOW - 3 * 86_400_000)),
+            Some(5),
+            None,
+        ),
+    ] {
+        let request = CompareRequest {
+            filter: ReportFilter {
+                from_ms: window.0,
+                to_ms: window.1,
+                route: Some("fraud".into()),
+                ..ReportFilter::default()
+            },
+            champion: None,
+            challenger: None,
+            threshold,
+            newey_west_lag: lag,
+        };
+        let streamed = probity::compare::build(store, &request).unwrap();
+        let loaded = probity::compare::build_loaded(store, &request).unwrap();
+        let mut diffs = Vec::new();
+        same(
+            "compare",
+            &serde_json::to_value(&streamed).unwrap(),
+            &serde_json::to_value(&loaded).unwrap(),
+            1e-9,
+            &mut diffs,
+        );
+        let (sa, sb) = streamed.reliability.clone().unwrap();
+        let (la, lb) = loaded.reliability.clone().unwrap();
+        for (s, l) in [(sa, la), (sb, lb)] {
+            assert_eq!(s.bins.len(), l.bins.len());
+            for (x, y) in s.bins.iter().zip(&l.bins) {
+                assert_eq!(
+                    (x.index, x.count, x.positives),
+                    (y.index, y.count, y.positives)
+                );
+                assert!((x.mean_predicted - y.mean_predicted).abs() < 1e-12);
+            }
+            assert!((s.ece - l.ece).abs() < 1e-12);
+        }
+        assert_eq!(streamed.differences.counts, loaded.differences.counts);
+        assert!((streamed.differences.lo - loaded.differences.lo).abs() < 1e-12);
+        assert!((streamed.differences.hi - loaded.differences.hi).abs() < 1e-12);
+        assert!(
+            diffs.is_empty(),
+            "{backend} compare {request:?}:\n{}",
+            diffs.join("\n")
+        );
+        assert!(streamed.paired_with_outcome > 100, "{streamed:?}");
+        assert!(streamed.outcomes["delong"]["z"].is_number());
+        if threshold.is_some() {
+            assert!(streamed.agreement.as_ref().unwrap()["spearman"].is_number());
+        }
+    }
+    // Naming a model that did not score is refused alike.
+    let request = CompareRequest {
+        filter: ReportFilter {
+            route: Some("fraud".into()),
+            ..ReportFilter::default()
+        },
+        challenger: Some("nobody".into()),
+        ..CompareRequest::default()
+    };
+    assert_eq!(
+        probity::compare::build(store, &request)
+            .unwrap_err()
+            .to_string(),
+        probity::compare::build_loaded(store, &request)
+            .unwrap_err()
+            .to_string()
+    );
 }
 
 #[test]

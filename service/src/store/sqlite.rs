@@ -797,7 +797,7 @@ const PAIRS_CTE: &str = "WITH pr AS (
 /// The select over `pr` for each [`PairRanks`] (see [`super::PairRow`]).
 pub(crate) fn pair_select(ranks: PairRanks) -> &'static str {
     match ranks {
-        PairRanks::None => "SELECT a, b, l, 0, 0 FROM pr ORDER BY seq",
+        PairRanks::None => "SELECT a, b, l, CAST(0 AS BIGINT), CAST(0 AS BIGINT) FROM pr ORDER BY seq",
         PairRanks::Midranks => {
             "SELECT a, b, l,
                 2 * RANK() OVER (ORDER BY a) + COUNT(*) OVER (PARTITION BY a) - 1,
@@ -814,7 +814,7 @@ pub(crate) fn pair_select(ranks: PairRanks) -> &'static str {
              WINDOW wa AS (ORDER BY a), pa AS (PARTITION BY a), wb AS (ORDER BY b), pb AS (PARTITION BY b)
              ORDER BY seq"
         }
-        PairRanks::ChampionAscending => "SELECT a, b, l, 0, 0 FROM pr ORDER BY a",
+        PairRanks::ChampionAscending => "SELECT a, b, l, CAST(0 AS BIGINT), CAST(0 AS BIGINT) FROM pr ORDER BY a",
     }
 }
 
