@@ -58,7 +58,7 @@ fn reset_peak() {
 fn row(rng: &mut rand_chacha::ChaCha8Rng, i: u64) -> (String, f64, f64, Option<bool>) {
     let h = (rng.random_range(-448..64) as f64) / 64.0;
     let h2 = h + (rng.random_range(-16..16) as f64) / 64.0;
-    let labelled = i % 5 == 0;
+    let labelled = i.is_multiple_of(5);
     let p = 1.0 / (1.0 + (-h).exp());
     let label = labelled.then(|| rng.random_bool(p));
     (format!("p{i:010}"), h, h2, label)
@@ -89,7 +89,7 @@ fn record(id: &str, model: &str, role: &str, time_ms: i64, h: f64) -> Prediction
         log_odds: h,
         adjusted_log_odds: h,
         probability: 1.0 / (1.0 + (-h).exp()),
-        entity_key: String::new(),
+        subject_key: String::new(),
         tags: BTreeMap::new(),
         served: Served {
             prior: Some(0.02),
@@ -113,7 +113,7 @@ fn fill_sqlite(dir: &Path, n: u64) -> anyhow::Result<()> {
     {
         let mut p = tx.prepare(
             "INSERT INTO predictions (prediction_id, route, model, version, role, time_ms, margin, log_odds,
-             adjusted_log_odds, probability, entity_key, tags, served_prior, decision)
+             adjusted_log_odds, probability, subject_key, tags, served_prior, decision)
              VALUES (?1, 'fraud', ?2, 'v1', ?3, ?4, ?5, ?5, ?5, ?6, '', '{}', 0.02, 'threshold 0.5')",
         )?;
         let mut o = tx.prepare(
@@ -161,7 +161,7 @@ fn fill_postgres(url: &str, n: u64) -> anyhow::Result<()> {
     {
         let mut w = client.copy_in(
             "COPY predictions (prediction_id, route, model, version, role, time_ms, margin, log_odds,
-             adjusted_log_odds, probability, entity_key, tags, served_prior, decision) FROM STDIN",
+             adjusted_log_odds, probability, subject_key, tags, served_prior, decision) FROM STDIN",
         )?;
         let mut buf = std::io::BufWriter::with_capacity(1 << 20, &mut w);
         for i in 0..ids {

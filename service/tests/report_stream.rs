@@ -122,7 +122,7 @@ fn fill(store: &mut dyn Store) {
                 log_odds: h,
                 adjusted_log_odds: h,
                 probability: 1.0 / (1.0 + (-h).exp()),
-                entity_key: String::new(),
+                subject_key: String::new(),
                 tags: BTreeMap::new(),
                 served: probity::store::Served {
                     prior: Some(prior),
@@ -155,7 +155,7 @@ fn fill(store: &mut dyn Store) {
             log_odds: 0.0,
             adjusted_log_odds: -1.0 - i as f64,
             probability: 1.0 / (1.0 + (1.0 + i as f64).exp()),
-            entity_key: String::new(),
+            subject_key: String::new(),
             tags: BTreeMap::new(),
             served: probity::store::Served {
                 prior: None,

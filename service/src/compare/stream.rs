@@ -159,7 +159,9 @@ pub fn build(
     let champion = match &request.champion {
         Some(m) => m.clone(),
         None => most_frequent(&champions).ok_or_else(|| {
-            CompareReportError::Models(format!("route {route}: no champion prediction in the log"))
+            CompareReportError::Models(format!(
+                "route {route}: no champion prediction in the store"
+            ))
         })?,
     };
     let challenger = match &request.challenger {
@@ -168,7 +170,7 @@ pub fn build(
             [one] => one.0.clone(),
             [] => {
                 return Err(CompareReportError::Models(format!(
-                    "route {route}: no challenger prediction in the log"
+                    "route {route}: no challenger prediction in the store"
                 )))
             }
             many => {
@@ -200,7 +202,7 @@ pub fn build(
     ] {
         if missing {
             return Err(CompareReportError::Models(format!(
-                "route {route}: no {role} prediction by `{model}` in the log ({role}s logged: {})",
+                "route {route}: no {role} prediction by `{model}` in the store ({role}s logged: {})",
                 if known.is_empty() {
                     "none".to_string()
                 } else {

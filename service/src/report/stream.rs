@@ -16,9 +16,10 @@
 //! - the follow-up of the eventual positive rate grouped by time in the database ([`Store::follow_up`]).
 //!
 //! What is held: a few dozen counters and sums per section, the 10 to 20 bins of each table, the Kaplan-Meier steps
-//! (one per distinct delay of a positive outcome within the horizon), and, for the calibration tests (Cox's
-//! logistic recalibration is a Newton fit over the pairs), the pairs' probability, log-odds and label (17 bytes a
-//! pair with an outcome; no per-prediction state).
+//! (one per distinct delay of a positive outcome within the horizon), and, for the calibration tests only (Cox's
+//! logistic recalibration is a Newton fit over the pairs, not yet written as passes), the pairs' probability,
+//! log-odds and label, read in a last pass into vectors of exactly their size (17 bytes a pair with an outcome,
+//! dropped before the next section); no per-prediction state.
 
 use std::collections::BTreeMap;
 use std::io::{BufReader, BufWriter, Read, Seek, SeekFrom, Write};
@@ -196,7 +197,6 @@ pub fn section(
     let mut uniform = vec![Bin::default(); nbins];
     let mut last_prior: Option<Option<f64>> = None;
     let mut now_ms = i64::MIN;
-    let (mut pair_p, mut pair_h, mut pair_y) = (Vec::new(), Vec::new(), Vec::new());
     // The EM's inputs need the latest row's prior, known only at the end: keep (p, log-odds, prior) per row.
     let mut em_p = Spill::new()?;
     let mut em_h = Spill::new()?;
@@ -235,9 +235,6 @@ pub fn section(
             b.count += 1;
             b.positives += usize::from(y);
             b.sum += r.probability;
-            pair_p.push(r.probability);
-            pair_h.push(r.adjusted_log_odds);
-            pair_y.push(y);
         }
         Ok(())
     })?;
@@ -628,6 +625,21 @@ pub fn section(
             }
         }
     };
+    // The calibration tests take the pairs whole (Cox's recalibration is a Newton fit over them): read them last,
+    // into vectors of exactly their size, and drop them before anything else is held.
+    let (mut pair_p, mut pair_h, mut pair_y) = (
+        Vec::with_capacity(n),
+        Vec::with_capacity(n),
+        Vec::with_capacity(n),
+    );
+    if n > 0 {
+        store.scan(scan, ScanOrder::Written, true, &mut |r: &ScanRow| {
+            pair_p.push(r.probability);
+            pair_h.push(r.adjusted_log_odds);
+            pair_y.push(r.label == Some(true));
+            Ok(())
+        })?;
+    }
     let calibration_tests = calibration_tests::compute(&pair_p, &pair_h, &pair_y, &mut notes);
     drop((pair_p, pair_h, pair_y));
     let eventual_positive_rate = eventual(store, scan, rows, now_ms, &mut notes)?;
