@@ -22,7 +22,7 @@
 //! dropped before the next section); no per-prediction state.
 
 use std::collections::BTreeMap;
-use std::io::{BufReader, BufWriter, Read, Seek, SeekFrom, Write};
+use std::io::{BufWriter, Read, Seek, SeekFrom, Write};
 
 use probity_models::fit::{estimate_prior_by, EmOptions};
 use probity_models::link::sigmoid;
@@ -46,18 +46,24 @@ use crate::store::{
     FollowUpGroup, ReportFilter, ScanOrder, ScanRow, SeriesScan, Store, StoreError,
 };
 
-/// Values written once and read back in order as often as needed, from a temporary file: what an iterative
-/// statistic (the base-rate EM) passes over more than once, kept off the heap.
+/// Values written once and read back in order as often as needed: what an iterative statistic (the base-rate EM)
+/// passes over more than once. Up to [`Spill::IN_MEMORY`] values stay in memory (a fixed cap); beyond that all of
+/// them go to a temporary file, kept off the heap.
 pub struct Spill {
-    file: BufWriter<std::fs::File>,
+    mem: Vec<f64>,
+    file: Option<BufWriter<std::fs::File>>,
     len: usize,
 }
 
 impl Spill {
-    /// An empty spill in the system's temporary directory (removed when dropped).
+    /// Values kept in memory before the spill moves to a file (512 KiB).
+    pub const IN_MEMORY: usize = 1 << 16;
+
+    /// An empty spill (its file, when it needs one, in the system's temporary directory, removed when dropped).
     pub fn new() -> Result<Spill, StoreError> {
         Ok(Spill {
-            file: BufWriter::new(tempfile::tempfile().map_err(StoreError::Spill)?),
+            mem: Vec::new(),
+            file: None,
             len: 0,
         })
     }
@@ -65,9 +71,23 @@ impl Spill {
     /// Appends one value.
     pub fn push(&mut self, v: f64) -> Result<(), StoreError> {
         self.len += 1;
-        self.file
-            .write_all(&v.to_le_bytes())
-            .map_err(StoreError::Spill)
+        if self.file.is_none() && self.mem.len() < Spill::IN_MEMORY {
+            self.mem.push(v);
+            return Ok(());
+        }
+        if self.file.is_none() {
+            let mut file = BufWriter::new(tempfile::tempfile().map_err(StoreError::Spill)?);
+            for m in &self.mem {
+                file.write_all(&m.to_le_bytes())
+                    .map_err(StoreError::Spill)?;
+            }
+            self.mem = Vec::new();
+            self.file = Some(file);
+        }
+        match self.file.as_mut() {
+            Some(f) => f.write_all(&v.to_le_bytes()).map_err(StoreError::Spill),
+            None => Ok(()),
+        }
     }
 
     /// Values written.
@@ -80,20 +100,80 @@ impl Spill {
         self.len == 0
     }
 
+    /// A reader from the first value, when the values are in a file.
+    fn reader(&mut self) -> Result<Option<SpillReader>, StoreError> {
+        let Some(file) = self.file.as_mut() else {
+            return Ok(None);
+        };
+        file.flush().map_err(StoreError::Spill)?;
+        let mut f = file.get_ref().try_clone().map_err(StoreError::Spill)?;
+        f.seek(SeekFrom::Start(0)).map_err(StoreError::Spill)?;
+        Ok(Some(SpillReader {
+            file: f,
+            buf: vec![0u8; 1 << 16],
+            at: 0,
+            filled: 0,
+        }))
+    }
+
+    /// Puts the write position back at the end after a pass.
+    fn rewind_end(&mut self) -> Result<(), StoreError> {
+        if let Some(file) = self.file.as_mut() {
+            file.get_mut()
+                .seek(SeekFrom::End(0))
+                .map_err(StoreError::Spill)?;
+        }
+        Ok(())
+    }
+
     /// Calls `each` on every value in the order written.
     pub fn pass(&mut self, mut each: impl FnMut(f64)) -> Result<(), StoreError> {
-        self.file.flush().map_err(StoreError::Spill)?;
-        let file = self.file.get_mut();
-        file.seek(SeekFrom::Start(0)).map_err(StoreError::Spill)?;
-        let mut reader = BufReader::with_capacity(1 << 16, &mut *file);
-        let mut buf = [0u8; 8];
-        for _ in 0..self.len {
-            reader.read_exact(&mut buf).map_err(StoreError::Spill)?;
-            each(f64::from_le_bytes(buf));
+        match self.reader()? {
+            None => self.mem.iter().for_each(|&v| each(v)),
+            Some(mut r) => {
+                for _ in 0..self.len {
+                    each(r.next()?);
+                }
+            }
         }
-        drop(reader);
-        file.seek(SeekFrom::End(0)).map_err(StoreError::Spill)?;
-        Ok(())
+        self.rewind_end()
+    }
+}
+
+/// Reads a spill file 64 KiB at a time.
+struct SpillReader {
+    file: std::fs::File,
+    buf: Vec<u8>,
+    at: usize,
+    filled: usize,
+}
+
+impl SpillReader {
+    fn next(&mut self) -> Result<f64, StoreError> {
+        if self.at + 8 > self.filled {
+            let rest = self.filled - self.at;
+            self.buf.copy_within(self.at..self.filled, 0);
+            let mut filled = rest;
+            while filled < 8 {
+                let got = self
+                    .file
+                    .read(&mut self.buf[filled..])
+                    .map_err(StoreError::Spill)?;
+                if got == 0 {
+                    return Err(StoreError::Spill(std::io::Error::new(
+                        std::io::ErrorKind::UnexpectedEof,
+                        "report working file ended early",
+                    )));
+                }
+                filled += got;
+            }
+            self.at = 0;
+            self.filled = filled;
+        }
+        let mut b = [0u8; 8];
+        b.copy_from_slice(&self.buf[self.at..self.at + 8]);
+        self.at += 8;
+        Ok(f64::from_le_bytes(b))
     }
 }
 
@@ -696,31 +776,22 @@ impl Walk<'_> {
         &mut self,
         mut each: impl FnMut(f64, f64, f64) -> Result<(), StoreError>,
     ) -> Result<(), StoreError> {
-        let mut readers = Vec::new();
-        for s in [&mut *self.p, &mut *self.h, &mut *self.prior] {
-            s.file.flush().map_err(StoreError::Spill)?;
-            let mut f = s.file.get_ref().try_clone().map_err(StoreError::Spill)?;
-            f.seek(SeekFrom::Start(0)).map_err(StoreError::Spill)?;
-            readers.push(BufReader::with_capacity(1 << 16, f));
+        let len = self.p.len;
+        match (self.p.reader()?, self.h.reader()?, self.prior.reader()?) {
+            (Some(mut p), Some(mut h), Some(mut prior)) => {
+                for _ in 0..len {
+                    each(p.next()?, h.next()?, prior.next()?)?;
+                }
+            }
+            _ => {
+                for ((&p, &h), &prior) in self.p.mem.iter().zip(&self.h.mem).zip(&self.prior.mem) {
+                    each(p, h, prior)?;
+                }
+            }
         }
-        let mut buf = [0u8; 8];
-        let mut next = |r: &mut BufReader<std::fs::File>| -> Result<f64, StoreError> {
-            r.read_exact(&mut buf).map_err(StoreError::Spill)?;
-            Ok(f64::from_le_bytes(buf))
-        };
-        for _ in 0..self.p.len {
-            let p = next(&mut readers[0])?;
-            let h = next(&mut readers[1])?;
-            let prior = next(&mut readers[2])?;
-            each(p, h, prior)?;
-        }
-        for s in [&mut *self.p, &mut *self.h, &mut *self.prior] {
-            s.file
-                .get_mut()
-                .seek(SeekFrom::End(0))
-                .map_err(StoreError::Spill)?;
-        }
-        Ok(())
+        self.p.rewind_end()?;
+        self.h.rewind_end()?;
+        self.prior.rewind_end()
     }
 }
 
@@ -768,4 +839,52 @@ fn eventual(
         horizon_ms,
         notes,
     ))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_spill_past_its_memory_cap_reads_back_every_value_in_order_each_pass() {
+        let n = Spill::IN_MEMORY + 12_345;
+        let mut s = Spill::new().unwrap();
+        for i in 0..n {
+            s.push(i as f64 * 0.5 - 7.0).unwrap();
+        }
+        for _ in 0..2 {
+            let mut i = 0usize;
+            s.pass(|v| {
+                assert_eq!(v, i as f64 * 0.5 - 7.0);
+                i += 1;
+            })
+            .unwrap();
+            assert_eq!(i, n);
+        }
+        // Three spills read in step.
+        let (mut p, mut h, mut prior) = (
+            Spill::new().unwrap(),
+            Spill::new().unwrap(),
+            Spill::new().unwrap(),
+        );
+        for i in 0..n {
+            p.push(i as f64).unwrap();
+            h.push(-(i as f64)).unwrap();
+            prior.push(f64::NAN).unwrap();
+        }
+        let mut k = 0usize;
+        Walk {
+            p: &mut p,
+            h: &mut h,
+            prior: &mut prior,
+        }
+        .walk(|a, b, c| {
+            assert_eq!((a, b), (k as f64, -(k as f64)));
+            assert!(c.is_nan());
+            k += 1;
+            Ok(())
+        })
+        .unwrap();
+        assert_eq!(k, n);
+    }
 }
