@@ -11,7 +11,8 @@
 use std::collections::BTreeMap;
 
 use probity::compare::CompareRequest;
-use probity::report::{build_binned, build_loaded};
+use probity::report::build_loaded;
+use probity::report::stream::build as build_binned;
 use probity::store::postgres::{ConnectionUrl, PgStore};
 use probity::store::{
     ModelVersionInfo, OutcomeInput, PredictionRecord, Reference, ReportFilter, SqliteStore, Store,
