@@ -119,6 +119,7 @@ impl pb::scoring_server::Scoring for ScoringApi {
                     Ok(None) => break,
                     Err(status) => {
                         // A frame we could not decode (or a reset): end the stream with that status.
+                        metrics::request("ScoreStream", "", status.code(), 0.0);
                         let _ = tx.send(Err(status)).await;
                         break;
                     }

@@ -338,6 +338,8 @@ impl pb::outcomes_server::Outcomes for OutcomesApi {
                     Ok(Some(m)) => chunk.push(m),
                     Ok(None) => break,
                     Err(status) => {
+                        // A frame we could not decode (or a reset): counted, and the stream ends with it.
+                        metrics::request("RecordOutcomeStream", "", status.code(), 0.0);
                         let _ = tx.send(Err(status)).await;
                         break;
                     }
