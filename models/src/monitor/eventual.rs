@@ -45,6 +45,10 @@
 //!   S(a)) / (1 - S(H))`); its gradient is applied to Greenwood's covariance `Cov(S(s), S(t)) = S(s) S(t) V(min(s,
 //!   t))` (the same as [`eventual_rate`](super::eventual_rate)).
 //!
+//! A bin whose predictions are all younger than the reference's first delay expects no arrival: its own rate is
+//! unknown, and for the window's figures it is counted with the nearest bin that expects some (a collapsed
+//! stratum).
+//!
 //! Rates get a Wald interval on the log scale (`exp(ln estimate +- z se / estimate)`, capped at 1), and with no
 //! positive arrived yet `[0, -ln(alpha / 2) / D]`, the Garwood (1936) zero-count bound scaled by the expected
 //! arrived count; log-loss and Brier score a Wald interval on their own scale, cut at 0, and none at all while no
@@ -100,8 +104,9 @@ pub struct EventualBin {
     pub mean_predicted: f64,
     /// Mean share of eventual positives arrived by the bin's ages, `D_b / n_b`.
     pub arrived_share: f64,
-    /// Estimated eventual share of positives, `k_b / D_b`.
-    pub rate: Estimate,
+    /// Estimated eventual share of positives, `k_b / D_b`; `None` when the bin's predictions are all younger than
+    /// the reference's first delay (the window's figures then count the bin with the nearest bin that has some).
+    pub rate: Option<Estimate>,
 }
 
 /// The eventual figures of a window.
@@ -126,6 +131,7 @@ pub struct EventualFigures {
 }
 
 /// One prediction as the computation keeps it.
+#[derive(Debug, Clone, Copy)]
 struct Case {
     bin: usize,
     step: usize,
@@ -215,45 +221,81 @@ pub fn eventual_figures(
         expected[c.bin] += arrived(c);
         sum_p[c.bin] += c.probability;
     }
-    if (0..bins).any(|b| count[b] > 0 && expected[b] <= 0.0) {
+    // A bin whose predictions are all younger than the reference's first delay expects no arrival, so nothing in
+    // it can be scaled up: for the window's figures it joins the nearest bin that expects some (lower first), a
+    // collapsed stratum, and its own rate is unknown.
+    let usable: Vec<usize> = (0..bins).filter(|&b| expected[b] > 0.0).collect();
+    if usable.is_empty() {
         return Err(MonitorError::NoFit {
             statistic: "eventual figures",
-            reason: "the predictions of a bin are all younger than the first delay in the reference, so none of \
-                     its positives is expected yet",
+            reason: "the window's predictions are all younger than the first delay in the reference, so none of \
+                     their positives is expected yet",
         });
     }
+    let stratum: Vec<usize> = (0..bins)
+        .map(|b| {
+            *usable
+                .iter()
+                .min_by_key(|&&u| (u.abs_diff(b), u > b))
+                .unwrap_or(&b)
+        })
+        .collect();
     let z = normal_upper_point((1.0 - level) / 2.0)?;
     let alpha = 1.0 - level;
     let k_total: usize = positives.iter().sum();
-    let weights: Vec<f64> = count.iter().map(|&c| c as f64 / n).collect();
-    let all_bins: Vec<usize> = (0..bins).filter(|&b| count[b] > 0).collect();
-    let ctx = Ratio {
+    let expected_total: f64 = expected.iter().sum();
+    // The window's figures, on the strata.
+    let merged: Vec<Case> = cases
+        .iter()
+        .map(|c| Case {
+            bin: stratum[c.bin],
+            ..*c
+        })
+        .collect();
+    let mut merged_count = vec![0usize; bins];
+    let mut merged_expected = vec![0.0f64; bins];
+    for b in 0..bins {
+        merged_count[stratum[b]] += count[b];
+        merged_expected[stratum[b]] += expected[b];
+    }
+    let weights: Vec<f64> = merged_count.iter().map(|&c| c as f64 / n).collect();
+    let strata: Vec<usize> = (0..bins).filter(|&b| merged_count[b] > 0).collect();
+    let whole = Ratio {
+        km,
+        g_h,
+        cases: &merged,
+        count: &merged_count,
+        expected: &merged_expected,
+    };
+    // Positive rate.
+    let (rate, rate_var) = whole.figure(&strata, &weights, |_| 1.0);
+    let positive_rate = rate_interval(rate, rate_var, k_total, expected_total, z, alpha);
+    // Log-loss: c = softplus(h), g = softplus(-h) - softplus(h).
+    let (ll, ll_var) = whole.figure(&strata, &weights, |c| {
+        softplus(-c.log_odds) - softplus(c.log_odds)
+    });
+    let ll_base = cases.iter().map(|c| softplus(c.log_odds)).sum::<f64>() / n;
+    let log_loss = linear_interval(ll_base + ll, ll_var, k_total, z, f64::INFINITY);
+    // Brier: c = p^2, g = 1 - 2p.
+    let (br, br_var) = whole.figure(&strata, &weights, |c| 1.0 - 2.0 * c.probability);
+    let br_base = cases.iter().map(|c| c.probability * c.probability).sum::<f64>() / n;
+    let brier = linear_interval(br_base + br, br_var, k_total, z, 1.0);
+    // The table, on the bins themselves.
+    let each = Ratio {
         km,
         g_h,
         cases: &cases,
         count: &count,
         expected: &expected,
     };
-    // Positive rate.
-    let (rate, rate_var) = ctx.figure(&all_bins, &weights, |_| 1.0);
-    let expected_total: f64 = expected.iter().sum();
-    let positive_rate = rate_interval(rate, rate_var, k_total, expected_total, z, alpha);
-    // Log-loss: c = softplus(h), g = softplus(-h) - softplus(h).
-    let (ll, ll_var) = ctx.figure(&all_bins, &weights, |c| {
-        softplus(-c.log_odds) - softplus(c.log_odds)
-    });
-    let ll_base = cases.iter().map(|c| softplus(c.log_odds)).sum::<f64>() / n;
-    let log_loss = linear_interval(ll_base + ll, ll_var, k_total, z, f64::INFINITY);
-    // Brier: c = p^2, g = 1 - 2p.
-    let (br, br_var) = ctx.figure(&all_bins, &weights, |c| 1.0 - 2.0 * c.probability);
-    let br_base = cases.iter().map(|c| c.probability * c.probability).sum::<f64>() / n;
-    let brier = linear_interval(br_base + br, br_var, k_total, z, 1.0);
-    // The table.
-    let mut table = Vec::with_capacity(all_bins.len());
-    for &b in &all_bins {
-        let mut w = vec![0.0; bins];
-        w[b] = 1.0;
-        let (r, var) = ctx.figure(&[b], &w, |_| 1.0);
+    let mut table = Vec::new();
+    for b in (0..bins).filter(|&b| count[b] > 0) {
+        let rate = (expected[b] > 0.0).then(|| {
+            let mut w = vec![0.0; bins];
+            w[b] = 1.0;
+            let (r, var) = each.figure(&[b], &w, |_| 1.0);
+            rate_interval(r, var, positives[b], expected[b], z, alpha)
+        });
         table.push(EventualBin {
             index: b,
             lower: edges[b],
@@ -262,7 +304,7 @@ pub fn eventual_figures(
             positives_so_far: positives[b],
             mean_predicted: sum_p[b] / count[b] as f64,
             arrived_share: expected[b] / count[b] as f64,
-            rate: rate_interval(r, var, positives[b], expected[b], z, alpha),
+            rate,
         });
     }
     Ok(EventualFigures {
@@ -480,8 +522,8 @@ mod tests {
         let d1 = f_of(0.75) + f_of(21.0 / 32.0) * 2.0 + f_of(35.0 / 64.0);
         let f = eventual_figures(&km, &window(), &[0.0, 0.5, 1.0], 0.95).unwrap();
         assert_eq!(f.bins.len(), 2);
-        assert!((f.bins[0].rate.estimate - 1.0 / d0).abs() < 1e-14);
-        assert!((f.bins[1].rate.estimate - 3.0 / d1).abs() < 1e-14);
+        assert!((f.bins[0].rate.unwrap().estimate - 1.0 / d0).abs() < 1e-14);
+        assert!((f.bins[1].rate.unwrap().estimate - 3.0 / d1).abs() < 1e-14);
         assert!((f.positive_rate.estimate - (4.0 / d0 + 4.0 * 3.0 / d1) / 8.0).abs() < 1e-14);
         // Log-loss: mean softplus(h) plus the bins' scaled sums of softplus(-h) - softplus(h) = -h over arrived
         // positives (p = 0.2 in bin 0; 0.6, 0.8, 0.9 in bin 1).
@@ -495,7 +537,7 @@ mod tests {
         let br = base + (4.0 / d0 * (1.0 - 0.4) + 4.0 / d1 * (3.0 - 2.0 * (0.6 + 0.8 + 0.9))) / 8.0;
         assert!((f.brier.estimate - br).abs() < 1e-14);
         // Window part of bin 0's rate variance: k (1 - k/n) / D^2 = (3/4) / d0^2; the reference part is positive.
-        let se0 = f.bins[0].rate.standard_error.unwrap();
+        let se0 = f.bins[0].rate.unwrap().standard_error.unwrap();
         assert!(se0 * se0 > 0.75 / (d0 * d0));
         assert_eq!(f.positives_so_far, 4);
     }
@@ -569,8 +611,16 @@ mod tests {
         bad[3].probability = 1.5;
         let e = eventual_figures(&km, &bad, &[0.0, 1.0], 0.95).unwrap_err();
         assert!(e.to_string().contains("probability"), "{e}");
-        // All of a bin younger than the first delay (1): nothing expected there yet.
-        let young = [case(0.5, 0.1, false), case(5.0, 0.9, true)];
+        // All of the window younger than the first delay (1): nothing expected yet.
+        let young = [case(0.5, 0.1, false), case(0.7, 0.9, false)];
         assert!(eventual_figures(&km, &young, &[0.0, 0.5, 1.0], 0.95).is_err());
+        // One bin younger: its rate is unknown and the window's figures count it with the other bin, so they equal
+        // the one-bin figures.
+        let young = [case(0.5, 0.1, false), case(5.0, 0.9, true), case(3.0, 0.8, false)];
+        let two = eventual_figures(&km, &young, &[0.0, 0.5, 1.0], 0.95).unwrap();
+        let one = eventual_figures(&km, &young, &[0.0, 1.0], 0.95).unwrap();
+        assert!(two.bins[0].rate.is_none() && two.bins[1].rate.is_some());
+        assert_eq!(two.log_loss, one.log_loss);
+        assert_eq!(two.positive_rate, one.positive_rate);
     }
 }

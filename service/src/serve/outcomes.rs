@@ -406,8 +406,26 @@ impl pb::outcomes_server::Outcomes for OutcomesApi {
         let result = async {
             checked?;
             let log = self.log()?;
+            // The immature window's horizon: each route's label maturity, when configured.
+            let horizons = report::Horizons {
+                by_route: log
+                    .config()
+                    .maturity
+                    .iter()
+                    .map(|(route, d)| (route.clone(), i64::try_from(d.as_millis()).unwrap_or(i64::MAX)))
+                    .collect(),
+                all: None,
+            };
             let report = on_store(&self.slots, log, move |log| {
-                log.with_store(|store| report::build_with(store, &filter, &configured))
+                log.with_store(|store| {
+                    report::build_full(
+                        store,
+                        &filter,
+                        &configured,
+                        probity_models::metrics::BinStrategy::Uniform(report::CALIBRATION_BINS),
+                        &horizons,
+                    )
+                })
             })
             .await?;
             Ok(report_response(&report))
