@@ -49,7 +49,8 @@
 //! unknown, and for the window's figures it is counted with the nearest bin that expects some (a collapsed
 //! stratum).
 //!
-//! Rates get a Wald interval on the log scale (`exp(ln estimate +- z se / estimate)`, capped at 1), and with no
+//! Rates get a Wald interval on the log scale (`exp(ln estimate +- z se / estimate)`; the estimate and both ends
+//! capped at 1, which a small bin whose few positives arrived early can pass), and with no
 //! positive arrived yet `[0, -ln(alpha / 2) / D]`, the Garwood (1936) zero-count bound scaled by the expected
 //! arrived count; log-loss and Brier score a Wald interval on their own scale, cut at 0, and none at all while no
 //! positive has arrived in the window (the outcome part of the variance is then 0 and says nothing). The intervals
@@ -118,9 +119,12 @@ pub struct EventualFigures {
     pub positives_so_far: usize,
     /// Mean share of eventual positives arrived by the window's ages.
     pub arrived_share: f64,
+    /// Estimated number of eventual positives, `sum_b n_b k_b / D_b`, uncapped: above `cases` the window's positives
+    /// have arrived faster than the reference's delays allow, and the assumptions do not hold.
+    pub eventual_positives: f64,
     /// Confidence level of the intervals.
     pub level: f64,
-    /// Eventual positive rate (the bins' rates weighted by their counts).
+    /// Eventual positive rate (the bins' uncapped rates weighted by their counts).
     pub positive_rate: Estimate,
     /// Eventual mean log-loss (nats).
     pub log_loss: Estimate,
@@ -311,6 +315,7 @@ pub fn eventual_figures(
         cases: cases.len(),
         positives_so_far: k_total,
         arrived_share: expected_total / n,
+        eventual_positives: rate * n,
         level,
         positive_rate,
         log_loss,
@@ -407,9 +412,9 @@ fn rate_interval(theta: f64, var: f64, k: usize, expected: f64, z: f64, alpha: f
     }
     let log_se = se / theta;
     Estimate {
-        estimate: theta,
+        estimate: theta.min(1.0),
         standard_error: Some(se),
-        lower: Some(theta * (-z * log_se).exp()),
+        lower: Some((theta * (-z * log_se).exp()).min(1.0)),
         upper: Some((theta * (z * log_se).exp()).min(1.0)),
     }
 }
@@ -540,6 +545,7 @@ mod tests {
         let se0 = f.bins[0].rate.unwrap().standard_error.unwrap();
         assert!(se0 * se0 > 0.75 / (d0 * d0));
         assert_eq!(f.positives_so_far, 4);
+        assert!((f.eventual_positives - (4.0 / d0 + 4.0 * 3.0 / d1)).abs() < 1e-13);
     }
 
     #[test]

@@ -387,6 +387,19 @@ pub fn window(
         Ok(f) => f,
         Err(e) => return unknown(e.to_string()),
     };
+    if figures.eventual_positives > cases.len() as f64
+        || figures.log_loss.estimate < 0.0
+        || figures.brier.estimate < 0.0
+    {
+        return unknown(format!(
+            "{} positives have arrived among {} predictions, while the delay reference expects only {:.1}% of the \
+             eventual ones by now: the window's outcomes arrive faster than the matured predictions' did (outcomes \
+             sent in a batch, or a changed delay), so one delay distribution does not fit both",
+            figures.positives_so_far,
+            cases.len(),
+            100.0 * figures.arrived_share
+        ));
+    }
     let mut notes = Vec::new();
     if figures.positives_so_far == 0 {
         notes.push(
