@@ -153,7 +153,8 @@ fn simulate_routes(routes: usize) {
             let f = eventual_figures(&km, &cases, &EDGES, 0.95).unwrap();
             arrived[w] += f.arrived_share;
             let n = window.len() as f64;
-            let mean = |g: &dyn Fn(&Prediction) -> f64| window.iter().map(|p| g(p)).sum::<f64>() / n;
+            let mean =
+                |g: &dyn Fn(&Prediction) -> f64| window.iter().map(|p| g(p)).sum::<f64>() / n;
             // Truths, and the figures as they stand today with every prediction not yet positive taken as negative.
             let rate = mean(&|p| p.pi);
             let log_loss =
@@ -188,7 +189,9 @@ fn simulate_routes(routes: usize) {
                     .collect();
                 assert_eq!(members.len(), b.count);
                 let truth = members.iter().map(|p| p.pi).sum::<f64>() / b.count as f64;
-                if let Some(r) = &b.rate { t[3].add(r, truth, b.positives_so_far as f64 / b.count as f64); }
+                if let Some(r) = &b.rate {
+                    t[3].add(r, truth, b.positives_so_far as f64 / b.count as f64);
+                }
             }
         }
     }
@@ -200,9 +203,10 @@ fn simulate_routes(routes: usize) {
             PER_DAY as f64 * days,
             arrived[w] / routes as f64
         );
-        for (t, what) in tallies[w]
-            .iter()
-            .zip(["positive rate", "log-loss", "Brier", "bins' rates"])
+        for (t, what) in
+            tallies[w]
+                .iter()
+                .zip(["positive rate", "log-loss", "Brier", "bins' rates"])
         {
             println!("{}", t.line(what));
         }

@@ -282,7 +282,11 @@ pub fn eventual_figures(
     let log_loss = linear_interval(ll_base + ll, ll_var, k_total, z, f64::INFINITY);
     // Brier: c = p^2, g = 1 - 2p.
     let (br, br_var) = whole.figure(&strata, &weights, |c| 1.0 - 2.0 * c.probability);
-    let br_base = cases.iter().map(|c| c.probability * c.probability).sum::<f64>() / n;
+    let br_base = cases
+        .iter()
+        .map(|c| c.probability * c.probability)
+        .sum::<f64>()
+        / n;
     let brier = linear_interval(br_base + br, br_var, k_total, z, 1.0);
     // The table, on the bins themselves.
     let each = Ratio {
@@ -536,7 +540,11 @@ mod tests {
         let h = |p: f64| (p / (1.0 - p)).ln();
         let base = w.iter().map(|c| softplus(c.log_odds)).sum::<f64>() / 8.0;
         let ll = base + (4.0 / d0 * -h(0.2) + 4.0 / d1 * (-h(0.6) - h(0.8) - h(0.9))) / 8.0;
-        assert!((f.log_loss.estimate - ll).abs() < 1e-13, "{} {ll}", f.log_loss.estimate);
+        assert!(
+            (f.log_loss.estimate - ll).abs() < 1e-13,
+            "{} {ll}",
+            f.log_loss.estimate
+        );
         // Brier: mean p^2 plus scaled sums of 1 - 2p.
         let base = w.iter().map(|c| c.probability.powi(2)).sum::<f64>() / 8.0;
         let br = base + (4.0 / d0 * (1.0 - 0.4) + 4.0 / d1 * (3.0 - 2.0 * (0.6 + 0.8 + 0.9))) / 8.0;
@@ -569,7 +577,10 @@ mod tests {
         let estimate_with = |s: &[f64]| {
             let mut k2 = km.clone();
             k2.survival = s.to_vec();
-            eventual_figures(&k2, &w, &edges, 0.95).unwrap().log_loss.estimate
+            eventual_figures(&k2, &w, &edges, 0.95)
+                .unwrap()
+                .log_loss
+                .estimate
         };
         let mut grad = vec![0.0; m];
         for j in 0..m {
@@ -622,7 +633,11 @@ mod tests {
         assert!(eventual_figures(&km, &young, &[0.0, 0.5, 1.0], 0.95).is_err());
         // One bin younger: its rate is unknown and the window's figures count it with the other bin, so they equal
         // the one-bin figures.
-        let young = [case(0.5, 0.1, false), case(5.0, 0.9, true), case(3.0, 0.8, false)];
+        let young = [
+            case(0.5, 0.1, false),
+            case(5.0, 0.9, true),
+            case(3.0, 0.8, false),
+        ];
         let two = eventual_figures(&km, &young, &[0.0, 0.5, 1.0], 0.95).unwrap();
         let one = eventual_figures(&km, &young, &[0.0, 1.0], 0.95).unwrap();
         assert!(two.bins[0].rate.is_none() && two.bins[1].rate.is_some());

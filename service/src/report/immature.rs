@@ -2,8 +2,8 @@
 //! (`probity_models::monitor::delay`): a Kaplan-Meier estimate of the time from prediction to the receipt of a
 //! positive outcome over every prediction of the section, each followed until "now", with Greenwood's variance.
 //!
-//! Choices, stated: "now" is the latest moment the log shows for the section (its latest prediction or outcome
-//! receipt), so the figure depends on the log only. The horizon is the follow-up that the oldest tenth of the
+//! Choices, stated: "now" is the latest moment the store shows for the section (its latest prediction or outcome
+//! receipt), so the figure depends on the store only. The horizon is the follow-up that the oldest tenth of the
 //! section's predictions (at least 30 of them) have had: the Kaplan-Meier steps beyond the point where few
 //! predictions remain at risk are large and the Greenwood interval is poor there (cutting the curve where the risk
 //! set gets small is common practice, no single source). Positives that take longer than the horizon are not
@@ -545,7 +545,12 @@ pub fn render_window(s: &mut String, w: &ImmatureWindow) {
             w.so_far.positive_rate,
             &w.positive_rate,
         ),
-        ("log-loss", w.matured.log_loss, w.so_far.log_loss, &w.log_loss),
+        (
+            "log-loss",
+            w.matured.log_loss,
+            w.so_far.log_loss,
+            &w.log_loss,
+        ),
         ("Brier", w.matured.brier, w.so_far.brier, &w.brier),
     ] {
         let _ = writeln!(
@@ -563,7 +568,14 @@ pub fn render_window(s: &mut String, w: &ImmatureWindow) {
     let _ = writeln!(
         s,
         "  {:>13} {:>7} {:>7} {:>8} {:>9}  {:<30} {:>8} {:>9}",
-        "bin", "count", "so far", "arrived", "predicted", "estimated eventual", "matured", "observed"
+        "bin",
+        "count",
+        "so far",
+        "arrived",
+        "predicted",
+        "estimated eventual",
+        "matured",
+        "observed"
     );
     for b in &w.bins {
         let _ = writeln!(

@@ -442,9 +442,9 @@ fn kubernetes_configmap_configuration_is_valid() {
     assert_eq!(c.access.callers.len(), 3);
     assert_eq!(c.max_connection_age, Some(Duration::from_secs(300)));
     assert_eq!(c.routes["card-auth"].challengers.list.len(), 1);
-    assert_eq!(c.log.backend, crate::store::config::Backend::Postgres);
+    assert_eq!(c.store.backend, crate::store::config::Backend::Postgres);
     assert_eq!(
-        c.log.postgres_url_file.as_deref(),
+        c.store.postgres_url_file.as_deref(),
         Some(Path::new("/etc/probity/postgres/url"))
     );
 }
@@ -465,5 +465,69 @@ fn route_reasons_settings() {
     assert!(
         e.contains("routes.fraud.reasons.limit: must be 1 to 20, got 50"),
         "{e}"
+    );
+}
+
+#[test]
+fn names_of_earlier_releases_are_refused_with_the_new_name() {
+    let store_hint = "log: the prediction store's section was renamed: write [store]";
+    // The section in the file, its variables and its overrides all meet the same refusal.
+    let err = load(&format!("[log]\ndirectory = \"d\"\n{MINIMAL}"), &[], &[])
+        .unwrap_err()
+        .to_string();
+    assert!(err.starts_with(store_hint), "{err}");
+    let err = load(MINIMAL, &[("PROBITY_LOG_DIRECTORY", "d")], &[])
+        .unwrap_err()
+        .to_string();
+    assert!(err.starts_with(store_hint), "{err}");
+    let err = load(MINIMAL, &[], &[("log.directory", "d")])
+        .unwrap_err()
+        .to_string();
+    assert!(err.starts_with(store_hint), "{err}");
+    // The new names load; the process log keeps its own section and variables.
+    let c = load(
+        MINIMAL,
+        &[
+            ("PROBITY_STORE_DIRECTORY", "d"),
+            ("PROBITY_LOGGING_LEVEL", "debug"),
+        ],
+        &[],
+    )
+    .unwrap();
+    assert_eq!(c.store.directory.as_deref(), Some(Path::new("d")));
+    assert_eq!(c.logging.level, "debug");
+    // Challenger words of earlier releases name their replacements.
+    for (text, expected) in [
+        (
+            "mode = \"mirror\"",
+            "routes.fraud.challengers[0].mode: `mirror` was renamed: write `silent`",
+        ),
+        (
+            "mode = \"split\"\nfraction = 0.1",
+            "routes.fraud.challengers[0].fraction: was renamed: write `share`",
+        ),
+        (
+            "mode = \"live\"\nshare = 0.1\nmirror_back = true",
+            "routes.fraud.challengers[0].mirror_back: was renamed: write `paired`",
+        ),
+    ] {
+        let err = load(
+            &format!("{MINIMAL}[[routes.fraud.challengers]]\nmodel = \"other\"\n{text}\n"),
+            &[],
+            &[],
+        )
+        .unwrap_err()
+        .to_string();
+        assert_eq!(err, expected);
+    }
+    let c = load(
+        &format!("{MINIMAL}[[routes.fraud.challengers]]\nmodel = \"other\"\nmode = \"live\"\nshare = 0.1\npaired = true\n"),
+        &[],
+        &[],
+    )
+    .unwrap();
+    assert_eq!(
+        c.routes["fraud"].challengers.list[0].describe(),
+        "other live 0.1 paired"
     );
 }
