@@ -381,7 +381,7 @@ impl Ratio<'_> {
 /// `Var(sum_j c_j S(t_j))` under Greenwood's covariance `Cov(S(s), S(t)) = S(s) S(t) V(min(s, t))`, the terms given
 /// as (step of `t_j`, `c_j`): sorted by step, each term meets the ones at or after its step with its own `V`.
 fn greenwood_variance(km: &KaplanMeier, terms: &mut [(usize, f64)]) -> f64 {
-    terms.sort_by(|a, b| b.0.cmp(&a.0));
+    terms.sort_by_key(|t| std::cmp::Reverse(t.0));
     let mut after = 0.0;
     let mut var = 0.0;
     for &(g, c) in terms.iter() {

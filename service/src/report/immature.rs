@@ -535,8 +535,8 @@ pub fn render_window(s: &mut String, w: &ImmatureWindow) {
     );
     let _ = writeln!(
         s,
-        "  {:<14} {:>10} {:>10}  {}",
-        "", "matured", "so far", "estimated eventual"
+        "  {:<14} {:>10} {:>10}  estimated eventual",
+        "", "matured", "so far"
     );
     for (name, matured, so_far, e) in [
         (
