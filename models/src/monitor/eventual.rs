@@ -49,8 +49,9 @@
 //! unknown, and for the window's figures it is counted with the nearest bin that expects some (a collapsed
 //! stratum).
 //!
-//! Rates get a Wald interval on the log scale (`exp(ln estimate +- z se / estimate)`; the estimate and both ends
-//! capped at 1, which a small bin whose few positives arrived early can pass), and with no
+//! Rates get a Wald interval on the log scale (`exp(ln estimate +- z se / estimate)`, both ends capped at 1; the
+//! estimate itself is left as it is, above 1 in a small bin whose few positives arrived early, so that it stays
+//! unbiased: a caller showing it may cap it and say so), and with no
 //! positive arrived yet `[0, -ln(alpha / 2) / D]`, the Garwood (1936) zero-count bound scaled by the expected
 //! arrived count; log-loss and Brier score a Wald interval on their own scale, cut at 0, and none at all while no
 //! positive has arrived in the window (the outcome part of the variance is then 0 and says nothing). The intervals
@@ -105,7 +106,7 @@ pub struct EventualBin {
     pub mean_predicted: f64,
     /// Mean share of eventual positives arrived by the bin's ages, `D_b / n_b`.
     pub arrived_share: f64,
-    /// Estimated eventual share of positives, `k_b / D_b`; `None` when the bin's predictions are all younger than
+    /// Estimated eventual share of positives, `k_b / D_b` (not capped at 1); `None` when the bin's predictions are all younger than
     /// the reference's first delay (the window's figures then count the bin with the nearest bin that has some).
     pub rate: Option<Estimate>,
 }
@@ -124,7 +125,7 @@ pub struct EventualFigures {
     pub eventual_positives: f64,
     /// Confidence level of the intervals.
     pub level: f64,
-    /// Eventual positive rate (the bins' uncapped rates weighted by their counts).
+    /// Eventual positive rate (the bins' rates weighted by their counts).
     pub positive_rate: Estimate,
     /// Eventual mean log-loss (nats).
     pub log_loss: Estimate,
@@ -416,7 +417,7 @@ fn rate_interval(theta: f64, var: f64, k: usize, expected: f64, z: f64, alpha: f
     }
     let log_se = se / theta;
     Estimate {
-        estimate: theta.min(1.0),
+        estimate: theta,
         standard_error: Some(se),
         lower: Some((theta * (-z * log_se).exp()).min(1.0)),
         upper: Some((theta * (z * log_se).exp()).min(1.0)),

@@ -450,6 +450,19 @@ pub fn window(
                 b.lower, b.upper, b.count
             ));
         }
+        // The ratio can pass 1 in a small bin whose few positives came early; shown capped, and said.
+        let eventual = b.rate.map(|r| {
+            let mut e = Estimate::from(r);
+            if e.estimate > 1.0 {
+                notes.push(format!(
+                    "bin ({:.4}, {:.4}]: the estimate {:.4} is above 1 (its {} positives came earlier than the \
+                     delay reference expects) and is shown as 1",
+                    b.lower, b.upper, e.estimate, b.positives_so_far
+                ));
+                e.estimate = 1.0;
+            }
+            e
+        });
         let (c, k) = (mc[b.index], mp[b.index]);
         let wilson = wilson_interval(k, c, Z_95);
         table.push(WindowBin {
@@ -459,7 +472,7 @@ pub fn window(
             positives_so_far: b.positives_so_far,
             mean_predicted: b.mean_predicted,
             arrived_share: b.arrived_share,
-            eventual: b.rate.map(Estimate::from),
+            eventual,
             matured_count: c as usize,
             matured_positives: k as usize,
             matured_mean_predicted: (c > 0).then(|| msum[b.index] / c as f64),
