@@ -116,11 +116,7 @@ pub fn immature(r: &SeriesReport, axis: ProbabilityAxis) -> Option<String> {
                 bins: matured,
             },
             Curve {
-                label: format!(
-                    "ESTIMATED eventual share: {} younger predictions, {:.0}% of positives in",
-                    w.predictions,
-                    100.0 * w.arrived_share
-                ),
+                label: format!("ESTIMATED eventual: {} younger predictions", w.predictions),
                 colour: palette::OCHRE,
                 class: "estimated",
                 bins: estimated,
@@ -130,9 +126,11 @@ pub fn immature(r: &SeriesReport, axis: ProbabilityAxis) -> Option<String> {
         &[(
             palette::INK,
             format!(
-                "Estimated bars: {:.0}% delta-method intervals of the eventual share (Lawless 1994 delay \
+                "ESTIMATED: the share the younger predictions will show once their outcomes are in, with {:.0}% \
+                 delta-method intervals; about {:.0}% of their positives are in so far (Lawless 1994 delay \
                  correction; assumes the delay does not depend on the score).",
-                100.0 * w.level
+                100.0 * w.level,
+                100.0 * w.arrived_share
             ),
         )],
     ))
