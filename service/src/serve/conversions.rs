@@ -485,6 +485,7 @@ pub fn route_info(route: &Route, serving: Option<&LoadedModel>) -> pb::RouteInfo
         unknown_features,
         challengers,
         reasons: _,
+        record: _,
     } = route;
     let decision = match &output.decision {
         None => String::new(),
