@@ -221,7 +221,9 @@ impl Setup {
                 )
                 .unwrap();
                 conn.busy_timeout(Duration::from_secs(10)).unwrap();
-                let mut stmt = conn.prepare("SELECT prediction_id FROM predictions").unwrap();
+                let mut stmt = conn
+                    .prepare("SELECT prediction_id FROM predictions")
+                    .unwrap();
                 for id in stmt.query_map([], |r| r.get::<_, String>(0)).unwrap() {
                     *out.entry(id.unwrap()).or_default() += 1;
                 }
@@ -325,11 +327,9 @@ async fn load(server: Server, run_for: Duration, run: usize) -> Arc<Truth> {
                             })
                             .await;
                         match call {
-                            Ok(a) => truth
-                                .answered
-                                .lock()
-                                .unwrap()
-                                .extend(a.into_inner().results.into_iter().map(|r| r.prediction_id)),
+                            Ok(a) => truth.answered.lock().unwrap().extend(
+                                a.into_inner().results.into_iter().map(|r| r.prediction_id),
+                            ),
                             Err(s) if s.message().contains("prediction store") => {
                                 truth.refused.fetch_add(1, Ordering::Relaxed);
                             }
@@ -432,7 +432,10 @@ fn run_once(backend: Backend, record: &str, run: usize) -> Option<Figures> {
         assert!(sent.contains(id), "{id} is stored but was never sent");
         assert_eq!(*times, 1, "{id} is stored {times} times");
     }
-    let missing = answered.iter().filter(|id| !stored.contains_key(*id)).count();
+    let missing = answered
+        .iter()
+        .filter(|id| !stored.contains_key(*id))
+        .count();
     Some(Figures {
         answered: answered.len(),
         stored: stored.len(),

@@ -185,7 +185,9 @@ fn a_receipt_resolves_after_the_commit_without_waiting_out_the_flush_interval() 
     let h = harness(1000);
     // A prediction of a route that does not wait, queued first, goes into the same transaction.
     h.log.log(queued("after-answer-1"));
-    let receipt = h.log.record(vec![queued("before-answer-1"), queued("before-answer-2")]);
+    let receipt = h
+        .log
+        .record(vec![queued("before-answer-1"), queued("before-answer-2")]);
     assert_eq!(wait(receipt), Ok(()));
     // Committed by the time the receipt resolved: readable through the store at once.
     let now = stored(&h.log);

@@ -13,8 +13,8 @@ use crate::serve::limits;
 use crate::serve::metrics;
 use crate::serve::proto as pb;
 use crate::serve::scoring::{Pending, Scorer};
-use crate::store::writer::NotRecorded;
 use crate::serve::server::Reloader;
+use crate::store::writer::NotRecorded;
 
 /// Responses queued per stream before the reader waits for the client to read.
 const STREAM_BUFFER: usize = 64;
@@ -160,7 +160,8 @@ impl pb::scoring_server::Scoring for ScoringApi {
         // Scored rows in arrival order, each with what it waits for: the reader scores the next rows while the
         // rows of a `record = "before-answer"` route wait for their commit (so one stream's rows share batches),
         // and the answers still leave in order.
-        let (scored_tx, mut scored_rx) = tokio::sync::mpsc::channel::<Result<ScoredRow, Status>>(STREAM_BUFFER);
+        let (scored_tx, mut scored_rx) =
+            tokio::sync::mpsc::channel::<Result<ScoredRow, Status>>(STREAM_BUFFER);
         let scorer = Arc::clone(&self.scorer);
         let default_deadline = self.default_deadline;
         tokio::spawn(async move {
@@ -186,8 +187,7 @@ impl pb::scoring_server::Scoring for ScoringApi {
                     deadline,
                     scored,
                 };
-                if scored_tx.send(Ok(row)).await.is_err()
-                {
+                if scored_tx.send(Ok(row)).await.is_err() {
                     break; // the client went away
                 }
             }
@@ -342,6 +342,56 @@ impl pb::models_server::Models for ModelsApi {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    fn pending(receipt: crate::store::writer::Receipt) -> Pending<u32> {
+        Pending {
+            answer: 7,
+            route: "credit".into(),
+            receipt: Some(receipt),
+        }
+    }
+
+    #[tokio::test]
+    async fn an_answer_waits_for_its_record_and_is_refused_without_it() {
+        let soon = || Instant::now() + Duration::from_secs(60);
+        // No receipt: answered at once.
+        let plain = Pending {
+            answer: 7,
+            route: "fraud".into(),
+            receipt: None,
+        };
+        assert_eq!(recorded(plain, soon()).await.unwrap(), 7);
+        let (done, receipt) = tokio::sync::oneshot::channel();
+        done.send(Ok(())).unwrap();
+        assert_eq!(recorded(pending(receipt), soon()).await.unwrap(), 7);
+        // Not committed: UNAVAILABLE, with the reason in the message.
+        let (done, receipt) = tokio::sync::oneshot::channel();
+        done.send(Err(NotRecorded::Write(
+            crate::store::WriteFailure::DiskFull,
+        )))
+        .unwrap();
+        let status = Status::from(recorded(pending(receipt), soon()).await.unwrap_err());
+        assert_eq!(status.code(), tonic::Code::Unavailable);
+        assert!(
+            status.message().contains("disk_full"),
+            "{}",
+            status.message()
+        );
+        // The writer gone without an answer: the store is closed.
+        let (done, receipt) = tokio::sync::oneshot::channel::<Result<(), NotRecorded>>();
+        drop(done);
+        let error = recorded(pending(receipt), soon()).await.unwrap_err();
+        assert!(
+            matches!(error, ServeError::NotRecorded(NotRecorded::Closed)),
+            "{error:?}"
+        );
+        // No commit before the deadline: DEADLINE_EXCEEDED, not an answer.
+        let (_done, receipt) = tokio::sync::oneshot::channel();
+        let error = recorded(pending(receipt), Instant::now() + Duration::from_millis(1))
+            .await
+            .unwrap_err();
+        assert_eq!(Status::from(error).code(), tonic::Code::DeadlineExceeded);
+    }
 
     #[test]
     fn grpc_timeout_units() {

@@ -246,7 +246,10 @@ impl Scorer {
     }
 
     /// Scores one row. On a route with `record = "before-answer"` the answer must wait for its receipt.
-    pub fn score(&self, request: pb::ScoreRequest) -> Result<Pending<pb::ScoreResponse>, ServeError> {
+    pub fn score(
+        &self,
+        request: pb::ScoreRequest,
+    ) -> Result<Pending<pb::ScoreResponse>, ServeError> {
         let pb::ScoreRequest {
             route,
             row,

@@ -175,7 +175,8 @@ pub fn written(route: &str, n: u64) {
 
 /// Records a call refused for want of its record.
 pub fn record_refused(route: &str, reason: &'static str) {
-    metrics::counter!(RECORD_REFUSALS, "route" => route.to_string(), "reason" => reason).increment(1);
+    metrics::counter!(RECORD_REFUSALS, "route" => route.to_string(), "reason" => reason)
+        .increment(1);
 }
 
 /// Sets the queue depth gauge.

@@ -90,7 +90,10 @@ pub type Receipt = tokio::sync::oneshot::Receiver<Result<(), NotRecorded>>;
 enum Message {
     Record(Box<Queued>),
     /// Predictions of one call that waits for their commit.
-    Recorded(Vec<Queued>, tokio::sync::oneshot::Sender<Result<(), NotRecorded>>),
+    Recorded(
+        Vec<Queued>,
+        tokio::sync::oneshot::Sender<Result<(), NotRecorded>>,
+    ),
     /// Write everything queued before this, then answer.
     Flush(mpsc::Sender<()>),
 }
