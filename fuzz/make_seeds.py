@@ -91,12 +91,12 @@ def feature_value(v):
     return field_double(1, v) if isinstance(v, float) else field_bytes(2, v)
 
 
-def row(named=None, dense=None, prediction_id="", entity_key="", tags=None):
+def row(named=None, dense=None, prediction_id="", subject_key="", tags=None):
     out = b""
     if prediction_id:
         out += field_bytes(1, prediction_id)
-    if entity_key:
-        out += field_bytes(2, entity_key)
+    if subject_key:
+        out += field_bytes(2, subject_key)
     for k, v in (tags or {}).items():
         out += field_bytes(3, field_bytes(1, k) + field_bytes(2, v))
     if named is not None:
@@ -112,7 +112,7 @@ def row(named=None, dense=None, prediction_id="", entity_key="", tags=None):
 def request_seeds():
     nan, inf = float("nan"), float("inf")
     rows = [
-        row(named={"amount": 250.0, "channel": "online", "hour": 3.0}, prediction_id="p-1", entity_key="card-9",
+        row(named={"amount": 250.0, "channel": "online", "hour": 3.0}, prediction_id="p-1", subject_key="card-9",
             tags={"shop": "web"}),
         row(named={"amount": 12.5, "channel": "chip", "card_age_days": 400.0}),
         row(named={"amount": nan, "channel": "kiosk", "extra": 1.0}),

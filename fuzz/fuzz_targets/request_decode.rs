@@ -191,7 +191,7 @@ fuzz_target!(|data: &[u8]| {
             }
         }
         _ => {
-            let Ok(request) = pb::DescribeModelRequest::decode(message) else {
+            let Ok(request) = pb::ModelFactsRequest::decode(message) else {
                 return;
             };
             match ModelTarget::try_from(request) {

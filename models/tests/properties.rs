@@ -1,5 +1,5 @@
 //! Property tests (proptest): random tree ensembles against an independent recursive evaluator, batch against
-//! single rows bit for bit, mutated model files never panic, and the link functions' identities and bounds.
+//! single rows bit for bit, mutated model files never panic, and the link functions' idsubjects and bounds.
 //!
 //! The reference evaluator below is written from `docs/model-format.md` (Tree ensemble, Dense row encoding) and
 //! shares no code with the engine: it recurses over the generated tree, where the engine walks a compiled flat

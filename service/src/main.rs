@@ -38,9 +38,9 @@ enum Command {
     /// The report's figures on a labelled CSV file, offline: calibration, log-loss, Brier, AUC, KS, gains, the
     /// operating point, and a paired comparison with a challenger (table, JSON, SVG).
     Evaluate(cli::evaluate::EvaluateArgs),
-    /// Report from a prediction log: calibration, log-loss, Brier, AUC, KS, gains, PSI (table, JSON, SVG).
+    /// Report from a prediction store: calibration, log-loss, Brier, AUC, KS, gains, PSI (table, JSON, SVG).
     Report(cli::report::ReportArgs),
-    /// Champion against challenger on one route, from a prediction log (table, JSON, SVG).
+    /// Champion against challenger on one route, from a prediction store (table, JSON, SVG).
     Compare(cli::compare::CompareArgs),
     /// Send outcomes (prediction id, label, optional time) from a CSV file to a running server, in batches.
     SendOutcomes(cli::send_outcomes::SendOutcomesArgs),
@@ -52,8 +52,26 @@ enum Command {
     Serve(probity::serve::ServeArgs),
 }
 
+/// Flags of earlier releases and their new names: refused, never silently accepted.
+const RENAMED_FLAGS: [(&str, &str); 1] = [("--log", "--store")];
+
+/// The first flag of an earlier release among `args`, as an error naming the new flag.
+fn renamed_flag(args: &[std::ffi::OsString]) -> Option<String> {
+    args.iter().find_map(|a| {
+        let a = a.to_str()?;
+        RENAMED_FLAGS.iter().find_map(|(old, new)| {
+            let exact = a == *old || a.strip_prefix(old).is_some_and(|r| r.starts_with('='));
+            exact.then(|| format!("{old} was renamed {new} (the prediction store); --log-level and --log-format are the process log"))
+        })
+    })
+}
+
 fn run() -> anyhow::Result<()> {
-    match Cli::parse().command {
+    let args: Vec<std::ffi::OsString> = std::env::args_os().collect();
+    if let Some(message) = renamed_flag(&args) {
+        anyhow::bail!(message);
+    }
+    match Cli::parse_from(args).command {
         Command::Check(args) => cli::check::run(&args),
         Command::Score(args) => cli::score::run(&args),
         Command::Explain(args) => cli::explain::run(&args),

@@ -2,7 +2,7 @@
 //! clients built by `probity::client` (the command-line tools' connector):
 //! - the method table covers exactly the methods of every registered service's compiled descriptor;
 //! - TLS with bearer tokens: every role against every RPC, allowed and refused, no token and a wrong token;
-//! - mutual TLS: the same with client-certificate identities, an unconfigured certificate, no certificate;
+//! - mutual TLS: the same with client-certificate idsubjects, an unconfigured certificate, no certificate;
 //! - a plain-text client against a TLS server fails;
 //! - certificate reload: new connections see the new certificate (compared by its DER bytes), a corrupt or
 //!   mismatched replacement keeps the old one and is counted;
@@ -205,7 +205,7 @@ impl Setup {
             );
         }
         text += &format!(
-            "[models]\ndirectory = {}\nwatch = false\n[log]\ndirectory = {}\nflush_interval = \"5ms\"\n",
+            "[models]\ndirectory = {}\nwatch = false\n[store]\ndirectory = {}\nflush_interval = \"5ms\"\n",
             s(self.path("models")),
             s(self.path("log"))
         );
@@ -224,7 +224,7 @@ impl Setup {
             }
         }
         text += extra;
-        text += "[routes.r]\nmodel = \"m\"\n[[routes.r.challengers]]\nmodel = \"m2\"\nmode = \"mirror\"\n";
+        text += "[routes.r]\nmodel = \"m\"\n[[routes.r.challengers]]\nmodel = \"m2\"\nmode = \"silent\"\n";
         text
     }
 
@@ -279,7 +279,7 @@ const INTENDED: [(&str, Need); 16] = [
     ("/probity.v1.Scoring/ScoreBatch", Need::Role(Role::Score)),
     ("/probity.v1.Scoring/ScoreStream", Need::Role(Role::Score)),
     ("/probity.v1.Models/ListRoutes", Need::AnyCaller),
-    ("/probity.v1.Models/DescribeModel", Need::AnyCaller),
+    ("/probity.v1.Models/ModelFacts", Need::AnyCaller),
     ("/probity.v1.Models/Reload", Need::Role(Role::Admin)),
     (
         "/probity.v1.Outcomes/RecordOutcomes",
@@ -409,9 +409,9 @@ async fn call(conn: &Connection, path: &str) -> Result<(), tonic::Status> {
             .list_routes(pb::ListRoutesRequest {})
             .await
             .map(drop),
-        "/probity.v1.Models/DescribeModel" => pb::models_client::ModelsClient::new(c)
-            .describe_model(pb::DescribeModelRequest {
-                target: Some(pb::describe_model_request::Target::Model("m".into())),
+        "/probity.v1.Models/ModelFacts" => pb::models_client::ModelsClient::new(c)
+            .model_facts(pb::ModelFactsRequest {
+                target: Some(pb::model_facts_request::Target::Model("m".into())),
             })
             .await
             .map(drop),
@@ -676,7 +676,7 @@ async fn tls_with_tokens_every_role_against_every_method() {
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
-async fn mutual_tls_certificate_identities_against_every_method() {
+async fn mutual_tls_certificate_idsubjects_against_every_method() {
     let setup = Setup::new();
     let server = setup.start(Some("required")).await;
     let addr = server.grpc_addr();

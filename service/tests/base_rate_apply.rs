@@ -85,7 +85,7 @@ async fn an_opted_in_route_follows_the_estimate_and_another_route_does_not() {
         format!(
             "[server]\nplaintext = \"loopback\"\ngrpc_listen = \"127.0.0.1:0\"\nmetrics_listen = \"127.0.0.1:0\"\n\
              [models]\ndirectory = {:?}\nwatch = false\n\
-             [log]\ndirectory = {:?}\nflush_interval = \"5ms\"\nprior_window = 10000\n\
+             [store]\ndirectory = {:?}\nflush_interval = \"5ms\"\nprior_window = 10000\n\
              [routes.on]\nmodel = \"m\"\n\
              base_rate_from_estimate = {{ min = 0.001, max = 0.5, min_predictions = 10000 }}\n\
              [routes.off]\nmodel = \"m\"\n",

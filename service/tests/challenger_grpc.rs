@@ -1,9 +1,9 @@
 //! Champion and challenger through the real gRPC service (`probity serve` on loopback, a tonic client):
-//! - mirrored: every row is answered by the champion (the response names it and carries its log-odds), the
-//!   challenger scores the same row in the background, both predictions are logged under one id with their roles,
+//! - silent: every row is answered by the champion (the response names it and carries its log-odds), the
+//!   challenger scores the same row silently, both predictions are logged under one id with their roles,
 //!   and the comparison built from the log equals the reference-fixture values (independent NumPy/SciPy
 //!   implementations of DeLong et al. 1988 and Diebold and Mariano 1995) and the per-model reports;
-//! - split: entities keep their model across calls, the challenger's share of entities is within binomial
+//! - live: subjects keep their model across calls, the challenger's share of subjects is within binomial
 //!   tolerance, and the response names the model that answered.
 //!
 //! Fixture: `tests/fixtures/compare/breast_cancer.json` from `tests/fixtures/gen_compare.py` (scikit-learn 1.9.1,
@@ -64,7 +64,7 @@ fn model(name: &str, coefficients: [f64; 2]) -> String {
 fn row(id: String, key: String, a: f64, b: f64) -> pb::Row {
     pb::Row {
         prediction_id: id,
-        entity_key: key,
+        subject_key: key,
         features: Some(pb::row::Features::Dense(pb::DenseFeatures {
             values: vec![a, b],
         })),
@@ -85,7 +85,7 @@ async fn http_get(addr: std::net::SocketAddr, path: &str) -> String {
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
-async fn mirrored_and_split_challengers_through_the_service() {
+async fn silent_and_live_challengers_through_the_service() {
     let fix = fixture();
     let v = &fix["variants"]["exact"];
     let ha = f64s(&v["champion_log_odds"]);
@@ -117,11 +117,11 @@ async fn mirrored_and_split_challengers_through_the_service() {
              [[access.callers]]\nname = \"pipeline\"\ntoken_file = {:?}\n\
              roles = [\"score\", \"outcome-write\", \"report-read\"]\n\
              [models]\ndirectory = {:?}\nwatch = false\n\
-             [log]\ndirectory = {:?}\nflush_interval = \"5ms\"\nsweep_interval = \"50ms\"\noutcome_hold = \"1h\"\n\
+             [store]\ndirectory = {:?}\nflush_interval = \"5ms\"\nsweep_interval = \"50ms\"\noutcome_hold = \"1h\"\n\
              [routes.bc]\nmodel = \"champ\"\ndecision = {{ threshold = 0.5 }}\n\
-             [[routes.bc.challengers]]\nmodel = \"chall\"\nmode = \"mirror\"\n\
-             [routes.split]\nmodel = \"champ\"\n\
-             [[routes.split.challengers]]\nmodel = \"chall\"\nmode = \"split\"\nfraction = 0.3\n",
+             [[routes.bc.challengers]]\nmodel = \"chall\"\nmode = \"silent\"\n\
+             [routes.live]\nmodel = \"champ\"\n\
+             [[routes.live.challengers]]\nmodel = \"chall\"\nmode = \"live\"\nshare = 0.3\n",
             token_file.display().to_string(),
             pipeline_token.display().to_string(),
             models.path().display().to_string(),
@@ -150,7 +150,7 @@ async fn mirrored_and_split_challengers_through_the_service() {
     // Without the interceptor, for calls that set their own `authorization`.
     let mut bare = pb::challengers_client::ChallengersClient::new(raw);
 
-    // Mirrored: every answer is the champion's.
+    // Silent: every answer is the champion's.
     for i in 0..n {
         let r = scoring
             .score(pb::ScoreRequest {
@@ -177,7 +177,7 @@ async fn mirrored_and_split_challengers_through_the_service() {
         .unwrap();
 
     // The challenger scores in the background: wait until all its predictions are in the log.
-    let log = std::sync::Arc::clone(server.log().unwrap());
+    let log = std::sync::Arc::clone(server.store().unwrap());
     let request = CompareRequest {
         filter: ReportFilter {
             route: Some("bc".into()),
@@ -345,7 +345,7 @@ async fn mirrored_and_split_challengers_through_the_service() {
     assert!(svg.contains(r#"class="champion""#) && svg.contains(r#"class="challenger""#));
     assert!(svg.contains(r#"class="bar""#));
 
-    // Split: 2,000 entities, each scored twice; the same entity meets the same model both times.
+    // Live: 2,000 subjects, each scored twice; the same subject meets the same model both times.
     let mut to_challenger = 0usize;
     for i in 0..2_000usize {
         let mut seen = Vec::new();
@@ -353,10 +353,10 @@ async fn mirrored_and_split_challengers_through_the_service() {
             let r = scoring
                 .score(pb::ScoreRequest {
                     explain: 0,
-                    route: "split".into(),
+                    route: "live".into(),
                     row: Some(row(
                         format!("s-{i}-{call}"),
-                        format!("entity-{i}"),
+                        format!("subject-{i}"),
                         0.1,
                         -0.2,
                     )),
@@ -371,17 +371,17 @@ async fn mirrored_and_split_challengers_through_the_service() {
             );
             seen.push(r.model);
         }
-        assert_eq!(seen[0], seen[1], "entity-{i} changed model between calls");
+        assert_eq!(seen[0], seen[1], "subject-{i} changed model between calls");
         to_challenger += usize::from(seen[0] == "chall");
     }
     // Within 4 binomial standard deviations of 2000 * 0.3 (common practice, no single source).
     let sd = (2_000.0f64 * 0.3 * 0.7).sqrt();
     assert!(
         (to_challenger as f64 - 600.0).abs() <= 4.0 * sd,
-        "{to_challenger} of 2000 entities went to the challenger"
+        "{to_challenger} of 2000 subjects went to the challenger"
     );
 
-    // The comparison is exported as gauges, refreshed every log.sweep_interval.
+    // The comparison is exported as gauges, refreshed every store.sweep_interval.
     let started = Instant::now();
     let gauge = |text: &str, name: &str, extra: &str| -> Option<f64> {
         text.lines().find_map(|l| {

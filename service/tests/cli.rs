@@ -1285,3 +1285,153 @@ fn explain_a_scorecard_by_points_below_the_best_bin() {
     // Shortfalls: card age 2 * (0.6 - -0.2) = 1.6, channel 0.8, amount 0.6.
     assert_eq!(&r[col(&header, "reasons")], "card_age_days;channel;amount");
 }
+
+/// The names of one `Commands:` or `Options:` block of clap's short help: a command's name, or a long flag.
+fn help_entries(help: &str, block: &str) -> Vec<String> {
+    let mut inside = false;
+    let mut out = Vec::new();
+    for line in help.lines() {
+        if !line.starts_with(' ') && line.ends_with(':') {
+            inside = line == format!("{block}:");
+            continue;
+        }
+        let mut words = line.split_whitespace();
+        let (Some(first), true) = (words.next(), inside) else {
+            continue;
+        };
+        match block {
+            "Commands" if line.starts_with("  ") && !line.starts_with("   ") => {
+                out.push(first.to_string())
+            }
+            "Options" => {
+                // `-q, --quiet` or `--model <MODEL>`; a wrapped line of help text starts with neither.
+                let long = if first.len() == 3 && first.starts_with('-') && first.ends_with(',') {
+                    words.next().unwrap_or_default()
+                } else {
+                    first
+                };
+                if long.starts_with("--") && line.trim_start().starts_with('-') {
+                    out.push(long.to_string());
+                }
+            }
+            _ => {}
+        }
+    }
+    out
+}
+
+#[test]
+fn the_vocabulary_page_names_every_command_flag_grpc_name_and_config_key() {
+    let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("..");
+    let page = std::fs::read_to_string(root.join("docs/vocabulary.md")).unwrap();
+    let mut missing = Vec::new();
+
+    // Commands and their flags, each flag in its command's own section.
+    let commands = help_entries(&stdout(&ok(&["-h"])), "Commands");
+    assert!(commands.len() >= 10, "{commands:?}");
+    for command in commands.iter().filter(|c| *c != "help") {
+        let heading = format!("### `probity {command}`");
+        let Some(start) = page.find(&heading) else {
+            missing.push(heading);
+            continue;
+        };
+        let rest = &page[start + heading.len()..];
+        let section = &rest[..rest.find("\n#").unwrap_or(rest.len())];
+        let help = stdout(&ok(&[command, "-h"]));
+        for flag in help_entries(&help, "Options") {
+            if flag.starts_with("--") && flag != "--help" && flag != "--version" {
+                let flag = flag.split(['=', ' ']).next().unwrap().to_string();
+                if !section.contains(&format!("`{flag}`")) {
+                    missing.push(format!("probity {command} {flag}"));
+                }
+            }
+        }
+    }
+
+    // Calls, messages, enums, their fields and values, from the proto files.
+    let declaration = |line: &str| -> Option<String> {
+        let line = line.trim();
+        let words: Vec<&str> = line.split_whitespace().collect();
+        match words.as_slice() {
+            ["service" | "message" | "enum" | "rpc" | "oneof", name, ..] => {
+                Some(name.split('(').next().unwrap().to_string())
+            }
+            _ if !line.starts_with("//") => {
+                // `string route = 1;`, `map<string, string> tags = 3;`, `FEATURE_TYPE_NUMERIC = 1;`
+                let at = words.iter().position(|w| *w == "=")?;
+                at.checked_sub(1).map(|i| words[i].to_string())
+            }
+            _ => None,
+        }
+    };
+    for file in std::fs::read_dir(root.join("proto/probity/v1")).unwrap() {
+        let text = std::fs::read_to_string(file.unwrap().path()).unwrap();
+        for name in text.lines().filter_map(declaration) {
+            if name != "syntax" && !page.contains(&format!("`{name}`")) {
+                missing.push(format!("proto {name}"));
+            }
+        }
+    }
+
+    // Every key the example configuration sets or shows (commented out), routes as `<route>`.
+    let example = std::fs::read_to_string(root.join("deploy/probity.toml")).unwrap();
+    let mut table = String::new();
+    for line in example.lines() {
+        let line = line.trim_start_matches('#').trim();
+        let line = line.split(" #").next().unwrap().trim();
+        let header = line.starts_with('[')
+            && line.ends_with(']')
+            && line
+                .chars()
+                .all(|c| c.is_ascii_alphanumeric() || "[]._-".contains(c));
+        if header {
+            let name = line.trim_matches(|c| c == '[' || c == ']');
+            let parts: Vec<&str> = name.split('.').collect();
+            table = match parts.as_slice() {
+                ["routes", _, rest @ ..] => {
+                    let mut t = "routes.<route>".to_string();
+                    for p in rest {
+                        t += &format!(".{p}");
+                    }
+                    t
+                }
+                _ => name.to_string(),
+            };
+            if line.starts_with("[[") {
+                table += "[]";
+            }
+            continue;
+        }
+        let Some((key, value)) = line.split_once(" = ") else {
+            continue;
+        };
+        if !key
+            .chars()
+            .all(|c| c.is_ascii_lowercase() || c == '_' || c == '-')
+        {
+            continue;
+        }
+        let mut keys = Vec::new();
+        if let Some(inner) = value.trim().strip_prefix('{') {
+            for part in inner.trim_end_matches('}').split(", ") {
+                if let Some((k, _)) = part.split_once(" = ") {
+                    keys.push(format!("{table}.{key}.{}", k.trim()));
+                }
+            }
+        } else if table == "store.maturity" {
+            keys.push("store.maturity.<route>".to_string());
+        } else {
+            keys.push(format!("{table}.{key}"));
+        }
+        for k in keys {
+            if !page.contains(&format!("`{k}`")) {
+                missing.push(format!("config {k}"));
+            }
+        }
+    }
+    assert!(
+        missing.is_empty(),
+        "names missing from docs/vocabulary.md (regenerate it with tools/vocabulary.py):\n  {}",
+        missing.join("\n  ")
+    );
+}

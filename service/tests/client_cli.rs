@@ -1,5 +1,5 @@
 //! `probity send-outcomes` and `probity score --server` end to end: the real binary against a real server started
-//! in the test (prediction log on, the `tests/fixtures/evaluate` champion, a LogisticRegression exported from
+//! in the test (prediction store on, the `tests/fixtures/evaluate` champion, a LogisticRegression exported from
 //! scikit-learn on `load_breast_cancer`).
 
 #![allow(clippy::unwrap_used, clippy::expect_used)]
@@ -36,7 +36,7 @@ async fn serve() -> Served {
         format!(
             "[server]\nplaintext = \"loopback\"\ngrpc_listen = \"127.0.0.1:0\"\nmetrics_listen = \"127.0.0.1:0\"\n\
              [models]\ndirectory = {:?}\nwatch = false\n\
-             [log]\ndirectory = {:?}\nflush_interval = \"5ms\"\nsweep_interval = \"20ms\"\noutcome_hold = \"1h\"\n\
+             [store]\ndirectory = {:?}\nflush_interval = \"5ms\"\nsweep_interval = \"20ms\"\noutcome_hold = \"1h\"\n\
              [routes.bc]\nmodel = \"breast_cancer_champion\"\n",
             models.path().display().to_string(),
             data.path().display().to_string()
@@ -104,7 +104,7 @@ async fn send_outcomes_reports_each_status_and_names_bad_rows() {
         })
         .await
         .unwrap();
-    let log = std::sync::Arc::clone(s.server.log().unwrap());
+    let log = std::sync::Arc::clone(s.server.store().unwrap());
     tokio::task::spawn_blocking(move || log.flush().unwrap())
         .await
         .unwrap();

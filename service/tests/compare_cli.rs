@@ -74,7 +74,7 @@ fn write_log(dir: &std::path::Path, labelled_from: usize) -> Value {
         log_odds: h,
         adjusted_log_odds: h,
         probability: 1.0 / (1.0 + (-h).exp()),
-        entity_key: String::new(),
+        subject_key: String::new(),
         tags: BTreeMap::new(),
         served: Default::default(),
     };
@@ -113,7 +113,7 @@ fn compare_json_table_and_svg() {
     let v = write_log(dir.path(), 0);
     let log = dir.path().to_str().unwrap();
     let (stdout, out) = compare(&[
-        "--log",
+        "--store",
         log,
         "--route",
         "fraud",
@@ -199,7 +199,7 @@ fn compare_json_table_and_svg() {
 
     // The Newey-West variant: statsmodels OLS HAC with 4 lags, use_correction=False.
     let (stdout, _) = compare(&[
-        "--log",
+        "--store",
         log,
         "--route",
         "fraud",
@@ -218,7 +218,7 @@ fn compare_json_table_and_svg() {
 
     let svg_path = dir.path().join("cmp.svg");
     let (table, out) = compare(&[
-        "--log",
+        "--store",
         log,
         "--route",
         "fraud",
@@ -250,7 +250,7 @@ fn few_outcomes_say_so_and_unknown_models_are_named() {
     // Outcomes only for the last 40 ids: fewer than 30 of one class at least.
     write_log(dir.path(), 529);
     let log = dir.path().to_str().unwrap();
-    let (table, out) = compare(&["--log", log, "--route", "fraud"]);
+    let (table, out) = compare(&["--store", log, "--route", "fraud"]);
     assert!(
         out.status.success(),
         "{}",
@@ -260,13 +260,13 @@ fn few_outcomes_say_so_and_unknown_models_are_named() {
         table.contains("verdict: not enough outcomes yet"),
         "{table}"
     );
-    let (_, out) = compare(&["--log", log, "--route", "fraud", "--challenger", "nope"]);
+    let (_, out) = compare(&["--store", log, "--route", "fraud", "--challenger", "nope"]);
     assert!(!out.status.success());
     let err = String::from_utf8_lossy(&out.stderr);
     assert!(
         err.contains("no challenger prediction") || err.contains("nope"),
         "{err}"
     );
-    let (_, out) = compare(&["--log", log, "--route", "fraud", "--threshold", "2"]);
+    let (_, out) = compare(&["--store", log, "--route", "fraud", "--threshold", "2"]);
     assert!(String::from_utf8_lossy(&out.stderr).contains("--threshold"));
 }

@@ -85,7 +85,7 @@ fn columns(text: &str, label: &str) -> Vec<f64> {
         .collect()
 }
 
-/// Checks the outcome loop of a demo run of `rows` rows with the embedded models (champion trees, mirrored
+/// Checks the outcome loop of a demo run of `rows` rows with the embedded models (champion trees, silent
 /// scorecard challenger on route `card-fraud`).
 fn closes_the_loop(text: &str, scored: &Path, log_dir: &Path, svg_dir: &Path, rows: u64) {
     // Outcomes: every one sent got a result, none refused.
@@ -111,7 +111,7 @@ fn closes_the_loop(text: &str, scored: &Path, log_dir: &Path, svg_dir: &Path, ro
     assert_eq!(numbers[3] + numbers[4], sent, "{results}");
     assert_eq!(numbers[5], 0, "{results}");
 
-    // Champion and challenger: every prediction logged, each matched or immature.
+    // Champion and challenger: every prediction storeged, each matched or immature.
     let predictions = columns(text, "predictions");
     let matched = columns(text, "with outcome");
     let immature = columns(text, "immature (no outcome yet)");
@@ -136,7 +136,7 @@ fn closes_the_loop(text: &str, scored: &Path, log_dir: &Path, svg_dir: &Path, ro
         .collect();
     assert_eq!(labelled.len() as u64, transactions);
 
-    // The metrics module on the scored rows with an outcome, per model (trees answered, the scorecard mirrored
+    // The metrics module on the scored rows with an outcome, per model (trees answered, the scorecard silent
     // with the same target base rate as its own route, so the same bits).
     let (h, scored_rows) = read_csv(scored);
     let mut figures = Vec::new();
@@ -191,7 +191,7 @@ fn closes_the_loop(text: &str, scored: &Path, log_dir: &Path, svg_dir: &Path, ro
     // `probity report` on the same log gives the same figures, KS and ECE included.
     let json: serde_json::Value = serde_json::from_str(&ok(&[
         "report",
-        "--log",
+        "--store",
         s(log_dir),
         "--route",
         "card-fraud",
@@ -216,7 +216,7 @@ fn closes_the_loop(text: &str, scored: &Path, log_dir: &Path, svg_dir: &Path, ro
     // The comparison: the printed verdict is `probity compare`'s, on every paired id.
     let compare: serde_json::Value = serde_json::from_str(&ok(&[
         "compare",
-        "--log",
+        "--store",
         s(log_dir),
         "--route",
         "card-fraud",
@@ -409,7 +409,7 @@ fn live_demo_serves_given_models_on_routes_named_after_them() {
         "a stopped server listed:\n{next}"
     );
     assert!(
-        !next.contains("config ") && !next.contains("probity report --log"),
+        !next.contains("config ") && !next.contains("probity report --store"),
         "{next}"
     );
     assert!(next.contains("pictures  3 SVG files"), "{next}");

@@ -3,7 +3,7 @@
 //! 1. Every dashboard query parses (Prometheus's own `promtool check rules`, each query as a recording rule), and
 //!    every metric name used by `deploy/prometheus/*.yml` or the dashboard is on a running server's `/metrics`, so
 //!    the rules cannot rot when a metric is renamed. The server is started with TLS (the certificate gauge), the
-//!    prediction log, a mirrored challenger (the comparison gauges), a maturity period (matured outcomes), a model
+//!    prediction store, a silent challenger (the comparison gauges), a maturity period (matured outcomes), a model
 //!    reference distribution (PSI), a broken model file (load failures) and repeated prediction ids (drops).
 //! 2. Debian's `prometheus` binary (started here on a free port with a data directory of its own) scrapes the same
 //!    kind of server with `rules.yml` and `alerts.yml` loaded, and the recorded fleet figures equal the server's own
@@ -152,7 +152,7 @@ fn toml_path(p: &Path) -> String {
     toml::Value::from(p.display().to_string()).to_string()
 }
 
-/// Starts `probity serve` with TLS, the log, a mirrored challenger and a maturity period.
+/// Starts `probity serve` with TLS, the log, a silent challenger and a maturity period.
 async fn start() -> Server {
     let dir = tempfile::tempdir().unwrap();
     let models = dir.path().join("models");
@@ -192,10 +192,10 @@ async fn start() -> Server {
              [[access.callers]]\nname = \"deploy-test\"\ntoken_file = {}\n\
              roles = [\"score\", \"outcome-write\", \"report-read\"]\n\
              [models]\ndirectory = {}\nwatch = false\n\
-             [log]\ndirectory = {}\nflush_interval = \"10ms\"\nsweep_interval = \"200ms\"\n\
-             [log.maturity]\naged = \"1s\"\n\
+             [store]\ndirectory = {}\nflush_interval = \"10ms\"\nsweep_interval = \"200ms\"\n\
+             [store.maturity]\naged = \"1s\"\n\
              [routes.card-auth]\nmodel = \"fleet-a\"\ntarget_base_rate = 0.2\n\
-             [[routes.card-auth.challengers]]\nmodel = \"fleet-b\"\nmode = \"mirror\"\n\
+             [[routes.card-auth.challengers]]\nmodel = \"fleet-b\"\nmode = \"silent\"\n\
              [routes.aged]\nmodel = \"fleet-a\"\ntarget_base_rate = 0.2\n",
             toml_path(&dir.path().join("server.crt")),
             toml_path(&dir.path().join("server.key")),
@@ -298,7 +298,7 @@ fn field(report: &Value, route: &str, model: &str, key: &str) -> Value {
 }
 
 /// Scores, repeats ids (drops), records outcomes and corrections, and waits until the log has settled all of it:
-/// 250 pairs on card-auth (champion and mirrored challenger), 20 of them corrected, and the 40 `aged` predictions
+/// 250 pairs on card-auth (champion and silent challenger), 20 of them corrected, and the 40 `aged` predictions
 /// settled as negatives at maturity; and until the comparison gauges are out.
 async fn drive(server: &Server) -> Value {
     let conn = server.connection().await;
@@ -450,6 +450,10 @@ async fn every_query_parses_and_every_metric_name_is_on_a_running_server() {
     drive(&server).await;
     let (status, text) = http_get(&server.metrics, "/metrics").unwrap();
     assert_eq!(status, 200);
+    // `tools/vocabulary.py --metrics FILE` writes the page's metrics section from this scrape.
+    if let Some(file) = std::env::var_os("PROBITY_WRITE_SCRAPE") {
+        std::fs::write(file, &text).unwrap();
+    }
     let exposed = exposed_names(&text);
     let missing: Vec<String> = used
         .iter()
@@ -479,6 +483,31 @@ async fn every_query_parses_and_every_metric_name_is_on_a_running_server() {
     assert!(
         undescribed.is_empty(),
         "metric families without HELP text: {undescribed:?}"
+    );
+    // Every family and every label name the server exposes is on the vocabulary page.
+    let vocabulary = std::fs::read_to_string(
+        Path::new(env!("CARGO_MANIFEST_DIR")).join("../docs/vocabulary.md"),
+    )
+    .unwrap();
+    let labels: BTreeSet<&str> = text
+        .lines()
+        .filter(|l| !l.starts_with('#'))
+        .filter_map(|l| Some(l.split_once('{')?.1.rsplit_once('}')?.0))
+        .flat_map(|set| {
+            set.split("\",")
+                .filter_map(|kv| kv.split_once('='))
+                .map(|(k, _)| k.trim_start_matches(','))
+        })
+        .collect();
+    let unlisted: Vec<String> = families
+        .iter()
+        .map(|f| format!("`{f}`"))
+        .chain(labels.iter().map(|l| format!("`{l}`")))
+        .filter(|name| !vocabulary.contains(name.as_str()))
+        .collect();
+    assert!(
+        unlisted.is_empty(),
+        "metric families and labels missing from docs/vocabulary.md: {unlisted:?}"
     );
     println!("{} metric names used in deploy/, all exposed", used.len());
 }

@@ -195,7 +195,7 @@ impl Setup {
             format!(
                 "[server]\nplaintext = \"loopback\"\n\
                  [models]\ndirectory = {:?}\nwatch = false\n\
-                 [log]\n{section}\
+                 [store]\n{section}\
                  [routes.credit]\nmodel = \"linear\"\nrecord = \"{record}\"\n",
                 models.path().display().to_string(),
             ),

@@ -75,7 +75,7 @@ fn write_log(dir: &std::path::Path) -> (Vec<f64>, Vec<bool>) {
         log_odds: h[i],
         adjusted_log_odds: h[i],
         probability: sigmoid(h[i]),
-        entity_key: String::new(),
+        subject_key: String::new(),
         tags: BTreeMap::new(),
         served: Default::default(),
     };
@@ -117,7 +117,7 @@ fn report_figures_equal_the_metrics_module_on_the_matched_pairs() {
     let dir = tempfile::tempdir().unwrap();
     let (h, y) = write_log(dir.path());
     let log = dir.path().to_str().unwrap();
-    let doc = report(&["--log", log, "--json", "--route", "a"]);
+    let doc = report(&["--store", log, "--json", "--route", "a"]);
     let s = &doc["series"][0];
     assert_eq!(doc["series"].as_array().unwrap().len(), 1, "route filter");
 
@@ -180,7 +180,7 @@ fn report_figures_equal_the_metrics_module_on_the_matched_pairs() {
         r.in_the_large.estimate
     );
     let text = Command::new(env!("CARGO_BIN_EXE_probity"))
-        .args(["report", "--log", log, "--route", "a"])
+        .args(["report", "--store", log, "--route", "a"])
         .output()
         .unwrap();
     let text = String::from_utf8_lossy(&text.stdout);
@@ -191,7 +191,7 @@ fn report_figures_equal_the_metrics_module_on_the_matched_pairs() {
 
     // A time range: the first 100 rows only.
     let early = report(&[
-        "--log",
+        "--store",
         log,
         "--json",
         "--route",
@@ -203,7 +203,7 @@ fn report_figures_equal_the_metrics_module_on_the_matched_pairs() {
     ]);
     assert_eq!(early["series"][0]["predictions"], 100);
     // Route b: no outcomes at all; the figures are absent and the notes say why.
-    let b = report(&["--log", log, "--json", "--route", "b"]);
+    let b = report(&["--store", log, "--json", "--route", "b"]);
     assert_eq!(b["series"][0]["immature"], 10);
     assert!(b["series"][0]["log_loss"].is_null());
     assert!(!b["series"][0]["notes"].as_array().unwrap().is_empty());
@@ -215,7 +215,7 @@ fn svg_pictures_have_axes_diagonal_and_one_marker_per_bin_and_render() {
     write_log(dir.path());
     let svg_dir = dir.path().join("svg");
     let doc = report(&[
-        "--log",
+        "--store",
         dir.path().to_str().unwrap(),
         "--json",
         "--route",
@@ -293,9 +293,9 @@ fn time_ranges_read_rfc3339_dates_and_spans_and_a_closed_pipe_ends_quietly() {
     };
     // T0 + 100 ms as an RFC 3339 time, and the same instant in milliseconds: the same range.
     let from = time_text(T0 + 100);
-    let by_text = report(&["--log", log, "--json", "--route", "a", "--from", &from]);
+    let by_text = report(&["--store", log, "--json", "--route", "a", "--from", &from]);
     let by_ms = report(&[
-        "--log",
+        "--store",
         log,
         "--json",
         "--route",
@@ -308,13 +308,13 @@ fn time_ranges_read_rfc3339_dates_and_spans_and_a_closed_pipe_ends_quietly() {
     // The fixture's rows are dated after now (T0 is in 2027): a span back from now includes them all; --since and
     // --from together are refused.
     assert_eq!(
-        count(&report(&["--log", log, "--json", "--since", "1d"])),
+        count(&report(&["--store", log, "--json", "--since", "1d"])),
         h.len() as u64 + 10
     );
     let both = Command::new(env!("CARGO_BIN_EXE_probity"))
         .args([
             "report",
-            "--log",
+            "--store",
             log,
             "--since",
             "1d",
@@ -325,7 +325,7 @@ fn time_ranges_read_rfc3339_dates_and_spans_and_a_closed_pipe_ends_quietly() {
         .unwrap();
     assert!(!both.status.success());
     let bad = Command::new(env!("CARGO_BIN_EXE_probity"))
-        .args(["report", "--log", log, "--from", "yesterday"])
+        .args(["report", "--store", log, "--from", "yesterday"])
         .output()
         .unwrap();
     assert!(!bad.status.success());
@@ -333,7 +333,7 @@ fn time_ranges_read_rfc3339_dates_and_spans_and_a_closed_pipe_ends_quietly() {
 
     // `probity report --json | head -c 10`: the reader leaves, the command ends quietly (no panic, no backtrace).
     let mut child = Command::new(env!("CARGO_BIN_EXE_probity"))
-        .args(["report", "--log", log, "--json"])
+        .args(["report", "--store", log, "--json"])
         .stdout(std::process::Stdio::piped())
         .stderr(std::process::Stdio::piped())
         .spawn()
@@ -420,7 +420,7 @@ fn eventual_positive_rate_of_a_section_with_outcomes_still_arriving() {
             log_odds: 0.0,
             adjusted_log_odds: 0.0,
             probability: 0.5,
-            entity_key: String::new(),
+            subject_key: String::new(),
             tags: BTreeMap::new(),
             served: Default::default(),
         });
@@ -439,7 +439,7 @@ fn eventual_positive_rate_of_a_section_with_outcomes_still_arriving() {
         store.record_outcomes(&[outcome], *at).unwrap();
     }
     drop(store);
-    let doc = report(&["--log", dir.path().to_str().unwrap(), "--json"]);
+    let doc = report(&["--store", dir.path().to_str().unwrap(), "--json"]);
     let e = &doc["series"][0]["eventual_positive_rate"];
     // The same follow-up, built here from the simulation: now = the latest event.
     let latest = records
@@ -492,7 +492,7 @@ fn calibration_bins_and_the_picture_axis_are_chosen() {
     let log = dir.path().to_str().unwrap();
     let svg_dir = dir.path().join("svg");
     let doc = report(&[
-        "--log",
+        "--store",
         log,
         "--json",
         "--route",
@@ -520,8 +520,38 @@ fn calibration_bins_and_the_picture_axis_are_chosen() {
     let svg = std::fs::read_to_string(svg_dir.join("a-m-7-champion-reliability.svg")).unwrap();
     assert!(svg.contains("(log-odds scale)"), "{svg}");
     let bad = Command::new(env!("CARGO_BIN_EXE_probity"))
-        .args(["report", "--log", log, "--bins", "1"])
+        .args(["report", "--store", log, "--bins", "1"])
         .output()
         .unwrap();
     assert!(!bad.status.success());
+}
+
+#[test]
+fn the_flag_of_an_earlier_release_is_refused_with_its_new_name() {
+    // `--log DIR` named the prediction store before it had a name of its own; `--log=DIR` too.
+    for args in [
+        &["report", "--log", "data"][..],
+        &["compare", "--log=data", "--route", "fraud"][..],
+    ] {
+        let out = Command::new(env!("CARGO_BIN_EXE_probity"))
+            .args(args)
+            .output()
+            .unwrap();
+        assert!(!out.status.success());
+        let stderr = String::from_utf8_lossy(&out.stderr);
+        assert!(
+            stderr.contains("--log was renamed --store (the prediction store)"),
+            "{stderr}"
+        );
+    }
+    // The process log's flags are not caught by it.
+    let out = Command::new(env!("CARGO_BIN_EXE_probity"))
+        .args(["serve", "--log-level", "info", "--help"])
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
 }

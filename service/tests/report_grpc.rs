@@ -140,8 +140,8 @@ async fn outcomes_through_the_service_give_the_reference_report_and_matching_sum
             "[server]\nplaintext = \"loopback\"\ngrpc_listen = \"127.0.0.1:0\"\nmetrics_listen = \"127.0.0.1:0\"\n\
              [models]\ndirectory = {:?}\nwatch = false\n\
              [limits]\nmax_batch_rows = 1000\n\
-             [log]\ndirectory = {:?}\nflush_interval = \"5ms\"\nsweep_interval = \"20ms\"\noutcome_hold = \"1h\"\n\
-             [log.maturity]\nmature = \"1ms\"\n\
+             [store]\ndirectory = {:?}\nflush_interval = \"5ms\"\nsweep_interval = \"20ms\"\noutcome_hold = \"1h\"\n\
+             [store.maturity]\nmature = \"1ms\"\n\
              [routes.bc]\nmodel = \"identity\"\n[routes.drift]\nmodel = \"identity\"\n[routes.mature]\nmodel = \"identity\"\n",
             models.path().display().to_string(),
             data.path().display().to_string()
@@ -216,7 +216,7 @@ async fn outcomes_through_the_service_give_the_reference_report_and_matching_sum
         })
         .await
         .unwrap();
-    let log = std::sync::Arc::clone(server.log().unwrap());
+    let log = std::sync::Arc::clone(server.store().unwrap());
     tokio::task::spawn_blocking(move || log.flush().unwrap())
         .await
         .unwrap();

@@ -107,9 +107,9 @@ fn row() -> impl Strategy<Value = pb::Row> {
         prop::collection::hash_map(text(64), text(256), 0..4),
         features,
     )
-        .prop_map(|(prediction_id, entity_key, tags, features)| pb::Row {
+        .prop_map(|(prediction_id, subject_key, tags, features)| pb::Row {
             prediction_id,
-            entity_key,
+            subject_key,
             tags: tags.into_iter().collect::<HashMap<_, _>>(),
             features,
         })

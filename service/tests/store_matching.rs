@@ -1,4 +1,4 @@
-//! The prediction log's matching rules on the embedded store, driven through `PredictionLog` with a hand-moved
+//! The prediction store's matching rules on the embedded store, driven through `PredictionStore` with a hand-moved
 //! clock: idempotent outcomes, corrections, outcomes before their prediction (held, then unmatched), label maturity
 //! at the exact instant, retention, and a reopen (what a restart sees) that keeps matching exactly-once.
 
@@ -13,8 +13,8 @@ use probity::report;
 use probity::store::sqlite::Durability;
 use probity::store::writer::{ModelFacts, Queued};
 use probity::store::{
-    Clock, LogConfig, ModelVersionInfo, OutcomeInput, OutcomeStatus, PredictionLog,
-    PredictionRecord, ReportFilter, SqliteStore, Store,
+    Clock, ModelVersionInfo, OutcomeInput, OutcomeStatus, PredictionRecord, PredictionStore,
+    ReportFilter, SqliteStore, Store, StoreConfig,
 };
 
 struct Facts;
@@ -45,7 +45,7 @@ fn record(id: &str, route: &str, time_ms: i64, h: f64) -> PredictionRecord {
         log_odds: h,
         adjusted_log_odds: h,
         probability: 1.0 / (1.0 + (-h).exp()),
-        entity_key: String::new(),
+        subject_key: String::new(),
         tags: BTreeMap::new(),
         served: Default::default(),
     }
@@ -67,8 +67,8 @@ fn outcome(id: &str, label: bool) -> OutcomeInput {
     }
 }
 
-fn config(dir: &std::path::Path) -> LogConfig {
-    LogConfig {
+fn config(dir: &std::path::Path) -> StoreConfig {
+    StoreConfig {
         directory: Some(dir.to_path_buf()),
         flush_interval: Duration::from_millis(5),
         outcome_hold: Duration::from_millis(1000),
@@ -78,20 +78,20 @@ fn config(dir: &std::path::Path) -> LogConfig {
             Duration::from_millis(u64::try_from(10 * DAY).unwrap()),
         )]
         .into(),
-        ..LogConfig::default()
+        ..StoreConfig::default()
     }
 }
 
-fn start(dir: &std::path::Path, clock: &Arc<AtomicI64>) -> Arc<PredictionLog> {
+fn start(dir: &std::path::Path, clock: &Arc<AtomicI64>) -> Arc<PredictionStore> {
     let store = SqliteStore::open(dir, Durability::Full).unwrap();
-    PredictionLog::start(
+    PredictionStore::start(
         Box::new(store),
         config(dir),
         Clock::manual(Arc::clone(clock)),
     )
 }
 
-fn statuses(log: &PredictionLog, outcomes: &[OutcomeInput]) -> Vec<OutcomeStatus> {
+fn statuses(log: &PredictionStore, outcomes: &[OutcomeInput]) -> Vec<OutcomeStatus> {
     log.record_outcomes(outcomes)
         .unwrap()
         .into_iter()
@@ -99,7 +99,7 @@ fn statuses(log: &PredictionLog, outcomes: &[OutcomeInput]) -> Vec<OutcomeStatus
         .collect()
 }
 
-fn series(log: &PredictionLog, route: &str) -> report::SeriesReport {
+fn series(log: &PredictionStore, route: &str) -> report::SeriesReport {
     let filter = ReportFilter {
         route: Some(route.into()),
         ..ReportFilter::default()
@@ -241,13 +241,13 @@ fn a_full_queue_drops_and_counts_instead_of_blocking() {
     let dir = tempfile::tempdir().unwrap();
     let clock = Arc::new(AtomicI64::new(T0));
     let store = SqliteStore::open(dir.path(), Durability::Normal).unwrap();
-    let cfg = LogConfig {
+    let cfg = StoreConfig {
         queue_size: 4,
         batch_size: 2,
         ..config(dir.path())
     };
     // Hold the store lock so the writer cannot drain: the queue fills, and `log` must still return at once.
-    let log = PredictionLog::start(Box::new(store), cfg, Clock::manual(clock));
+    let log = PredictionStore::start(Box::new(store), cfg, Clock::manual(clock));
     let accepted = log.with_store(|_| {
         for i in 0..100 {
             log.log(queued(record(&format!("q{i}"), "fraud", T0, 0.0)));
@@ -258,7 +258,7 @@ fn a_full_queue_drops_and_counts_instead_of_blocking() {
     log.flush().unwrap();
     let n = series(&log, "fraud").predictions;
     // The writer holds at most one batch (2) while it waits for the lock, and the queue 4 more; the rest were
-    // dropped (and counted in probity_log_predictions_dropped_total{reason="queue_full"}).
+    // dropped (and counted in probity_store_predictions_dropped_total{reason="queue_full"}).
     assert!((1..=2 + 4).contains(&n), "{n} of 100 written");
     log.close();
 }
@@ -288,11 +288,11 @@ fn measure_log_throughput_and_size() {
     let dir = tempfile::tempdir().unwrap();
     let clock = Arc::new(AtomicI64::new(T0));
     let store = SqliteStore::open(dir.path(), Durability::Normal).unwrap();
-    let cfg = LogConfig {
+    let cfg = StoreConfig {
         queue_size: 1 << 20,
         ..config(dir.path())
     };
-    let log = PredictionLog::start(Box::new(store), cfg, Clock::manual(clock));
+    let log = PredictionStore::start(Box::new(store), cfg, Clock::manual(clock));
     let n = 500_000;
     let started = std::time::Instant::now();
     for i in 0..n {
@@ -302,7 +302,7 @@ fn measure_log_throughput_and_size() {
             T0 + i as i64,
             0.1,
         );
-        r.entity_key = format!("card-{}", i % 10_000);
+        r.subject_key = format!("card-{}", i % 10_000);
         log.log(queued(r));
     }
     log.flush().unwrap();
@@ -352,7 +352,7 @@ fn a_version_1_log_is_migrated_and_keeps_its_rows() {
     let version: i64 = conn
         .pragma_query_value(None, "user_version", |r| r.get(0))
         .unwrap();
-    assert_eq!(version, 2);
+    assert_eq!(version, 3);
     let decision: String = conn
         .query_row(
             "SELECT decision FROM predictions WHERE prediction_id = 'new'",
@@ -361,4 +361,13 @@ fn a_version_1_log_is_migrated_and_keeps_its_rows() {
         )
         .unwrap();
     assert_eq!(decision, "threshold 0.4");
+    // Version 3 renamed the key column; the old row keeps its (empty) key under the new name.
+    let key: String = conn
+        .query_row(
+            "SELECT subject_key FROM predictions WHERE prediction_id = 'old'",
+            [],
+            |r| r.get(0),
+        )
+        .unwrap();
+    assert_eq!(key, "");
 }

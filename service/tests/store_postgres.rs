@@ -1,4 +1,4 @@
-//! The PostgreSQL prediction log against a real PostgreSQL at 127.0.0.1:5432 (override with
+//! The PostgreSQL prediction store against a real PostgreSQL at 127.0.0.1:5432 (override with
 //! `PROBITY_TEST_POSTGRES`, a URL to an administrative database). Each test creates a database of its own and
 //! drops it afterwards. PostgreSQL not answering fails the tests with a message saying so, unless
 //! `PROBITY_SKIP_POSTGRES=1` is set.
@@ -112,7 +112,7 @@ fn record(id: &str, route: &str, role: &str, time_ms: i64, h: f64) -> Prediction
         log_odds: h,
         adjusted_log_odds: h,
         probability: 1.0 / (1.0 + (-h).exp()),
-        entity_key: String::new(),
+        subject_key: String::new(),
         tags: BTreeMap::new(),
         served: probity::store::Served {
             prior: Some(if route == "fraud" { 0.02 } else { 0.1 }),
@@ -327,7 +327,7 @@ fn a_database_at_a_newer_schema_is_refused() {
         .unwrap();
     match PgStore::open(ConnectionUrl::new(&db.url()).unwrap(), None, T0) {
         Err(StoreError::Schema { found, supported }) => {
-            assert_eq!((found, supported), (99, 2));
+            assert_eq!((found, supported), (99, 3));
         }
         Err(other) => panic!("wrong error: {other}"),
         Ok(_) => panic!("a newer schema was accepted"),
@@ -437,14 +437,14 @@ fn one_connection_leads_the_sweeps_and_another_takes_over() {
 
 /// A measurement, not a check (`cargo test --release -p probity --test store_postgres -- --ignored --nocapture
 /// measure`): the same run on both backends. Predictions logged per second through the queue and writer thread
-/// (batches of `log.batch_size` = 1,000), outcomes matched per second (calls of 1,000 outcomes, each matching one
+/// (batches of `store.batch_size` = 1,000), outcomes matched per second (calls of 1,000 outcomes, each matching one
 /// prediction), and bytes stored per prediction (SQLite: the files; PostgreSQL: predictions partitions, indexes and
 /// outcomes).
 #[test]
 #[ignore = "a measurement, not a check: run with --release -- --ignored --nocapture measure"]
 fn measure_both_backends() {
     use probity::store::writer::{ModelFacts, Queued};
-    use probity::store::{Clock, LogConfig, ModelVersionInfo, PredictionLog};
+    use probity::store::{Clock, ModelVersionInfo, PredictionStore, StoreConfig};
     use std::sync::atomic::AtomicI64;
 
     struct Facts;
@@ -465,12 +465,12 @@ fn measure_both_backends() {
     let run = |name: &str, store: Box<dyn Store>, size: &dyn Fn() -> u64| {
         let dir = tempfile::tempdir().unwrap();
         let clock = Arc::new(AtomicI64::new(T0));
-        let cfg = LogConfig {
+        let cfg = StoreConfig {
             directory: Some(dir.path().to_path_buf()),
             queue_size: 1 << 21,
-            ..LogConfig::default()
+            ..StoreConfig::default()
         };
-        let log = PredictionLog::start(store, cfg, Clock::manual(clock));
+        let log = PredictionStore::start(store, cfg, Clock::manual(clock));
         let started = std::time::Instant::now();
         for i in 0..n {
             let mut r = record(
@@ -480,7 +480,7 @@ fn measure_both_backends() {
                 T0 + (i as i64) * 10,
                 ((i % 1000) as f64 - 500.0) / 100.0,
             );
-            r.entity_key = format!("card-{}", i % 10_000);
+            r.subject_key = format!("card-{}", i % 10_000);
             log.log(Queued {
                 record: r,
                 prior: 0.02,
@@ -549,7 +549,7 @@ fn measure_both_backends() {
     });
 }
 
-/// Three `probity serve` replicas on one PostgreSQL database (`log.backend = "postgres"`): scoring spread over all
+/// Three `probity serve` replicas on one PostgreSQL database (`store.backend = "postgres"`): scoring spread over all
 /// three, each outcome sent to a different replica than the one that scored it, one replica killed with SIGKILL
 /// and started again while scoring and outcomes keep coming, then every replica's database session cut at once
 /// (`pg_terminate_backend`, what a restart of PostgreSQL does to them). Afterwards every acknowledged outcome is
@@ -692,7 +692,7 @@ mod fleet {
             format!(
                 "[server]\nplaintext = \"loopback\"\n\
              [models]\ndirectory = {:?}\nwatch = false\n\
-             [log]\nbackend = \"postgres\"\npostgres_url_file = {:?}\nflush_interval = \"10ms\"\n\
+             [store]\nbackend = \"postgres\"\npostgres_url_file = {:?}\nflush_interval = \"10ms\"\n\
              outcome_hold = \"1h\"\nsweep_interval = \"1s\"\n\
              [routes.r]\nmodel = \"linear\"\n",
                 models.path().display().to_string(),
@@ -924,7 +924,7 @@ mod fleet {
         let records: Vec<PredictionRecord> = pg
         .query(
             "SELECT prediction_id, route, model, version, role, time_ms, margin, log_odds, adjusted_log_odds,
-                    probability, entity_key, tags, served_prior, decision FROM predictions ORDER BY seq",
+                    probability, subject_key, tags, served_prior, decision FROM predictions ORDER BY seq",
             &[],
         )
         .unwrap()
@@ -940,7 +940,7 @@ mod fleet {
             log_odds: r.get(7),
             adjusted_log_odds: r.get(8),
             probability: r.get(9),
-            entity_key: r.get(10),
+            subject_key: r.get(10),
             tags: serde_json::from_str(r.get(11)).unwrap(),
             served: probity::store::Served {
                 prior: r.get(12),
@@ -1093,7 +1093,7 @@ print(log_loss(y, p), brier_score_loss(y, p), roc_auc_score(y, h))\n";
                 &config,
                 format!(
                 "[server]\nplaintext = \"loopback\"\n[models]\ndirectory = {:?}\nwatch = false\n\
-                 [log]\nbackend = \"postgres\"\n{file_line}[routes.r]\nmodel = \"linear\"\n",
+                 [store]\nbackend = \"postgres\"\n{file_line}[routes.r]\nmodel = \"linear\"\n",
                 models.path().display().to_string()
             ),
             )
@@ -1106,9 +1106,9 @@ print(log_loss(y, p), brier_score_loss(y, p), roc_auc_score(y, h))\n";
                 .arg(config)
                 .args(["--grpc-listen", &format!("127.0.0.1:{}", free_port())])
                 .args(["--metrics-listen", &format!("127.0.0.1:{}", free_port())])
-                .env_remove("PROBITY_LOG_POSTGRES_URL");
+                .env_remove("PROBITY_STORE_POSTGRES_URL");
             if let Some(url) = env_url {
-                cmd.env("PROBITY_LOG_POSTGRES_URL", url);
+                cmd.env("PROBITY_STORE_POSTGRES_URL", url);
             }
             let out = cmd.output().unwrap();
             assert!(!out.status.success());
@@ -1122,13 +1122,13 @@ print(log_loss(y, p), brier_score_loss(y, p), roc_auc_score(y, h))\n";
         let text = serve(&write_config(true), None);
         assert!(!text.contains(secret), "{text}");
         assert!(
-            text.contains("log.backend") && text.contains("127.0.0.1:1/fleet"),
+            text.contains("store.backend") && text.contains("127.0.0.1:1/fleet"),
             "{text}"
         );
         // No URL at all: the error names both places it may come from.
         let text = serve(&write_config(false), None);
         assert!(
-            text.contains("log.postgres_url_file") && text.contains("PROBITY_LOG_POSTGRES_URL"),
+            text.contains("store.postgres_url_file") && text.contains("PROBITY_STORE_POSTGRES_URL"),
             "{text}"
         );
         // The server answers; the database does not exist.

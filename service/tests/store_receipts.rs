@@ -14,8 +14,8 @@ use std::time::Duration;
 use probity::store::sqlite::Durability;
 use probity::store::writer::{ModelFacts, NotRecorded, Queued, Receipt};
 use probity::store::{
-    Clock, LabelledPairs, LogConfig, LoggedPrediction, ModelVersionInfo, OutcomeCounts,
-    OutcomeInput, OutcomeResult, PredictionLog, PredictionRecord, ReportFilter, Settled,
+    Clock, LabelledPairs, StoreConfig, LoggedPrediction, ModelVersionInfo, OutcomeCounts,
+    OutcomeInput, OutcomeResult, PredictionStore, PredictionRecord, ReportFilter, Settled,
     SqliteStore, Store, StoreError, WriteFailure,
 };
 
@@ -47,7 +47,7 @@ fn queued(id: &str) -> Queued {
             log_odds: 0.5,
             adjusted_log_odds: 0.5,
             probability: 1.0 / (1.0 + (-0.5f64).exp()),
-            entity_key: String::new(),
+            subject_key: String::new(),
             tags: BTreeMap::new(),
             served: Default::default(),
         },
@@ -124,7 +124,7 @@ impl Store for Watched {
 
 struct Harness {
     _dir: tempfile::TempDir,
-    log: Arc<PredictionLog>,
+    log: Arc<PredictionStore>,
     inserts: Arc<AtomicUsize>,
     fail: Arc<AtomicBool>,
 }
@@ -140,15 +140,15 @@ fn harness(queue_size: usize) -> Harness {
         inserts: Arc::clone(&inserts),
         fail: Arc::clone(&fail),
     };
-    let config = LogConfig {
+    let config = StoreConfig {
         directory: Some(dir.path().to_path_buf()),
         flush_interval: Duration::from_secs(3600),
         queue_size,
-        ..LogConfig::default()
+        ..StoreConfig::default()
     };
     let clock = Clock::manual(Arc::new(AtomicI64::new(T0)));
     Harness {
-        log: PredictionLog::start(Box::new(store), config, clock),
+        log: PredictionStore::start(Box::new(store), config, clock),
         _dir: dir,
         inserts,
         fail,
@@ -172,7 +172,7 @@ fn wait(mut receipt: Receipt) -> Result<(), NotRecorded> {
     panic!("no answer within 60 s: the writer waited for its flush interval (1 h) instead of committing");
 }
 
-fn stored(log: &PredictionLog) -> HashSet<String> {
+fn stored(log: &PredictionStore) -> HashSet<String> {
     log.with_store(|s| s.load(&ReportFilter::default()))
         .unwrap()
         .into_iter()

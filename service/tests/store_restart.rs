@@ -3,13 +3,13 @@
 //! same data directory, and the report is the same; sending the same outcomes again changes nothing, and a held
 //! outcome still matches when its prediction finally arrives.
 //!
-//! Durability setting under test: `log.durability = "normal"` (WAL, no flush per commit), which keeps everything
+//! Durability setting under test: `store.durability = "normal"` (WAL, no flush per commit), which keeps everything
 //! committed across a killed process; only a power loss could cost the last commits (DEVELOPERS.md).
 //!
 //! The second test kills the server under mixed load: scoring (unary and batches) from several connections, two
 //! outcome streams, a model reload every 200 ms and the test itself reading the log file. A prediction counts as
 //! durably logged once the test has seen it committed in the log file (a read-only SQLite connection of the
-//! test's own) or counted it in `probity_log_predictions_written_total`; an outcome once its stream answered it
+//! test's own) or counted it in `probity_store_predictions_written_total`; an outcome once its stream answered it
 //! (the answer comes after the commit). After the restart every one of them is in the log, nothing is there that
 //! was not sent, and replaying every acknowledged outcome matches nothing a second time.
 
@@ -156,7 +156,7 @@ async fn sigkill_loses_nothing_acknowledged_and_matching_stays_exactly_once() {
         &config,
         format!(
             "[server]\nplaintext = \"loopback\"\n\
-             [models]\ndirectory = {:?}\nwatch = false\n[log]\ndirectory = {:?}\nflush_interval = \"10ms\"\n\
+             [models]\ndirectory = {:?}\nwatch = false\n[store]\ndirectory = {:?}\nflush_interval = \"10ms\"\n\
              [routes.r]\nmodel = \"linear\"\n",
             models.path().display().to_string(),
             data.path().join("log").display().to_string()
@@ -183,7 +183,7 @@ async fn sigkill_loses_nothing_acknowledged_and_matching_stays_exactly_once() {
         })
         .await
         .unwrap();
-    // Predictions are acknowledged by the log once the writer has committed them (within log.flush_interval).
+    // Predictions are acknowledged by the log once the writer has committed them (within store.flush_interval).
     let mut before = report(&mut out).await;
     for _ in 0..200 {
         if before["series"][0]["predictions"] == 199 {
@@ -323,7 +323,7 @@ async fn written_counter(addr: std::net::SocketAddr) -> Option<f64> {
     stream.read_to_string(&mut text).await.ok()?;
     Some(
         text.lines()
-            .filter(|l| l.starts_with("probity_log_predictions_written_total"))
+            .filter(|l| l.starts_with("probity_store_predictions_written_total"))
             .filter_map(|l| l.rsplit_once(' ')?.1.parse::<f64>().ok())
             .sum(),
     )
@@ -340,7 +340,7 @@ struct Truth {
     acknowledged: Mutex<HashMap<String, bool>>,
     /// Ids seen committed in the log file while the server ran.
     seen_committed: Mutex<HashSet<String>>,
-    /// The largest `probity_log_predictions_written_total` seen.
+    /// The largest `probity_store_predictions_written_total` seen.
     written: AtomicU64,
     reloads: AtomicU64,
 }
@@ -358,7 +358,7 @@ async fn sigkill_under_mixed_load_keeps_every_committed_record_and_matching_exac
         &config,
         format!(
             "[server]\nplaintext = \"loopback\"\n\
-             [models]\ndirectory = {:?}\nwatch = false\n[log]\ndirectory = {:?}\nflush_interval = \"10ms\"\n\
+             [models]\ndirectory = {:?}\nwatch = false\n[store]\ndirectory = {:?}\nflush_interval = \"10ms\"\n\
              durability = \"normal\"\n[routes.r]\nmodel = \"linear\"\n[routes.s]\nmodel = \"linear\"\n",
             models.path().display().to_string(),
             log_dir.display().to_string()

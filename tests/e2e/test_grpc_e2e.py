@@ -89,7 +89,7 @@ def test_every_other_rpc(server, stubs):
     listing = models.ListRoutes(s.models.ListRoutesRequest())
     assert [(r.name, r.ready) for r in listing.routes] == [("credit", True), ("fraud", True), ("fraud-strict", True)]
     assert sorted((m.name, m.version) for m in listing.models) == [("grpc-credit", "v1"), ("grpc-fraud", "v1")]
-    described = models.DescribeModel(s.models.DescribeModelRequest(route="credit"))
+    described = models.ModelFacts(s.models.ModelFactsRequest(route="credit"))
     assert [f.name for f in described.features] == ["income", "region"]
     assert list(described.features[1].categories) == ["north", "south"]
     reload = models.Reload(s.models.ReloadRequest())

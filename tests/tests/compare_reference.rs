@@ -14,8 +14,8 @@
 //! bootstrap standard error (2,000 seeded resamples of the paired cases) must agree with DeLong's within 10%.
 
 use probity_models::compare::{
-    agreement, compare_outcomes, delong_test, diebold_mariano, log_loss_differences, split_hash,
-    split_unit, AgreementOptions, Assignment, OutcomeOptions, SplitPlan, VarianceEstimator,
+    agreement, compare_outcomes, delong_test, diebold_mariano, log_loss_differences, share_hash,
+    share_unit, AgreementOptions, Assignment, OutcomeOptions, SharePlan, VarianceEstimator,
 };
 use probity_models::metrics::{BinStrategy, EmptyBinRule};
 use serde_json::Value;
@@ -283,10 +283,10 @@ fn outcome_comparison_matches_log_loss_brier_and_ece_references() {
 }
 
 #[test]
-fn split_hashes_match_the_python_implementation() {
-    let fixture = load("split_hashes.json");
+fn share_hashes_match_the_python_implementation() {
+    let fixture = load("share_hashes.json");
     let fractions = f64s(&fixture["fractions"]);
-    let plan = SplitPlan::new(
+    let plan = SharePlan::new(
         fractions
             .iter()
             .enumerate()
@@ -300,11 +300,11 @@ fn split_hashes_match_the_python_implementation() {
         );
         let ctx = format!("route {route:?}, key {key:?}");
         assert_eq!(
-            format!("{:016x}", split_hash(route, key)),
+            format!("{:016x}", share_hash(route, key)),
             case["hash_hex"].as_str().unwrap(),
             "{ctx}"
         );
-        assert_eq!(split_unit(route, key), f(&case["unit"]), "{ctx}");
+        assert_eq!(share_unit(route, key), f(&case["unit"]), "{ctx}");
         let want = match case["assignment"].as_u64() {
             Some(i) => Assignment::Challenger(usize::try_from(i).unwrap()),
             None => Assignment::Champion,
@@ -315,11 +315,11 @@ fn split_hashes_match_the_python_implementation() {
 
 #[test]
 fn split_shares_are_within_binomial_tolerance_and_sticky() {
-    // 100,000 synthetic entity keys; each challenger's count must lie within 4 binomial standard deviations of
+    // 100,000 synthetic subject keys; each challenger's count must lie within 4 binomial standard deviations of
     // n f (4 sd: a two-sided normal tail of about 6e-5; common practice, no single source).
     let n = 100_000usize;
     for fractions in [vec![0.1], vec![0.01], vec![0.5], vec![0.1, 0.25]] {
-        let plan = SplitPlan::new(
+        let plan = SharePlan::new(
             fractions
                 .iter()
                 .enumerate()
@@ -351,8 +351,8 @@ fn split_shares_are_within_binomial_tolerance_and_sticky() {
             );
         }
     }
-    // Two routes split independently: the keys routed to the challenger on one route are not those of the other.
-    let plan = SplitPlan::new([("c", 0.5)]).unwrap();
+    // Two routes assign subjects independently: the keys routed to the challenger on one route are not those of the other.
+    let plan = SharePlan::new([("c", 0.5)]).unwrap();
     let same = (0..10_000)
         .filter(|i| {
             let key = format!("cust-{i:06}");

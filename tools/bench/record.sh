@@ -70,7 +70,7 @@ watch = false
 max_concurrent_requests = 4096
 [logging]
 level = "warn"
-[log]
+[store]
 $2
 [routes.credit]
 model = "credit"

@@ -1,5 +1,5 @@
 #!/usr/bin/env bash
-# Service benchmark in one command: `probity serve` (500-tree model and the linear model, prediction log on) and
+# Service benchmark in one command: `probity serve` (500-tree model and the linear model, prediction store on) and
 # the bare tonic server of probity-load, each pinned to core 0, loaded from core 1, in the same run; then a
 # fixed-rate soak with resident memory samples, and the resident size with the 1,000-tree model loaded.
 #
@@ -37,8 +37,8 @@ watch = false
 max_concurrent_requests = 4096
 [logging]
 level = "warn"
-[log]
-directory = "$WORK/log-$2"
+[store]
+directory = "$WORK/store-$2"
 [routes.bench]
 model = "$3"
 missing_features = "route_as_missing"

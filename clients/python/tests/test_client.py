@@ -38,7 +38,7 @@ def server(tmp_path_factory):
         '[server]\nplaintext = "loopback"\ngrpc_listen = "127.0.0.1:0"\nmetrics_listen = "127.0.0.1:0"\n'
         f"[models]\ndirectory = {json.dumps(str(models))}\nwatch = false\n"
         "[limits]\nmax_batch_rows = 1000\n"
-        f'[log]\ndirectory = {json.dumps(str(work / "log"))}\nflush_interval = "5ms"\n'
+        f'[store]\ndirectory = {json.dumps(str(work / "log"))}\nflush_interval = "5ms"\n'
         '[routes.bc]\nmodel = "breast_cancer_champion"\n'
     )
     proc = subprocess.Popen(

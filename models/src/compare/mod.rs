@@ -9,7 +9,7 @@
 //!   AUCs with the DeLong, DeLong and Clarke-Pearson (1988) test for correlated AUCs ([`delong`](mod@delong)), the
 //!   Brier difference and each model's expected calibration error, summed up in a [`Verdict`].
 //!
-//! [`split`](mod@split) maps an entity key to the model that answers it when a route splits traffic; it is a pure
+//! [`share`](mod@share) maps a subject key to the model that answers it when live challengers answer shares; it is a pure
 //! function of its inputs, stable across restarts, platforms and Rust versions.
 //!
 //! Sign convention everywhere: a difference is **challenger minus champion**. A negative log-loss or Brier
@@ -19,7 +19,7 @@ pub mod agreement;
 pub mod delong;
 pub mod outcomes;
 pub mod paired_loss;
-pub mod split;
+pub mod share;
 pub mod verdict;
 
 pub use agreement::{agreement, spearman, Agreement, AgreementOptions, Flips};
@@ -28,7 +28,7 @@ pub use outcomes::{compare_outcomes, ModelScores, OutcomeComparison, OutcomeOpti
 pub use paired_loss::{
     diebold_mariano, log_loss_differences, newey_west_lag, PairedTest, VarianceEstimator,
 };
-pub use split::{split_hash, split_unit, Assignment, SplitError, SplitPlan, SPLIT_HASH_NAME};
+pub use share::{share_hash, share_unit, Assignment, ShareError, SharePlan, SHARE_HASH_NAME};
 pub use verdict::{Evidence, Minimums, Side, Verdict, VerdictRule};
 
 use crate::metrics::{chi2_sf, MetricsError};

@@ -1,4 +1,4 @@
-//! `probity compare`: champion against challenger on one route, from a prediction log file (table, JSON, SVG).
+//! `probity compare`: champion against challenger on one route, from a prediction store file (table, JSON, SVG).
 
 use std::path::PathBuf;
 
@@ -6,14 +6,14 @@ use anyhow::Context;
 use probity::compare::{self, svg, text, CompareRequest};
 use probity::store::{ReportFilter, Store};
 
-use super::report::open_log;
+use super::report::open_store;
 
 /// Arguments of `probity compare`.
 #[derive(Debug, clap::Args)]
 pub struct CompareArgs {
-    /// The log: a data directory (holding predictions.db) or the database file itself.
+    /// The prediction store: a data directory (holding predictions.db) or the database file itself.
     #[arg(long, value_name = "PATH")]
-    pub log: PathBuf,
+    pub store: PathBuf,
     /// The route whose champion and challenger are compared.
     #[arg(long)]
     pub route: String,
@@ -54,7 +54,7 @@ pub fn run(args: &CompareArgs) -> anyhow::Result<()> {
             anyhow::bail!("--threshold: must be a probability in [0, 1], got {t}");
         }
     }
-    let mut store = open_log(&args.log)?;
+    let mut store = open_store(&args.store)?;
     let request = CompareRequest {
         filter: ReportFilter {
             from_ms: super::when::range_start(args.from, args.since, super::when::now_ms()),

@@ -1,5 +1,5 @@
-//! `probity report`: the exact report from a prediction log file, read directly (the server may be running: the
-//! log's write-ahead journal lets a reader see every committed prediction without stopping the writer).
+//! `probity report`: the exact report from a prediction store file, read directly (the server may be running: the
+//! SQLite write-ahead journal lets a reader see every committed prediction without stopping the writer).
 
 use std::path::PathBuf;
 
@@ -12,9 +12,9 @@ use probity_models::metrics::BinStrategy;
 /// Arguments of `probity report`.
 #[derive(Debug, clap::Args)]
 pub struct ReportArgs {
-    /// The log: a data directory (holding predictions.db) or the database file itself.
+    /// The prediction store: a data directory (holding predictions.db) or the database file itself.
     #[arg(long, value_name = "PATH")]
-    pub log: PathBuf,
+    pub store: PathBuf,
     /// Earliest prediction time included: an RFC 3339 time (2026-12-01T08:30:00Z), a date (2026-12-01, midnight
     /// UTC) or milliseconds since the Unix epoch.
     #[arg(long, value_name = "TIME", value_parser = super::when::instant)]
@@ -35,7 +35,7 @@ pub struct ReportArgs {
     #[arg(long)]
     pub version: Option<String>,
     /// Only for predictions logged by a build that did not keep what they were served under: a route's target
-    /// base rate, as ROUTE=RATE (repeatable). The log keeps each prediction's own prior, and the report uses it;
+    /// base rate, as ROUTE=RATE (repeatable). The store keeps each prediction's own prior, and the report uses it;
     /// a row without one is taken to have served under this, else its model's base rate.
     #[arg(long = "base-rate", value_name = "ROUTE=RATE", value_parser = route_rate)]
     pub base_rates: Vec<(String, f64)>,
@@ -84,22 +84,23 @@ fn route_rate(text: &str) -> Result<(String, f64), String> {
     Ok((route.trim().to_string(), rate))
 }
 
-/// Opens the prediction log named by `--log`: a data directory holding the database, or the file itself.
-pub(crate) fn open_log(log: &std::path::Path) -> anyhow::Result<SqliteStore> {
+/// Opens the prediction store named by `--store`: a data directory holding the database, or the file itself.
+pub(crate) fn open_store(log: &std::path::Path) -> anyhow::Result<SqliteStore> {
     let file = if log.is_dir() {
         log.join(probity::store::sqlite::FILE_NAME)
     } else {
         log.to_path_buf()
     };
     if !file.is_file() {
-        anyhow::bail!("--log: no prediction log at {}", file.display());
+        anyhow::bail!("--store: no prediction store at {}", file.display());
     }
-    SqliteStore::open_existing(&file).with_context(|| format!("--log: opening {}", file.display()))
+    SqliteStore::open_existing(&file)
+        .with_context(|| format!("--store: opening {}", file.display()))
 }
 
 /// Runs `probity report`.
 pub fn run(args: &ReportArgs) -> anyhow::Result<()> {
-    let mut store = open_log(&args.log)?;
+    let mut store = open_store(&args.store)?;
     let filter = ReportFilter {
         from_ms: super::when::range_start(args.from, args.since, super::when::now_ms()),
         to_ms: args.to,
@@ -118,7 +119,7 @@ pub fn run(args: &ReportArgs) -> anyhow::Result<()> {
         Axis::LogOdds => ProbabilityAxis::LogOdds,
     };
     let report = report::build_binned(&mut store as &mut dyn Store, &filter, &configured, bins)
-        .context("reading the log")?;
+        .context("reading the store")?;
     if args.json {
         super::emit(&format!("{}\n", serde_json::to_string_pretty(&report)?))?;
     } else {

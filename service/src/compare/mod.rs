@@ -1,9 +1,9 @@
-//! Champion against challenger from the prediction log: the predictions both models made for the same ids on one
+//! Champion against challenger from the prediction store: the predictions both models made for the same ids on one
 //! route, compared with [`probity_models::compare`] before and with outcomes.
 //!
 //! Pairing: the champion's predictions are those logged with role `champion` by the champion model, the challenger's
-//! those with role `challenger` by the challenger model; a pair is one prediction id present in both (mirrored
-//! requests, or a split with `mirror_back`). Predictions of only one side are counted but not compared. The log
+//! those with role `challenger` by the challenger model; a pair is one prediction id present in both (silent
+//! challengers, or a live one with `paired`). Predictions of only one side are counted but not compared. The store
 //! keeps the latest outcome per id, so both sides of a pair carry the same label.
 //!
 //! [`text`] renders the table, [`svg`] the picture of both reliability curves and the paired-difference distribution;
@@ -29,7 +29,7 @@ use crate::store::{LoggedPrediction, ReportFilter, Store, StoreError};
 /// Why a comparison could not be built.
 #[derive(Debug, thiserror::Error)]
 pub enum CompareReportError {
-    /// The log could not be read.
+    /// The store could not be read.
     #[error(transparent)]
     Store(#[from] StoreError),
     /// Which models to compare is not clear, or one has no prediction.
@@ -159,7 +159,7 @@ fn outcomes_json(c: &OutcomeComparison) -> Value {
     })
 }
 
-/// Builds the comparison of one route's champion and challenger from the log.
+/// Builds the comparison of one route's champion and challenger from the store.
 pub fn build(
     store: &mut dyn Store,
     request: &CompareRequest,
@@ -179,7 +179,9 @@ pub fn build(
     let champion = match &request.champion {
         Some(m) => m.clone(),
         None => most_frequent(by_role("champion").map(|p| p.model.as_str())).ok_or_else(|| {
-            CompareReportError::Models(format!("route {route}: no champion prediction in the log"))
+            CompareReportError::Models(format!(
+                "route {route}: no champion prediction in the store"
+            ))
         })?,
     };
     let challenger = match &request.challenger {
@@ -192,7 +194,7 @@ pub fn build(
                 [one] => one.to_string(),
                 [] => {
                     return Err(CompareReportError::Models(format!(
-                        "route {route}: no challenger prediction in the log"
+                        "route {route}: no challenger prediction in the store"
                     )))
                 }
                 many => {
@@ -219,7 +221,7 @@ pub fn build(
             known.sort_unstable();
             known.dedup();
             return Err(CompareReportError::Models(format!(
-                "route {route}: no {role} prediction by `{model}` in the log ({role}s logged: {})",
+                "route {route}: no {role} prediction by `{model}` in the store ({role}s logged: {})",
                 if known.is_empty() {
                     "none".to_string()
                 } else {

@@ -123,7 +123,7 @@ fn estimate_is_absent_with_a_note_when_no_prior_is_known() {
 }
 
 /// The route's target moved half-way through the range: the first half served under 0.5, the second under 0.2,
-/// each row with the prior the log kept. Nothing is configured: the report takes each row's own prior, shifts the
+/// each row with the prior the store kept. Nothing is configured: the report takes each row's own prior, shifts the
 /// first half to the latest prior (Saerens et al. 2002, eq. 2.4) and recovers the population's base rate; the
 /// estimate equals the EM over the same population served under 0.2 throughout, and a report that took one prior
 /// for every row (the old behaviour) misses it.
@@ -161,7 +161,7 @@ fn a_target_that_moved_in_the_range_uses_each_prediction_s_own_prior() {
         "{:?}",
         r.notes
     );
-    // One prior for all rows (what the report did before the log kept them) is far off.
+    // One prior for all rows (what the report did before the store kept them) is far off.
     let mut unknown = moved.clone();
     for row in &mut unknown {
         row.served_prior = None;

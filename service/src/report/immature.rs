@@ -2,8 +2,8 @@
 //! (`probity_models::monitor::delay`): a Kaplan-Meier estimate of the time from prediction to the receipt of a
 //! positive outcome over every prediction of the section, each followed until "now", with Greenwood's variance.
 //!
-//! Choices, stated: "now" is the latest moment the log shows for the section (its latest prediction or outcome
-//! receipt), so the figure depends on the log only. The horizon is the follow-up that the oldest tenth of the
+//! Choices, stated: "now" is the latest moment the store shows for the section (its latest prediction or outcome
+//! receipt), so the figure depends on the store only. The horizon is the follow-up that the oldest tenth of the
 //! section's predictions (at least 30 of them) have had: the Kaplan-Meier steps beyond the point where few
 //! predictions remain at risk are large and the Greenwood interval is poor there (cutting the curve where the risk
 //! set gets small is common practice, no single source). Positives that take longer than the horizon are not

@@ -1,4 +1,4 @@
-//! Exact reports from the prediction log over any time range, route, model and version: one section per route,
+//! Exact reports from the prediction store over any time range, route, model and version: one section per route,
 //! model, version and role found.
 //!
 //! Every figure is computed by `probity_models::metrics` on the matched (prediction, latest label) pairs, so the
@@ -12,10 +12,10 @@
 //! Each section also carries the Saerens, Latinne and Decaestecker (2002) EM estimate of the base rate of the
 //! scored population ([`estimate_prior`]) over all its predictions in the range, beside the configured (target)
 //! base rate and the observed positive rate among matched outcomes. The EM needs posteriors calibrated under a known
-//! prior; the log keeps the served probability (calibrated, then shifted to the route's target base rate when one
+//! prior; the store keeps the served probability (calibrated, then shifted to the route's target base rate when one
 //! was applied) but not the route's configuration, so the caller of [`build_with`] passes each route's configured
 //! target base rate, and a route without one is taken to have served under the model's own base rate (recorded in
-//! the log's model version facts).
+//! the store's model version facts).
 //!
 //! [`text`] renders the terminal table, [`svg`] the pictures; the JSON is this module's types through serde.
 
@@ -59,7 +59,7 @@ pub struct Report {
     pub model: Option<String>,
     /// Version filter.
     pub version: Option<String>,
-    /// Outcomes waiting for their prediction, and outcomes that never matched (whole log).
+    /// Outcomes waiting for their prediction, and outcomes that never matched (whole store).
     pub outcomes: OutcomeCounts,
     /// One section per route, model, version and role.
     pub series: Vec<SeriesReport>,
@@ -315,7 +315,7 @@ fn keep<T>(
 pub struct BaseRates {
     /// The route's configured target base rate, if any.
     pub configured: Option<f64>,
-    /// The model version's base rate, if the log knows it.
+    /// The model version's base rate, if the store knows it.
     pub model: Option<f64>,
 }
 
@@ -327,8 +327,8 @@ impl BaseRates {
 }
 
 /// The probabilities of `rows` on one prior, for the base-rate EM, and the rates with that prior as the served
-/// one. Each row's prior is the one the log kept with it ([`LoggedPrediction::served_prior`]), else `rates`'s
-/// served prior (rows logged before the log kept it). The common prior is the latest row's; a row served under
+/// one. Each row's prior is the one the store kept with it ([`LoggedPrediction::served_prior`]), else `rates`'s
+/// served prior (rows logged before the store kept it). The common prior is the latest row's; a row served under
 /// another is moved to it by the base-rate shift of its log-odds, `logit(p') = logit(p) - logit(prior) +
 /// logit(common)` (Saerens, Latinne and Decaestecker 2002, "Adjusting the outputs of a classifier to new a priori
 /// probabilities", eq. 2.4, the same shift the scorer applies). With one prior throughout nothing moves.
@@ -362,7 +362,7 @@ fn on_one_prior(
     }
     let rates = BaseRates {
         configured: rates.configured.or_else(|| {
-            // The target the log says the latest prediction was served under, when it is not the model's own.
+            // The target the store says the latest prediction was served under, when it is not the model's own.
             (rows.last().and_then(|r| r.served_prior).is_some() && Some(common) != rates.model)
                 .then_some(common)
         }),

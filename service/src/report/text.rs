@@ -12,7 +12,7 @@ fn opt(v: Option<f64>) -> String {
 pub fn render(report: &Report) -> String {
     let mut s = String::new();
     if report.series.is_empty() {
-        s.push_str("no predictions in the log match the range and filters\n");
+        s.push_str("no predictions in the store match the range and filters\n");
     }
     for series in &report.series {
         section(&mut s, series);

@@ -18,7 +18,7 @@ use std::time::Duration;
 use serde::Deserialize;
 
 use crate::serve::promotion::RouteTable;
-use crate::store::PredictionLog;
+use crate::store::PredictionStore;
 
 /// The target base rate in force on a route: the configured `target_base_rate` from the start, then the applied
 /// estimate on a route that opts in.
@@ -55,7 +55,7 @@ impl EstimateBounds {
     }
 }
 
-/// Validates the bounds of route `route`; `prior_window` is `log.prior_window` (`None` when the log is off). The
+/// Validates the bounds of route `route`; `prior_window` is `store.prior_window` (`None` when the log is off). The
 /// error is `(key, message)`.
 pub fn bounds(
     route: &str,
@@ -85,7 +85,7 @@ pub fn bounds(
     let Some(window) = prior_window else {
         return Err((
             key(""),
-            "needs the prediction log (log.directory), whose window the estimate is computed over"
+            "needs the prediction store (store.directory), whose window the estimate is computed over"
                 .to_string(),
         ));
     };
@@ -93,7 +93,7 @@ pub fn bounds(
     if min_predictions == 0 || min_predictions > window as u64 {
         return Err((
             key("min_predictions"),
-            format!("must be in [1, log.prior_window = {window}], got {min_predictions}"),
+            format!("must be in [1, store.prior_window = {window}], got {min_predictions}"),
         ));
     }
     Ok(EstimateBounds {
@@ -138,7 +138,7 @@ pub fn apply_once(
 /// Runs [`apply_once`] every second for the opted-in routes (nothing to do when none opted in).
 pub fn task(
     table: Arc<RouteTable>,
-    log: Arc<PredictionLog>,
+    log: Arc<PredictionStore>,
     opted_in: BTreeMap<String, EstimateBounds>,
 ) -> tokio::task::JoinHandle<()> {
     metrics::describe_gauge!(

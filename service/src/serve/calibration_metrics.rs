@@ -1,4 +1,4 @@
-//! Calibration tests exported as gauges, for alert rules: every `log.sweep_interval`, each route's logged
+//! Calibration tests exported as gauges, for alert rules: every `store.sweep_interval`, each route's logged
 //! matched pairs (read in a lean form, [`crate::store::Store::labelled_pairs`]) are grouped by model, version and role, and Spiegelhalter's z (1986) and the
 //! logistic recalibration (Cox 1958) of [`crate::report::calibration_tests`] are set as gauges labelled `route`,
 //! `model`, `version`, `role`. Reads run on the log's thread, like the comparison gauges.
@@ -94,7 +94,7 @@ fn set(s: &Series) {
 
 /// One refresh of every route's calibration gauges.
 pub fn refresh(scorer: &Scorer) {
-    let Some(log) = scorer.log() else {
+    let Some(log) = scorer.store() else {
         return;
     };
     for route in scorer.routes().keys() {

@@ -1,18 +1,20 @@
 //! Challengers on a route: the configuration (`[[routes.<name>.challengers]]`), which model answers a request, and
-//! which models score it in the background.
+//! which models score it silently.
 //!
 //! A route has one champion (`model`) and any number of challengers, each in one of two modes:
-//! - `mode = "mirror"`: every request is also scored by the challenger, in the background; the response is the
-//!   champion's, and both predictions are logged under the same prediction id with their roles;
-//! - `mode = "split"` with `fraction = f`: a share `f` of the entities (by the sticky hash of the request's entity
-//!   key, [`probity_models::compare::split`]) is answered by the challenger; with `mirror_back = true` the model that
-//!   did not answer scores the request too, in the background, so every request has both predictions.
+//! - `mode = "silent"`: every request is also scored by the challenger, off the answer path; the response is the
+//!   champion's, and both predictions are stored under the same prediction id with their roles;
+//! - `mode = "live"` with `share = f`: a share `f` of the subjects (by the sticky hash of the request's subject
+//!   key, [`probity_models::compare::share`]) is answered by the challenger; with `paired = true` the model that
+//!   did not answer scores the request too, silently, so every request has both predictions.
 //!
-//! A request without an entity key is answered by the champion (there is nothing to keep sticky). `ScoreBatch`
+//! A request without a subject key is answered by the champion (there is nothing to keep sticky). `ScoreBatch`
 //! calls are answered by the champion as a whole (one model version per batch, as the contract promises); their
-//! rows are still mirrored.
+//! rows are still scored by the silent challengers.
+//!
+//! The words of earlier releases (`mirror`, `split`, `fraction`, `mirror_back`) are refused with the new word named.
 
-use probity_models::compare::{Assignment, SplitPlan};
+use probity_models::compare::{Assignment, SharePlan};
 use serde::Deserialize;
 
 /// A challenger as written in the configuration file.
@@ -21,21 +23,25 @@ use serde::Deserialize;
 pub struct RawChallenger {
     model: Option<String>,
     mode: Option<String>,
-    fraction: Option<f64>,
-    mirror_back: Option<bool>,
+    share: Option<f64>,
+    paired: Option<bool>,
+    /// Renamed `share`; refused with that name.
+    fraction: Option<toml::Value>,
+    /// Renamed `paired`; refused with that name.
+    mirror_back: Option<toml::Value>,
 }
 
 /// How a challenger takes part.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub enum ChallengerMode {
-    /// Scores every request in the background; never answers.
-    Mirror,
-    /// Answers a fixed share of entities.
-    Split {
-        /// The share of entities it answers.
-        fraction: f64,
-        /// Whether the model that did not answer also scores the request in the background.
-        mirror_back: bool,
+    /// Scores every request silently; never answers.
+    Silent,
+    /// Answers a fixed share of subjects.
+    Live {
+        /// The share of subjects it answers.
+        share: f64,
+        /// Whether the model that did not answer also scores the request silently.
+        paired: bool,
     },
 }
 
@@ -49,29 +55,26 @@ pub struct Challenger {
 }
 
 impl Challenger {
-    /// `mirror` or `split 0.1` (with `, mirror_back`), for route descriptions.
+    /// `<model> silent` or `<model> live 0.1` (with ` paired`), for route descriptions.
     pub fn describe(&self) -> String {
         match self.mode {
-            ChallengerMode::Mirror => format!("{} mirror", self.model),
-            ChallengerMode::Split {
-                fraction,
-                mirror_back,
-            } => format!(
-                "{} split {fraction}{}",
+            ChallengerMode::Silent => format!("{} silent", self.model),
+            ChallengerMode::Live { share, paired } => format!(
+                "{} live {share}{}",
                 self.model,
-                if mirror_back { " mirror_back" } else { "" }
+                if paired { " paired" } else { "" }
             ),
         }
     }
 }
 
-/// The challengers of one route with their split plan.
+/// The challengers of one route with their share plan.
 #[derive(Debug, Clone, Default, PartialEq)]
 pub struct Challengers {
     /// All challengers in configuration order.
     pub list: Vec<Challenger>,
-    /// The split challengers' fractions, in configuration order (the plan's names are model names).
-    pub plan: SplitPlan,
+    /// The live challengers' shares, in configuration order (the plan's names are model names).
+    pub plan: SharePlan,
 }
 
 /// The model that answers and the role it answers in.
@@ -89,12 +92,12 @@ impl Challengers {
         self.list.is_empty()
     }
 
-    /// Which model answers `entity_key` on `route` (the champion when the key is empty).
-    pub fn answer(&self, route: &str, champion: &str, entity_key: &str) -> Answer {
-        let assignment = if entity_key.is_empty() {
+    /// Which model answers `subject_key` on `route` (the champion when the key is empty).
+    pub fn answer(&self, route: &str, champion: &str, subject_key: &str) -> Answer {
+        let assignment = if subject_key.is_empty() {
             Assignment::Champion
         } else {
-            self.plan.assign(route, entity_key)
+            self.plan.assign(route, subject_key)
         };
         match assignment {
             Assignment::Challenger(k) => Answer {
@@ -108,18 +111,16 @@ impl Challengers {
         }
     }
 
-    /// The models that score a request in the background when `answered` answered it, with their roles.
-    pub fn shadows(&self, champion: &str, answered: &str) -> Vec<Answer> {
+    /// The models that score a request silently when `answered` answered it, with their roles.
+    pub fn silent(&self, champion: &str, answered: &str) -> Vec<Answer> {
         let mut out = Vec::new();
         for c in &self.list {
             match c.mode {
-                ChallengerMode::Mirror => out.push(Answer {
+                ChallengerMode::Silent => out.push(Answer {
                     model: c.model.clone(),
                     role: "challenger",
                 }),
-                ChallengerMode::Split {
-                    mirror_back: true, ..
-                } => {
+                ChallengerMode::Live { paired: true, .. } => {
                     if answered == champion {
                         out.push(Answer {
                             model: c.model.clone(),
@@ -132,7 +133,7 @@ impl Challengers {
                         });
                     }
                 }
-                ChallengerMode::Split { .. } => {}
+                ChallengerMode::Live { .. } => {}
             }
         }
         out
@@ -152,9 +153,20 @@ pub fn challengers(
         let RawChallenger {
             model,
             mode,
+            share,
+            paired,
             fraction,
             mirror_back,
         } = c;
+        if fraction.is_some() {
+            return Err((key("fraction"), "was renamed: write `share`".to_string()));
+        }
+        if mirror_back.is_some() {
+            return Err((
+                key("mirror_back"),
+                "was renamed: write `paired`".to_string(),
+            ));
+        }
         let model = model.ok_or_else(|| (key("model"), "is required".to_string()))?;
         if !valid_name(&model) {
             return Err((
@@ -168,39 +180,51 @@ pub fn challengers(
                 format!("`{model}` already serves this route as champion or challenger"),
             ));
         }
-        let mode = match (mode.as_deref(), fraction, mirror_back) {
-            (Some("mirror"), None, None) => ChallengerMode::Mirror,
+        let mode = match (mode.as_deref(), share, paired) {
+            (Some("silent"), None, None) => ChallengerMode::Silent,
+            (Some("silent"), _, _) => {
+                return Err((
+                    key("mode"),
+                    "a silent challenger answers nothing: it takes no share or paired".to_string(),
+                ))
+            }
+            (Some("live"), Some(f), paired) if (0.0..=1.0).contains(&f) => ChallengerMode::Live {
+                share: f,
+                paired: paired.unwrap_or(false),
+            },
+            (Some("live"), Some(f), _) => {
+                return Err((key("share"), format!("must be in [0, 1], got {f}")))
+            }
+            (Some("live"), None, _) => {
+                return Err((
+                    key("share"),
+                    "is required for a live challenger".to_string(),
+                ))
+            }
             (Some("mirror"), _, _) => {
                 return Err((
                     key("mode"),
-                    "a mirrored challenger takes no fraction or mirror_back".to_string(),
+                    "`mirror` was renamed: write `silent`".to_string(),
                 ))
             }
-            (Some("split"), Some(f), back) if (0.0..=1.0).contains(&f) => ChallengerMode::Split {
-                fraction: f,
-                mirror_back: back.unwrap_or(false),
-            },
-            (Some("split"), Some(f), _) => {
-                return Err((key("fraction"), format!("must be in [0, 1], got {f}")))
-            }
-            (Some("split"), None, _) => {
+            (Some("split"), _, _) => {
                 return Err((
-                    key("fraction"),
-                    "is required for a split challenger".to_string(),
+                    key("mode"),
+                    "`split` was renamed: write `live` (with `share`)".to_string(),
                 ))
             }
             (other, _, _) => {
                 return Err((
                     key("mode"),
-                    format!("must be `mirror` or `split`, got `{}`", other.unwrap_or("")),
+                    format!("must be `silent` or `live`, got `{}`", other.unwrap_or("")),
                 ))
             }
         };
         list.push(Challenger { model, mode });
     }
-    let plan = SplitPlan::new(list.iter().filter_map(|c| match c.mode {
-        ChallengerMode::Split { fraction, .. } => Some((c.model.clone(), fraction)),
-        ChallengerMode::Mirror => None,
+    let plan = SharePlan::new(list.iter().filter_map(|c| match c.mode {
+        ChallengerMode::Live { share, .. } => Some((c.model.clone(), share)),
+        ChallengerMode::Silent => None,
     }))
     .map_err(|e| (format!("routes.{route}.challengers"), e.to_string()))?;
     Ok(Challengers { list, plan })
@@ -210,12 +234,13 @@ pub fn challengers(
 mod tests {
     use super::*;
 
-    fn raw(model: &str, mode: &str, fraction: Option<f64>, back: Option<bool>) -> RawChallenger {
+    fn raw(model: &str, mode: &str, share: Option<f64>, paired: Option<bool>) -> RawChallenger {
         RawChallenger {
             model: Some(model.into()),
             mode: Some(mode.into()),
-            fraction,
-            mirror_back: back,
+            share,
+            paired,
+            ..RawChallenger::default()
         }
     }
 
@@ -225,19 +250,19 @@ mod tests {
 
     #[test]
     fn validation_names_the_key() {
-        let e = challengers("fraud", "a", vec![raw("a", "mirror", None, None)], ok).unwrap_err();
+        let e = challengers("fraud", "a", vec![raw("a", "silent", None, None)], ok).unwrap_err();
         assert_eq!(e.0, "routes.fraud.challengers[0].model");
-        let e = challengers("fraud", "a", vec![raw("b", "split", None, None)], ok).unwrap_err();
-        assert_eq!(e.0, "routes.fraud.challengers[0].fraction");
+        let e = challengers("fraud", "a", vec![raw("b", "live", None, None)], ok).unwrap_err();
+        assert_eq!(e.0, "routes.fraud.challengers[0].share");
         let e =
-            challengers("fraud", "a", vec![raw("b", "mirror", Some(0.1), None)], ok).unwrap_err();
+            challengers("fraud", "a", vec![raw("b", "silent", Some(0.1), None)], ok).unwrap_err();
         assert_eq!(e.0, "routes.fraud.challengers[0].mode");
         let e = challengers(
             "fraud",
             "a",
             vec![
-                raw("b", "split", Some(0.7), None),
-                raw("c", "split", Some(0.4), None),
+                raw("b", "live", Some(0.7), None),
+                raw("c", "live", Some(0.4), None),
             ],
             ok,
         )
@@ -247,28 +272,56 @@ mod tests {
     }
 
     #[test]
-    fn answers_and_shadows() {
+    fn answers_and_silent_scorers() {
         let c = challengers(
             "fraud",
             "a",
             vec![
-                raw("m", "mirror", None, None),
-                raw("s", "split", Some(1.0), Some(true)),
+                raw("m", "silent", None, None),
+                raw("s", "live", Some(1.0), Some(true)),
             ],
             ok,
         )
         .unwrap();
-        // Fraction 1: every keyed entity goes to the split challenger; no key means the champion.
+        // Share 1: every keyed subject goes to the live challenger; no key means the champion.
         assert_eq!(c.answer("fraud", "a", "cust-1").model, "s");
         assert_eq!(c.answer("fraud", "a", "").role, "champion");
         let models = |v: Vec<Answer>| v.into_iter().map(|a| (a.model, a.role)).collect::<Vec<_>>();
         assert_eq!(
-            models(c.shadows("a", "s")),
+            models(c.silent("a", "s")),
             vec![("m".into(), "challenger"), ("a".into(), "champion")]
         );
         assert_eq!(
-            models(c.shadows("a", "a")),
+            models(c.silent("a", "a")),
             vec![("m".into(), "challenger"), ("s".into(), "challenger")]
         );
+    }
+
+    #[test]
+    fn the_words_of_earlier_releases_are_refused_with_the_new_ones() {
+        for (old, key, new) in [("mirror", "mode", "silent"), ("split", "mode", "live")] {
+            let e = challengers("fraud", "a", vec![raw("b", old, None, None)], ok).unwrap_err();
+            assert_eq!(e.0, format!("routes.fraud.challengers[0].{key}"));
+            assert!(e.1.contains(&format!("write `{new}`")), "{}", e.1);
+        }
+        let old = RawChallenger {
+            fraction: Some(toml::Value::Float(0.1)),
+            ..raw("b", "live", Some(0.1), None)
+        };
+        let e = challengers("fraud", "a", vec![old], ok).unwrap_err();
+        assert_eq!(
+            e,
+            (
+                "routes.fraud.challengers[0].fraction".into(),
+                "was renamed: write `share`".into()
+            )
+        );
+        let old = RawChallenger {
+            mirror_back: Some(toml::Value::Boolean(true)),
+            ..raw("b", "live", Some(0.1), None)
+        };
+        let e = challengers("fraud", "a", vec![old], ok).unwrap_err();
+        assert_eq!(e.0, "routes.fraud.challengers[0].mirror_back");
+        assert!(e.1.contains("`paired`"), "{}", e.1);
     }
 }

@@ -1,4 +1,4 @@
-//! The `probity.v1.Challengers` service: Compare (from the prediction log), Promote (the `admin` role) and
+//! The `probity.v1.Challengers` service: Compare (from the prediction store), Promote (the `admin` role) and
 //! RouteHistory. Handlers validate, call [`crate::compare`] or [`crate::serve::promotion`], and convert back.
 
 use std::sync::Arc;
@@ -71,7 +71,7 @@ fn compare_on(
     } = request;
     limits::names(&[("route", &route), ("challenger", &challenger)])?;
     let (config, _) = scorer.resolve(&route)?;
-    let log = scorer.log().ok_or(ServeError::LogDisabled)?;
+    let log = scorer.store().ok_or(ServeError::StoreOff)?;
     // The flip share uses the route's threshold.
     let threshold = crate::serve::compare_metrics::route_threshold(&config);
     let request = CompareRequest {
@@ -116,7 +116,7 @@ fn always_valid_fields(report: &compare::CompareReport) -> pb::CompareResponse {
 impl From<compare::CompareReportError> for ServeError {
     fn from(e: compare::CompareReportError) -> ServeError {
         match e {
-            compare::CompareReportError::Store(s) => ServeError::Log(s),
+            compare::CompareReportError::Store(s) => ServeError::Store(s),
             other => ServeError::Comparison(other.to_string()),
         }
     }

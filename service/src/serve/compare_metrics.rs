@@ -1,7 +1,7 @@
-//! The champion-challenger comparison exported as gauges: every `log.sweep_interval`, each route with challengers is
-//! compared with each of its challengers from the prediction log ([`crate::compare`]) and the gauges below are set,
+//! The champion-challenger comparison exported as gauges: every `store.sweep_interval`, each route with challengers is
+//! compared with each of its challengers from the prediction store ([`crate::compare`]) and the gauges below are set,
 //! labelled by route, champion and challenger. Each refresh reads the route's logged predictions (bounded by
-//! `log.retention`), on the blocking pool.
+//! `store.retention`), on the blocking pool.
 
 use std::sync::Arc;
 use std::time::Duration;
@@ -162,7 +162,7 @@ fn set(report: &CompareReport) {
 
 /// One refresh of every route's comparison gauges.
 pub fn refresh(scorer: &Scorer) {
-    let Some(log) = scorer.log() else {
+    let Some(log) = scorer.store() else {
         return;
     };
     for route in scorer.routes().values() {

@@ -16,7 +16,9 @@ use serde::Deserialize;
 
 /// Sections whose scalar keys environment variables may set (`PROBITY_LIMITS_MAX_BATCH_ROWS` sets
 /// `limits.max_batch_rows`). Routes are set in the file only.
-const ENV_SECTIONS: [&str; 5] = ["server", "models", "limits", "logging", "log"];
+/// `log` is the prediction store's section of earlier releases: its variables still map to `log.*` keys, which are
+/// refused with the new name.
+const ENV_SECTIONS: [&str; 6] = ["server", "models", "limits", "logging", "store", "log"];
 
 /// Why the configuration was refused.
 #[derive(Debug, thiserror::Error)]
@@ -70,7 +72,9 @@ pub struct RawConfig {
     models: RawModels,
     limits: RawLimits,
     logging: RawLogging,
-    log: crate::store::config::RawLog,
+    store: crate::store::config::RawStore,
+    /// The prediction store's section of earlier releases; refused with the new name.
+    log: Option<toml::Value>,
     access: crate::serve::security::config::RawAccess,
     routes: BTreeMap<String, RawRoute>,
 }
@@ -220,8 +224,8 @@ pub struct Config {
     pub limits: Limits,
     /// Log format and level.
     pub logging: Logging,
-    /// The prediction log (`[log]`); off without `log.directory`.
-    pub log: crate::store::LogConfig,
+    /// The prediction store (`[store]`); off without `store.directory`.
+    pub store: crate::store::StoreConfig,
     /// Routes by name.
     pub routes: BTreeMap<String, Route>,
     /// Routes that apply the live base-rate estimate (`routes.<name>.base_rate_from_estimate`), with its bounds;
@@ -285,7 +289,7 @@ pub struct Route {
     pub unknown_categories: UnknownCategoryPolicy,
     /// What to do with a named feature the model does not have.
     pub unknown_features: UnknownFeaturePolicy,
-    /// Challengers beside the champion (`model`), mirrored or split.
+    /// Challengers beside the champion (`model`), silent or live.
     pub challengers: crate::serve::challenger::Challengers,
     /// How many reasons an explanation lists and which direction is adverse (`[routes.NAME.reasons]`).
     pub reasons: probity_models::ReasonRequest,
@@ -421,10 +425,18 @@ impl Config {
             models,
             limits,
             logging,
+            store,
             log,
             access,
             routes,
         } = raw;
+        if log.is_some() {
+            return Err(invalid(
+                "log",
+                "the prediction store's section was renamed: write [store] (environment PROBITY_STORE_*, \
+                 --set store.KEY=VALUE); [logging] is the process log",
+            ));
+        }
         let RawServer {
             grpc_listen,
             metrics_listen,
@@ -467,9 +479,9 @@ impl Config {
             })
             .collect::<Result<BTreeMap<_, _>, ConfigError>>()?;
         let names = routes.keys().cloned().collect();
-        let log = crate::store::LogConfig::from_raw(log, &names)
+        let store = crate::store::StoreConfig::from_raw(store, &names)
             .map_err(|(key, message)| invalid(key, message))?;
-        if !log.enabled() {
+        if !store.enabled() {
             if let Some(name) = routes
                 .iter()
                 .find(|(_, r)| r.record == RecordMode::BeforeAnswer)
@@ -477,11 +489,11 @@ impl Config {
             {
                 return Err(invalid(
                     format!("routes.{name}.record"),
-                    "`before-answer` needs the prediction store: set log.directory (or log.backend = \"postgres\")",
+                    "`before-answer` needs the prediction store: set store.directory (or store.backend = \"postgres\")",
                 ));
             }
         }
-        let window = log.enabled().then_some(log.prior_window);
+        let window = store.enabled().then_some(store.prior_window);
         let base_rate_from_estimate = estimate_bounds
             .into_iter()
             .map(|(name, raw)| {
@@ -531,7 +543,7 @@ impl Config {
             )?),
             limits: self::limits(limits)?,
             logging: self::logging(logging)?,
-            log,
+            store,
             routes,
             base_rate_from_estimate,
         })
@@ -584,8 +596,8 @@ fn read_file(path: &Path) -> Result<toml::Table, ConfigError> {
         })
 }
 
-/// `PROBITY_LIMITS_MAX_BATCH_ROWS` -> `limits.max_batch_rows`; other variables -> `None`. The shared log's
-/// connection URL (`PROBITY_LOG_POSTGRES_URL`) is a secret read by the log itself, not a configuration key.
+/// `PROBITY_LIMITS_MAX_BATCH_ROWS` -> `limits.max_batch_rows`; other variables -> `None`. The shared store's
+/// connection URL (`PROBITY_STORE_POSTGRES_URL`) is a secret read by the store itself, not a configuration key.
 fn env_key(name: &str) -> Option<String> {
     if name == crate::store::postgres::ENV_URL {
         return None;

@@ -18,8 +18,8 @@ use crate::serve::scoring::{PreparedRow, RowWarning, WarningKind};
 
 /// Longest caller-chosen prediction id.
 const MAX_PREDICTION_ID: usize = 128;
-/// Longest entity key.
-const MAX_ENTITY_KEY: usize = 256;
+/// Longest subject key.
+const MAX_SUBJECT_KEY: usize = 256;
 /// Most tags on one row, and the longest tag key and value.
 const MAX_TAGS: usize = 32;
 const MAX_TAG_KEY: usize = 64;
@@ -52,11 +52,11 @@ pub fn prepare_row(
 ) -> Result<PreparedRow, ServeError> {
     let pb::Row {
         prediction_id,
-        entity_key,
+        subject_key,
         tags,
         features,
     } = row;
-    check_identity(field, &prediction_id, &entity_key, &tags)?;
+    check_identity(field, &prediction_id, &subject_key, &tags)?;
     let mut warnings = Vec::new();
     let values = match features {
         None => {
@@ -79,7 +79,7 @@ pub fn prepare_row(
     };
     Ok(PreparedRow {
         prediction_id,
-        entity_key,
+        subject_key,
         tags,
         values,
         warnings,
@@ -89,7 +89,7 @@ pub fn prepare_row(
 fn check_identity(
     field: &str,
     prediction_id: &str,
-    entity_key: &str,
+    subject_key: &str,
     tags: &std::collections::HashMap<String, String>,
 ) -> Result<(), ServeError> {
     if prediction_id.len() > MAX_PREDICTION_ID
@@ -102,12 +102,12 @@ fn check_identity(
             ),
         ));
     }
-    if entity_key.len() > MAX_ENTITY_KEY {
+    if subject_key.len() > MAX_SUBJECT_KEY {
         return Err(ServeError::invalid(
-            format!("{field}.entity_key"),
+            format!("{field}.subject_key"),
             format!(
-                "is {} bytes long, the limit is {MAX_ENTITY_KEY}",
-                entity_key.len()
+                "is {} bytes long, the limit is {MAX_SUBJECT_KEY}",
+                subject_key.len()
             ),
         ));
     }
@@ -376,7 +376,7 @@ pub fn score_response(
     } = scored;
     let PreparedRow {
         prediction_id,
-        entity_key: _,
+        subject_key: _,
         tags: _,
         values: _,
         warnings,
@@ -553,7 +553,7 @@ impl From<FileReport> for pb::FileReload {
     }
 }
 
-/// What `DescribeModel` asks for.
+/// What `ModelFacts` asks for.
 pub enum ModelTarget {
     /// A model by name.
     Model(String),
@@ -561,22 +561,22 @@ pub enum ModelTarget {
     Route(String),
 }
 
-impl TryFrom<pb::DescribeModelRequest> for ModelTarget {
+impl TryFrom<pb::ModelFactsRequest> for ModelTarget {
     type Error = ServeError;
 
-    fn try_from(req: pb::DescribeModelRequest) -> Result<ModelTarget, ServeError> {
-        let pb::DescribeModelRequest { target } = req;
+    fn try_from(req: pb::ModelFactsRequest) -> Result<ModelTarget, ServeError> {
+        let pb::ModelFactsRequest { target } = req;
         match target {
-            Some(pb::describe_model_request::Target::Model(m)) if !m.is_empty() => {
+            Some(pb::model_facts_request::Target::Model(m)) if !m.is_empty() => {
                 Ok(ModelTarget::Model(m))
             }
-            Some(pb::describe_model_request::Target::Route(r)) if !r.is_empty() => {
+            Some(pb::model_facts_request::Target::Route(r)) if !r.is_empty() => {
                 Ok(ModelTarget::Route(r))
             }
-            Some(pb::describe_model_request::Target::Model(_)) => {
+            Some(pb::model_facts_request::Target::Model(_)) => {
                 Err(ServeError::invalid("model", "is empty"))
             }
-            Some(pb::describe_model_request::Target::Route(_)) => {
+            Some(pb::model_facts_request::Target::Route(_)) => {
                 Err(ServeError::invalid("route", "is empty"))
             }
             None => Err(ServeError::invalid(

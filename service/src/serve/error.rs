@@ -63,12 +63,12 @@ pub enum ServeError {
         /// Rows asked for.
         rows: usize,
     },
-    /// The prediction log is not configured (`log.directory`), so outcomes and reports are not available.
-    #[error("the prediction log is off on this server (set log.directory)")]
-    LogDisabled,
-    /// The prediction log failed.
-    #[error("prediction log: {0}")]
-    Log(#[from] crate::store::StoreError),
+    /// The prediction store is not configured (`store.directory`), so outcomes and reports are not available.
+    #[error("the prediction store is off on this server (set store.directory)")]
+    StoreOff,
+    /// The prediction store failed.
+    #[error("prediction store: {0}")]
+    Store(#[from] crate::store::StoreError),
     /// A call on a route with `record = "before-answer"` whose predictions were not committed: it is refused
     /// rather than answered without its record.
     #[error(

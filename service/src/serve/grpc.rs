@@ -293,10 +293,10 @@ impl pb::models_server::Models for ModelsApi {
         )
     }
 
-    async fn describe_model(
+    async fn model_facts(
         &self,
-        request: Request<pb::DescribeModelRequest>,
-    ) -> Result<Response<pb::DescribeModelResponse>, Status> {
+        request: Request<pb::ModelFactsRequest>,
+    ) -> Result<Response<pb::ModelFactsResponse>, Status> {
         let started = Instant::now();
         let result = ModelTarget::try_from(request.into_inner()).and_then(|target| {
             match &target {
@@ -315,12 +315,12 @@ impl pb::models_server::Models for ModelsApi {
                     .ok_or(ServeError::ModelNotFound { model })?,
             };
             let features = feature_infos(loaded.model.schema());
-            Ok(pb::DescribeModelResponse {
+            Ok(pb::ModelFactsResponse {
                 model: Some(model_info(&loaded)),
                 features,
             })
         });
-        finish("DescribeModel", "", started, result)
+        finish("ModelFacts", "", started, result)
     }
 
     async fn reload(

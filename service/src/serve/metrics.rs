@@ -62,6 +62,12 @@ const LOG_ODDS_BUCKETS: [f64; 21] = [
     7.0, 8.0, 9.0, 10.0,
 ];
 
+/// Buckets of the absolute log-odds difference between a silent model and the answer (a histogram, so that
+/// replicas add up; a summary's quantiles would not).
+const DIFFERENCE_BUCKETS: [f64; 12] = [
+    0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 1.5, 2.0, 3.0, 5.0, 10.0,
+];
+
 static INSTALLED: OnceLock<Result<PrometheusHandle, String>> = OnceLock::new();
 
 /// How often pending histogram samples are folded into their buckets.
@@ -81,6 +87,12 @@ fn install_once() -> Result<PrometheusHandle, String> {
             b.set_buckets_for_metric(Matcher::Full(PROBABILITY.into()), &PROBABILITY_BUCKETS)
         })
         .and_then(|b| b.set_buckets_for_metric(Matcher::Full(LOG_ODDS.into()), &LOG_ODDS_BUCKETS))
+        .and_then(|b| {
+            b.set_buckets_for_metric(
+                Matcher::Full(crate::serve::silent::SILENT_LOG_ODDS_DIFFERENCE.into()),
+                &DIFFERENCE_BUCKETS,
+            )
+        })
         .and_then(crate::store::running::buckets)
         .map_err(|e| e.to_string())?;
     let recorder = builder.build_recorder();
@@ -104,7 +116,7 @@ fn install_once() -> Result<PrometheusHandle, String> {
 }
 
 fn describe() {
-    crate::serve::shadow::describe();
+    crate::serve::silent::describe();
     crate::serve::compare_metrics::describe();
     crate::serve::calibration_metrics::describe();
     metrics::describe_counter!(

@@ -6,10 +6,10 @@
 //! - [`scoring`]: route resolution and scoring; [`conversions`]: every wire/domain conversion;
 //! - [`grpc`]: the handlers; [`status`]: the one mapping from [`error::ServeError`] to gRPC status;
 //! - [`metrics`]: Prometheus metrics and the monitoring HTTP endpoint;
-//! - [`outcomes`]: the prediction log in the server (what a scored row logs, the Outcomes service, the sweeps);
+//! - [`outcomes`]: the prediction store in the server (what a scored row logs, the Outcomes service, the sweeps);
 //! - [`security`]: TLS (with certificate reload), callers, roles and the access layer every call passes;
 //! - [`server`]: [`server::start`], the one function that builds the server for `main` and the tests
-//!   ([`server::start_with_store`] is the same with the prediction log in a given [`crate::store::Store`]).
+//!   ([`server::start_with_store`] is the same with the prediction store in a given [`crate::store::Store`]).
 
 pub mod base_rate;
 pub mod calibration_metrics;
@@ -30,7 +30,7 @@ pub mod registry;
 pub mod scoring;
 pub mod security;
 pub mod server;
-pub mod shadow;
+pub mod silent;
 pub mod status;
 
 use std::path::PathBuf;

@@ -1,4 +1,4 @@
-//! The prediction log inside the server: what a scored row becomes in the log, the `probity.v1.Outcomes`
+//! The prediction store inside the server: what a scored row becomes in the log, the `probity.v1.Outcomes`
 //! handlers (outcome batches and streams, reports), and the background sweep task.
 
 use std::pin::Pin;
@@ -18,8 +18,8 @@ use crate::serve::registry::LoadedModel;
 use crate::serve::scoring::PreparedRow;
 use crate::store::writer::{ModelFacts, Queued};
 use crate::store::{
-    ModelVersionInfo, OutcomeInput, OutcomeResult, OutcomeStatus, PredictionLog, PredictionRecord,
-    Reference, ReportFilter,
+    ModelVersionInfo, OutcomeInput, OutcomeResult, OutcomeStatus, PredictionRecord,
+    PredictionStore, Reference, ReportFilter,
 };
 
 /// Most outcomes in one `RecordOutcomes` call.
@@ -38,7 +38,7 @@ impl ModelFacts for LoadedModel {
     }
 }
 
-/// The log entry of a scored row (the entity key and tags are moved out of the row; the response does not carry
+/// The log entry of a scored row (the subject key and tags are moved out of the row; the response does not carry
 /// them).
 pub fn queued(
     route: &Route,
@@ -63,7 +63,7 @@ pub fn queued(
             log_odds: scored.log_odds,
             adjusted_log_odds: scored.adjusted_log_odds,
             probability: scored.probability,
-            entity_key: std::mem::take(&mut row.entity_key),
+            subject_key: std::mem::take(&mut row.subject_key),
             tags: std::mem::take(&mut row.tags).into_iter().collect(),
             served: crate::store::Served {
                 prior: Some(prior),
@@ -119,14 +119,14 @@ fn result(index: usize, id: String, r: OutcomeResult) -> pb::OutcomeResult {
 /// stalled disk can pile up. Calls beyond it wait for a slot within their deadline.
 pub const STORE_CALLS_IN_FLIGHT: usize = 4;
 
-/// Runs `f` on the log's thread for calls ([`PredictionLog::on_thread`]), off the async runtime, holding one of
+/// Runs `f` on the log's thread for calls ([`PredictionStore::on_thread`]), off the async runtime, holding one of
 /// the [`STORE_CALLS_IN_FLIGHT`] slots until it ends.
 async fn on_store<T: Send + 'static>(
     slots: &Arc<tokio::sync::Semaphore>,
-    log: Arc<PredictionLog>,
-    f: impl FnOnce(&PredictionLog) -> Result<T, crate::store::StoreError> + Send + 'static,
+    log: Arc<PredictionStore>,
+    f: impl FnOnce(&PredictionStore) -> Result<T, crate::store::StoreError> + Send + 'static,
 ) -> Result<T, ServeError> {
-    let closed = || ServeError::Log(crate::store::StoreError::Closed);
+    let closed = || ServeError::Store(crate::store::StoreError::Closed);
     let slot = Arc::clone(slots)
         .acquire_owned()
         .await
@@ -144,7 +144,7 @@ async fn on_store<T: Send + 'static>(
 /// Records outcomes off the async runtime.
 async fn record(
     slots: &Arc<tokio::sync::Semaphore>,
-    log: Arc<PredictionLog>,
+    log: Arc<PredictionStore>,
     inputs: Vec<OutcomeInput>,
 ) -> Result<Vec<OutcomeResult>, ServeError> {
     on_store(slots, log, move |log| log.record_outcomes(&inputs)).await
@@ -231,7 +231,7 @@ fn filter_of(request: pb::ReportRequest) -> ReportFilter {
 
 /// The `probity.v1.Outcomes` service.
 pub struct OutcomesApi {
-    log: Option<Arc<PredictionLog>>,
+    log: Option<Arc<PredictionStore>>,
     /// The [`STORE_CALLS_IN_FLIGHT`] slots.
     slots: Arc<tokio::sync::Semaphore>,
     /// The live routes, for the configured target base rates a report is set against.
@@ -240,7 +240,7 @@ pub struct OutcomesApi {
 
 impl OutcomesApi {
     /// The service over the log (calls fail with FAILED_PRECONDITION when the log is off).
-    pub fn new(log: Option<Arc<PredictionLog>>) -> OutcomesApi {
+    pub fn new(log: Option<Arc<PredictionStore>>) -> OutcomesApi {
         OutcomesApi {
             log,
             slots: Arc::new(tokio::sync::Semaphore::new(STORE_CALLS_IN_FLIGHT)),
@@ -264,8 +264,8 @@ impl OutcomesApi {
         })
     }
 
-    fn log(&self) -> Result<Arc<PredictionLog>, ServeError> {
-        self.log.clone().ok_or(ServeError::LogDisabled)
+    fn store(&self) -> Result<Arc<PredictionStore>, ServeError> {
+        self.log.clone().ok_or(ServeError::StoreOff)
     }
 }
 
@@ -291,7 +291,7 @@ impl pb::outcomes_server::Outcomes for OutcomesApi {
         let started = Instant::now();
         let outcomes = request.into_inner().outcomes;
         let result = async {
-            let log = self.log()?;
+            let log = self.store()?;
             if outcomes.len() > MAX_OUTCOMES_PER_CALL {
                 return Err(ServeError::invalid(
                     "outcomes",
@@ -324,7 +324,7 @@ impl pb::outcomes_server::Outcomes for OutcomesApi {
         &self,
         request: Request<Streaming<pb::Outcome>>,
     ) -> Result<Response<Self::RecordOutcomeStreamStream>, Status> {
-        let log = self.log().map_err(Status::from)?;
+        let log = self.store().map_err(Status::from)?;
         let slots = Arc::clone(&self.slots);
         let mut inbound = request.into_inner();
         let (tx, rx) = tokio::sync::mpsc::channel(STREAM_CHUNK);
@@ -405,7 +405,7 @@ impl pb::outcomes_server::Outcomes for OutcomesApi {
         let configured = self.configured_base_rates();
         let result = async {
             checked?;
-            let log = self.log()?;
+            let log = self.store()?;
             let report = on_store(&self.slots, log, move |log| {
                 log.with_store(|store| report::build_with(store, &filter, &configured))
             })
@@ -428,9 +428,9 @@ async fn futures_now(
     }
 }
 
-/// Applies maturity, the outcome hold and retention every `log.sweep_interval`, first at start (so a restart picks
+/// Applies maturity, the outcome hold and retention every `store.sweep_interval`, first at start (so a restart picks
 /// up where the last run stopped: the sweep works from what the log holds).
-pub fn sweep_task(log: Arc<PredictionLog>) -> tokio::task::JoinHandle<()> {
+pub fn sweep_task(log: Arc<PredictionStore>) -> tokio::task::JoinHandle<()> {
     tokio::spawn(async move {
         let mut tick = tokio::time::interval(log.config().sweep_interval);
         tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
@@ -440,7 +440,7 @@ pub fn sweep_task(log: Arc<PredictionLog>) -> tokio::task::JoinHandle<()> {
             match tokio::task::spawn_blocking(move || l.sweep()).await {
                 Ok(Ok((matured, unmatched, removed))) => {
                     if matured + unmatched as usize + removed as usize > 0 {
-                        tracing::info!(matured, unmatched, removed, "prediction log swept");
+                        tracing::info!(matured, unmatched, removed, "prediction store swept");
                     }
                 }
                 // Counted and logged (once per kind) by the log itself.

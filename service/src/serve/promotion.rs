@@ -3,10 +3,10 @@
 //! Requests read the table through one atomic pointer ([`arc_swap::ArcSwap`]): a request sees either the table
 //! before a promotion or the one after, never a mixture, and promotions are serialized by a lock. A promotion swaps
 //! the two models' places: the challenger becomes the champion and the old champion takes the challenger's place
-//! (same mode and fraction), so the comparison goes on and can be undone by promoting back.
+//! (same mode and share), so the comparison goes on and can be undone by promoting back.
 //!
 //! Every promotion is a [`RouteChange`] (time, route, both models, who asked and from where, the reason). With the
-//! prediction log on, changes are appended as JSON lines to `route_history.jsonl` in the log directory, flushed
+//! prediction store on, changes are appended as JSON lines to `route_history.jsonl` in the log directory, flushed
 //! before the call returns, and replayed at start, so a promotion survives a restart; a recorded change that no
 //! longer fits the configuration (the models were renamed) is skipped with a warning. To make a promotion
 //! permanent, write it into the configuration file.
@@ -98,11 +98,11 @@ pub fn swapped(route: &Route, challenger: &str) -> Result<Route, PromotionError>
         model: route.model.clone(),
         mode: list[position].mode,
     };
-    let plan = probity_models::compare::SplitPlan::new(list.iter().filter_map(|c| match c.mode {
-        ChallengerMode::Split { fraction, .. } => Some((c.model.clone(), fraction)),
-        ChallengerMode::Mirror => None,
+    let plan = probity_models::compare::SharePlan::new(list.iter().filter_map(|c| match c.mode {
+        ChallengerMode::Live { share, .. } => Some((c.model.clone(), share)),
+        ChallengerMode::Silent => None,
     }))
-    // The fractions are the validated ones, only the names moved.
+    // The shares are the validated ones, only the names moved.
     .unwrap_or_else(|_| route.challengers.plan.clone());
     Ok(Route {
         model: challenger.to_string(),
@@ -269,8 +269,8 @@ mod tests {
         let path = dir.path().join("p.toml");
         std::fs::write(
             &path,
-            "[server]\nplaintext = \"loopback\"\n[routes.fraud]\nmodel = \"a\"\n[[routes.fraud.challengers]]\nmodel = \"b\"\nmode = \"split\"\n\
-             fraction = 0.2\nmirror_back = true\n[[routes.fraud.challengers]]\nmodel = \"c\"\nmode = \"mirror\"\n",
+            "[server]\nplaintext = \"loopback\"\n[routes.fraud]\nmodel = \"a\"\n[[routes.fraud.challengers]]\nmodel = \"b\"\nmode = \"live\"\n\
+             share = 0.2\npaired = true\n[[routes.fraud.challengers]]\nmodel = \"c\"\nmode = \"silent\"\n",
         )
         .unwrap();
         Config::load(&Sources {

@@ -19,9 +19,9 @@ use crate::serve::metrics;
 use crate::serve::promotion::{RouteMap, RouteTable};
 use crate::serve::proto as pb;
 use crate::serve::registry::{LoadedModel, Registry};
-use crate::serve::shadow::{Answered, Shadow, ShadowJob};
+use crate::serve::silent::{Answered, Silent, SilentJob};
 use crate::store::writer::{Queued, Receipt};
-use crate::store::PredictionLog;
+use crate::store::PredictionStore;
 
 /// Rows scored between two deadline checks in a batch.
 const CHUNK_ROWS: usize = 256;
@@ -31,9 +31,9 @@ const CHUNK_ROWS: usize = 256;
 pub struct PreparedRow {
     /// The caller's id, or a server-made UUID version 7.
     pub prediction_id: String,
-    /// The caller's entity key (may be empty), kept in the prediction log.
-    pub entity_key: String,
-    /// The caller's tags, kept in the prediction log.
+    /// The caller's subject key (may be empty), kept in the prediction store.
+    pub subject_key: String,
+    /// The caller's tags, kept in the prediction store.
     pub tags: std::collections::HashMap<String, String>,
     /// The dense row in the model's feature order.
     pub values: Vec<f64>,
@@ -78,7 +78,7 @@ impl WarningKind {
 }
 
 /// An answer, and on a route with `record = "before-answer"` the receipt to wait for before sending it
-/// ([`PredictionLog::record`]).
+/// ([`PredictionStore::record`]).
 pub struct Pending<T> {
     /// The answer.
     pub answer: T,
@@ -93,8 +93,8 @@ pub struct Scorer {
     registry: Arc<Registry>,
     routes: Arc<RouteTable>,
     limits: Limits,
-    log: Option<Arc<PredictionLog>>,
-    shadow: Option<Shadow>,
+    log: Option<Arc<PredictionStore>>,
+    silent: Option<Silent>,
 }
 
 impl Scorer {
@@ -105,14 +105,14 @@ impl Scorer {
             routes: Arc::new(RouteTable::new(routes)),
             limits,
             log: None,
-            shadow: None,
+            silent: None,
         }
     }
 
-    /// The same scorer, also scoring requests in the background with the models that did not answer them
-    /// (mirrored challengers, and the other side of a split with `mirror_back`); see [`crate::serve::shadow`].
-    /// Call after [`Scorer::with_log`]. Without any challenger configured, no worker is started.
-    pub fn with_shadow(mut self) -> Scorer {
+    /// The same scorer, also scoring requests silently with the models that did not answer them
+    /// (silent challengers, and the other side of a live challenger with `paired`); see [`crate::serve::silent`].
+    /// Call after [`Scorer::with_store`]. Without any challenger configured, no worker is started.
+    pub fn with_silent(mut self) -> Scorer {
         if self
             .routes
             .load()
@@ -121,30 +121,30 @@ impl Scorer {
         {
             return self;
         }
-        match Shadow::start(
+        match Silent::start(
             Arc::clone(&self.registry),
             Arc::clone(&self.routes),
             self.log.clone(),
         ) {
-            Ok(shadow) => self.shadow = Some(shadow),
+            Ok(silent) => self.silent = Some(silent),
             Err(error) => {
-                tracing::error!(%error, "cannot start the background scoring thread; challengers are not mirrored")
+                tracing::error!(%error, "cannot start the background scoring thread; silent challengers are not scored")
             }
         }
         self
     }
 
     /// The models that score in the background when `answered` answers on `config`'s route.
-    fn shadows(&self, config: &Route, answered: &str) -> Vec<Answer> {
-        if self.shadow.is_none() {
+    fn silent_models(&self, config: &Route, answered: &str) -> Vec<Answer> {
+        if self.silent.is_none() {
             return Vec::new();
         }
-        config.challengers.shadows(&config.model, answered)
+        config.challengers.silent(&config.model, answered)
     }
 
     fn submit(&self, config: &Route, models: Vec<Answer>, rows: Vec<Answered>) {
-        if let Some(shadow) = &self.shadow {
-            shadow.submit(ShadowJob {
+        if let Some(silent) = &self.silent {
+            silent.submit(SilentJob {
                 route: config.name.clone(),
                 models,
                 rows,
@@ -152,19 +152,19 @@ impl Scorer {
         }
     }
 
-    /// The same scorer, also queueing every answer to the prediction log.
-    pub fn with_log(mut self, log: Option<Arc<PredictionLog>>) -> Scorer {
+    /// The same scorer, also queueing every answer to the prediction store.
+    pub fn with_store(mut self, log: Option<Arc<PredictionStore>>) -> Scorer {
         self.log = log;
         self
     }
 
-    /// The prediction log, when it is on.
-    pub fn log(&self) -> Option<&Arc<PredictionLog>> {
+    /// The prediction store, when it is on.
+    pub fn store(&self) -> Option<&Arc<PredictionStore>> {
         self.log.as_ref()
     }
 
-    /// The same scorer, recording promotions in `dir` (the prediction log's directory) and replaying the ones
-    /// recorded there; call before [`Scorer::with_shadow`].
+    /// The same scorer, recording promotions in `dir` (the prediction store's directory) and replaying the ones
+    /// recorded there; call before [`Scorer::with_silent`].
     pub fn with_route_history(mut self, dir: Option<&std::path::Path>) -> Scorer {
         if let (Some(dir), Some(table)) = (dir, Arc::get_mut(&mut self.routes)) {
             table.load_history(dir);
@@ -260,14 +260,14 @@ impl Scorer {
         let row = row.ok_or_else(|| ServeError::invalid("row", "is required"))?;
         let answer = config
             .challengers
-            .answer(&config.name, &config.model, &row.entity_key);
-        // A split challenger that is not loaded leaves its entities with the champion.
+            .answer(&config.name, &config.model, &row.subject_key);
+        // A live challenger that is not loaded leaves its subjects with the champion.
         let (loaded, role) = match self.registry.snapshot().models.get(&answer.model) {
             Some(model) if answer.role == "challenger" => (Arc::clone(model), "challenger"),
             _ => (champion, "champion"),
         };
-        let shadows = self.shadows(config, loaded.model.name());
-        let kept = (!shadows.is_empty()).then(|| row.clone());
+        let silent_models = self.silent_models(config, loaded.model.name());
+        let kept = (!silent_models.is_empty()).then(|| row.clone());
         let level = explain::level(explain, "explain")?;
         let prepared = prepare_row(row, "row", loaded.model.schema(), config)?;
         let scored = loaded
@@ -297,7 +297,7 @@ impl Scorer {
                 adjusted_log_odds: response.adjusted_log_odds,
                 decision: response.decision.clone(),
             };
-            self.submit(config, shadows, vec![answered]);
+            self.submit(config, silent_models, vec![answered]);
         }
         Ok(self.pending(config, response, held))
     }
@@ -333,8 +333,8 @@ impl Scorer {
                 ),
             ));
         }
-        let shadows = self.shadows(config, loaded.model.name());
-        let kept = (!shadows.is_empty()).then(|| rows.clone());
+        let silent_models = self.silent_models(config, loaded.model.name());
+        let kept = (!silent_models.is_empty()).then(|| rows.clone());
         let schema = loaded.model.schema();
         let total = rows.len();
         let prepared = rows
@@ -416,7 +416,7 @@ impl Scorer {
                     }
                 })
                 .collect();
-            self.submit(config, shadows, answered);
+            self.submit(config, silent_models, answered);
         }
         Ok(self.pending(config, pb::ScoreBatchResponse { results }, held))
     }

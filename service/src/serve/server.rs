@@ -28,7 +28,7 @@ use crate::serve::scoring::Scorer;
 use crate::serve::security::config::ClientCertificates;
 use crate::serve::security::layer::AccessLayer;
 use crate::serve::security::Security;
-use crate::store::{Clock, PredictionLog, SqliteStore, Store};
+use crate::store::{Clock, PredictionStore, SqliteStore, Store};
 
 /// Why the server did not start.
 #[derive(Debug, thiserror::Error)]
@@ -49,19 +49,19 @@ pub enum StartError {
         /// The error.
         source: std::io::Error,
     },
-    /// The prediction log could not be opened.
-    #[error("log.directory: {0}")]
+    /// The prediction store could not be opened.
+    #[error("store.directory: {0}")]
     Log(crate::store::StoreError),
-    /// The shared prediction log (PostgreSQL) could not be opened: no URL, the database unreachable, or its
+    /// The shared prediction store (PostgreSQL) could not be opened: no URL, the database unreachable, or its
     /// schema newer than this build. The message never holds the password.
-    #[error("log.backend = \"postgres\": {0}")]
-    SharedLog(String),
-    /// The prediction log's directory cannot be written (read-only file system, permissions).
+    #[error("store.backend = \"postgres\": {0}")]
+    SharedStore(String),
+    /// The prediction store's directory cannot be written (read-only file system, permissions).
     #[error(
-        "log.directory: {0}; the server does not start without the log it is configured to keep: make the \
-         directory writable, or leave out log.directory to run without a log"
+        "store.directory: {0}; the server does not start without the prediction store it is configured to keep: make \
+         the directory writable, or leave out store.directory to run without one"
     )]
-    LogNotWritable(crate::store::StoreError),
+    StoreNotWritable(crate::store::StoreError),
     /// The reflection service could not be built.
     #[error("reflection: {0}")]
     Reflection(String),
@@ -157,7 +157,7 @@ pub struct RunningServer {
     watcher: Option<notify::RecommendedWatcher>,
     grace: Duration,
     reloader: Arc<Reloader>,
-    log: Option<Arc<PredictionLog>>,
+    log: Option<Arc<PredictionStore>>,
 }
 
 impl RunningServer {
@@ -181,8 +181,8 @@ impl RunningServer {
         &self.reloader.security
     }
 
-    /// The prediction log, when it is on.
-    pub fn log(&self) -> Option<&Arc<PredictionLog>> {
+    /// The prediction store, when it is on.
+    pub fn store(&self) -> Option<&Arc<PredictionStore>> {
         self.log.as_ref()
     }
 
@@ -227,29 +227,29 @@ impl RunningServer {
                 .await
                 .is_err()
             {
-                tracing::error!("prediction log writer did not stop cleanly");
+                tracing::error!("prediction store writer did not stop cleanly");
             }
         }
     }
 }
 
-/// Opens the PostgreSQL prediction log on a thread of its own (the blocking client runs its own small runtime, which
+/// Opens the PostgreSQL prediction store on a thread of its own (the blocking client runs its own small runtime, which
 /// cannot start inside this one). An unreachable database stops the start with an error that says so: a server
-/// configured to keep a shared log does not serve without it, and the process supervisor restarts it.
+/// configured to keep a shared store does not serve without it, and the process supervisor restarts it.
 async fn open_shared(
-    log: &crate::store::LogConfig,
+    config: &crate::store::StoreConfig,
 ) -> Result<crate::store::postgres::PgStore, StartError> {
     use crate::store::postgres::{ConnectionUrl, PgStore};
-    let url =
-        ConnectionUrl::load(log.postgres_url_file.as_deref()).map_err(StartError::SharedLog)?;
+    let url = ConnectionUrl::load(config.postgres_url_file.as_deref())
+        .map_err(StartError::SharedStore)?;
     let target = url.describe();
-    let ca = log.postgres_ca_file.clone();
+    let ca = config.postgres_ca_file.clone();
     let now = Clock::system().now_ms();
     let store = tokio::task::spawn_blocking(move || PgStore::open(url, ca.as_deref(), now))
         .await
-        .map_err(|e| StartError::SharedLog(format!("opening thread failed: {e}")))?
-        .map_err(|e| StartError::SharedLog(format!("{target}: {e}")))?;
-    tracing::info!(database = %target, "prediction log open (PostgreSQL)");
+        .map_err(|e| StartError::SharedStore(format!("opening thread failed: {e}")))?
+        .map_err(|e| StartError::SharedStore(format!("{target}: {e}")))?;
+    tracing::info!(database = %target, "prediction store open (PostgreSQL)");
     Ok(store)
 }
 
@@ -258,8 +258,8 @@ pub async fn start(config: Config) -> Result<RunningServer, StartError> {
     start_inner(config, None).await
 }
 
-/// [`start`] with the prediction log kept in `store` instead of the SQLite file under `log.directory` (the other
-/// `[log]` keys apply; `log.directory`, if given, still holds the route history). For another [`Store`]
+/// [`start`] with the prediction store kept in `store` instead of the SQLite file under `store.directory` (the other
+/// `[store]` keys apply; `store.directory`, if given, still holds the route history). For another [`Store`]
 /// implementation, and for tests that need a store which fails or stalls on purpose.
 pub async fn start_with_store(
     config: Config,
@@ -285,7 +285,7 @@ async fn start_inner(
         watch_debounce,
         limits,
         logging: _,
-        log: log_config,
+        store: store_config,
         routes,
         base_rate_from_estimate,
     } = config;
@@ -313,32 +313,32 @@ async fn start_inner(
         tracing::error!(%route, "route not ready at start: its model is not loaded");
     }
 
-    let log = match (store, &log_config.directory) {
-        (Some(store), _) => Some(PredictionLog::start(
+    let log = match (store, &store_config.directory) {
+        (Some(store), _) => Some(PredictionStore::start(
             store,
-            log_config.clone(),
+            store_config.clone(),
             Clock::system(),
         )),
-        (None, _) if log_config.backend == crate::store::config::Backend::Postgres => {
-            let store = open_shared(&log_config).await?;
-            Some(PredictionLog::start(
+        (None, _) if store_config.backend == crate::store::config::Backend::Postgres => {
+            let store = open_shared(&store_config).await?;
+            Some(PredictionStore::start(
                 Box::new(store),
-                log_config.clone(),
+                store_config.clone(),
                 Clock::system(),
             ))
         }
         (None, Some(dir)) => {
             let store =
-                SqliteStore::open(dir, log_config.durability).map_err(|error| match error {
+                SqliteStore::open(dir, store_config.durability).map_err(|error| match error {
                     crate::store::StoreError::NotWritable { .. } => {
-                        StartError::LogNotWritable(error)
+                        StartError::StoreNotWritable(error)
                     }
                     other => StartError::Log(other),
                 })?;
-            tracing::info!(dir = %dir.display(), durability = log_config.durability.as_str(), "prediction log open");
-            Some(PredictionLog::start(
+            tracing::info!(dir = %dir.display(), durability = store_config.durability.as_str(), "prediction store open");
+            Some(PredictionStore::start(
                 Box::new(store),
-                log_config.clone(),
+                store_config.clone(),
                 Clock::system(),
             ))
         }
@@ -347,9 +347,9 @@ async fn start_inner(
     crate::serve::base_rate::publish_configured(&routes);
     let scorer = Arc::new(
         Scorer::new(Arc::clone(&registry), routes, limits)
-            .with_log(log.clone())
-            .with_route_history(log_config.directory.as_deref())
-            .with_shadow(),
+            .with_store(log.clone())
+            .with_route_history(store_config.directory.as_deref())
+            .with_silent(),
     );
     let challengers = pb::challengers_server::ChallengersServer::new(
         crate::serve::challengers_api::ChallengersApi::new(Arc::clone(&scorer)),
@@ -465,12 +465,12 @@ async fn start_inner(
         }
         background.push(crate::serve::calibration_metrics::task(
             Arc::clone(&scorer),
-            log_config.sweep_interval,
+            store_config.sweep_interval,
         ));
         if scorer.routes().values().any(|r| !r.challengers.is_empty()) {
             background.push(crate::serve::compare_metrics::task(
                 Arc::clone(&scorer),
-                log_config.sweep_interval,
+                store_config.sweep_interval,
             ));
         }
     }

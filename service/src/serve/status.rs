@@ -21,7 +21,7 @@ impl From<ServeError> for Status {
                 tracing::error!(%field, error = %eval, "engine refused a row the service had checked");
                 format!("{field}: internal error while scoring")
             }
-            ServeError::Log(store)
+            ServeError::Store(store)
                 if store.write_failure() != crate::store::WriteFailure::Other =>
             {
                 // Logged once per kind by the log's failure count (store::faults), not once per call.
@@ -30,20 +30,20 @@ impl From<ServeError> for Status {
                     _ => "its directory is read-only",
                 };
                 format!(
-                    "the prediction log cannot be written now ({why}); nothing of this call was recorded, send it \
+                    "the prediction store cannot be written now ({why}); nothing of this call was recorded, send it \
                      again later"
                 )
             }
-            ServeError::Log(store) if code == Code::Internal => {
-                tracing::error!(error = %store, "prediction log failed");
-                "the prediction log failed; the server log has the details".to_string()
+            ServeError::Store(store) if code == Code::Internal => {
+                tracing::error!(error = %store, "prediction store failed");
+                "the prediction store failed; the server log has the details".to_string()
             }
             ServeError::Promotion(PromotionError::History { file, error: io }) => {
                 tracing::error!(%file, error = %io, "route history not written; promotion refused");
                 "the promotion could not be recorded, so it was not made; the server log has the details"
                     .to_string()
             }
-            ServeError::Log(_) | ServeError::LogDisabled => error.to_string(),
+            ServeError::Store(_) | ServeError::StoreOff => error.to_string(),
             ServeError::Unauthenticated { .. }
             | ServeError::PermissionDenied { .. }
             | ServeError::UnknownMethod
@@ -87,8 +87,8 @@ pub fn code_of(error: &ServeError) -> Code {
             rows: _,
         } => Code::DeadlineExceeded,
         ServeError::ModelDirectory { dir: _, error: _ } => Code::FailedPrecondition,
-        ServeError::LogDisabled => Code::FailedPrecondition,
-        ServeError::Log(error) => log_code(error),
+        ServeError::StoreOff => Code::FailedPrecondition,
+        ServeError::Store(error) => log_code(error),
         // Retryable: the store may take it a moment later (or on another replica).
         ServeError::NotRecorded(_) => Code::Unavailable,
         ServeError::RecordDeadline => Code::DeadlineExceeded,
@@ -111,7 +111,7 @@ pub fn code_of(error: &ServeError) -> Code {
     }
 }
 
-/// Prediction log errors: a log that is shutting down is unavailable; a full disk is RESOURCE_EXHAUSTED and a
+/// Prediction store errors: a log that is shutting down is unavailable; a full disk is RESOURCE_EXHAUSTED and a
 /// read-only one UNAVAILABLE (both retryable once the operator has made room or remounted; the gRPC status code
 /// list, grpc/doc/statuscodes.md, names "the entire file system is out of space" under RESOURCE_EXHAUSTED);
 /// anything else is ours.

@@ -1,15 +1,15 @@
-//! The `[log]` section of the server configuration: where the prediction log lives and how it is written, swept
-//! and monitored. With the SQLite backend (the default) and without `log.directory` the log is off and nothing
+//! The `[store]` section of the server configuration: where the prediction store lives and how it is written, swept
+//! and monitored. With the SQLite backend (the default) and without `store.directory` the log is off and nothing
 //! is written; the PostgreSQL backend is always on.
 //!
 //! ```toml
-//! [log]
+//! [store]
 //! backend = "sqlite"               # or "postgres": one database shared by every replica (DEVELOPERS.md)
-//! postgres_url_file = "/run/secrets/probity-log-url"  # postgres: file holding the connection URL; without it
-//!                                  # the URL is read from PROBITY_LOG_POSTGRES_URL
+//! postgres_url_file = "/run/secrets/probity-store-url"  # postgres: file holding the connection URL; without it
+//!                                  # the URL is read from PROBITY_STORE_POSTGRES_URL
 //! postgres_ca_file = "/etc/probity/db-ca.pem"  # postgres: CA certificates for TLS (`?sslmode=require`)
 //! directory = "/var/lib/probity"   # sqlite: predictions.db goes here; both: the route history
-//! durability = "normal"            # or "full" (see DEVELOPERS.md, "Prediction log")
+//! durability = "normal"            # or "full" (see DEVELOPERS.md, "Prediction store")
 //! queue_size = 65536               # predictions waiting for the writer; when full, new ones are dropped and counted
 //! batch_size = 1000                # most predictions per transaction
 //! flush_interval = "200ms"         # longest a prediction waits in the queue
@@ -18,7 +18,7 @@
 //! sweep_interval = "60s"           # how often maturity, hold and retention are applied
 //! psi_window = 10000               # recent predictions per route/model/version in the PSI gauge
 //! prior_window = 10000             # recent predictions per route in the base-rate estimate
-//! [log.maturity]                   # per route; off unless given
+//! [store.maturity]                   # per route; off unless given
 //! fraud = "90d"
 //! ```
 
@@ -33,7 +33,7 @@ use super::sqlite::Durability;
 /// The section as written.
 #[derive(Debug, Deserialize)]
 #[serde(deny_unknown_fields, default)]
-pub struct RawLog {
+pub struct RawStore {
     backend: Backend,
     postgres_url_file: Option<PathBuf>,
     postgres_ca_file: Option<PathBuf>,
@@ -50,9 +50,9 @@ pub struct RawLog {
     maturity: BTreeMap<String, String>,
 }
 
-impl Default for RawLog {
+impl Default for RawStore {
     fn default() -> Self {
-        RawLog {
+        RawStore {
             backend: Backend::Sqlite,
             postgres_url_file: None,
             postgres_ca_file: None,
@@ -71,11 +71,11 @@ impl Default for RawLog {
     }
 }
 
-/// Where the prediction log is kept.
+/// Where the prediction store is kept.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Deserialize)]
 #[serde(rename_all = "lowercase")]
 pub enum Backend {
-    /// One SQLite file under `log.directory` per replica.
+    /// One SQLite file under `store.directory` per replica.
     #[default]
     Sqlite,
     /// One PostgreSQL database shared by every replica.
@@ -84,10 +84,10 @@ pub enum Backend {
 
 /// The validated section.
 #[derive(Debug, Clone, PartialEq)]
-pub struct LogConfig {
+pub struct StoreConfig {
     /// Where the log is kept.
     pub backend: Backend,
-    /// PostgreSQL: the file holding the connection URL (else `PROBITY_LOG_POSTGRES_URL`).
+    /// PostgreSQL: the file holding the connection URL (else `PROBITY_STORE_POSTGRES_URL`).
     pub postgres_url_file: Option<PathBuf>,
     /// PostgreSQL: CA certificates for TLS to the database.
     pub postgres_ca_file: Option<PathBuf>,
@@ -115,10 +115,10 @@ pub struct LogConfig {
     pub maturity: BTreeMap<String, Duration>,
 }
 
-impl Default for LogConfig {
+impl Default for StoreConfig {
     fn default() -> Self {
         // The raw defaults always validate.
-        LogConfig::from_raw(RawLog::default(), &BTreeSet::new()).unwrap_or(LogConfig {
+        StoreConfig::from_raw(RawStore::default(), &BTreeSet::new()).unwrap_or(StoreConfig {
             backend: Backend::Sqlite,
             postgres_url_file: None,
             postgres_ca_file: None,
@@ -181,15 +181,15 @@ fn duration(key: &str, text: &str, min: Duration) -> Result<Duration, KeyError> 
     }
 }
 
-impl LogConfig {
-    /// Whether a prediction log is kept at all.
+impl StoreConfig {
+    /// Whether a prediction store is kept at all.
     pub fn enabled(&self) -> bool {
         self.backend == Backend::Postgres || self.directory.is_some()
     }
 
     /// Validates the section; maturity keys must be configured routes.
-    pub fn from_raw(raw: RawLog, routes: &BTreeSet<String>) -> Result<LogConfig, KeyError> {
-        let RawLog {
+    pub fn from_raw(raw: RawStore, routes: &BTreeSet<String>) -> Result<StoreConfig, KeyError> {
+        let RawStore {
             backend,
             postgres_url_file,
             postgres_ca_file,
@@ -207,7 +207,7 @@ impl LogConfig {
         } = raw;
         if directory.as_ref().is_some_and(|d| d.as_os_str().is_empty()) {
             return Err((
-                "log.directory".into(),
+                "store.directory".into(),
                 "must not be empty (leave it out to turn the log off)".into(),
             ));
         }
@@ -216,41 +216,41 @@ impl LogConfig {
             "full" => Durability::Full,
             other => {
                 return Err((
-                    "log.durability".into(),
+                    "store.durability".into(),
                     format!("must be `normal` or `full`, got `{other}`"),
                 ))
             }
         };
         let mut by_route = BTreeMap::new();
         for (route, text) in maturity {
-            let key = format!("log.maturity.{route}");
+            let key = format!("store.maturity.{route}");
             if !routes.contains(&route) {
                 return Err((key, "is not a configured route".into()));
             }
             by_route.insert(route, duration(&key, &text, Duration::from_millis(1))?);
         }
-        Ok(LogConfig {
+        Ok(StoreConfig {
             backend,
             postgres_url_file,
             postgres_ca_file,
             directory,
             durability,
-            queue_size: range("log.queue_size", queue_size, 1, 100_000_000)?,
-            batch_size: range("log.batch_size", batch_size, 1, 1_000_000)?,
+            queue_size: range("store.queue_size", queue_size, 1, 100_000_000)?,
+            batch_size: range("store.batch_size", batch_size, 1, 1_000_000)?,
             flush_interval: duration(
-                "log.flush_interval",
+                "store.flush_interval",
                 &flush_interval,
                 Duration::from_millis(1),
             )?,
-            outcome_hold: duration("log.outcome_hold", &outcome_hold, Duration::ZERO)?,
-            retention: duration("log.retention", &retention, Duration::from_secs(1))?,
+            outcome_hold: duration("store.outcome_hold", &outcome_hold, Duration::ZERO)?,
+            retention: duration("store.retention", &retention, Duration::from_secs(1))?,
             sweep_interval: duration(
-                "log.sweep_interval",
+                "store.sweep_interval",
                 &sweep_interval,
                 Duration::from_millis(10),
             )?,
-            psi_window: range("log.psi_window", psi_window, 1, 10_000_000)?,
-            prior_window: range("log.prior_window", prior_window, 1, 10_000_000)?,
+            psi_window: range("store.psi_window", psi_window, 1, 10_000_000)?,
+            prior_window: range("store.prior_window", prior_window, 1, 10_000_000)?,
             maturity: by_route,
         })
     }
@@ -270,32 +270,32 @@ mod tests {
         assert_eq!(parse_duration("5"), None);
         assert_eq!(parse_duration("d"), None);
         let routes: BTreeSet<String> = ["fraud".to_string()].into();
-        let raw = RawLog {
+        let raw = RawStore {
             maturity: [("credit".to_string(), "1d".to_string())].into(),
-            ..RawLog::default()
+            ..RawStore::default()
         };
-        let (key, _) = LogConfig::from_raw(raw, &routes).unwrap_err();
-        assert_eq!(key, "log.maturity.credit");
-        let raw = RawLog {
+        let (key, _) = StoreConfig::from_raw(raw, &routes).unwrap_err();
+        assert_eq!(key, "store.maturity.credit");
+        let raw = RawStore {
             durability: "sometimes".into(),
-            ..RawLog::default()
+            ..RawStore::default()
         };
         assert_eq!(
-            LogConfig::from_raw(raw, &routes).unwrap_err().0,
-            "log.durability"
+            StoreConfig::from_raw(raw, &routes).unwrap_err().0,
+            "store.durability"
         );
-        assert_eq!(LogConfig::default().maturity.len(), 0);
+        assert_eq!(StoreConfig::default().maturity.len(), 0);
     }
 
     #[test]
     fn backend_words() {
-        let parse = |text: &str| toml::from_str::<RawLog>(text);
+        let parse = |text: &str| toml::from_str::<RawStore>(text);
         let raw = parse("backend = \"postgres\"\npostgres_url_file = \"/run/url\"").unwrap();
-        let cfg = LogConfig::from_raw(raw, &BTreeSet::new()).unwrap();
+        let cfg = StoreConfig::from_raw(raw, &BTreeSet::new()).unwrap();
         assert_eq!(cfg.backend, Backend::Postgres);
         assert!(cfg.enabled(), "the shared log needs no directory");
         assert_eq!(cfg.postgres_url_file, Some(PathBuf::from("/run/url")));
-        let cfg = LogConfig::from_raw(parse("").unwrap(), &BTreeSet::new()).unwrap();
+        let cfg = StoreConfig::from_raw(parse("").unwrap(), &BTreeSet::new()).unwrap();
         assert_eq!(cfg.backend, Backend::Sqlite);
         assert!(!cfg.enabled());
         let error = parse("backend = \"mysql\"").unwrap_err().to_string();

@@ -1,12 +1,12 @@
-//! Write failures of the prediction log (a full disk, a read-only file system, any other I/O or database error):
+//! Write failures of the prediction store (a full disk, a read-only file system, any other I/O or database error):
 //! each one counted, and logged once per kind instead of once per batch or call.
 //!
-//! Every failed write adds one to `probity_log_write_failures_total{operation, reason}` and sets
-//! `probity_log_write_failing{operation}` to 1. The first failure of each reason in a run of failures of one
+//! Every failed write adds one to `probity_store_write_failures_total{operation, reason}` and sets
+//! `probity_store_write_failing{operation}` to 1. The first failure of each reason in a run of failures of one
 //! operation is logged at error level with the error text; the rest of the run is only counted. The first success
 //! after a run sets the gauge back to 0 and logs one line saying how many writes failed. So a disk that stays full
 //! for an hour gives one error line and one recovery line per operation, not one line per batch. What the failed
-//! writes carried is counted where it is lost: predictions in `probity_log_predictions_dropped_total{reason}`
+//! writes carried is counted where it is lost: predictions in `probity_store_predictions_dropped_total{reason}`
 //! (the same reason), outcomes as the call's error status.
 
 use std::collections::{BTreeMap, BTreeSet};
@@ -16,9 +16,9 @@ use std::time::Instant;
 use super::{StoreError, WriteFailure};
 
 /// Failed writes, by operation and reason.
-pub const WRITE_FAILURES: &str = "probity_log_write_failures_total";
+pub const WRITE_FAILURES: &str = "probity_store_write_failures_total";
 /// 1 while an operation's last write failed, 0 after a success.
-pub const FAILING: &str = "probity_log_write_failing";
+pub const FAILING: &str = "probity_store_write_failing";
 
 /// What the failed write was doing (the `operation` label).
 #[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash)]
@@ -71,11 +71,11 @@ impl Failures {
     pub fn describe() {
         metrics::describe_counter!(
             WRITE_FAILURES,
-            "Failed writes to the prediction log, by operation and reason (disk_full, read_only, write_error)."
+            "Failed writes to the prediction store, by operation and reason (disk_full, read_only, write_error)."
         );
         metrics::describe_gauge!(
             FAILING,
-            "1 while the last write of an operation to the prediction log failed."
+            "1 while the last write of an operation to the prediction store failed."
         );
         // Every operation's gauge exists from the start at 0, so an alert on it (deploy/prometheus) sees the series
         // before the first failure, and a missing series means a missing log rather than a healthy one.
@@ -102,7 +102,7 @@ impl Failures {
                 operation = operation.as_str(),
                 reason = reason.as_str(),
                 %error,
-                "prediction log write failed; further failures are counted in {WRITE_FAILURES} and logged again \
+                "prediction store write failed; further failures are counted in {WRITE_FAILURES} and logged again \
                  only after writes succeed"
             );
         }
@@ -119,7 +119,7 @@ impl Failures {
                 operation = operation.as_str(),
                 failed_writes = run.failures,
                 seconds = run.since.elapsed().as_secs(),
-                "prediction log writes succeed again"
+                "prediction store writes succeed again"
             );
         }
     }
@@ -143,7 +143,7 @@ mod tests {
             log_odds: 0.0,
             adjusted_log_odds: 0.0,
             probability: 0.5,
-            entity_key: String::new(),
+            subject_key: String::new(),
             tags: Default::default(),
             served: Default::default(),
         }

@@ -3,7 +3,7 @@
 //! out. No database here: every backend reads the id's row, asks these functions, and writes back what they say
 //! inside one transaction, so the rules are written once and both backends follow them to the letter.
 //!
-//! The rules (DEVELOPERS.md, "Prediction log"): one outcome per prediction id, given to every prediction with that
+//! The rules (DEVELOPERS.md, "Prediction store"): one outcome per prediction id, given to every prediction with that
 //! id; the same label again is a duplicate and changes nothing; a different label replaces the recorded one (the
 //! old row goes to the history) and the running figures retract the old pair; an outcome with no prediction yet is
 //! held (pending) and matched when the prediction is written, or marked unmatched once its hold has run out; a

@@ -1,16 +1,16 @@
-//! The prediction log: every prediction kept until its outcome arrives or its retention ends, outcomes matched to
+//! The prediction store: every prediction kept until its outcome arrives or its retention ends, outcomes matched to
 //! it by prediction id, and the sweeps that settle matured predictions and remove old ones.
 //!
 //! - [`Store`]: the storage interface. [`sqlite::SqliteStore`] is the embedded implementation (one file under the
 //!   data directory); a shared SQL database server for several replicas implements the same trait with the same
-//!   tables (see DEVELOPERS.md, "Prediction log").
-//! - [`writer::PredictionLog`]: the bounded queue that takes predictions off the request path and commits them in
+//!   tables (see DEVELOPERS.md, "Prediction store").
+//! - [`writer::PredictionStore`]: the bounded queue that takes predictions off the request path and commits them in
 //!   batches on a writer thread, the outcome calls, and the background sweeps.
 //! - [`running`]: the running figures exported through the `metrics` facade (sums and counts).
-//! - [`config`]: the `[log]` section of the server configuration.
+//! - [`config`]: the `[store]` section of the server configuration.
 //!
 //! Matching rules, shared by every implementation of [`Store`]:
-//! - an outcome is kept once per prediction id; every prediction logged under that id (a champion and its
+//! - an outcome is kept once per prediction id; every prediction storeged under that id (a champion and its
 //!   challengers) gets its label;
 //! - the same outcome sent twice changes nothing ([`OutcomeStatus::Duplicate`]);
 //! - a different label for an id that already has one replaces it, the old one is kept in the history, and
@@ -31,9 +31,9 @@ pub mod writer;
 use std::collections::BTreeMap;
 
 pub use clock::Clock;
-pub use config::LogConfig;
+pub use config::StoreConfig;
 pub use sqlite::SqliteStore;
-pub use writer::PredictionLog;
+pub use writer::PredictionStore;
 
 /// One logged prediction.
 #[derive(Debug, Clone, PartialEq)]
@@ -58,8 +58,8 @@ pub struct PredictionRecord {
     pub adjusted_log_odds: f64,
     /// The probability returned.
     pub probability: f64,
-    /// The entity key, empty when none.
-    pub entity_key: String,
+    /// The subject key (the card, account or customer the row is about), empty when none.
+    pub subject_key: String,
     /// Free-form tags.
     pub tags: BTreeMap<String, String>,
     /// What it was served under.
@@ -277,7 +277,7 @@ pub struct OutcomeCounts {
 #[derive(Debug, thiserror::Error)]
 pub enum StoreError {
     /// The database refused an operation.
-    #[error("prediction log database ({what}): {source}")]
+    #[error("prediction store database ({what}): {source}")]
     Database {
         /// What was being done.
         what: &'static str,
@@ -285,7 +285,7 @@ pub enum StoreError {
         source: rusqlite::Error,
     },
     /// The data directory could not be created or opened.
-    #[error("prediction log directory {dir}: {source}")]
+    #[error("prediction store directory {dir}: {source}")]
     Directory {
         /// The directory.
         dir: String,
@@ -293,7 +293,7 @@ pub enum StoreError {
         source: std::io::Error,
     },
     /// The data directory exists but no file can be created in it (read-only file system, permissions).
-    #[error("prediction log directory {dir} is not writable ({source})")]
+    #[error("prediction store directory {dir} is not writable ({source})")]
     NotWritable {
         /// The directory.
         dir: String,
@@ -302,7 +302,7 @@ pub enum StoreError {
     },
     /// The log file was written by a newer probity with a different layout.
     #[error(
-        "prediction log schema version {found} is not supported (this build reads {supported})"
+        "prediction store schema version {found} is not supported (this build reads {supported})"
     )]
     Schema {
         /// Version found in the file.
@@ -312,7 +312,7 @@ pub enum StoreError {
     },
     /// The PostgreSQL database refused an operation or could not be reached. The message never holds the
     /// connection URL's password.
-    #[error("prediction log database ({what}): {message}")]
+    #[error("prediction store database ({what}): {message}")]
     Postgres {
         /// What was being done.
         what: &'static str,
@@ -324,13 +324,13 @@ pub enum StoreError {
         lost: bool,
     },
     /// A stored row holds a value no build writes.
-    #[error("prediction log holds an unreadable row: {what}")]
+    #[error("prediction store holds an unreadable row: {what}")]
     Corrupt {
         /// Which row and value.
         what: String,
     },
     /// The writer thread is gone (the server is stopping).
-    #[error("the prediction log is closed")]
+    #[error("the prediction store is closed")]
     Closed,
 }
 
@@ -409,7 +409,7 @@ impl StoreError {
     }
 }
 
-/// The storage interface of the prediction log. Every method is one transaction: it either happens whole or not
+/// The storage interface of the prediction store. Every method is one transaction: it either happens whole or not
 /// at all, so the running figures (emitted from the returned [`Settled`] pairs after the commit) count each
 /// settlement exactly once.
 pub trait Store: Send {

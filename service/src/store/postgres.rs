@@ -1,4 +1,4 @@
-//! [`Store`] on a PostgreSQL database shared by several replicas (`log.backend = "postgres"`).
+//! [`Store`] on a PostgreSQL database shared by several replicas (`store.backend = "postgres"`).
 //!
 //! - **Driver**: the synchronous `postgres` crate (the blocking face of `tokio-postgres`): the [`Store`] trait is
 //!   synchronous and runs on the log's own threads, so a blocking client fits it without a second runtime in the
@@ -39,7 +39,7 @@ use super::{
 };
 
 /// The newest schema version this build knows.
-pub const SCHEMA_VERSION: i32 = 2;
+pub const SCHEMA_VERSION: i32 = 3;
 
 const DAY_MS: i64 = 86_400_000;
 
@@ -105,6 +105,12 @@ ALTER TABLE predictions ADD COLUMN served_prior double precision,
     ADD COLUMN decision text NOT NULL DEFAULT '';
 ",
     ),
+    (
+        3,
+        "
+ALTER TABLE predictions RENAME COLUMN entity_key TO subject_key;
+",
+    ),
 ];
 
 /// The staging table of a session: the binary COPY lands here, then moves into `predictions`.
@@ -120,7 +126,7 @@ CREATE TEMPORARY TABLE IF NOT EXISTS staging_predictions (
     log_odds double precision NOT NULL,
     adjusted_log_odds double precision NOT NULL,
     probability double precision NOT NULL,
-    entity_key text NOT NULL,
+    subject_key text NOT NULL,
     tags text NOT NULL,
     served_prior double precision,
     decision text NOT NULL,
@@ -171,20 +177,20 @@ impl ConnectionUrl {
         })
     }
 
-    /// Reads the URL from `file` if given, else from `PROBITY_LOG_POSTGRES_URL`.
+    /// Reads the URL from `file` if given, else from `PROBITY_STORE_POSTGRES_URL`.
     pub fn load(file: Option<&std::path::Path>) -> Result<ConnectionUrl, String> {
         match file {
             Some(path) => {
                 let text = std::fs::read_to_string(path).map_err(|e| {
-                    format!("log.postgres_url_file: cannot read {}: {e}", path.display())
+                    format!("store.postgres_url_file: cannot read {}: {e}", path.display())
                 })?;
                 ConnectionUrl::new(&text)
-                    .map_err(|m| format!("log.postgres_url_file: {} {m}", path.display()))
+                    .map_err(|m| format!("store.postgres_url_file: {} {m}", path.display()))
             }
             None => match std::env::var(ENV_URL) {
                 Ok(text) => ConnectionUrl::new(&text).map_err(|m| format!("{ENV_URL}: {m}")),
                 Err(_) => Err(format!(
-                    "log.backend = \"postgres\" needs the connection URL: set log.postgres_url_file or {ENV_URL}"
+                    "store.backend = \"postgres\" needs the connection URL: set store.postgres_url_file or {ENV_URL}"
                 )),
             },
         }
@@ -224,10 +230,10 @@ impl std::fmt::Debug for ConnectionUrl {
     }
 }
 
-/// The environment variable that holds the connection URL when `log.postgres_url_file` is not given.
-pub const ENV_URL: &str = "PROBITY_LOG_POSTGRES_URL";
+/// The environment variable that holds the connection URL when `store.postgres_url_file` is not given.
+pub const ENV_URL: &str = "PROBITY_STORE_POSTGRES_URL";
 
-/// The shared prediction log.
+/// The shared prediction store.
 pub struct PgStore {
     url: ConnectionUrl,
     tls: Option<tokio_postgres_rustls::MakeRustlsConnect>,
@@ -269,7 +275,7 @@ fn retryable(e: &postgres::Error) -> bool {
     })
 }
 
-/// The TLS settings. With `log.postgres_ca_file` the connection uses TLS (rustls) when the server offers it
+/// The TLS settings. With `store.postgres_ca_file` the connection uses TLS (rustls) when the server offers it
 /// (`sslmode=prefer`, the default) or always (`sslmode=require` in the URL), and the server's certificate must chain
 /// to one of the file's certificates. Without it the connection is plain text (a URL with `sslmode=require` then
 /// fails to connect, saying TLS is needed): no certificate is trusted that the operator did not name.
@@ -283,13 +289,13 @@ fn tls_connector(
     };
     {
         let certs = rustls::pki_types::CertificateDer::pem_file_iter(path)
-            .map_err(|e| format!("log.postgres_ca_file: {}: {e}", path.display()))?;
+            .map_err(|e| format!("store.postgres_ca_file: {}: {e}", path.display()))?;
         for cert in certs {
             let cert =
-                cert.map_err(|e| format!("log.postgres_ca_file: {}: {e}", path.display()))?;
+                cert.map_err(|e| format!("store.postgres_ca_file: {}: {e}", path.display()))?;
             roots
                 .add(cert)
-                .map_err(|e| format!("log.postgres_ca_file: {}: {e}", path.display()))?;
+                .map_err(|e| format!("store.postgres_ca_file: {}: {e}", path.display()))?;
         }
     }
     let provider = std::sync::Arc::new(rustls::crypto::ring::default_provider());
@@ -637,7 +643,7 @@ impl Store for PgStore {
                     &r.log_odds,
                     &r.adjusted_log_odds,
                     &r.probability,
-                    &r.entity_key,
+                    &r.subject_key,
                     &tags,
                     &r.served.prior,
                     &r.served.decision,
@@ -656,9 +662,9 @@ impl Store for PgStore {
             // time: the unique key holds the time too, since a partitioned table's keys must).
             let inserted = tx.query(
                 "INSERT INTO predictions (prediction_id, route, model, version, role, time_ms, margin, log_odds,
-                   adjusted_log_odds, probability, entity_key, tags, served_prior, decision)
+                   adjusted_log_odds, probability, subject_key, tags, served_prior, decision)
                  SELECT prediction_id, route, model, version, role, time_ms, margin, log_odds, adjusted_log_odds,
-                   probability, entity_key, tags, served_prior, decision
+                   probability, subject_key, tags, served_prior, decision
                  FROM (SELECT DISTINCT ON (prediction_id, route, model, role) * FROM staging_predictions
                        ORDER BY prediction_id, route, model, role, ord) s
                  WHERE NOT EXISTS (SELECT 1 FROM predictions p WHERE p.prediction_id = s.prediction_id

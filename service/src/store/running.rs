@@ -1,4 +1,4 @@
-//! Running figures of the prediction log, exported through the `metrics` facade with route, model and version
+//! Running figures of the prediction store, exported through the `metrics` facade with route, model and version
 //! labels, as sums and counts that a monitoring system can divide over any window and add across replicas.
 //!
 //! Every settled (prediction, label) pair adds its terms once, with `entry="add"`. A correction does not subtract
@@ -50,17 +50,17 @@ pub const UNMATCHED: &str = "probity_outcomes_unmatched_total";
 /// Predictions settled as negatives at maturity, by route.
 pub const MATURED: &str = "probity_outcomes_matured_total";
 /// Predictions written to the log, by route.
-pub const WRITTEN: &str = "probity_log_predictions_written_total";
+pub const WRITTEN: &str = "probity_store_predictions_written_total";
 /// Predictions not written, by route and reason (`queue_full`, `closed`, `disk_full`, `read_only`, `write_error`,
 /// `duplicate_id`).
-pub const DROPPED: &str = "probity_log_predictions_dropped_total";
+pub const DROPPED: &str = "probity_store_predictions_dropped_total";
 /// Calls of routes with `record = "before-answer"` refused because their predictions were not committed, by route
 /// and reason (`queue_full`, `closed`, `disk_full`, `read_only`, `write_error`, `deadline`).
 pub const RECORD_REFUSALS: &str = "probity_store_record_refusals_total";
 /// Predictions waiting in the queue.
-pub const QUEUE_DEPTH: &str = "probity_log_queue_depth";
+pub const QUEUE_DEPTH: &str = "probity_store_queue_depth";
 /// Predictions removed by the retention sweep.
-pub const REMOVED: &str = "probity_log_predictions_removed_total";
+pub const REMOVED: &str = "probity_store_predictions_removed_total";
 /// PSI of the recent window against the reference distribution.
 pub const PSI: &str = "probity_psi";
 /// The Saerens EM estimate of the live base rate over the recent window.
@@ -228,13 +228,19 @@ pub fn describe() {
         MATURED,
         "Predictions settled as negatives at label maturity."
     );
-    metrics::describe_counter!(WRITTEN, "Predictions written to the log.");
-    metrics::describe_counter!(DROPPED, "Predictions not written to the log, by reason.");
+    metrics::describe_counter!(WRITTEN, "Predictions written to the prediction store.");
+    metrics::describe_counter!(
+        DROPPED,
+        "Predictions not written to the prediction store, by reason."
+    );
     metrics::describe_counter!(
         RECORD_REFUSALS,
         "Calls of record = before-answer routes refused because their predictions were not committed, by reason."
     );
-    metrics::describe_gauge!(QUEUE_DEPTH, "Predictions waiting for the log writer.");
+    metrics::describe_gauge!(
+        QUEUE_DEPTH,
+        "Predictions waiting for the prediction store's writer."
+    );
     metrics::describe_counter!(REMOVED, "Predictions removed by the retention sweep.");
     metrics::describe_gauge!(
         PSI,

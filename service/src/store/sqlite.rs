@@ -19,14 +19,18 @@ use super::{
 };
 
 /// The table layout this build writes; kept in `PRAGMA user_version`. Version 2 added what each prediction was
-/// served under (`served_prior`, `decision`); a version 1 file gets the columns at open ([`MIGRATE_1_2`]).
-const SCHEMA_VERSION: i64 = 2;
+/// served under (`served_prior`, `decision`); a version 1 file gets the columns at open ([`MIGRATE_1_2`]). Version 3
+/// renamed the key of the card, account or customer a row is about to `subject_key` ([`MIGRATE_2_3`]).
+const SCHEMA_VERSION: i64 = 3;
 
 /// From version 1: the served-under columns (NULL prior and no decision in the rows already there).
 const MIGRATE_1_2: &str = "
 ALTER TABLE predictions ADD COLUMN served_prior REAL;
 ALTER TABLE predictions ADD COLUMN decision TEXT NOT NULL DEFAULT '';
 ";
+
+/// From version 2: the key column's new name.
+const MIGRATE_2_3: &str = "ALTER TABLE predictions RENAME COLUMN entity_key TO subject_key;";
 
 /// The database file name inside the data directory.
 pub const FILE_NAME: &str = "predictions.db";
@@ -44,7 +48,7 @@ CREATE TABLE IF NOT EXISTS predictions (
     log_odds REAL NOT NULL,
     adjusted_log_odds REAL NOT NULL,
     probability REAL NOT NULL,
-    entity_key TEXT NOT NULL,
+    subject_key TEXT NOT NULL,
     tags TEXT NOT NULL,
     served_prior REAL,
     decision TEXT NOT NULL DEFAULT '',
@@ -100,7 +104,7 @@ impl Durability {
     }
 }
 
-/// The embedded prediction log.
+/// The embedded prediction store.
 pub struct SqliteStore {
     conn: Connection,
     /// The data directory, probed when a write fails with an I/O error.
@@ -164,6 +168,10 @@ impl SqliteStore {
         if found == 1 {
             conn.execute_batch(MIGRATE_1_2)
                 .map_err(db("schema migration 1 to 2"))?;
+        }
+        if (1..=2).contains(&found) {
+            conn.execute_batch(MIGRATE_2_3)
+                .map_err(db("schema migration 2 to 3"))?;
         }
         conn.execute_batch(SCHEMA).map_err(db("create tables"))?;
         if found != SCHEMA_VERSION {
@@ -446,7 +454,7 @@ impl SqliteStore {
             let mut insert = tx
                 .prepare_cached(
                     "INSERT OR IGNORE INTO predictions (prediction_id, route, model, version, role, time_ms,
-                     margin, log_odds, adjusted_log_odds, probability, entity_key, tags, served_prior, decision)
+                     margin, log_odds, adjusted_log_odds, probability, subject_key, tags, served_prior, decision)
                      VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14)",
                 )
                 .map_err(db("insert prediction"))?;
@@ -464,7 +472,7 @@ impl SqliteStore {
                         r.log_odds,
                         r.adjusted_log_odds,
                         r.probability,
-                        r.entity_key,
+                        r.subject_key,
                         tags,
                         r.served.prior,
                         r.served.decision

@@ -1,12 +1,12 @@
-//! [`PredictionLog`]: the bounded queue between the request path and the store, the writer thread that commits
+//! [`PredictionStore`]: the bounded queue between the request path and the store, the writer thread that commits
 //! predictions in batches, the outcome and report calls, and the background sweeps.
 //!
-//! The request path only calls [`PredictionLog::log`], which never blocks: when the queue is full the prediction
-//! is dropped and counted (`probity_log_predictions_dropped_total{reason="queue_full"}`), so a slow disk slows
+//! The request path only calls [`PredictionStore::log`], which never blocks: when the queue is full the prediction
+//! is dropped and counted (`probity_store_predictions_dropped_total{reason="queue_full"}`), so a slow disk slows
 //! nothing but the log. Outcome calls write synchronously (their answer says what was recorded), and reports read
 //! the store; both share it with the writer thread behind one lock.
 //!
-//! A route with `record = "before-answer"` calls [`PredictionLog::record`] instead: its predictions go into the
+//! A route with `record = "before-answer"` calls [`PredictionStore::record`] instead: its predictions go into the
 //! same queue with a [`Receipt`] that the writer fulfils after the transaction holding them has committed (or
 //! failed), and the call answers only then. The writer does not wait out the flush interval for a batch that holds
 //! such calls: it takes what is queued at that moment and commits, and calls arriving during that commit form
@@ -29,7 +29,7 @@ use std::time::{Duration, Instant};
 use super::faults::{Failures, Operation};
 use super::running::{self, Windows};
 use super::{
-    Clock, LogConfig, ModelVersionInfo, OutcomeInput, OutcomeResult, PredictionRecord, Store,
+    Clock, ModelVersionInfo, OutcomeInput, OutcomeResult, PredictionRecord, Store, StoreConfig,
     StoreError, WriteFailure,
 };
 
@@ -73,7 +73,7 @@ pub enum NotRecorded {
 }
 
 impl NotRecorded {
-    /// The metric label (`reason`), the same words as `probity_log_predictions_dropped_total`.
+    /// The metric label (`reason`), the same words as `probity_store_predictions_dropped_total`.
     pub fn as_str(self) -> &'static str {
         match self {
             NotRecorded::QueueFull => "queue_full",
@@ -83,7 +83,7 @@ impl NotRecorded {
     }
 }
 
-/// Resolves once the predictions of one [`PredictionLog::record`] call are committed, or with why not. A receipt
+/// Resolves once the predictions of one [`PredictionStore::record`] call are committed, or with why not. A receipt
 /// whose sender is gone (the writer stopped) means [`NotRecorded::Closed`].
 pub type Receipt = tokio::sync::oneshot::Receiver<Result<(), NotRecorded>>;
 
@@ -98,11 +98,11 @@ enum Message {
     Flush(mpsc::Sender<()>),
 }
 
-/// The prediction log as the server uses it.
-pub struct PredictionLog {
+/// The prediction store as the server uses it.
+pub struct PredictionStore {
     sender: Mutex<Option<SyncSender<Message>>>,
     store: Arc<Mutex<Box<dyn Store>>>,
-    config: LogConfig,
+    config: StoreConfig,
     clock: Clock,
     depth: Arc<AtomicUsize>,
     writer: Mutex<Option<JoinHandle<()>>>,
@@ -116,9 +116,9 @@ fn lock(store: &Mutex<Box<dyn Store>>) -> MutexGuard<'_, Box<dyn Store>> {
     store.lock().unwrap_or_else(|e| e.into_inner())
 }
 
-impl PredictionLog {
+impl PredictionStore {
     /// Starts the writer thread over `store`.
-    pub fn start(store: Box<dyn Store>, config: LogConfig, clock: Clock) -> Arc<PredictionLog> {
+    pub fn start(store: Box<dyn Store>, config: StoreConfig, clock: Clock) -> Arc<PredictionStore> {
         let (sender, receiver) = mpsc::sync_channel(config.queue_size);
         let store = Arc::new(Mutex::new(store));
         let depth = Arc::new(AtomicUsize::new(0));
@@ -150,7 +150,7 @@ impl PredictionLog {
                     job();
                 }
             });
-        Arc::new(PredictionLog {
+        Arc::new(PredictionStore {
             failures,
             calls: Mutex::new(Some(calls)),
             sender: Mutex::new(Some(sender)),
@@ -174,7 +174,7 @@ impl PredictionLog {
     }
 
     /// The configuration it runs with.
-    pub fn config(&self) -> &LogConfig {
+    pub fn config(&self) -> &StoreConfig {
         &self.config
     }
 
@@ -321,7 +321,7 @@ impl PredictionLog {
         receiver
     }
 
-    /// Runs `f` on the store on the log's thread for calls ([`PredictionLog::on_thread`]).
+    /// Runs `f` on the store on the log's thread for calls ([`PredictionStore::on_thread`]).
     pub fn read<T: Send + 'static>(
         &self,
         f: impl FnOnce(&mut dyn Store) -> Result<T, StoreError> + Send + 'static,
@@ -333,7 +333,7 @@ impl PredictionLog {
         })
     }
 
-    /// [`PredictionLog::read`], waiting for the answer (blocking; call off the async runtime).
+    /// [`PredictionStore::read`], waiting for the answer (blocking; call off the async runtime).
     pub fn read_blocking<T: Send + 'static>(
         &self,
         f: impl FnOnce(&mut dyn Store) -> Result<T, StoreError> + Send + 'static,

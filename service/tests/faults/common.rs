@@ -26,11 +26,11 @@ pub fn linear_model(version: &str) -> String {
     )
 }
 
-/// A configuration file: the model directory, `log_section` (the `[log]` keys, without the header) and routes.
+/// A configuration file: the model directory, `log_section` (the `[store]` keys, without the header) and routes.
 pub fn write_config(path: &Path, models: &Path, log_section: &str, routes: &[&str]) {
     let mut text = format!(
         "[server]\nplaintext = \"loopback\"\n[logging]\nformat = \"json\"\n\
-         [models]\ndirectory = {:?}\nwatch = false\n[log]\n{log_section}\n",
+         [models]\ndirectory = {:?}\nwatch = false\n[store]\n{log_section}\n",
         models.display().to_string()
     );
     for r in routes {
@@ -191,10 +191,10 @@ impl Spawned {
             .unwrap()
     }
 
-    /// The (operation, reason) of every "prediction log write failed" line, sorted.
+    /// The (operation, reason) of every "prediction store write failed" line, sorted.
     pub fn write_failure_kinds(&self) -> Vec<(String, String)> {
         let mut kinds: Vec<(String, String)> = self
-            .logged("prediction log write failed")
+            .logged("prediction store write failed")
             .iter()
             .map(|v| {
                 (

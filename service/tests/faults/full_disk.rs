@@ -67,11 +67,11 @@ async fn a_full_disk_is_a_counted_logging_failure_scoring_goes_on_and_the_log_re
     let scoring = pb::scoring_client::ScoringClient::new(channel.clone());
     let mut outcomes = pb::outcomes_client::OutcomesClient::new(channel);
     let route = [("route", "disk")];
-    let written = |text: &str| sample(text, "probity_log_predictions_written_total", &route);
+    let written = |text: &str| sample(text, "probity_store_predictions_written_total", &route);
     let dropped = |text: &str, reason: &str| {
         sample(
             text,
-            "probity_log_predictions_dropped_total",
+            "probity_store_predictions_dropped_total",
             &[("route", "disk"), ("reason", reason)],
         )
     };
@@ -111,7 +111,7 @@ async fn a_full_disk_is_a_counted_logging_failure_scoring_goes_on_and_the_log_re
     score("b", 0..1000).await;
     wait_until("every prediction written or counted", limit, || async {
         let m = server.metrics().await;
-        written(&m) + sample(&m, "probity_log_predictions_dropped_total", &route) == 1300.0
+        written(&m) + sample(&m, "probity_store_predictions_dropped_total", &route) == 1300.0
     })
     .await;
     let m = server.metrics().await;
@@ -119,14 +119,14 @@ async fn a_full_disk_is_a_counted_logging_failure_scoring_goes_on_and_the_log_re
     assert_eq!(dropped(&m, "disk_full"), 1000.0, "{m}");
     let failed_batches = sample(
         &m,
-        "probity_log_write_failures_total",
+        "probity_store_write_failures_total",
         &[("operation", "predictions"), ("reason", "disk_full")],
     );
     assert!(failed_batches >= 1.0, "{m}");
     assert_eq!(
         sample(
             &m,
-            "probity_log_write_failing",
+            "probity_store_write_failing",
             &[("operation", "predictions")]
         ),
         1.0
@@ -163,12 +163,12 @@ async fn a_full_disk_is_a_counted_logging_failure_scoring_goes_on_and_the_log_re
     assert!(
         sample(
             &m,
-            "probity_log_write_failures_total",
+            "probity_store_write_failures_total",
             &[("operation", "predictions")]
         ) > failed_batches,
         "more batches failed"
     );
-    let failures = server.logged("prediction log write failed");
+    let failures = server.logged("prediction store write failed");
     assert_eq!(
         server.write_failure_kinds(),
         [
@@ -206,12 +206,12 @@ async fn a_full_disk_is_a_counted_logging_failure_scoring_goes_on_and_the_log_re
     assert_eq!(dropped(&m, "disk_full"), 1500.0, "nothing more dropped");
     for op in ["predictions", "outcomes"] {
         assert_eq!(
-            sample(&m, "probity_log_write_failing", &[("operation", op)]),
+            sample(&m, "probity_store_write_failing", &[("operation", op)]),
             0.0
         );
     }
     let resumed: Vec<String> = server
-        .logged("prediction log writes succeed again")
+        .logged("prediction store writes succeed again")
         .iter()
         .map(|v| v["operation"].as_str().unwrap().to_string())
         .collect();
@@ -219,7 +219,7 @@ async fn a_full_disk_is_a_counted_logging_failure_scoring_goes_on_and_the_log_re
     assert!(
         resumed.contains(&"predictions".to_string()) && resumed.contains(&"outcomes".to_string())
     );
-    assert_eq!(server.logged("prediction log write failed").len(), 2);
+    assert_eq!(server.logged("prediction store write failed").len(), 2);
 
     // No crash: a clean stop.
     assert!(server.terminate().success());

@@ -1,5 +1,5 @@
-//! Faults of the prediction log under a serving server: a full disk, a read-only data directory, a stalled
-//! writer, and an outcome flood for unknown prediction ids. DEVELOPERS.md ("Prediction log") documents the
+//! Faults of the prediction store under a serving server: a full disk, a read-only data directory, a stalled
+//! writer, and an outcome flood for unknown prediction ids. DEVELOPERS.md ("Prediction store") documents the
 //! behaviour each test checks.
 //!
 //! The full-disk and read-only tests mount a tmpfs in a private mount namespace (`unshare --mount`), which needs

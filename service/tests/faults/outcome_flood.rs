@@ -1,8 +1,8 @@
 //! A flood of outcomes for prediction ids the log has never seen stays within bounded memory: a held outcome is a
 //! row of the log's database (on disk), not an entry in the server's memory. The policy is counted at each step:
 //! every outcome is answered PENDING and counted in `probity_outcomes_received_total{status="pending"}`, the report
-//! shows them as pending, and after `log.outcome_hold` the sweep marks them unmatched and counts them in
-//! `probity_outcomes_unmatched_total`. They stay in the log (reported as unmatched) until `log.retention` removes
+//! shows them as pending, and after `store.outcome_hold` the sweep marks them unmatched and counts them in
+//! `probity_outcomes_unmatched_total`. They stay in the log (reported as unmatched) until `store.retention` removes
 //! them.
 //!
 //! The flood is 600,000 outcomes with 128-character ids from four callers at once, 2,000 per call: the ids alone

@@ -1,4 +1,4 @@
-//! A read-only data directory at start: the server refuses to start, with an error that names `log.directory`,
+//! A read-only data directory at start: the server refuses to start, with an error that names `store.directory`,
 //! the directory and the reason, and says what to do (the decision is documented in DEVELOPERS.md, "Prediction
 //! log"). Two cases on a real read-only mount (tmpfs mounted read-only in the server's own mount namespace): an
 //! empty file system where the log directory would have to be made, and an existing log copied in before the
@@ -37,11 +37,11 @@ fn assert_refused(success: bool, stderr: &str, dir: &std::path::Path) {
         .find(|l| l.starts_with("error: "))
         .unwrap_or_else(|| panic!("no error line: {stderr}"));
     for part in [
-        "log.directory",
+        "store.directory",
         &dir.display().to_string(),
         "is not writable",
         "Read-only file system",
-        "leave out log.directory",
+        "leave out store.directory",
     ] {
         assert!(line.contains(part), "`{part}` missing from: {line}");
     }
@@ -209,7 +209,7 @@ async fn a_file_system_turning_read_only_under_the_server_is_counted_and_scoring
     wait_until("200 predictions written", limit, || async {
         sample(
             &server.metrics().await,
-            "probity_log_predictions_written_total",
+            "probity_store_predictions_written_total",
             &route,
         ) == 200.0
     })
@@ -239,8 +239,8 @@ async fn a_file_system_turning_read_only_under_the_server_is_counted_and_scoring
     }
     wait_until("every prediction written or counted", limit, || async {
         let m = server.metrics().await;
-        sample(&m, "probity_log_predictions_written_total", &route)
-            + sample(&m, "probity_log_predictions_dropped_total", &route)
+        sample(&m, "probity_store_predictions_written_total", &route)
+            + sample(&m, "probity_store_predictions_dropped_total", &route)
             == 700.0
     })
     .await;
@@ -248,7 +248,7 @@ async fn a_file_system_turning_read_only_under_the_server_is_counted_and_scoring
     assert_eq!(
         sample(
             &m,
-            "probity_log_predictions_dropped_total",
+            "probity_store_predictions_dropped_total",
             &[("route", "ro"), ("reason", "read_only")]
         ),
         500.0,

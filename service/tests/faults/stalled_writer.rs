@@ -1,7 +1,7 @@
 //! A slow disk cannot stall scoring: the log writer is held inside the store (a [`Store`] that blocks on a gate
 //! before each insert, around the real SQLite store), and scoring calls from several connections and a batch all
 //! complete while it is held. The queue's documented policy is then checked to the prediction: exactly
-//! `log.queue_size` predictions wait for the writer, every further one is dropped and counted with
+//! `store.queue_size` predictions wait for the writer, every further one is dropped and counted with
 //! `reason="queue_full"`, and when the gate opens exactly the waiting ones reach the log. Outcome calls, which
 //! answer only after their commit, give up at their deadline, and leave at most `STORE_CALLS_IN_FLIGHT` writes
 //! waiting behind the stalled disk.
@@ -220,19 +220,19 @@ async fn a_stalled_log_writer_never_stalls_scoring_and_every_drop_is_counted() {
     assert_eq!(
         sample(
             &text,
-            "probity_log_predictions_dropped_total",
+            "probity_store_predictions_dropped_total",
             &[route, ("reason", "queue_full")]
         ),
         (700 - QUEUE) as f64,
         "{text}"
     );
     assert_eq!(
-        sample(&text, "probity_log_predictions_dropped_total", &[route]),
+        sample(&text, "probity_store_predictions_dropped_total", &[route]),
         (700 - QUEUE) as f64,
         "no other reason"
     );
     assert_eq!(
-        sample(&text, "probity_log_predictions_written_total", &[route]),
+        sample(&text, "probity_store_predictions_written_total", &[route]),
         0.0
     );
 
@@ -282,18 +282,18 @@ async fn a_stalled_log_writer_never_stalls_scoring_and_every_drop_is_counted() {
         state.open = true;
         gate.changed.notify_all();
     }
-    let log = Arc::clone(server.log().unwrap());
+    let log = Arc::clone(server.store().unwrap());
     tokio::task::spawn_blocking(move || log.flush().unwrap())
         .await
         .unwrap();
     let text = http_get(server.metrics_addr(), "/metrics").await;
     assert_eq!(
-        sample(&text, "probity_log_predictions_written_total", &[route]),
+        sample(&text, "probity_store_predictions_written_total", &[route]),
         (1 + QUEUE) as f64
     );
     assert_eq!(batches(&gate).iter().sum::<usize>(), 1 + QUEUE);
     let logged = server
-        .log()
+        .store()
         .unwrap()
         .with_store(|s| s.load(&ReportFilter::default()))
         .unwrap();
@@ -306,7 +306,7 @@ async fn a_stalled_log_writer_never_stalls_scoring_and_every_drop_is_counted() {
 
     // The outcome calls that had a slot when the disk stalled are written now; the others never were.
     let slots = probity::serve::outcomes::STORE_CALLS_IN_FLIGHT as u64;
-    let log = server.log().unwrap();
+    let log = server.store().unwrap();
     wait_until(
         "the held outcome calls ran",
         Duration::from_secs(120),

@@ -9,7 +9,7 @@ use crate::fixtures::*;
 enum Call {
     Score(pb::ScoreRequest),
     Batch(pb::ScoreBatchRequest),
-    Describe(pb::DescribeModelRequest),
+    Describe(pb::ModelFactsRequest),
     Compare(pb::CompareRequest),
     Promote(pb::PromoteRequest),
     History(pb::RouteHistoryRequest),
@@ -32,7 +32,7 @@ fn table() -> Vec<(&'static str, Call, Code, &'static str)> {
             rows,
         })
     };
-    let describe = |target| Call::Describe(pb::DescribeModelRequest { target });
+    let describe = |target| Call::Describe(pb::ModelFactsRequest { target });
     vec![
         (
             "unknown route",
@@ -199,10 +199,10 @@ fn table() -> Vec<(&'static str, Call, Code, &'static str)> {
             "row.prediction_id",
         ),
         (
-            "entity key too long",
-            fraud(with(fraud_row(""), |r| r.entity_key = "k".repeat(257))),
+            "subject key too long",
+            fraud(with(fraud_row(""), |r| r.subject_key = "k".repeat(257))),
             Code::InvalidArgument,
-            "row.entity_key",
+            "row.subject_key",
         ),
         (
             "too many tags",
@@ -251,7 +251,7 @@ fn table() -> Vec<(&'static str, Call, Code, &'static str)> {
         ),
         (
             "describe: unknown model",
-            describe(Some(pb::describe_model_request::Target::Model(
+            describe(Some(pb::model_facts_request::Target::Model(
                 "ghost".into(),
             ))),
             Code::NotFound,
@@ -343,7 +343,7 @@ async fn bad_requests_get_the_right_status_and_the_server_keeps_serving() {
         let status = match call {
             Call::Score(r) => scoring.score(r).await.map(|_| ()),
             Call::Batch(r) => scoring.score_batch(r).await.map(|_| ()),
-            Call::Describe(r) => models.describe_model(r).await.map(|_| ()),
+            Call::Describe(r) => models.model_facts(r).await.map(|_| ()),
             Call::Compare(r) => challengers.compare(r).await.map(|_| ()),
             Call::Promote(r) => challengers.promote(r).await.map(|_| ()),
             Call::History(r) => challengers.route_history(r).await.map(|_| ()),

@@ -178,8 +178,8 @@ async fn every_rpc_answers() {
     assert!(list.problems.is_empty());
 
     let by_route = models
-        .describe_model(pb::DescribeModelRequest {
-            target: Some(pb::describe_model_request::Target::Route("fraud".into())),
+        .model_facts(pb::ModelFactsRequest {
+            target: Some(pb::model_facts_request::Target::Route("fraud".into())),
         })
         .await
         .unwrap()
@@ -204,15 +204,33 @@ async fn every_rpc_answers() {
         vec![(0, "amount", 0), (1, "channel", 3), (2, "hour", 0)]
     );
     let by_name = models
-        .describe_model(pb::DescribeModelRequest {
-            target: Some(pb::describe_model_request::Target::Model(
-                "grpc-credit".into(),
-            )),
+        .model_facts(pb::ModelFactsRequest {
+            target: Some(pb::model_facts_request::Target::Model("grpc-credit".into())),
         })
         .await
         .unwrap()
         .into_inner();
     assert_eq!(by_name.model.unwrap().kind, "linear");
+
+    // The method's name of earlier releases is refused with the new one named (the gRPC layer alone would answer
+    // UNIMPLEMENTED with an empty message).
+    let mut raw = tonic::client::Grpc::new(t.channel().await);
+    raw.ready().await.unwrap();
+    let old = raw
+        .unary::<_, pb::ModelFactsResponse, _>(
+            tonic::Request::new(pb::ModelFactsRequest {
+                target: Some(pb::model_facts_request::Target::Route("fraud".into())),
+            }),
+            "/probity.v1.Models/DescribeModel".parse().unwrap(),
+            tonic_prost::ProstCodec::default(),
+        )
+        .await
+        .unwrap_err();
+    assert_eq!(old.code(), tonic::Code::Unimplemented);
+    assert_eq!(
+        old.message(),
+        "probity.v1.Models/DescribeModel was renamed probity.v1.Models/ModelFacts"
+    );
 
     let reload = models
         .reload(pb::ReloadRequest {})

@@ -1,4 +1,4 @@
-//! `probity-load soak`: a sustained mixed load against a `probity serve` it starts itself, with the prediction log
+//! `probity-load soak`: a sustained mixed load against a `probity serve` it starts itself, with the prediction store
 //! on: scoring from many connections at a fixed rate (open loop, unary calls and batches), outcome streams for the
 //! answered predictions, a model reload every few seconds (the model file rewritten with another version, then the
 //! Reload call) and a report every few seconds (the last minute). It samples the server's resident memory from
@@ -81,7 +81,7 @@ pub struct SoakArgs {
     /// that of the first quarter by more than this many MiB.
     #[arg(long, default_value_t = 32.0)]
     rss_margin_mib: f64,
-    /// Keep the server's files (configuration, model, prediction log) in this directory instead of a temporary one.
+    /// Keep the server's files (configuration, model, prediction store) in this directory instead of a temporary one.
     #[arg(long)]
     dir: Option<PathBuf>,
     /// Print only the JSON line.
@@ -342,9 +342,9 @@ pub async fn soak(args: SoakArgs) -> Result<bool> {
             "[server]\nplaintext = \"loopback\"\nreflection = false\n[logging]\nformat = \"json\"\nlevel = \"info\"\n\
              [models]\ndirectory = {:?}\nwatch = false\n\
              [limits]\nmax_concurrent_requests = 4096\ndefault_deadline_ms = 5000\n\
-             [log]\ndirectory = {:?}\n[routes.soak]\nmodel = {:?}\n",
+             [store]\ndirectory = {:?}\n[routes.soak]\nmodel = {:?}\n",
             models.display().to_string(),
-            dir.join("log").display().to_string(),
+            dir.join("store").display().to_string(),
             model.name()
         ),
     )?;
@@ -359,7 +359,7 @@ pub async fn soak(args: SoakArgs) -> Result<bool> {
     let mut tasks = Vec::new();
 
     // Outcome streams, fed (id, probability, when answered) by the scoring tasks; each outcome is sent once its
-    // prediction is `OUTCOME_DELAY` old, so most find their prediction logged (matched) and some do not yet
+    // prediction is `OUTCOME_DELAY` old, so most find their prediction storeged (matched) and some do not yet
     // (held, then matched when it is written).
     let mut feeds = Vec::new();
     for s in 0..args.outcome_streams {
@@ -618,7 +618,7 @@ pub async fn soak(args: SoakArgs) -> Result<bool> {
     let floor_start = floor(0.0, window);
     let floor_end = floor(measured - window, measured);
 
-    // The server's own count of the log, then a clean stop.
+    // The server's own count of the prediction store, then a clean stop.
     let metrics_text = http_get(&metrics_addr, "/metrics")
         .await
         .unwrap_or_default();
@@ -630,8 +630,8 @@ pub async fn soak(args: SoakArgs) -> Result<bool> {
             .sum::<f64>()
             + 0.0 // an empty sum is -0.0
     };
-    let written = metric("probity_log_predictions_written_total");
-    let dropped = metric("probity_log_predictions_dropped_total");
+    let written = metric("probity_store_predictions_written_total");
+    let dropped = metric("probity_store_predictions_dropped_total");
     let warnings = server.warnings.load(Ordering::Relaxed);
     let errors = server
         .errors
@@ -740,7 +740,7 @@ pub async fn soak(args: SoakArgs) -> Result<bool> {
             line(k);
         }
         eprintln!(
-            "  outcomes matched {} and pending {} when answered; log: {written} predictions written, {dropped} dropped",
+            "  outcomes matched {} and pending {} when answered; store: {written} predictions written, {dropped} dropped",
             out["outcomes_matched"], out["outcomes_pending"]
         );
         eprintln!(

@@ -1,5 +1,5 @@
 //! The short form of the mixed-load soak: `probity-load soak` for 45 seconds against the `probity` binary of this
-//! build (`cargo build -p probity` first; `.ci/run` does, then runs the ignored tests explicitly), with the prediction log on: scoring from 8 connections (unary
+//! build (`cargo build -p probity` first; `.ci/run` does, then runs the ignored tests explicitly), with the prediction store on: scoring from 8 connections (unary
 //! calls and batches of 20), two outcome streams, a model reload and a report every 3 seconds.
 //!
 //! Checked: no failed request of any kind; the p99 latency of each kind under 2 s, a stall detector and not a
@@ -7,7 +7,7 @@
 //! reload shows up as seconds); the server's resident memory at the end at most 32 MiB above its value after the
 //! 15-second warm-up, both as single samples and as the lowest sample of the first and last quarter (a chosen
 //! margin, no external source: SQLite's page cache is 2 MiB, the windows behind the monitoring gauges are bounded
-//! by `log.psi_window` and `log.prior_window`, and a report holds the rows of its range only while it runs;
+//! by `store.psi_window` and `store.prior_window`, and a report holds the rows of its range only while it runs;
 //! measured: 34.2 to 37.4 MiB). The long form is
 //! `tools/soak.sh` (ten minutes by default); DEVELOPERS.md gives its last figures.
 

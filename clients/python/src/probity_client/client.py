@@ -104,8 +104,8 @@ def _opt(msg, name: str) -> Optional[float]:
     return getattr(msg, name) if msg.HasField(name) else None
 
 
-def _row(features: Mapping[str, FeatureValue], prediction_id: str, entity_key: str) -> scoring_pb2.Row:
-    row = scoring_pb2.Row(prediction_id=prediction_id, entity_key=entity_key)
+def _row(features: Mapping[str, FeatureValue], prediction_id: str, subject_key: str) -> scoring_pb2.Row:
+    row = scoring_pb2.Row(prediction_id=prediction_id, subject_key=subject_key)
     for name, value in features.items():
         if value is None:
             continue  # absent: the server reads it as missing
@@ -179,10 +179,10 @@ class Client:
         return method(request, timeout=self._timeout, metadata=self._metadata)
 
     def score(
-        self, route: str, features: Mapping[str, FeatureValue], *, prediction_id: str = "", entity_key: str = ""
+        self, route: str, features: Mapping[str, FeatureValue], *, prediction_id: str = "", subject_key: str = ""
     ) -> Score:
         """Scores one row given by feature name (numbers, category names, None for missing)."""
-        request = scoring_pb2.ScoreRequest(route=route, row=_row(features, prediction_id, entity_key))
+        request = scoring_pb2.ScoreRequest(route=route, row=_row(features, prediction_id, subject_key))
         return _score(self._call(self._scoring.Score, request))
 
     def score_batch(
@@ -221,7 +221,7 @@ class Client:
         from_unix_ms: int = 0,
         to_unix_ms: int = 0,
     ) -> Report:
-        """The report from the server's prediction log over a time range (0 = open) and filters."""
+        """The report from the server's prediction store over a time range (0 = open) and filters."""
         request = outcomes_pb2.ReportRequest(
             route=route, model=model, version=version, from_unix_ms=from_unix_ms, to_unix_ms=to_unix_ms
         )

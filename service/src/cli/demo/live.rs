@@ -3,7 +3,7 @@
 //!
 //! The server is configured like any other: the models are written into a temporary model directory and a TOML
 //! configuration beside it names the routes, each with the demo data's live base rate as its target (the same
-//! target the offline demo uses, so both give the same bits), turns the prediction log on, and mirrors the second
+//! target the offline demo uses, so both give the same bits), turns the prediction store on, and scores with the second
 //! model as a challenger on the first model's route. After the traffic, the fraud labels go back as outcomes and
 //! the report and comparison come from the server.
 
@@ -26,7 +26,7 @@ const CONFIG_FILE: &str = "probity-demo.toml";
 /// Runs the live demo.
 pub fn run(args: &DemoArgs, data: &DemoData, models: Vec<DemoModel>) -> anyhow::Result<()> {
     let dir = DemoDir::create()?;
-    let log_dir = args.data_dir.clone().unwrap_or_else(|| dir.0.join("log"));
+    let log_dir = args.data_dir.clone().unwrap_or_else(|| dir.0.join("store"));
     std::fs::create_dir_all(&log_dir)
         .with_context(|| format!("cannot create {}", log_dir.display()))?;
     let config = write_config(args, data, &models, &dir.0, &log_dir)?;
@@ -68,14 +68,14 @@ async fn serve_and_drive(
     }
     if let [champion, challenger, ..] = models {
         println!(
-            "  challenger on {}: {} {}, mirrored (scores every request in the background; the answer stays the \
+            "  challenger on {}: {} {}, silent (scores every request off the answer path; the answer stays the \
              champion's)",
             champion.route,
             challenger.model.name(),
             challenger.model.version()
         );
     }
-    println!("prediction log {}", log_dir.display());
+    println!("prediction store {}", log_dir.display());
     print!("{}", summary::data_section(data));
     println!(
         "\nsending every transaction to every route over {} gRPC connections ({} calls in flight): ScoreBatch \
@@ -158,7 +158,7 @@ async fn serve_and_drive(
         );
         println!("  config    {}", dir.join(CONFIG_FILE).display());
         println!(
-            "  log       probity report --log {0} (add --json), probity compare --log {0} --route {1}{2}",
+            "  store     probity report --store {0} (add --json), probity compare --store {0} --route {1}{2}",
             log_dir.display(),
             models.first().map_or("", |m| m.route.as_str()),
             if kept {
@@ -176,7 +176,7 @@ async fn serve_and_drive(
         );
     }
     if !serving && !kept {
-        println!("  (the server has stopped and its temporary folder is removed; --data-dir keeps the log)");
+        println!("  (the server has stopped and its temporary folder is removed; --data-dir keeps the store)");
     }
     println!("\n{CAUTIONS}");
 
@@ -304,7 +304,7 @@ fn write_config(
         if let (0, Some(challenger)) = (i, models.get(1)) {
             let mut c = toml::Table::new();
             c.insert("model".into(), challenger.model.name().into());
-            c.insert("mode".into(), "mirror".into());
+            c.insert("mode".into(), "silent".into());
             route.insert("challengers".into(), toml::Value::Array(vec![c.into()]));
         }
         routes.insert(m.route.clone(), route.into());
@@ -315,7 +315,7 @@ fn write_config(
          plaintext = \"loopback\"\ngrpc_listen = {}\nmetrics_listen = {}\nreflection = true\nshutdown_grace_ms = 5000\n\n\
          [models]\ndirectory = {}\n\n[logging]\nlevel = \"warn\"\n\n\
          [limits]\n# The outcome stream stays open while every outcome is sent.\ndefault_deadline_ms = 120000\n\n\
-         [log]\ndirectory = {}\nflush_interval = \"50ms\"\n\n{}",
+         [store]\ndirectory = {}\nflush_interval = \"50ms\"\n\n{}",
         toml::Value::from(args.grpc_listen.as_str()),
         toml::Value::from(args.metrics_listen.as_str()),
         toml::Value::from(model_dir.display().to_string()),

@@ -1,4 +1,4 @@
-//! The end of the live demo's loop: the report the server computes from its prediction log (`Outcomes.Report`),
+//! The end of the live demo's loop: the report the server computes from its prediction store (`Outcomes.Report`),
 //! the champion-against-challenger comparison (`Challengers.Compare`), and the SVG pictures, written from the same
 //! log file the way `probity report --svg-dir` and `probity compare --svg` write them.
 
@@ -25,7 +25,7 @@ pub fn outcomes_section(sent: &Sent) -> String {
     let _ = writeln!(
         out,
         "          {} in {} RecordOutcomes calls, {} on one RecordOutcomeStream: {} matched at once, {} held \
-         until their prediction reached the log, {} duplicate or corrected",
+         until their prediction reached the store, {} duplicate or corrected",
         sent.batch_outcomes,
         sent.batch_calls,
         sent.stream_outcomes,
@@ -53,10 +53,10 @@ pub fn report_section(report: &pb::ReportResponse, route: &str, complete: bool) 
     // The champion first.
     series.sort_by_key(|s| (s.role != "champion", s.role.clone(), s.model.clone()));
     let mut out = format!(
-        "\nreport from the server (Outcomes.Report, exact from the prediction log), route {route}\n"
+        "\nreport from the server (Outcomes.Report, exact from the prediction store), route {route}\n"
     );
     if !complete {
-        out += "  (the log had not caught up with every prediction when asked; the figures cover what it had)\n";
+        out += "  (the store had not caught up with every prediction when asked; the figures cover what it had)\n";
     }
     let mut line = |label: &str, cell: &dyn Fn(&pb::ReportSeries) -> String| {
         let mut l = format!("  {label:<30}");
@@ -104,7 +104,7 @@ pub async fn compare_section(channel: Channel, route: &str) -> anyhow::Result<St
     Ok(out)
 }
 
-/// Writes the route's pictures into `dir` from the log file: reliability, histograms and gains per model, and the
+/// Writes the route's pictures into `dir` from the store file: reliability, histograms and gains per model, and the
 /// comparison when the route has a challenger. Returns the files written.
 pub fn write_svgs(
     log_dir: &Path,
@@ -115,13 +115,13 @@ pub fn write_svgs(
     std::fs::create_dir_all(dir).with_context(|| format!("--svg-dir {}", dir.display()))?;
     let file = log_dir.join(probity::store::sqlite::FILE_NAME);
     let mut store = SqliteStore::open_existing(&file)
-        .with_context(|| format!("opening the demo's log {}", file.display()))?;
+        .with_context(|| format!("opening the demo's store {}", file.display()))?;
     let filter = ReportFilter {
         route: Some(route.to_string()),
         ..ReportFilter::default()
     };
     let report = probity::report::build(&mut store as &mut dyn Store, &filter)
-        .context("reading the demo's log")?;
+        .context("reading the demo's store")?;
     let mut written = Vec::new();
     let mut write = |name: String, body: String| -> anyhow::Result<()> {
         let path = dir.join(name);
@@ -147,7 +147,7 @@ pub fn write_svgs(
             ..probity::compare::CompareRequest::default()
         };
         let c = probity::compare::build(&mut store as &mut dyn Store, &request)
-            .context("comparing from the demo's log")?;
+            .context("comparing from the demo's store")?;
         write(
             format!("{route}-compare.svg"),
             probity::compare::svg::render(&c),

@@ -3,8 +3,8 @@
 //! the binary), each model's training base rate corrected to the live one, then shows what a fraud analyst would
 //! look at: the probability distribution, calibration in the large, and log-loss, Brier score and AUC.
 //!
-//! By default the demo is live ([`live`]): it starts the real gRPC server on loopback with its prediction log on and
-//! the scorecard mirrored as a challenger of the tree model, drives the transactions through a gRPC client
+//! By default the demo is live ([`live`]): it starts the real gRPC server on loopback with its prediction store on and
+//! the scorecard a silent challenger of the tree model, drives the transactions through a gRPC client
 //! ([`traffic`]), reports requests, failures, throughput and latency beside the model figures, sends the fraud
 //! labels back as delayed outcomes ([`outcomes`]), prints the server's report and the champion-challenger
 //! comparison and writes their pictures ([`loop_report`]), and keeps serving until interrupted. `--offline` ([`offline`]) scores in process instead. Both print through
@@ -94,7 +94,7 @@ pub struct DemoArgs {
     /// Rows in each ScoreBatch call (one row in five goes by unary Score instead).
     #[arg(long, default_value_t = 100, value_parser = clap::value_parser!(u16).range(1..=1000), conflicts_with = "offline")]
     pub batch_rows: u16,
-    /// Keep the demo's prediction log (predictions.db) in this directory instead of the temporary one removed at
+    /// Keep the demo's prediction store (predictions.db) in this directory instead of the temporary one removed at
     /// exit.
     #[arg(long, value_name = "DIR", conflicts_with = "offline")]
     pub data_dir: Option<PathBuf>,

@@ -5,7 +5,7 @@
 //! becomes known when the chargeback arrives, 2 days plus an exponential delay with a mean of
 //! [`CHARGEBACK_MEAN_DAYS`] after the transaction; a genuine transaction is confirmed when its statement's dispute
 //! window closes, 30 to 60 days after. The demo reports as of day [`AS_OF_DAYS`]: the few chargebacks dated later
-//! are not sent, so their predictions stay immature in the report, as they would in a real log.
+//! are not sent, so their predictions stay immature in the report, as they would in a real store.
 //!
 //! Outcomes go in the order they happen: the first half in `RecordOutcomes` batch calls, the rest on one
 //! `RecordOutcomeStream`.
@@ -45,7 +45,7 @@ pub struct Sent {
     pub not_yet: usize,
     /// Results: matched at once.
     pub matched: usize,
-    /// Results: held until their prediction reached the log.
+    /// Results: held until their prediction reached the store.
     pub pending: usize,
     /// Results: duplicates or corrections (none expected).
     pub other: usize,
@@ -149,8 +149,8 @@ pub async fn send(
     Ok(sent)
 }
 
-/// Asks for the report until every expected prediction is in the log and no outcome is held (the log is written
-/// from a queue, and mirrored scoring runs in the background), or `patience` runs out; returns the last report.
+/// Asks for the report until every expected prediction is in the store and no outcome is held (the store is written
+/// from a queue, and silent scoring runs off the answer path), or `patience` runs out; returns the last report.
 pub async fn settled_report(
     channel: Channel,
     expected: &[(String, String, u64)],

@@ -358,7 +358,7 @@ fn row(f: &Features, shared: &Shared, i: usize) -> anyhow::Result<pb::Row> {
     let id = shared.ids.get(i).map(String::as_str).unwrap_or_default();
     Ok(pb::Row {
         prediction_id: format!("{}/{id}", f.route),
-        entity_key: String::new(),
+        subject_key: String::new(),
         tags: HashMap::new(),
         features: Some(pb::row::Features::Named(pb::NamedFeatures { values })),
     })

@@ -1,5 +1,5 @@
 //! `probity score --server URL --route NAME`: the same CSV in, the same CSV out as offline scoring, with the rows
-//! scored by a running server. The route's model schema is fetched once (`DescribeModel`), every cell is read here
+//! scored by a running server. The route's model schema is fetched once (`ModelFacts`), every cell is read here
 //! by the same rule as offline ([`ColumnMap::encode`]), so a bad cell stops the run (or goes to the rejects file with
 //! `--on-error skip`) naming its row and column before anything is sent for it; rows go to the server in batches
 //! as dense vectors, with the id column's value as the prediction id (so outcomes can be sent for it later).
@@ -40,8 +40,8 @@ fn connect_args(args: &ScoreArgs, server: &str) -> ConnectArgs {
 async fn schema_of(connection: probity::client::Connection, route: &str) -> anyhow::Result<Schema> {
     let mut models = pb::models_client::ModelsClient::new(connection);
     let described = models
-        .describe_model(pb::DescribeModelRequest {
-            target: Some(pb::describe_model_request::Target::Route(route.to_string())),
+        .model_facts(pb::ModelFactsRequest {
+            target: Some(pb::model_facts_request::Target::Route(route.to_string())),
         })
         .await
         .map_err(|s| anyhow!("cannot describe route `{route}`: {}", status_text(&s)))?

@@ -23,7 +23,7 @@ fn load(text: &str) -> Result<Config, ConfigError> {
     })
 }
 
-const ROUTES: &str = "[log]\ndirectory = \"LOGDIR\"\nprior_window = 10000\n\
+const ROUTES: &str = "[store]\ndirectory = \"LOGDIR\"\nprior_window = 10000\n\
     [routes.fraud]\nmodel = \"m\"\ntarget_base_rate = 0.02\n\
     [routes.plain]\nmodel = \"m\"\ntarget_base_rate = 0.02\n";
 
@@ -86,7 +86,7 @@ fn off_by_default_and_validated_with_the_key_named() {
     .unwrap_err()
     .to_string();
     assert!(
-        e.starts_with("routes.fraud.base_rate_from_estimate:") && e.contains("log.directory"),
+        e.starts_with("routes.fraud.base_rate_from_estimate:") && e.contains("store.directory"),
         "{e}"
     );
 }

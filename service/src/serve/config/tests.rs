@@ -442,9 +442,9 @@ fn kubernetes_configmap_configuration_is_valid() {
     assert_eq!(c.access.callers.len(), 3);
     assert_eq!(c.max_connection_age, Some(Duration::from_secs(300)));
     assert_eq!(c.routes["card-auth"].challengers.list.len(), 1);
-    assert_eq!(c.log.backend, crate::store::config::Backend::Postgres);
+    assert_eq!(c.store.backend, crate::store::config::Backend::Postgres);
     assert_eq!(
-        c.log.postgres_url_file.as_deref(),
+        c.store.postgres_url_file.as_deref(),
         Some(Path::new("/etc/probity/postgres/url"))
     );
 }
@@ -469,15 +469,79 @@ fn route_reasons_settings() {
 }
 
 #[test]
+fn names_of_earlier_releases_are_refused_with_the_new_name() {
+    let store_hint = "log: the prediction store's section was renamed: write [store]";
+    // The section in the file, its variables and its overrides all meet the same refusal.
+    let err = load(&format!("[log]\ndirectory = \"d\"\n{MINIMAL}"), &[], &[])
+        .unwrap_err()
+        .to_string();
+    assert!(err.starts_with(store_hint), "{err}");
+    let err = load(MINIMAL, &[("PROBITY_LOG_DIRECTORY", "d")], &[])
+        .unwrap_err()
+        .to_string();
+    assert!(err.starts_with(store_hint), "{err}");
+    let err = load(MINIMAL, &[], &[("log.directory", "d")])
+        .unwrap_err()
+        .to_string();
+    assert!(err.starts_with(store_hint), "{err}");
+    // The new names load; the process log keeps its own section and variables.
+    let c = load(
+        MINIMAL,
+        &[
+            ("PROBITY_STORE_DIRECTORY", "d"),
+            ("PROBITY_LOGGING_LEVEL", "debug"),
+        ],
+        &[],
+    )
+    .unwrap();
+    assert_eq!(c.store.directory.as_deref(), Some(Path::new("d")));
+    assert_eq!(c.logging.level, "debug");
+    // Challenger words of earlier releases name their replacements.
+    for (text, expected) in [
+        (
+            "mode = \"mirror\"",
+            "routes.fraud.challengers[0].mode: `mirror` was renamed: write `silent`",
+        ),
+        (
+            "mode = \"split\"\nfraction = 0.1",
+            "routes.fraud.challengers[0].fraction: was renamed: write `share`",
+        ),
+        (
+            "mode = \"live\"\nshare = 0.1\nmirror_back = true",
+            "routes.fraud.challengers[0].mirror_back: was renamed: write `paired`",
+        ),
+    ] {
+        let err = load(
+            &format!("{MINIMAL}[[routes.fraud.challengers]]\nmodel = \"other\"\n{text}\n"),
+            &[],
+            &[],
+        )
+        .unwrap_err()
+        .to_string();
+        assert_eq!(err, expected);
+    }
+    let c = load(
+        &format!("{MINIMAL}[[routes.fraud.challengers]]\nmodel = \"other\"\nmode = \"live\"\nshare = 0.1\npaired = true\n"),
+        &[],
+        &[],
+    )
+    .unwrap();
+    assert_eq!(
+        c.routes["fraud"].challengers.list[0].describe(),
+        "other live 0.1 paired"
+    );
+}
+
+#[test]
 fn route_record_words_and_the_store_it_needs() {
     let c = load(MINIMAL, &[], &[]).unwrap();
     assert_eq!(c.routes["fraud"].record, RecordMode::AfterAnswer);
-    let text = "[log]\ndirectory = \"/var/lib/probity\"\n\
+    let text = "[store]\ndirectory = \"/var/lib/probity\"\n\
                 [routes.fraud]\nmodel = \"m\"\n[routes.credit]\nmodel = \"m\"\nrecord = \"before-answer\"\n";
     let c = load(text, &[], &[]).unwrap();
     assert_eq!(c.routes["credit"].record, RecordMode::BeforeAnswer);
     assert_eq!(c.routes["fraud"].record, RecordMode::AfterAnswer);
-    let bad = "[log]\ndirectory = \"/var/lib/probity\"\n[routes.credit]\nmodel = \"m\"\nrecord = \"sync\"\n";
+    let bad = "[store]\ndirectory = \"/var/lib/probity\"\n[routes.credit]\nmodel = \"m\"\nrecord = \"sync\"\n";
     let e = load(bad, &[], &[]).unwrap_err().to_string();
     assert!(
         e.contains("routes.credit.record: must be `after-answer` or `before-answer`, got `sync`"),
@@ -487,7 +551,7 @@ fn route_record_words_and_the_store_it_needs() {
     let no_store = "[routes.credit]\nmodel = \"m\"\nrecord = \"before-answer\"\n";
     let e = load(no_store, &[], &[]).unwrap_err().to_string();
     assert!(
-        e.contains("routes.credit.record") && e.contains("log.directory"),
+        e.contains("routes.credit.record") && e.contains("store.directory"),
         "{e}"
     );
 }

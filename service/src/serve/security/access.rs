@@ -103,7 +103,7 @@ pub const METHODS: &[(&str, Need)] = &[
     ("/probity.v1.Scoring/ScoreBatch", Need::Role(Role::Score)),
     ("/probity.v1.Scoring/ScoreStream", Need::Role(Role::Score)),
     ("/probity.v1.Models/ListRoutes", Need::AnyCaller),
-    ("/probity.v1.Models/DescribeModel", Need::AnyCaller),
+    ("/probity.v1.Models/ModelFacts", Need::AnyCaller),
     ("/probity.v1.Models/Reload", Need::Role(Role::Admin)),
     (
         "/probity.v1.Outcomes/RecordOutcomes",
@@ -124,6 +124,13 @@ pub const METHODS: &[(&str, Need)] = &[
         Need::Role(Role::ReportRead),
     ),
 ];
+
+/// Methods of earlier releases and their new paths. A call to one is answered UNIMPLEMENTED with the new path named
+/// (the gRPC layer alone would answer UNIMPLEMENTED with no message).
+pub const RENAMED_METHODS: &[(&str, &str)] = &[(
+    "/probity.v1.Models/DescribeModel",
+    "/probity.v1.Models/ModelFacts",
+)];
 
 /// The table entry of a method path: the path as a `'static` label (metrics never carry a caller-chosen string)
 /// and what it needs.

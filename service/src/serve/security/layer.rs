@@ -16,7 +16,7 @@ use tower::{Layer, Service, ServiceExt as _};
 
 use crate::serve::error::ServeError;
 use crate::serve::metrics;
-use crate::serve::security::access::{need_of, PeerInfo};
+use crate::serve::security::access::{need_of, PeerInfo, RENAMED_METHODS};
 use crate::serve::security::Security;
 
 /// Wraps the gRPC services with the access check.
@@ -71,6 +71,22 @@ where
     }
 
     fn call(&mut self, mut request: http::Request<B>) -> Self::Future {
+        if let Some((old, new)) = RENAMED_METHODS
+            .iter()
+            .find(|(old, _)| *old == request.uri().path())
+        {
+            tracing::warn!(
+                method = old,
+                renamed = new,
+                "call to a renamed method refused"
+            );
+            let status = tonic::Status::unimplemented(format!(
+                "{} was renamed {}",
+                old.trim_start_matches('/'),
+                new.trim_start_matches('/')
+            ));
+            return Box::pin(std::future::ready(Ok(status.into_http())));
+        }
         let peer = request.extensions().get::<PeerInfo>();
         let checked = self
             .security

@@ -1,7 +1,7 @@
-//! Measures what mirroring one challenger costs the response latency: the same unary `Score` calls on a route
-//! without a challenger and on a route with one mirrored challenger, on the same server, interleaved. Prints the
+//! Measures what one silent challenger costs the response latency: the same unary `Score` calls on a route
+//! without a challenger and on a route with one silent challenger, on the same server, interleaved. Prints the
 //! median and 99th percentile of each; it asserts nothing about time (timings depend on the machine). Run with
-//! `cargo test --release -p probity --test mirror_latency -- --ignored --nocapture`.
+//! `cargo test --release -p probity --test silent_latency -- --ignored --nocapture`.
 
 #![allow(clippy::unwrap_used)]
 
@@ -19,7 +19,7 @@ fn quantile(v: &mut [f64], q: f64) -> f64 {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 #[ignore = "a measurement, not a check; run with --ignored --nocapture"]
-async fn mirroring_one_challenger_latency() {
+async fn one_silent_challenger_latency() {
     let data = tempfile::tempdir().unwrap();
     let conf = tempfile::tempdir().unwrap();
     let path = conf.path().join("probity.toml");
@@ -28,10 +28,10 @@ async fn mirroring_one_challenger_latency() {
         format!(
             "[server]\nplaintext = \"loopback\"\ngrpc_listen = \"127.0.0.1:0\"\nmetrics_listen = \"127.0.0.1:0\"\n\
              [models]\ndirectory = {DEMO:?}\nwatch = false\n\
-             [log]\ndirectory = {:?}\n\
+             [store]\ndirectory = {:?}\n\
              [routes.plain]\nmodel = \"harbourline-fraud-trees\"\nunknown_features = \"ignore\"\n\
-             [routes.mirrored]\nmodel = \"harbourline-fraud-trees\"\nunknown_features = \"ignore\"\n\
-             [[routes.mirrored.challengers]]\nmodel = \"harbourline-fraud-scorecard\"\nmode = \"mirror\"\n",
+             [routes.silent]\nmodel = \"harbourline-fraud-trees\"\nunknown_features = \"ignore\"\n\
+             [[routes.silent.challengers]]\nmodel = \"harbourline-fraud-scorecard\"\nmode = \"silent\"\n",
             data.path().display().to_string()
         ),
     )
@@ -53,16 +53,16 @@ async fn mirroring_one_challenger_latency() {
         route: route.into(),
         row: Some(pb::Row {
             prediction_id: format!("{route}-{i}"),
-            entity_key: format!("card-{i}"),
+            subject_key: format!("card-{i}"),
             features: Some(pb::row::Features::Named(pb::NamedFeatures {
                 values: Default::default(),
             })),
             ..Default::default()
         }),
     };
-    let (mut plain, mut mirrored) = (Vec::new(), Vec::new());
+    let (mut plain, mut silent) = (Vec::new(), Vec::new());
     for i in 0..6_000usize {
-        for (route, out) in [("plain", &mut plain), ("mirrored", &mut mirrored)] {
+        for (route, out) in [("plain", &mut plain), ("silent", &mut silent)] {
             let t = Instant::now();
             scoring.score(request(route, i)).await.unwrap();
             if i >= 1_000 {
@@ -70,11 +70,11 @@ async fn mirroring_one_challenger_latency() {
             }
         }
     }
-    let (p50, m50) = (quantile(&mut plain, 0.5), quantile(&mut mirrored, 0.5));
-    let (p99, m99) = (quantile(&mut plain, 0.99), quantile(&mut mirrored, 0.99));
+    let (p50, m50) = (quantile(&mut plain, 0.5), quantile(&mut silent, 0.5));
+    let (p99, m99) = (quantile(&mut plain, 0.99), quantile(&mut silent, 0.99));
     println!(
         "unary Score, 5000 calls each after 1000 warm-up, microseconds: without challenger median {p50:.1} p99 \
-         {p99:.1}; with one mirrored challenger median {m50:.1} p99 {m99:.1}; median cost {:.1}",
+         {p99:.1}; with one silent challenger median {m50:.1} p99 {m99:.1}; median cost {:.1}",
         m50 - p50
     );
     server.shutdown().await;

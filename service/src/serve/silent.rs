@@ -1,10 +1,10 @@
-//! Background scoring of requests by the models that did not answer them (mirrored challengers, and the other side
-//! of a split with `mirror_back`), kept off the response's critical path.
+//! Silent scoring of requests by the models that did not answer them (silent challengers, and the other side of a
+//! live challenger with `paired`), kept off the response's critical path.
 //!
 //! The request path only clones the rows and offers them to a bounded queue with `try_send`; a full queue drops the
-//! job and counts it (`probity_shadow_dropped_total`) rather than slow the answer down. One worker thread takes the
-//! jobs, scores each row with the current version of each shadow model under the route's policies, queues the
-//! predictions to the prediction log under the answer's prediction id with their role, and updates the live
+//! job and counts it (`probity_silent_dropped_total`) rather than slow the answer down. One worker thread takes the
+//! jobs, scores each row with the current version of each silent model under the route's policies, queues the
+//! predictions to the prediction store under the answer's prediction id with their role, and updates the live
 //! agreement metrics. The full comparison (rank correlation, PSI, tests once outcomes arrive) is computed from the
 //! log by `probity compare` ([`crate::compare`]).
 
@@ -17,39 +17,39 @@ use crate::serve::conversions::prepare_row;
 use crate::serve::promotion::RouteTable;
 use crate::serve::proto as pb;
 use crate::serve::registry::Registry;
-use crate::store::PredictionLog;
+use crate::store::PredictionStore;
 
-/// Rows scored in the background, by route, model and role.
-pub const SHADOW_PREDICTIONS: &str = "probity_shadow_predictions_total";
-/// Background jobs dropped because the queue was full, by route.
-pub const SHADOW_DROPPED: &str = "probity_shadow_dropped_total";
-/// Background rows not scored, by route, model and reason (`model_not_loaded`, `row_refused`).
-pub const SHADOW_FAILURES: &str = "probity_shadow_failures_total";
-/// Background rows whose decision differs from the answer's, by route and model.
-pub const SHADOW_DECISION_FLIPS: &str = "probity_shadow_decision_flips_total";
-/// Distribution of `|shadow - answer|` adjusted log-odds, by route and model.
-pub const SHADOW_LOG_ODDS_DIFFERENCE: &str = "probity_shadow_log_odds_abs_difference";
+/// Rows scored silently, by route, model and role.
+pub const SILENT_PREDICTIONS: &str = "probity_silent_predictions_total";
+/// Silent scoring jobs dropped because the queue was full, by route.
+pub const SILENT_DROPPED: &str = "probity_silent_dropped_total";
+/// Rows a silent model could not score, by route, model and reason (`model_not_loaded`, `row_refused`).
+pub const SILENT_FAILURES: &str = "probity_silent_failures_total";
+/// Silently scored rows whose decision differs from the answer's, by route and model.
+pub const SILENT_DECISION_FLIPS: &str = "probity_silent_decision_flips_total";
+/// Distribution of `|silent - answer|` adjusted log-odds, by route and model.
+pub const SILENT_LOG_ODDS_DIFFERENCE: &str = "probity_silent_log_odds_abs_difference";
 
 /// The HELP text of the challenger-scoring metrics.
 pub fn describe() {
     metrics::describe_counter!(
-        SHADOW_PREDICTIONS,
+        SILENT_PREDICTIONS,
         "Rows scored by challengers beside the champion, by route, model and role."
     );
     metrics::describe_counter!(
-        SHADOW_DROPPED,
+        SILENT_DROPPED,
         "Challenger scoring jobs dropped because their queue was full, by route."
     );
     metrics::describe_counter!(
-        SHADOW_FAILURES,
+        SILENT_FAILURES,
         "Rows a challenger could not score, by route, model and reason."
     );
     metrics::describe_counter!(
-        SHADOW_DECISION_FLIPS,
+        SILENT_DECISION_FLIPS,
         "Rows whose challenger decision differs from the champion's answer, by route and model."
     );
     metrics::describe_histogram!(
-        SHADOW_LOG_ODDS_DIFFERENCE,
+        SILENT_LOG_ODDS_DIFFERENCE,
         "Absolute difference of challenger and champion adjusted log-odds on the same row."
     );
 }
@@ -57,7 +57,7 @@ pub fn describe() {
 /// Jobs waiting at most; beyond this the request path drops instead of waiting.
 const QUEUE_JOBS: usize = 4_096;
 
-/// What the answer said about one row, to compare the shadow's prediction with.
+/// What the answer said about one row, to compare the silent prediction with.
 #[derive(Debug, Clone)]
 pub struct Answered {
     /// The row as received, with the prediction id of the answer filled in.
@@ -70,7 +70,7 @@ pub struct Answered {
 
 /// One request (or batch) to score in the background.
 #[derive(Debug)]
-pub struct ShadowJob {
+pub struct SilentJob {
     /// The route name.
     pub route: String,
     /// The models to score with, and their roles.
@@ -81,46 +81,46 @@ pub struct ShadowJob {
 
 /// The sending side; dropping the last one ends the worker after it has finished the queued jobs.
 #[derive(Debug, Clone)]
-pub struct Shadow {
-    tx: SyncSender<ShadowJob>,
+pub struct Silent {
+    tx: SyncSender<SilentJob>,
 }
 
-impl Shadow {
+impl Silent {
     /// Starts the worker thread.
     pub fn start(
         registry: Arc<Registry>,
         routes: Arc<RouteTable>,
-        log: Option<Arc<PredictionLog>>,
-    ) -> std::io::Result<Shadow> {
+        log: Option<Arc<PredictionStore>>,
+    ) -> std::io::Result<Silent> {
         let (tx, rx) = sync_channel(QUEUE_JOBS);
         std::thread::Builder::new()
-            .name("probity-shadow".into())
+            .name("probity-silent".into())
             .spawn(move || work(rx, &registry, &routes, log.as_deref()))?;
-        Ok(Shadow { tx })
+        Ok(Silent { tx })
     }
 
     /// Offers a job without waiting; a full queue drops it and counts it.
-    pub fn submit(&self, job: ShadowJob) {
+    pub fn submit(&self, job: SilentJob) {
         match self.tx.try_send(job) {
             Ok(()) => {}
             Err(TrySendError::Full(job)) | Err(TrySendError::Disconnected(job)) => {
-                metrics::counter!(SHADOW_DROPPED, "route" => job.route).increment(1);
+                metrics::counter!(SILENT_DROPPED, "route" => job.route).increment(1);
             }
         }
     }
 }
 
 fn failure(route: &str, model: &str, reason: &'static str, rows: usize) {
-    metrics::counter!(SHADOW_FAILURES, "route" => route.to_string(), "model" => model.to_string(),
+    metrics::counter!(SILENT_FAILURES, "route" => route.to_string(), "model" => model.to_string(),
         "reason" => reason)
     .increment(rows as u64);
 }
 
 fn work(
-    rx: Receiver<ShadowJob>,
+    rx: Receiver<SilentJob>,
     registry: &Registry,
     routes: &RouteTable,
-    log: Option<&PredictionLog>,
+    log: Option<&PredictionStore>,
 ) {
     while let Ok(job) = rx.recv() {
         let table = routes.load();
@@ -128,54 +128,46 @@ fn work(
             continue;
         };
         // The request was valid for the model that answered; a feature only that model knows is no reason for a
-        // shadow model to refuse the row, so unknown features are ignored here whatever the route's policy.
+        // silent model to refuse the row, so unknown features are ignored here whatever the route's policy.
         let route = &Route {
             unknown_features: UnknownFeaturePolicy::Ignore,
             ..Route::clone(configured)
         };
         let snapshot = registry.snapshot();
-        for shadow in &job.models {
-            let Some(loaded) = snapshot.models.get(&shadow.model) else {
-                failure(
-                    &job.route,
-                    &shadow.model,
-                    "model_not_loaded",
-                    job.rows.len(),
-                );
+        for model in &job.models {
+            let Some(loaded) = snapshot.models.get(&model.model) else {
+                failure(&job.route, &model.model, "model_not_loaded", job.rows.len());
                 continue;
             };
             for answered in &job.rows {
                 let prepared =
                     prepare_row(answered.row.clone(), "row", loaded.model.schema(), route);
                 let Ok(mut prepared) = prepared else {
-                    failure(&job.route, &shadow.model, "row_refused", 1);
+                    failure(&job.route, &model.model, "row_refused", 1);
                     continue;
                 };
                 let Ok(scored) = loaded.model.score(&prepared.values, &route.output) else {
-                    failure(&job.route, &shadow.model, "row_refused", 1);
+                    failure(&job.route, &model.model, "row_refused", 1);
                     continue;
                 };
                 if let Some(log) = log {
                     log.log(crate::serve::outcomes::queued(
                         route,
                         loaded,
-                        shadow.role,
+                        model.role,
                         &mut prepared,
                         &scored,
                     ));
                 }
-                let labels = [
-                    ("route", job.route.clone()),
-                    ("model", shadow.model.clone()),
-                ];
-                metrics::counter!(SHADOW_PREDICTIONS, "route" => job.route.clone(),
-                    "model" => shadow.model.clone(), "role" => shadow.role)
+                let labels = [("route", job.route.clone()), ("model", model.model.clone())];
+                metrics::counter!(SILENT_PREDICTIONS, "route" => job.route.clone(),
+                    "model" => model.model.clone(), "role" => model.role)
                 .increment(1);
                 let decision = scored.decision.as_ref().map(|d| d.as_str().to_string());
                 if decision != answered.decision {
-                    metrics::counter!(SHADOW_DECISION_FLIPS, &labels).increment(1);
+                    metrics::counter!(SILENT_DECISION_FLIPS, &labels).increment(1);
                 }
-                metrics::histogram!(SHADOW_LOG_ODDS_DIFFERENCE, &labels)
+                metrics::histogram!(SILENT_LOG_ODDS_DIFFERENCE, &labels)
                     .record((scored.adjusted_log_odds - answered.adjusted_log_odds).abs());
             }
         }

@@ -1,28 +1,28 @@
-//! Sticky split routing: which model answers an entity when a route splits its traffic.
+//! Sticky shares: which model answers a subject when live challengers answer a share of a route's subjects.
 //!
-//! An entity (a customer, a card) must always meet the same model, across requests, restarts, machines and compiler
-//! versions, so the assignment is a pure function of the route name, the entity key and the configured fractions.
+//! A subject (a customer, a card) must always meet the same model, across requests, restarts, machines and compiler
+//! versions, so the assignment is a pure function of the route name, the subject key and the configured shares.
 //! It cannot use `std`'s `RandomState` or `DefaultHasher`: the first is seeded per process and the second's
 //! algorithm may change between Rust releases.
 //!
-//! The hash ([`split_hash`], named [`SPLIT_HASH_NAME`]):
+//! The hash ([`share_hash`], named [`SHARE_HASH_NAME`]):
 //! 1. 64-bit FNV-1a (offset basis `0xcbf29ce484222325`, prime `0x100000001b3`; Fowler, Noll and Vo, described in
 //!    the IETF draft "The FNV Non-Cryptographic Hash Algorithm", Eastlake et al.) over the UTF-8 bytes of the route
 //!    name, one byte `0xFF` (which never occurs in UTF-8, so route and key cannot run into each other), and the UTF-8
-//!    bytes of the entity key;
+//!    bytes of the subject key;
 //! 2. the 64-bit finalizer `fmix64` of MurmurHash3 (Appleby 2011): `k ^= k >> 33; k *= 0xff51afd7ed558ccd;
 //!    k ^= k >> 33; k *= 0xc4ceb9fe1a85ec53; k ^= k >> 33`, so that keys differing in their last character (serial
 //!    customer numbers) still spread over the whole range, which FNV alone does poorly in its high bits.
 //!
-//! The top 53 bits give a number `u = (h >> 11) / 2^53` in [0, 1) ([`split_unit`]). With challenger fractions
+//! The top 53 bits give a number `u = (h >> 11) / 2^53` in [0, 1) ([`share_unit`]). With challenger shares
 //! `f_1, f_2, ...` (sum at most 1), challenger `k` answers when `u` lies in `[f_1 + ... + f_{k-1}, f_1 + ... + f_k)`
-//! and the champion answers otherwise. Raising the first challenger's fraction only adds entities to it; entities
-//! already with it stay. The route name is part of the hash so that two routes split independently.
+//! and the champion answers otherwise. Raising the first challenger's share only adds subjects to it; subjects
+//! already with it stay. The route name is part of the hash so that two routes assign their subjects independently.
 //!
 //! `tests/fixtures/gen_compare.py` computes the same hashes in Python; the tests pin them.
 
 /// Name of the hash, for logs and reports.
-pub const SPLIT_HASH_NAME: &str = "fnv1a64+fmix64";
+pub const SHARE_HASH_NAME: &str = "fnv1a64+fmix64";
 
 const FNV_OFFSET: u64 = 0xcbf2_9ce4_8422_2325;
 const FNV_PRIME: u64 = 0x0000_0100_0000_01b3;
@@ -44,33 +44,33 @@ fn fmix64(mut k: u64) -> u64 {
     k
 }
 
-/// The stable 64-bit hash of a route name and an entity key (see the module overview).
-pub fn split_hash(route: &str, entity_key: &str) -> u64 {
+/// The stable 64-bit hash of a route name and a subject key (see the module overview).
+pub fn share_hash(route: &str, subject_key: &str) -> u64 {
     let h = fnv1a(FNV_OFFSET, route.as_bytes());
     let h = fnv1a(h, &[0xFF]);
-    fmix64(fnv1a(h, entity_key.as_bytes()))
+    fmix64(fnv1a(h, subject_key.as_bytes()))
 }
 
 /// The hash as a number in [0, 1): its top 53 bits over `2^53` (exact in `f64`).
-pub fn split_unit(route: &str, entity_key: &str) -> f64 {
-    (split_hash(route, entity_key) >> 11) as f64 / (1u64 << 53) as f64
+pub fn share_unit(route: &str, subject_key: &str) -> f64 {
+    (share_hash(route, subject_key) >> 11) as f64 / (1u64 << 53) as f64
 }
 
-/// Why a split is not usable.
+/// Why a set of shares is not usable.
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
-pub enum SplitError {
-    /// A fraction was not in [0, 1].
-    #[error("challenger {index} ({name}): fraction {value} must be in [0, 1]")]
-    BadFraction {
+pub enum ShareError {
+    /// A share was not in [0, 1].
+    #[error("challenger {index} ({name}): share {value} must be in [0, 1]")]
+    BadShare {
         /// Position of the challenger.
         index: usize,
         /// Its name.
         name: String,
-        /// The fraction given.
+        /// The share given.
         value: f64,
     },
-    /// The fractions add up to more than the whole traffic.
-    #[error("challenger fractions sum to {sum}, more than 1")]
+    /// The shares add up to more than the whole traffic.
+    #[error("challenger shares sum to {sum}, more than 1")]
     SumAboveOne {
         /// Their sum.
         sum: f64,
@@ -86,43 +86,43 @@ pub enum Assignment {
     Challenger(usize),
 }
 
-/// Validated challenger fractions of one route.
+/// Validated challenger shares of one route.
 #[derive(Debug, Clone, PartialEq)]
-pub struct SplitPlan {
+pub struct SharePlan {
     names: Vec<String>,
     /// Upper ends of the challengers' intervals of `u`.
     cumulative: Vec<f64>,
 }
 
-impl Default for SplitPlan {
+impl Default for SharePlan {
     /// No challenger: the champion answers everyone.
     fn default() -> Self {
-        SplitPlan {
+        SharePlan {
             names: Vec::new(),
             cumulative: Vec::new(),
         }
     }
 }
 
-impl SplitPlan {
-    /// A plan from `(challenger name, fraction)` pairs. Errors: a fraction outside [0, 1] or NaN, a sum above 1.
+impl SharePlan {
+    /// A plan from `(challenger name, share)` pairs. Errors: a share outside [0, 1] or NaN, a sum above 1.
     pub fn new<S: Into<String>>(
         challengers: impl IntoIterator<Item = (S, f64)>,
-    ) -> Result<SplitPlan, SplitError> {
+    ) -> Result<SharePlan, ShareError> {
         let (mut names, mut cumulative, mut sum) = (Vec::new(), Vec::new(), 0.0f64);
         for (index, (name, value)) in challengers.into_iter().enumerate() {
             let name = name.into();
             if !(0.0..=1.0).contains(&value) {
-                return Err(SplitError::BadFraction { index, name, value });
+                return Err(ShareError::BadShare { index, name, value });
             }
             sum += value;
             names.push(name);
             cumulative.push(sum);
         }
         if sum > 1.0 {
-            return Err(SplitError::SumAboveOne { sum });
+            return Err(ShareError::SumAboveOne { sum });
         }
-        Ok(SplitPlan { names, cumulative })
+        Ok(SharePlan { names, cumulative })
     }
 
     /// The challengers' names in plan order.
@@ -130,9 +130,9 @@ impl SplitPlan {
         &self.names
     }
 
-    /// The model that answers `entity_key` on `route`.
-    pub fn assign(&self, route: &str, entity_key: &str) -> Assignment {
-        let u = split_unit(route, entity_key);
+    /// The model that answers `subject_key` on `route`.
+    pub fn assign(&self, route: &str, subject_key: &str) -> Assignment {
+        let u = share_unit(route, subject_key);
         self.cumulative
             .iter()
             .position(|&c| u < c)
@@ -157,16 +157,16 @@ mod tests {
     fn hashes_pinned_to_an_independent_implementation() {
         // Computed by the Python implementation in tests/fixtures/gen_compare.py (plain integers, written from the
         // FNV and MurmurHash3 descriptions); a change here would move customers between models.
-        assert_eq!(split_hash("fraud", "cust-000001"), 0xd49095581f92d5a9);
-        assert_eq!(split_hash("fraud", "cust-000002"), 0x4165ab38920732b8);
-        assert_eq!(split_hash("fraud", ""), 0x880e641cf3814afc);
-        assert_eq!(split_hash("", "cust-000001"), 0x776da1bc24811790);
+        assert_eq!(share_hash("fraud", "cust-000001"), 0xd49095581f92d5a9);
+        assert_eq!(share_hash("fraud", "cust-000002"), 0x4165ab38920732b8);
+        assert_eq!(share_hash("fraud", ""), 0x880e641cf3814afc);
+        assert_eq!(share_hash("", "cust-000001"), 0x776da1bc24811790);
         assert_eq!(
-            split_hash("fraud", "Zo\u{eb}-\u{c5}ngstr\u{f6}m"),
+            share_hash("fraud", "Zo\u{eb}-\u{c5}ngstr\u{f6}m"),
             0x7a80fc7130577347
         );
-        assert_eq!(split_unit("fraud", "cust-000002"), 0.2554575932608969);
-        let plan = SplitPlan::new([("b", 0.1), ("c", 0.25)]).unwrap();
+        assert_eq!(share_unit("fraud", "cust-000002"), 0.2554575932608969);
+        let plan = SharePlan::new([("b", 0.1), ("c", 0.25)]).unwrap();
         assert_eq!(
             plan.assign("fraud", "cust-000002"),
             Assignment::Challenger(1)
@@ -177,23 +177,23 @@ mod tests {
     #[test]
     fn plan_validation() {
         assert!(matches!(
-            SplitPlan::new([("b", 0.6), ("c", 0.5)]),
-            Err(SplitError::SumAboveOne { .. })
+            SharePlan::new([("b", 0.6), ("c", 0.5)]),
+            Err(ShareError::SumAboveOne { .. })
         ));
         assert!(matches!(
-            SplitPlan::new([("b", f64::NAN)]),
-            Err(SplitError::BadFraction { index: 0, .. })
+            SharePlan::new([("b", f64::NAN)]),
+            Err(ShareError::BadShare { index: 0, .. })
         ));
-        let none = SplitPlan::new(Vec::<(String, f64)>::new()).unwrap();
+        let none = SharePlan::new(Vec::<(String, f64)>::new()).unwrap();
         assert_eq!(none.assign("fraud", "anyone"), Assignment::Champion);
-        let all = SplitPlan::new([("b", 1.0)]).unwrap();
+        let all = SharePlan::new([("b", 1.0)]).unwrap();
         assert_eq!(all.assign("fraud", "anyone"), Assignment::Challenger(0));
     }
 
     #[test]
-    fn raising_a_fraction_keeps_its_entities() {
-        let small = SplitPlan::new([("b", 0.1)]).unwrap();
-        let large = SplitPlan::new([("b", 0.3)]).unwrap();
+    fn raising_a_share_keeps_its_subjects() {
+        let small = SharePlan::new([("b", 0.1)]).unwrap();
+        let large = SharePlan::new([("b", 0.3)]).unwrap();
         for i in 0..2_000 {
             let key = format!("cust-{i}");
             if small.assign("fraud", &key) == Assignment::Challenger(0) {
