@@ -14,9 +14,9 @@ use std::time::Duration;
 use probity::store::sqlite::Durability;
 use probity::store::writer::{ModelFacts, NotRecorded, Queued, Receipt};
 use probity::store::{
-    Clock, LabelledPairs, StoreConfig, LoggedPrediction, ModelVersionInfo, OutcomeCounts,
-    OutcomeInput, OutcomeResult, PredictionStore, PredictionRecord, ReportFilter, Settled,
-    SqliteStore, Store, StoreError, WriteFailure,
+    Clock, LabelledPairs, LoggedPrediction, ModelVersionInfo, OutcomeCounts, OutcomeInput,
+    OutcomeResult, PredictionRecord, PredictionStore, ReportFilter, Settled, SqliteStore, Store,
+    StoreConfig, StoreError, WriteFailure,
 };
 
 struct Facts;
