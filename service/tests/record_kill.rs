@@ -11,7 +11,10 @@
 //!   kill may be lost; the ignored test runs that mode the same way and prints how many were (a measurement for
 //!   the documentation, no bound is asserted on it).
 //!
-//! In both modes every stored prediction must have been sent, and stored once. The PostgreSQL runs need
+//! In both modes every stored prediction must have been sent, and stored once. A last test turns the PostgreSQL
+//! database read-only under a running server (what a failover to a standby does): a `before-answer` call is then
+//! refused with UNAVAILABLE, counted in `probity_store_record_refusals_total{reason="read_only"}`, and its
+//! prediction is not stored; once the database is writable again, calls are answered and recorded. The PostgreSQL runs need
 //! PostgreSQL at 127.0.0.1:5432 (`PROBITY_TEST_POSTGRES` names another administrative URL;
 //! `PROBITY_SKIP_POSTGRES=1` skips them), as `store_postgres.rs` does.
 
@@ -36,6 +39,7 @@ fn free_port() -> u16 {
 struct Server {
     child: Child,
     url: String,
+    metrics: std::net::SocketAddr,
 }
 
 impl Drop for Server {
@@ -48,11 +52,12 @@ impl Drop for Server {
 
 async fn start(config: &std::path::Path) -> Server {
     let port = free_port();
+    let metrics: std::net::SocketAddr = format!("127.0.0.1:{}", free_port()).parse().unwrap();
     let mut child = Command::new(env!("CARGO_BIN_EXE_probity"))
         .args(["serve", "--config"])
         .arg(config)
         .args(["--grpc-listen", &format!("127.0.0.1:{port}")])
-        .args(["--metrics-listen", &format!("127.0.0.1:{}", free_port())])
+        .args(["--metrics-listen", &metrics.to_string()])
         .stdout(Stdio::null())
         .stderr(Stdio::null())
         .spawn()
@@ -65,7 +70,11 @@ async fn start(config: &std::path::Path) -> Server {
             .await
             .is_ok()
         {
-            return Server { child, url };
+            return Server {
+                child,
+                url,
+                metrics,
+            };
         }
         tokio::time::sleep(Duration::from_millis(50)).await;
     }
@@ -499,4 +508,101 @@ fn twenty_kills_per_backend_and_mode() {
              missing after restart (at most {worst} in one run)"
         );
     }
+}
+
+/// The sum of a family's series on the server's `/metrics` that carry every one of `labels` (0 when absent).
+async fn counter(addr: std::net::SocketAddr, family: &str, labels: &[&str]) -> f64 {
+    use tokio::io::{AsyncReadExt, AsyncWriteExt};
+    let mut stream = tokio::net::TcpStream::connect(addr).await.unwrap();
+    stream
+        .write_all(b"GET /metrics HTTP/1.0\r\nHost: test\r\n\r\n")
+        .await
+        .unwrap();
+    let mut text = String::new();
+    stream.read_to_string(&mut text).await.unwrap();
+    text.lines()
+        .filter(|l| l.starts_with(&format!("{family}{{")) && labels.iter().all(|x| l.contains(x)))
+        .filter_map(|l| l.rsplit_once(' ')?.1.parse::<f64>().ok())
+        .sum()
+}
+
+/// Turns the test database read-only (or back) for new sessions and cuts the server's session, so that its
+/// store connects again under the new setting.
+fn read_only(db: &TestDb, on: bool) {
+    let mut admin = postgres::Client::connect(&admin_url(), postgres::NoTls).unwrap();
+    admin
+        .batch_execute(&format!(
+            "ALTER DATABASE {} SET default_transaction_read_only = {}",
+            db.name,
+            if on { "on" } else { "off" }
+        ))
+        .unwrap();
+    admin
+        .query(
+            "SELECT pg_terminate_backend(pid) FROM pg_stat_activity WHERE datname = $1 AND pid <> pg_backend_pid()",
+            &[&db.name],
+        )
+        .unwrap();
+}
+
+#[test]
+fn a_store_that_cannot_commit_refuses_the_call_with_unavailable_and_counts_it() {
+    let Some(setup) = Setup::new(Backend::Postgres, "before-answer") else {
+        return;
+    };
+    let db = setup.db.as_ref().unwrap();
+    let rt = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()
+        .unwrap();
+    let score = |server: &Server, id: &str| {
+        let url = server.url.clone();
+        let id = id.to_string();
+        async move {
+            let channel = tonic::transport::Channel::from_shared(url)
+                .unwrap()
+                .connect()
+                .await
+                .unwrap();
+            pb::scoring_client::ScoringClient::new(channel)
+                .score(pb::ScoreRequest {
+                    explain: 0,
+                    route: "credit".into(),
+                    row: Some(row(id, 7)),
+                })
+                .await
+        }
+    };
+    let server = rt.block_on(start(&setup.config));
+    rt.block_on(score(&server, "before")).unwrap();
+
+    read_only(db, true);
+    let refused = rt.block_on(score(&server, "while-read-only")).unwrap_err();
+    assert_eq!(refused.code(), tonic::Code::Unavailable, "{refused:?}");
+    assert!(
+        refused.message().contains("read_only") && refused.message().contains("not answered"),
+        "{}",
+        refused.message()
+    );
+    let counted = rt.block_on(counter(
+        server.metrics,
+        "probity_store_record_refusals_total",
+        &["reason=\"read_only\"", "route=\"credit\""],
+    ));
+    assert_eq!(counted, 1.0, "refusals counted");
+
+    read_only(db, false);
+    // The first batch after the cut may meet the dead session; the store connects again and retries it.
+    rt.block_on(score(&server, "after")).unwrap();
+    let stored = setup.stored();
+    assert!(
+        stored.contains_key("before") && stored.contains_key("after"),
+        "{stored:?}"
+    );
+    assert!(
+        !stored.contains_key("while-read-only"),
+        "a refused call's prediction was stored"
+    );
+    drop(server);
 }
