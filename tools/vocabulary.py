@@ -36,6 +36,8 @@ WORDS = [
                          "PostgreSQL for a fleet."),
     ("log", "Process logging only (`[logging]`, `--log-level`, `--log-format`)."),
     ("outcome", "The observed label of a prediction, sent later by prediction id."),
+    ("record", "When a route's predictions are committed to the prediction store: `after-answer` (the default: the "
+               "answer never waits) or `before-answer` (the answer waits for the commit)."),
     ("maturity", "The time after which a prediction without a positive outcome settles as a negative."),
     ("hold", "How long an outcome that arrived before its prediction waits for it."),
     ("target base rate", "The live positive rate a route's probabilities are corrected to."),
@@ -95,6 +97,8 @@ CONFIG = [
     ("routes.<route>.unknown_features", "`ignore` or `reject`."),
     ("routes.<route>.reasons.limit", "Most reasons an explanation lists."),
     ("routes.<route>.reasons.adverse", "`higher` or `lower`: which direction of the log-odds is adverse."),
+    ("routes.<route>.record", "`after-answer` (default) or `before-answer`: whether the answer waits until its "
+                              "prediction is committed to the prediction store."),
     ("routes.<route>.base_rate_from_estimate.min", "Lowest applied estimate."),
     ("routes.<route>.base_rate_from_estimate.max", "Highest applied estimate."),
     ("routes.<route>.base_rate_from_estimate.min_predictions", "Window size before the estimate applies."),

@@ -203,7 +203,13 @@ fn measure(store: &mut dyn Store, loaded: bool) -> anyhow::Result<()> {
     reset_peak();
     let t = Instant::now();
     let report = if loaded {
-        probity::report::build_loaded(store, &filter, &configured, BinStrategy::Uniform(10))?
+        probity::report::build_loaded(
+            store,
+            &filter,
+            &configured,
+            BinStrategy::Uniform(10),
+            &probity::report::Horizons::default(),
+        )?
     } else {
         probity::report::build_binned(store, &filter, &configured, BinStrategy::Uniform(10))?
     };

@@ -413,7 +413,7 @@ fn live_demo_serves_given_models_on_routes_named_after_them() {
         "{next}"
     );
     assert!(next.contains("pictures  3 SVG files"), "{next}");
-    assert!(next.contains("--data-dir keeps the log"), "{next}");
+    assert!(next.contains("--data-dir keeps the store"), "{next}");
 }
 
 /// One plain HTTP/1.0 GET; returns the body.

@@ -526,6 +526,214 @@ fn calibration_bins_and_the_picture_axis_are_chosen() {
     assert!(!bad.status.success());
 }
 
+/// The immature window (`probity report --horizon 30d`): 4,000 predictions over 90 days with log-odds drawn from a
+/// normal distribution, each turning positive with probability `sigmoid(-0.5 + 0.8 h)` (an over-confident model)
+/// after an exponential delay of mean 6 days, received then if before "now". The report's estimated eventual
+/// figures of the predictions younger than 30 days equal `probity_models::monitor::eventual_figures` (unit-tested
+/// by hand and by a numerical gradient in `models/src/monitor/eventual.rs`, its coverage measured in
+/// `models/tests/eventual_sim.rs`) on a reference and a window built here from the simulation, the matured figures
+/// equal a direct computation, the text marks them as estimates, the picture has both curves, and a horizon longer
+/// than the range gives "unknown" with the reason.
+#[test]
+fn immature_window_estimates_beside_the_matured_figures() {
+    use probity_models::monitor::{eventual_figures, kaplan_meier, DelayObservation, ScoredCase};
+    use rand::{Rng, SeedableRng};
+    use rand_distr::{Distribution, Exp, Normal};
+
+    const DAY: i64 = 86_400_000;
+    let dir = tempfile::tempdir().unwrap();
+    let mut store = SqliteStore::open(dir.path(), Durability::Normal).unwrap();
+    store
+        .register_model(&ModelVersionInfo {
+            model: "m".into(),
+            version: "1".into(),
+            base_rate: 0.1,
+            reference: None,
+        })
+        .unwrap();
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(7);
+    let delay = Exp::new(1.0 / (6.0 * DAY as f64)).unwrap();
+    let score = Normal::new(-2.0, 1.0).unwrap();
+    let now = T0 + 90 * DAY;
+    let mut records = Vec::new();
+    let mut arrivals: Vec<(i64, String)> = Vec::new();
+    for i in 0..4000 {
+        let time_ms = T0 + (rng.random::<f64>() * 90.0 * DAY as f64) as i64;
+        let h: f64 = score.sample(&mut rng);
+        let id = format!("w-{i}");
+        if rng.random::<f64>() < sigmoid(-0.5 + 0.8 * h) {
+            let at = time_ms + delay.sample(&mut rng) as i64;
+            if at <= now {
+                arrivals.push((at, id.clone()));
+            }
+        }
+        records.push(PredictionRecord {
+            prediction_id: id,
+            route: "w".into(),
+            model: "m".into(),
+            version: "1".into(),
+            role: "champion".into(),
+            time_ms,
+            margin: h,
+            log_odds: h,
+            adjusted_log_odds: h,
+            probability: sigmoid(h),
+            subject_key: String::new(),
+            tags: BTreeMap::new(),
+            served: Default::default(),
+        });
+    }
+    store.insert_predictions(&records).unwrap();
+    for (at, id) in &arrivals {
+        let outcome = OutcomeInput {
+            prediction_id: id.clone(),
+            label: true,
+            time_ms: None,
+        };
+        store.record_outcomes(&[outcome], *at).unwrap();
+    }
+    drop(store);
+    let log = dir.path().to_str().unwrap();
+    let svg_dir = dir.path().join("svg");
+    let doc = report(&[
+        "--store",
+        log,
+        "--json",
+        "--horizon",
+        "30d",
+        "--svg-dir",
+        svg_dir.to_str().unwrap(),
+    ]);
+    let w = &doc["series"][0]["immature_window"];
+    assert_eq!(w["status"], "estimated", "{w}");
+    assert_eq!(w["horizon_ms"], 30 * DAY);
+    // Built here: "now" is the latest prediction or receipt; window younger than 30 days, reference the rest.
+    let latest = records
+        .iter()
+        .map(|r| r.time_ms)
+        .chain(arrivals.iter().map(|a| a.0))
+        .max()
+        .unwrap();
+    assert_eq!(w["now_ms"], latest);
+    let received: std::collections::HashMap<&str, i64> =
+        arrivals.iter().map(|(at, id)| (id.as_str(), *at)).collect();
+    let delay_of = |r: &PredictionRecord| {
+        received
+            .get(r.prediction_id.as_str())
+            .map(|at| (at - r.time_ms) as f64)
+    };
+    let horizon = (30 * DAY) as f64;
+    let (young, old): (Vec<&PredictionRecord>, Vec<&PredictionRecord>) = records
+        .iter()
+        .partition(|r| ((latest - r.time_ms) as f64) < horizon);
+    let reference: Vec<DelayObservation> = old
+        .iter()
+        .map(|r| DelayObservation {
+            age: (latest - r.time_ms) as f64,
+            positive_after: delay_of(r),
+        })
+        .collect();
+    let cases: Vec<ScoredCase> = young
+        .iter()
+        .map(|r| ScoredCase {
+            age: (latest - r.time_ms) as f64,
+            log_odds: r.adjusted_log_odds,
+            probability: r.probability,
+            positive: delay_of(r).is_some_and(|d| d <= horizon),
+        })
+        .collect();
+    let km = kaplan_meier(&reference, horizon).unwrap();
+    let edges: Vec<f64> = (0..=10).map(|i| i as f64 / 10.0).collect();
+    let f = eventual_figures(&km, &cases, &edges, 0.95).unwrap();
+    assert_eq!(w["predictions"], young.len());
+    assert_eq!(w["positives_so_far"], f.positives_so_far);
+    for (key, e) in [
+        ("positive_rate", f.positive_rate),
+        ("log_loss", f.log_loss),
+        ("brier", f.brier),
+    ] {
+        assert_eq!(num(&w[key]["estimate"]), e.estimate, "{key}");
+        assert_eq!(num(&w[key]["lower"]), e.lower.unwrap(), "{key}");
+        assert_eq!(num(&w[key]["upper"]), e.upper.unwrap(), "{key}");
+    }
+    let bins = w["bins"].as_array().unwrap();
+    assert_eq!(bins.len(), f.bins.len());
+    for (b, e) in bins.iter().zip(&f.bins) {
+        assert_eq!(b["count"], e.count);
+        // Shown capped at 1 (a small top bin whose positives came early can pass it; a note says so).
+        assert_eq!(
+            num(&b["eventual"]["estimate"]),
+            e.rate.unwrap().estimate.min(1.0)
+        );
+    }
+    // Matured: every older prediction, positive if its positive arrived within the horizon.
+    let matured_y: Vec<bool> = old
+        .iter()
+        .map(|r| delay_of(r).is_some_and(|d| d <= horizon))
+        .collect();
+    let matured_h: Vec<f64> = old.iter().map(|r| r.adjusted_log_odds).collect();
+    let matured_p: Vec<f64> = old.iter().map(|r| r.probability).collect();
+    let m = &w["matured"];
+    assert_eq!(m["predictions"], old.len());
+    let close = |a: f64, b: f64| (a - b).abs() <= 1e-12 * b.abs();
+    assert!(close(
+        num(&m["log_loss"]),
+        log_loss_from_log_odds(&matured_h, &matured_y).unwrap()
+    ));
+    assert!(close(
+        num(&m["brier"]),
+        brier_score(&matured_p, &matured_y).unwrap()
+    ));
+    let matured_rate = num(&m["positive_rate"]);
+    let so_far = num(&w["so_far"]["positive_rate"]);
+    let eventual = num(&w["positive_rate"]["estimate"]);
+    println!(
+        "matured rate {matured_rate:.4}, window so far {so_far:.4}, estimated eventual {eventual:.4} ({:.4} to {:.4})",
+        num(&w["positive_rate"]["lower"]),
+        num(&w["positive_rate"]["upper"])
+    );
+    assert!(eventual > so_far);
+    // The picture: both curves, a marker per bin of each.
+    let svg = std::fs::read_to_string(svg_dir.join("w-m-1-champion-immature.svg")).unwrap();
+    let xml = roxmltree::Document::parse(&svg).unwrap();
+    let with_class = |class: &str| {
+        xml.descendants()
+            .filter(|n| n.attribute("class") == Some(class))
+            .count()
+    };
+    assert_eq!(with_class("matured"), 1);
+    assert_eq!(with_class("estimated"), 1);
+    let matured_bins = bins.iter().filter(|b| b["matured_count"] != 0).count();
+    assert_eq!(with_class("bin"), matured_bins + f.bins.len());
+    assert!(svg.contains("ESTIMATED"));
+    // The text marks the figures as estimates.
+    let out = Command::new(env!("CARGO_BIN_EXE_probity"))
+        .args(["report", "--store", log, "--horizon", "30d"])
+        .output()
+        .unwrap();
+    let text = String::from_utf8(out.stdout).unwrap();
+    assert!(text.contains("immature window: "), "{text}");
+    assert!(
+        text.contains("ESTIMATES of their eventual figures"),
+        "{text}"
+    );
+    assert!(text.contains("estimated eventual"), "{text}");
+    // In this seeded draw the top bin (two predictions, both positive early) passes 1, and the text says so.
+    assert!(f.bins.iter().any(|b| b.rate.unwrap().estimate > 1.0));
+    assert!(text.contains("is above 1"), "{text}");
+    // No prediction is 100 days old: unknown, with the reason.
+    let doc = report(&["--store", log, "--json", "--horizon", "100d"]);
+    let w = &doc["series"][0]["immature_window"];
+    assert_eq!(w["status"], "unknown");
+    assert!(
+        w["reason"]
+            .as_str()
+            .unwrap()
+            .contains("at least the 100.0-day horizon old"),
+        "{w}"
+    );
+}
+
 #[test]
 fn the_flag_of_an_earlier_release_is_refused_with_its_new_name() {
     // `--log DIR` named the prediction store before it had a name of its own; `--log=DIR` too.

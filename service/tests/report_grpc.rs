@@ -545,6 +545,18 @@ async fn outcomes_through_the_service_give_the_reference_report_and_matching_sum
     assert_eq!(rpc.eventual_positive_rate_lower, ev["lower"].as_f64());
     assert_eq!(rpc.eventual_positive_rate_upper, ev["upper"].as_f64());
     assert!(rpc.eventual_positive_rate.is_some(), "{ev}");
+    // The immature window (checked in report_cli.rs and models/tests/eventual_sim.rs): here every outcome is sent
+    // within milliseconds of its prediction while the delay reference (the oldest predictions, followed for 107
+    // ms) says few should be in, so the estimate is unknown with the reason, and the RPC leaves the fields out.
+    let iw = &bc["immature_window"];
+    assert_eq!(iw["status"], "unknown", "{iw}");
+    assert!(
+        iw["reason"].as_str().unwrap().contains("arrive faster"),
+        "{iw}"
+    );
+    assert!(rpc.immature_eventual_positive_rate.is_none());
+    assert!(rpc.immature_eventual_log_loss.is_none());
+    assert!(rpc.immature_eventual_brier_upper.is_none());
     let started = std::time::Instant::now();
     loop {
         let text = http_get(server.metrics_addr(), "/metrics").await;

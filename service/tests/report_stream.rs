@@ -11,8 +11,8 @@
 use std::collections::BTreeMap;
 
 use probity::compare::CompareRequest;
-use probity::report::build_loaded;
 use probity::report::stream::build as build_binned;
+use probity::report::{build_loaded, Horizons};
 use probity::store::postgres::{ConnectionUrl, PgStore};
 use probity::store::{
     ModelVersionInfo, OutcomeInput, PredictionRecord, Reference, ReportFilter, SqliteStore, Store,
@@ -239,14 +239,24 @@ fn check(store: &mut dyn Store, backend: &str) {
     ];
     for filter in &filters {
         for bins in [BinStrategy::Uniform(10), BinStrategy::Quantile(10)] {
-            let streamed = build_binned(store, filter, &configured, bins).unwrap();
-            let loaded = build_loaded(store, filter, &configured, bins).unwrap();
+            let streamed =
+                build_binned(store, filter, &configured, bins, &Horizons::default()).unwrap();
+            let loaded =
+                build_loaded(store, filter, &configured, bins, &Horizons::default()).unwrap();
             assert!(streamed.series.len() >= 2, "{backend}: {streamed:?}");
             let mut diffs = Vec::new();
+            // The immature window is not streamed yet (the streamed section says so); every other figure is compared.
+            let without_window = |r: &probity::report::Report| {
+                let mut v = serde_json::to_value(r).unwrap();
+                for s in v["series"].as_array_mut().unwrap() {
+                    s.as_object_mut().unwrap().remove("immature_window");
+                }
+                v
+            };
             same(
                 "report",
-                &serde_json::to_value(&streamed).unwrap(),
-                &serde_json::to_value(&loaded).unwrap(),
+                &without_window(&streamed),
+                &without_window(&loaded),
                 1e-12,
                 &mut diffs,
             );
@@ -271,6 +281,7 @@ fn check(store: &mut dyn Store, backend: &str) {
         &ReportFilter::default(),
         &configured,
         BinStrategy::Uniform(10),
+        &Horizons::default(),
     )
     .unwrap();
     let fraud = all

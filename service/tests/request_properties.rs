@@ -24,6 +24,7 @@ fn model() -> Model {
 fn route(policy: u8) -> Route {
     Route {
         reasons: Default::default(),
+        record: Default::default(),
         name: "prop".into(),
         model: "fuzz-trees".into(),
         output: OutputSpec::default(),

@@ -63,6 +63,30 @@ impl KaplanMeier {
         k.checked_sub(1)
     }
 
+    /// The step of the curve that delay `t` (cut at the horizon) falls in: 0 before the first event time, `k` from
+    /// the `k`-th event time on (so `times.len()` from the last one on, the step of the horizon).
+    pub(crate) fn step_of(&self, t: f64) -> usize {
+        self.times.partition_point(|&x| x <= t.min(self.horizon))
+    }
+
+    /// `S` on step `g` (see [`KaplanMeier::step_of`]).
+    pub(crate) fn survival_on_step(&self, g: usize) -> f64 {
+        if g == 0 {
+            1.0
+        } else {
+            self.survival[g - 1]
+        }
+    }
+
+    /// Greenwood's sum `V` on step `g`.
+    pub(crate) fn greenwood_on_step(&self, g: usize) -> f64 {
+        if g == 0 {
+            0.0
+        } else {
+            self.greenwood[g - 1]
+        }
+    }
+
     /// `S(t)`: the share without a positive outcome by delay `t`.
     pub fn survival_at(&self, t: f64) -> f64 {
         self.index_at(t.min(self.horizon))

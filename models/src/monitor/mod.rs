@@ -7,12 +7,15 @@
 //!   test and the matching confidence sequence; Johari, Pekelis and Walsh 2017; Howard, Ramdas, McAuliffe and
 //!   Sekhon 2021), which may be looked at after every outcome without raising the false-verdict rate;
 //! - [`delay`]: the Kaplan-Meier estimate of the delay from prediction to positive outcome, with Greenwood's
-//!   variance, and the eventual positive rate of windows whose outcomes are still arriving.
+//!   variance, and the eventual positive rate of windows whose outcomes are still arriving;
+//! - [`eventual`]: the eventual log-loss, Brier score, positive rate and calibration table of such a window, scaled
+//!   up per calibration bin by the delay distribution (Lawless 1994), with delta-method intervals.
 //!
 //! Every function is pure; errors are [`MonitorError`] and name the argument and row.
 
 pub mod calibration_test;
 pub mod delay;
+pub mod eventual;
 pub mod sequential;
 
 pub use calibration_test::{
@@ -23,6 +26,7 @@ pub use delay::{
     eventual_rate, kaplan_meier, DelayObservation, EventualRate, KaplanMeier, KaplanMeierSteps,
     WindowCase,
 };
+pub use eventual::{eventual_figures, Estimate, EventualBin, EventualFigures, ScoredCase};
 pub use sequential::{
     always_valid_verdict, auc_sequence, loss_sequence, normal_mixture, ConfidenceSequence,
     SequentialOptions,

@@ -33,6 +33,18 @@ pub struct Bin {
     pub mean_predicted: f64,
     /// Observed share of positives.
     pub fraction_positive: f64,
+    /// An interval of the share computed elsewhere (an estimate's); `None`: the Wilson interval of the counts.
+    pub interval: Option<(f64, f64)>,
+    /// Whether `fraction_positive` is an estimate (of an eventual share) rather than observed.
+    pub estimated: bool,
+}
+
+impl Bin {
+    /// The interval drawn: the given one, else the 95% Wilson interval of the counts.
+    pub fn drawn_interval(&self) -> Option<(f64, f64)> {
+        self.interval
+            .or_else(|| wilson_interval(self.positives as u64, self.count as u64, Z_95))
+    }
 }
 
 /// The bins of a calibration table.
@@ -47,6 +59,8 @@ pub fn bins_of(table: &CalibrationTable) -> Vec<Bin> {
             positives: b.positives,
             mean_predicted: b.mean_predicted,
             fraction_positive: b.fraction_positive,
+            interval: None,
+            estimated: false,
         })
         .collect()
 }
@@ -87,7 +101,8 @@ pub fn reliability_plot(curves: &[Curve<'_>], axis: ProbabilityAxis) -> Plot {
     let scale = if log_odds {
         Scale::log_odds_for(curves.iter().flat_map(|c| {
             c.bins.iter().flat_map(|b| {
-                let (lo, hi) = wilson_interval(b.positives as u64, b.count as u64, Z_95)
+                let (lo, hi) = b
+                    .drawn_interval()
                     .unwrap_or((b.fraction_positive, b.fraction_positive));
                 [b.mean_predicted, lo.max(b.mean_predicted / 10.0), hi]
             })
@@ -116,20 +131,28 @@ pub fn reliability_plot(curves: &[Curve<'_>], axis: ProbabilityAxis) -> Plot {
         let class = if c.class.is_empty() { "curve" } else { c.class };
         plot.line(class, c.colour, &points);
         for b in c.bins.iter().filter(|b| b.count > 0) {
-            if let Some((lo, hi)) = wilson_interval(b.positives as u64, b.count as u64, Z_95) {
+            if let Some((lo, hi)) = b.drawn_interval() {
                 plot.interval("interval", c.colour, b.mean_predicted, lo, hi);
             }
             let radius = 2.5 + 8.0 * (b.count as f64 / total.max(1) as f64).sqrt();
+            let tip = if b.estimated {
+                format!(
+                    "({:.4}, {:.4}]: {} cases, {} positives so far, predicted {:.4}, estimated eventual {:.4}",
+                    b.lower, b.upper, b.count, b.positives, b.mean_predicted, b.fraction_positive
+                )
+            } else {
+                format!(
+                    "({:.4}, {:.4}]: {} cases, {} positives, predicted {:.4}, observed {:.4}",
+                    b.lower, b.upper, b.count, b.positives, b.mean_predicted, b.fraction_positive
+                )
+            };
             plot.marker(
                 "bin",
                 c.colour,
                 b.mean_predicted,
                 b.fraction_positive,
                 radius,
-                &format!(
-                    "({:.4}, {:.4}]: {} cases, {} positives, predicted {:.4}, observed {:.4}",
-                    b.lower, b.upper, b.count, b.positives, b.mean_predicted, b.fraction_positive
-                ),
+                &tip,
             );
         }
     }

@@ -126,6 +126,20 @@ fn every_picture_keeps_its_ink_inside_the_canvas_and_labels_both_axes() {
         &[
             curve(long("champion"), "champion", palette::TIDE, &table),
             curve(long("challenger"), "challenger", palette::OCHRE, &table),
+            // An estimated curve (the report's immature window) with its own intervals, one reaching 0.
+            Curve {
+                label: long("ESTIMATED eventual share"),
+                colour: palette::RUST,
+                class: "estimated",
+                bins: bins_of(&table)
+                    .into_iter()
+                    .map(|b| pictures::Bin {
+                        interval: Some((0.0, (2.0 * b.fraction_positive).min(1.0))),
+                        estimated: true,
+                        ..b
+                    })
+                    .collect(),
+            },
         ],
         ProbabilityAxis::Auto,
         &[(palette::INK, long("ECE 0.0012 over 4000 cases"))],

@@ -53,6 +53,11 @@ pub struct ReportArgs {
     /// at fraud base rates.
     #[arg(long, value_enum, default_value_t = super::evaluate::Binning::EqualWidth)]
     pub binning: super::evaluate::Binning,
+    /// The label maturity period (7d, 30d): the horizon of the immature-window estimates. Predictions younger
+    /// than it get estimated eventual figures, older ones are the delay reference. Without it each section uses
+    /// the follow-up of its oldest tenth.
+    #[arg(long, value_name = "SPAN", value_parser = super::when::span_ms)]
+    pub horizon: Option<i64>,
     /// The reliability picture's probability axes: `auto` uses log-odds when nine in ten cases are below 0.1.
     #[arg(long, value_enum, default_value_t = Axis::Auto)]
     pub probability_axis: Axis,
@@ -118,8 +123,18 @@ pub fn run(args: &ReportArgs) -> anyhow::Result<()> {
         Axis::Linear => ProbabilityAxis::Linear,
         Axis::LogOdds => ProbabilityAxis::LogOdds,
     };
-    let report = report::build_binned(&mut store as &mut dyn Store, &filter, &configured, bins)
-        .context("reading the store")?;
+    let horizons = report::Horizons {
+        by_route: Default::default(),
+        all: args.horizon,
+    };
+    let report = report::build_full(
+        &mut store as &mut dyn Store,
+        &filter,
+        &configured,
+        bins,
+        &horizons,
+    )
+    .context("reading the store")?;
     if args.json {
         super::emit(&format!("{}\n", serde_json::to_string_pretty(&report)?))?;
     } else {
@@ -133,7 +148,10 @@ pub fn run(args: &ReportArgs) -> anyhow::Result<()> {
                 ("reliability", svg::reliability_on(s, axis)),
                 ("histograms", svg::histograms(s)),
                 ("gains", svg::gains(s)),
-            ] {
+            ]
+            .into_iter()
+            .chain(svg::immature(s, axis).map(|body| ("immature", body)))
+            {
                 let path = dir.join(format!("{stem}-{kind}.svg"));
                 std::fs::write(&path, body)
                     .with_context(|| format!("writing {}", path.display()))?;

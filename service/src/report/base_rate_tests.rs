@@ -52,7 +52,10 @@ fn report(rows: &[LoggedPrediction], rates: BaseRates) -> super::SeriesReport {
         rows,
         None,
         rates,
-        probity_models::metrics::BinStrategy::Uniform(super::CALIBRATION_BINS),
+        (
+            probity_models::metrics::BinStrategy::Uniform(super::CALIBRATION_BINS),
+            None,
+        ),
     )
 }
 

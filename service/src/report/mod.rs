@@ -130,6 +130,9 @@ pub struct SeriesReport {
     /// Estimated eventual positive rate of all the section's predictions, outcomes still arriving included
     /// (Kaplan-Meier; see [`immature`]).
     pub eventual_positive_rate: Option<immature::EventualRate>,
+    /// Estimated eventual figures of the predictions younger than the horizon, beside the matured ones (see
+    /// [`immature`]), or why they are unknown.
+    pub immature_window: immature::ImmatureWindow,
 }
 
 /// Murphy's decomposition with the two within-bin terms.
@@ -248,6 +251,33 @@ pub fn build_binned(
     configured: &BTreeMap<String, f64>,
     bins: BinStrategy,
 ) -> Result<Report, StoreError> {
+    build_full(store, filter, configured, bins, &Horizons::default())
+}
+
+/// The horizons of the immature-window estimates (ms): a route's label maturity when known.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct Horizons {
+    /// Per route.
+    pub by_route: BTreeMap<String, i64>,
+    /// For every route not in `by_route`.
+    pub all: Option<i64>,
+}
+
+impl Horizons {
+    /// The horizon of `route`, if one is known.
+    pub fn of(&self, route: &str) -> Option<i64> {
+        self.by_route.get(route).copied().or(self.all)
+    }
+}
+
+/// [`build_binned`] with the immature window's horizons (else each section's follow-up rule, see [`immature`]).
+pub fn build_full(
+    store: &mut dyn Store,
+    filter: &ReportFilter,
+    configured: &BTreeMap<String, f64>,
+    bins: BinStrategy,
+    horizons: &Horizons,
+) -> Result<Report, StoreError> {
     // A range of at most `LOADED_UP_TO` predictions per series is loaded at once (about 1 KB a prediction, so a
     // few MB): one query instead of the streamed passes' eight or so per series, which on a store whose planner
     // has no statistics yet (a fresh PostgreSQL table) cost more than the rows. The figures are the same either
@@ -269,9 +299,9 @@ pub fn build_binned(
         small = store.nth_oldest(&scan, LOADED_UP_TO as u64)?.is_none();
     }
     if small {
-        build_loaded(store, filter, configured, bins)
+        build_loaded(store, filter, configured, bins, horizons)
     } else {
-        stream::build(store, filter, configured, bins)
+        stream::build(store, filter, configured, bins, horizons)
     }
 }
 
@@ -286,6 +316,7 @@ pub fn build_loaded(
     filter: &ReportFilter,
     configured: &BTreeMap<String, f64>,
     bins: BinStrategy,
+    horizons: &Horizons,
 ) -> Result<Report, StoreError> {
     let rows = store.load(filter)?;
     // A handful of series, found by a scan, so that no row's names are copied: four more strings per row were
@@ -316,12 +347,13 @@ pub fn build_loaded(
             model: info.as_ref().map(|i| i.base_rate),
         };
         let reference = info.and_then(|i| i.reference);
+        let horizon = horizons.of(&route);
         series.push(section(
             (route, model, version, role),
             &rows,
             reference.as_ref(),
             rates,
-            bins,
+            (bins, horizon),
         ));
     }
     Ok(Report {
@@ -464,13 +496,14 @@ fn em_estimate(notes: &mut Vec<String>, probabilities: &[f64], rates: BaseRates)
 /// A series: route, model, version and role.
 pub type SeriesKey = (String, String, String, String);
 
-/// The figures of one series; `rows` in the order they were written.
+/// The figures of one series; `rows` in the order they were written; calibration bins cut by `bins`, and the
+/// immature window's horizon (ms) when the route's maturity is known.
 pub fn section(
     (route, model, version, role): SeriesKey,
     rows: &[LoggedPrediction],
     reference: Option<&crate::store::Reference>,
     rates: BaseRates,
-    bins: BinStrategy,
+    (bins, horizon_ms): (BinStrategy, Option<i64>),
 ) -> SeriesReport {
     let mut notes = Vec::new();
     let pairs: Vec<&LoggedPrediction> = rows.iter().filter(|r| r.label.is_some()).collect();
@@ -580,6 +613,7 @@ pub fn section(
     let base_rate_estimate = em_estimate(&mut notes, &em_p, rates);
     let calibration_tests = calibration_tests::compute(&p, &h, &y, &mut notes);
     let eventual_positive_rate = immature::compute(rows, &mut notes);
+    let immature_window = immature::window(rows, bins, horizon_ms);
     SeriesReport {
         route,
         model,
@@ -610,6 +644,7 @@ pub fn section(
         notes,
         calibration_tests,
         eventual_positive_rate,
+        immature_window,
     }
 }
 

@@ -184,6 +184,7 @@ pub fn build(
     filter: &ReportFilter,
     configured: &BTreeMap<String, f64>,
     bins: BinStrategy,
+    _horizons: &super::Horizons,
 ) -> Result<Report, StoreError> {
     let mut series = Vec::new();
     for (route, model, version, role) in store.series(filter)? {
@@ -760,6 +761,15 @@ pub fn section(
         notes,
         calibration_tests,
         eventual_positive_rate,
+        // Not streamed yet: the immature window partitions the section's rows by age and fits delays on the old
+        // ones; a streamed report says so rather than load the range.
+        immature_window: immature::ImmatureWindow::Unknown {
+            reason: format!(
+                "not computed for a series of more than {} predictions yet (the bounded-memory report does not \
+                 stream it)",
+                super::LOADED_UP_TO
+            ),
+        },
     })
 }
 

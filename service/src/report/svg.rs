@@ -42,6 +42,8 @@ pub fn reliability_on(r: &SeriesReport, axis: ProbabilityAxis) -> String {
                             positives: b.positives,
                             mean_predicted: b.mean_predicted,
                             fraction_positive: b.fraction_positive,
+                            interval: None,
+                            estimated: false,
                         })
                         .collect(),
                 }],
@@ -59,6 +61,79 @@ pub fn reliability_on(r: &SeriesReport, axis: ProbabilityAxis) -> String {
             &[(palette::MUTED, "no outcomes yet".to_string())],
         ),
     }
+}
+
+/// The immature window's reliability picture: the matured predictions' bins (observed shares, Wilson intervals)
+/// and the window's estimated eventual shares with their delta-method intervals; `None` when the window is
+/// unknown.
+pub fn immature(r: &SeriesReport, axis: ProbabilityAxis) -> Option<String> {
+    let super::immature::ImmatureWindow::Estimated(w) = &r.immature_window else {
+        return None;
+    };
+    let matured = w
+        .bins
+        .iter()
+        .filter(|b| b.matured_count > 0)
+        .map(|b| Bin {
+            lower: b.lower,
+            upper: b.upper,
+            count: b.matured_count,
+            positives: b.matured_positives,
+            mean_predicted: b.matured_mean_predicted.unwrap_or(b.mean_predicted),
+            fraction_positive: b.matured_observed.unwrap_or(0.0),
+            interval: None,
+            estimated: false,
+        })
+        .collect();
+    let estimated = w
+        .bins
+        .iter()
+        .filter_map(|b| {
+            let e = b.eventual?;
+            Some(Bin {
+                lower: b.lower,
+                upper: b.upper,
+                count: b.count,
+                positives: b.positives_so_far,
+                mean_predicted: b.mean_predicted,
+                fraction_positive: e.estimate,
+                interval: e.lower.zip(e.upper),
+                estimated: true,
+            })
+        })
+        .collect();
+    let days = w.horizon_ms as f64 / 86_400_000.0;
+    Some(pictures::reliability(
+        &title(r, "Immature window, estimated"),
+        &[
+            Curve {
+                label: format!(
+                    "matured: {} predictions followed for {days:.1} days",
+                    w.matured.predictions
+                ),
+                colour: palette::TIDE,
+                class: "matured",
+                bins: matured,
+            },
+            Curve {
+                label: format!("ESTIMATED eventual: {} younger predictions", w.predictions),
+                colour: palette::OCHRE,
+                class: "estimated",
+                bins: estimated,
+            },
+        ],
+        axis,
+        &[(
+            palette::INK,
+            format!(
+                "ESTIMATED: the share the younger predictions will show once their outcomes are in, with {:.0}% \
+                 delta-method intervals; about {:.0}% of their positives are in so far (Lawless 1994 delay \
+                 correction; assumes the delay does not depend on the score).",
+                100.0 * w.level,
+                100.0 * w.arrived_share
+            ),
+        )],
+    ))
 }
 
 /// Probability histograms of negatives and positives, each scaled to its own total (share per bin).

@@ -94,6 +94,7 @@ fn section(s: &mut String, r: &SeriesReport) {
     }
     super::calibration_tests::render(s, &r.calibration_tests);
     super::immature::render(s, &r.eventual_positive_rate);
+    super::immature::render_window(s, &r.immature_window);
     if !r.gains.is_empty() {
         let _ = writeln!(
             s,

@@ -173,6 +173,7 @@ struct RawRoute {
     challengers: Vec<crate::serve::challenger::RawChallenger>,
     base_rate_from_estimate: Option<crate::serve::base_rate::RawEstimateBounds>,
     reasons: Option<RawReasons>,
+    record: Option<String>,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -292,6 +293,30 @@ pub struct Route {
     pub challengers: crate::serve::challenger::Challengers,
     /// How many reasons an explanation lists and which direction is adverse (`[routes.NAME.reasons]`).
     pub reasons: probity_models::ReasonRequest,
+    /// When the answer's prediction is committed to the prediction store, relative to the answer.
+    pub record: RecordMode,
+}
+
+/// When a route's predictions are committed to the prediction store (`routes.NAME.record`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum RecordMode {
+    /// `after-answer` (the default): the answer goes out at once and the prediction is committed with the next
+    /// batch, within `flush_interval`; a killed process loses what was answered since the last commit.
+    #[default]
+    AfterAnswer,
+    /// `before-answer`: the answer goes out only after the batch holding its prediction has committed; a call
+    /// whose prediction cannot be committed is refused (UNAVAILABLE) instead of answered.
+    BeforeAnswer,
+}
+
+impl RecordMode {
+    /// The configuration word.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            RecordMode::AfterAnswer => "after-answer",
+            RecordMode::BeforeAnswer => "before-answer",
+        }
+    }
 }
 
 /// Missing-feature policy.
@@ -456,6 +481,18 @@ impl Config {
         let names = routes.keys().cloned().collect();
         let store = crate::store::StoreConfig::from_raw(store, &names)
             .map_err(|(key, message)| invalid(key, message))?;
+        if !store.enabled() {
+            if let Some(name) = routes
+                .iter()
+                .find(|(_, r)| r.record == RecordMode::BeforeAnswer)
+                .map(|(name, _)| name)
+            {
+                return Err(invalid(
+                    format!("routes.{name}.record"),
+                    "`before-answer` needs the prediction store: set store.directory (or store.backend = \"postgres\")",
+                ));
+            }
+        }
         let window = store.enabled().then_some(store.prior_window);
         let base_rate_from_estimate = estimate_bounds
             .into_iter()
@@ -729,7 +766,18 @@ fn route(name: &str, raw: RawRoute) -> Result<Route, ConfigError> {
         challengers,
         base_rate_from_estimate: _,
         reasons,
+        record,
     } = raw;
+    let record = match record.as_deref().unwrap_or("after-answer") {
+        "after-answer" => RecordMode::AfterAnswer,
+        "before-answer" => RecordMode::BeforeAnswer,
+        other => {
+            return Err(invalid(
+                key("record"),
+                format!("must be `after-answer` or `before-answer`, got `{other}`"),
+            ))
+        }
+    };
     let reasons = reasons.unwrap_or_default();
     let reasons = crate::serve::explain::reasons_config(
         &key("reasons"),
@@ -804,6 +852,7 @@ fn route(name: &str, raw: RawRoute) -> Result<Route, ConfigError> {
         unknown_features,
         challengers,
         reasons,
+        record,
     })
 }
 

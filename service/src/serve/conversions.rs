@@ -485,6 +485,7 @@ pub fn route_info(route: &Route, serving: Option<&LoadedModel>) -> pb::RouteInfo
         unknown_features,
         challengers,
         reasons: _,
+        record,
     } = route;
     let decision = match &output.decision {
         None => String::new(),
@@ -514,6 +515,7 @@ pub fn route_info(route: &Route, serving: Option<&LoadedModel>) -> pb::RouteInfo
         unknown_categories: unknown_categories.as_str().to_string(),
         unknown_features: unknown_features.as_str().to_string(),
         challengers: challengers.list.iter().map(|c| c.describe()).collect(),
+        record: record.as_str().into(),
     }
 }
 

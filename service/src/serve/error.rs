@@ -69,6 +69,18 @@ pub enum ServeError {
     /// The prediction store failed.
     #[error("prediction store: {0}")]
     Store(#[from] crate::store::StoreError),
+    /// A call on a route with `record = "before-answer"` whose predictions were not committed: it is refused
+    /// rather than answered without its record.
+    #[error(
+        "the prediction store did not record this call's predictions ({0}); the call is not answered, send it again"
+    )]
+    NotRecorded(crate::store::writer::NotRecorded),
+    /// The call's deadline passed while it waited for its predictions to be committed (`record = "before-answer"`).
+    #[error(
+        "the deadline passed before this call's predictions were committed to the prediction store; the call is \
+         not answered (its predictions may still be recorded)"
+    )]
+    RecordDeadline,
     /// A call without valid credentials.
     #[error("{reason}")]
     Unauthenticated {

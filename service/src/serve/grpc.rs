@@ -12,8 +12,9 @@ use crate::serve::error::ServeError;
 use crate::serve::limits;
 use crate::serve::metrics;
 use crate::serve::proto as pb;
-use crate::serve::scoring::Scorer;
+use crate::serve::scoring::{Pending, Scorer};
 use crate::serve::server::Reloader;
+use crate::store::writer::NotRecorded;
 
 /// Responses queued per stream before the reader waits for the client to read.
 const STREAM_BUFFER: usize = 64;
@@ -32,6 +33,33 @@ pub(crate) fn finish<T>(
     };
     metrics::request(method, route, code, started.elapsed().as_secs_f64());
     result.map(Response::new)
+}
+
+/// The answer of a scoring call once it may be sent: at once, or on a route with `record = "before-answer"` after
+/// its predictions are committed. A call whose predictions are not committed (or not before its deadline) is
+/// refused and counted (`probity_store_record_refusals_total`).
+pub(crate) async fn recorded<T>(pending: Pending<T>, deadline: Instant) -> Result<T, ServeError> {
+    let Pending {
+        answer,
+        route,
+        receipt,
+    } = pending;
+    let Some(receipt) = receipt else {
+        return Ok(answer);
+    };
+    let refused = match tokio::time::timeout_at(deadline.into(), receipt).await {
+        Ok(Ok(Ok(()))) => return Ok(answer),
+        Ok(Ok(Err(why))) => ServeError::NotRecorded(why),
+        // The writer is gone without answering: the store is closed.
+        Ok(Err(_)) => ServeError::NotRecorded(NotRecorded::Closed),
+        Err(_) => ServeError::RecordDeadline,
+    };
+    let reason = match &refused {
+        ServeError::NotRecorded(why) => why.as_str(),
+        _ => "deadline",
+    };
+    crate::store::running::record_refused(&route, reason);
+    Err(refused)
 }
 
 /// The deadline of a call: the caller's `grpc-timeout` if it sent one, capped by the configured default.
@@ -62,6 +90,18 @@ fn parse_grpc_timeout(text: &str) -> Option<Duration> {
     })
 }
 
+/// A row of a scoring stream, scored and waiting for its turn to be answered.
+struct ScoredRow {
+    /// When it arrived.
+    started: Instant,
+    /// The route label of its metrics.
+    route: String,
+    /// The latest its answer may wait for its record.
+    deadline: Instant,
+    /// The answer, or why there is none.
+    scored: Result<Pending<pb::ScoreResponse>, ServeError>,
+}
+
 /// The `probity.v1.Scoring` service.
 pub struct ScoringApi {
     scorer: Arc<Scorer>,
@@ -85,8 +125,12 @@ impl pb::scoring_server::Scoring for ScoringApi {
         request: Request<pb::ScoreRequest>,
     ) -> Result<Response<pb::ScoreResponse>, Status> {
         let started = Instant::now();
+        let deadline = deadline_of(&request, self.default_deadline);
         let route = self.scorer.route_label(&request.get_ref().route);
-        let result = self.scorer.score(request.into_inner());
+        let result = match self.scorer.score(request.into_inner()) {
+            Ok(pending) => recorded(pending, deadline).await,
+            Err(error) => Err(error),
+        };
         finish("Score", &route, started, result)
     }
 
@@ -97,7 +141,10 @@ impl pb::scoring_server::Scoring for ScoringApi {
         let started = Instant::now();
         let deadline = deadline_of(&request, self.default_deadline);
         let route = self.scorer.route_label(&request.get_ref().route);
-        let result = self.scorer.score_batch(request.into_inner(), deadline);
+        let result = match self.scorer.score_batch(request.into_inner(), deadline) {
+            Ok(pending) => recorded(pending, deadline).await,
+            Err(error) => Err(error),
+        };
         finish("ScoreBatch", &route, started, result)
     }
 
@@ -110,22 +157,62 @@ impl pb::scoring_server::Scoring for ScoringApi {
     ) -> Result<Response<Self::ScoreStreamStream>, Status> {
         let mut inbound = request.into_inner();
         let (tx, rx) = tokio::sync::mpsc::channel(STREAM_BUFFER);
+        // Scored rows in arrival order, each with what it waits for: the reader scores the next rows while the
+        // rows of a `record = "before-answer"` route wait for their commit (so one stream's rows share batches),
+        // and the answers still leave in order.
+        let (scored_tx, mut scored_rx) =
+            tokio::sync::mpsc::channel::<Result<ScoredRow, Status>>(STREAM_BUFFER);
         let scorer = Arc::clone(&self.scorer);
+        let default_deadline = self.default_deadline;
         tokio::spawn(async move {
-            let mut sequence = 0u64;
             loop {
                 let message = match inbound.message().await {
                     Ok(Some(message)) => message,
                     Ok(None) => break,
                     Err(status) => {
-                        // A frame we could not decode (or a reset): end the stream with that status.
-                        let _ = tx.send(Err(status)).await;
+                        // A frame we could not decode (or a reset): counted, and the stream ends with that
+                        // status after the answers to the rows before it.
+                        metrics::request("ScoreStream", "", status.code(), 0.0);
+                        let _ = scored_tx.send(Err(status)).await;
                         break;
                     }
                 };
                 let started = Instant::now();
+                // Each row's wait for its record is bounded by the default deadline from its arrival.
+                let deadline = started + default_deadline;
                 let route = scorer.route_label(&message.route);
-                let outcome = match scorer.score(message) {
+                let scored = scorer.score(message);
+                let row = ScoredRow {
+                    started,
+                    route,
+                    deadline,
+                    scored,
+                };
+                if scored_tx.send(Ok(row)).await.is_err() {
+                    break; // the client went away
+                }
+            }
+        });
+        tokio::spawn(async move {
+            let mut sequence = 0u64;
+            while let Some(row) = scored_rx.recv().await {
+                let ScoredRow {
+                    started,
+                    route,
+                    deadline,
+                    scored,
+                } = match row {
+                    Ok(row) => row,
+                    Err(status) => {
+                        let _ = tx.send(Err(status)).await;
+                        break;
+                    }
+                };
+                let result = match scored {
+                    Ok(pending) => recorded(pending, deadline).await,
+                    Err(error) => Err(error),
+                };
+                let outcome = match result {
                     Ok(response) => {
                         metrics::request(
                             "ScoreStream",
@@ -256,6 +343,56 @@ impl pb::models_server::Models for ModelsApi {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    fn pending(receipt: crate::store::writer::Receipt) -> Pending<u32> {
+        Pending {
+            answer: 7,
+            route: "credit".into(),
+            receipt: Some(receipt),
+        }
+    }
+
+    #[tokio::test]
+    async fn an_answer_waits_for_its_record_and_is_refused_without_it() {
+        let soon = || Instant::now() + Duration::from_secs(60);
+        // No receipt: answered at once.
+        let plain = Pending {
+            answer: 7,
+            route: "fraud".into(),
+            receipt: None,
+        };
+        assert_eq!(recorded(plain, soon()).await.unwrap(), 7);
+        let (done, receipt) = tokio::sync::oneshot::channel();
+        done.send(Ok(())).unwrap();
+        assert_eq!(recorded(pending(receipt), soon()).await.unwrap(), 7);
+        // Not committed: UNAVAILABLE, with the reason in the message.
+        let (done, receipt) = tokio::sync::oneshot::channel();
+        done.send(Err(NotRecorded::Write(
+            crate::store::WriteFailure::DiskFull,
+        )))
+        .unwrap();
+        let status = Status::from(recorded(pending(receipt), soon()).await.unwrap_err());
+        assert_eq!(status.code(), tonic::Code::Unavailable);
+        assert!(
+            status.message().contains("disk_full"),
+            "{}",
+            status.message()
+        );
+        // The writer gone without an answer: the store is closed.
+        let (done, receipt) = tokio::sync::oneshot::channel::<Result<(), NotRecorded>>();
+        drop(done);
+        let error = recorded(pending(receipt), soon()).await.unwrap_err();
+        assert!(
+            matches!(error, ServeError::NotRecorded(NotRecorded::Closed)),
+            "{error:?}"
+        );
+        // No commit before the deadline: DEADLINE_EXCEEDED, not an answer.
+        let (_done, receipt) = tokio::sync::oneshot::channel();
+        let error = recorded(pending(receipt), Instant::now() + Duration::from_millis(1))
+            .await
+            .unwrap_err();
+        assert_eq!(Status::from(error).code(), tonic::Code::DeadlineExceeded);
+    }
 
     #[test]
     fn grpc_timeout_units() {

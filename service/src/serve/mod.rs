@@ -26,6 +26,7 @@ pub mod metrics;
 pub mod outcomes;
 pub mod promotion;
 pub mod proto;
+pub mod refusals;
 pub mod registry;
 pub mod scoring;
 pub mod security;

@@ -156,6 +156,10 @@ fn monitor_fields(s: &crate::report::SeriesReport) -> pb::ReportSeries {
     let t = &s.calibration_tests;
     let r = t.recalibration.as_ref();
     let e = s.eventual_positive_rate.as_ref();
+    let w = match &s.immature_window {
+        crate::report::immature::ImmatureWindow::Estimated(w) => Some(w.as_ref()),
+        crate::report::immature::ImmatureWindow::Unknown { .. } => None,
+    };
     pb::ReportSeries {
         spiegelhalter_z: t.spiegelhalter.as_ref().map(|z| z.z),
         spiegelhalter_p_value: t.spiegelhalter.as_ref().map(|z| z.p_value),
@@ -169,6 +173,15 @@ fn monitor_fields(s: &crate::report::SeriesReport) -> pb::ReportSeries {
         eventual_positive_rate: e.map(|e| e.estimate),
         eventual_positive_rate_lower: e.map(|e| e.lower),
         eventual_positive_rate_upper: e.map(|e| e.upper),
+        immature_eventual_positive_rate: w.map(|w| w.positive_rate.estimate),
+        immature_eventual_positive_rate_lower: w.and_then(|w| w.positive_rate.lower),
+        immature_eventual_positive_rate_upper: w.and_then(|w| w.positive_rate.upper),
+        immature_eventual_log_loss: w.map(|w| w.log_loss.estimate),
+        immature_eventual_log_loss_lower: w.and_then(|w| w.log_loss.lower),
+        immature_eventual_log_loss_upper: w.and_then(|w| w.log_loss.upper),
+        immature_eventual_brier: w.map(|w| w.brier.estimate),
+        immature_eventual_brier_lower: w.and_then(|w| w.brier.lower),
+        immature_eventual_brier_upper: w.and_then(|w| w.brier.upper),
         ..pb::ReportSeries::default()
     }
 }
@@ -338,6 +351,8 @@ impl pb::outcomes_server::Outcomes for OutcomesApi {
                     Ok(Some(m)) => chunk.push(m),
                     Ok(None) => break,
                     Err(status) => {
+                        // A frame we could not decode (or a reset): counted, and the stream ends with it.
+                        metrics::request("RecordOutcomeStream", "", status.code(), 0.0);
                         let _ = tx.send(Err(status)).await;
                         break;
                     }
@@ -406,8 +421,31 @@ impl pb::outcomes_server::Outcomes for OutcomesApi {
         let result = async {
             checked?;
             let log = self.store()?;
+            // The immature window's horizon: each route's label maturity, when configured.
+            let horizons = report::Horizons {
+                by_route: log
+                    .config()
+                    .maturity
+                    .iter()
+                    .map(|(route, d)| {
+                        (
+                            route.clone(),
+                            i64::try_from(d.as_millis()).unwrap_or(i64::MAX),
+                        )
+                    })
+                    .collect(),
+                all: None,
+            };
             let report = on_store(&self.slots, log, move |log| {
-                log.with_store(|store| report::build_with(store, &filter, &configured))
+                log.with_store(|store| {
+                    report::build_full(
+                        store,
+                        &filter,
+                        &configured,
+                        probity_models::metrics::BinStrategy::Uniform(report::CALIBRATION_BINS),
+                        &horizons,
+                    )
+                })
             })
             .await?;
             Ok(report_response(&report))

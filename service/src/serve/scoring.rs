@@ -11,7 +11,7 @@ use std::time::Instant;
 use probity_models::EvalError;
 
 use crate::serve::challenger::Answer;
-use crate::serve::config::{Limits, Route};
+use crate::serve::config::{Limits, RecordMode, Route};
 use crate::serve::conversions::{prepare_row, score_response};
 use crate::serve::error::ServeError;
 use crate::serve::explain;
@@ -20,6 +20,7 @@ use crate::serve::promotion::{RouteMap, RouteTable};
 use crate::serve::proto as pb;
 use crate::serve::registry::{LoadedModel, Registry};
 use crate::serve::silent::{Answered, Silent, SilentJob};
+use crate::store::writer::{Queued, Receipt};
 use crate::store::PredictionStore;
 
 /// Rows scored between two deadline checks in a batch.
@@ -74,6 +75,17 @@ impl WarningKind {
             WarningKind::IgnoredFeature => "ignored_feature",
         }
     }
+}
+
+/// An answer, and on a route with `record = "before-answer"` the receipt to wait for before sending it
+/// ([`PredictionStore::record`]).
+pub struct Pending<T> {
+    /// The answer.
+    pub answer: T,
+    /// The route it was scored on (a configured name).
+    pub route: String,
+    /// Resolves when the answer's predictions are committed; `None` when the route does not wait.
+    pub receipt: Option<Receipt>,
 }
 
 /// Scores requests against the registry's current models.
@@ -220,8 +232,24 @@ impl Scorer {
         }
     }
 
-    /// Scores one row.
-    pub fn score(&self, request: pb::ScoreRequest) -> Result<pb::ScoreResponse, ServeError> {
+    /// Queues the held predictions of a `record = "before-answer"` route and wraps the answer with its receipt.
+    fn pending<T>(&self, config: &Route, answer: T, held: Vec<Queued>) -> Pending<T> {
+        let receipt = match &self.log {
+            Some(log) if !held.is_empty() => Some(log.record(held)),
+            _ => None,
+        };
+        Pending {
+            answer,
+            route: config.name.clone(),
+            receipt,
+        }
+    }
+
+    /// Scores one row. On a route with `record = "before-answer"` the answer must wait for its receipt.
+    pub fn score(
+        &self,
+        request: pb::ScoreRequest,
+    ) -> Result<Pending<pb::ScoreResponse>, ServeError> {
         let pb::ScoreRequest {
             route,
             row,
@@ -259,7 +287,8 @@ impl Scorer {
                 "row",
             )?),
         };
-        let mut response = self.respond(config, &loaded, role, prepared, scored);
+        let mut held = Vec::new();
+        let mut response = self.respond(config, &loaded, role, prepared, scored, &mut held);
         response.explanation = explanation;
         if let Some(mut row) = kept {
             row.prediction_id.clone_from(&response.prediction_id);
@@ -270,15 +299,16 @@ impl Scorer {
             };
             self.submit(config, silent_models, vec![answered]);
         }
-        Ok(response)
+        Ok(self.pending(config, response, held))
     }
 
-    /// Scores many rows with one model version; fails as a whole on the first bad row, naming it.
+    /// Scores many rows with one model version; fails as a whole on the first bad row, naming it. On a route with
+    /// `record = "before-answer"` the answer must wait for its receipt (all rows commit in one transaction).
     pub fn score_batch(
         &self,
         request: pb::ScoreBatchRequest,
         deadline: Instant,
-    ) -> Result<pb::ScoreBatchResponse, ServeError> {
+    ) -> Result<Pending<pb::ScoreBatchResponse>, ServeError> {
         let pb::ScoreBatchRequest {
             route,
             rows,
@@ -361,12 +391,14 @@ impl Scorer {
             }
         }
         let mut explanations = explanations.into_iter();
+        let mut held = Vec::new();
         let results: Vec<pb::ScoreResponse> = prepared
             .into_iter()
             .zip(margins)
             .map(|(row, margin)| {
                 let scored = loaded.model.finish(margin, &config.output);
-                let mut response = self.respond(config, &loaded, "champion", row, scored);
+                let mut response =
+                    self.respond(config, &loaded, "champion", row, scored, &mut held);
                 response.explanation = explanations.next();
                 response
             })
@@ -386,9 +418,11 @@ impl Scorer {
                 .collect();
             self.submit(config, silent_models, answered);
         }
-        Ok(pb::ScoreBatchResponse { results })
+        Ok(self.pending(config, pb::ScoreBatchResponse { results }, held))
     }
 
+    /// The response of one scored row; its prediction is queued for the store, or on a route with
+    /// `record = "before-answer"` added to `held` for [`Scorer::pending`].
     fn respond(
         &self,
         config: &Route,
@@ -396,11 +430,14 @@ impl Scorer {
         role: &str,
         mut row: PreparedRow,
         scored: probity_models::Scored,
+        held: &mut Vec<Queued>,
     ) -> pb::ScoreResponse {
         if let Some(log) = &self.log {
-            log.log(crate::serve::outcomes::queued(
-                config, loaded, role, &mut row, &scored,
-            ));
+            let queued = crate::serve::outcomes::queued(config, loaded, role, &mut row, &scored);
+            match config.record {
+                RecordMode::AfterAnswer => log.log(queued),
+                RecordMode::BeforeAnswer => held.push(queued),
+            }
         }
         metrics::prediction(
             &config.name,

@@ -421,6 +421,8 @@ async fn start_inner(
         .layer(tower::limit::GlobalConcurrencyLimitLayer::new(
             limits.max_concurrent_requests,
         ))
+        // Counts and logs what the gRPC layer refuses before a handler runs (crate::serve::refusals).
+        .layer(crate::serve::refusals::RefusalLayer)
         .add_service(health_service)
         .add_service(scoring)
         .add_service(models)

@@ -55,7 +55,9 @@ impl From<ServeError> for Status {
             | ServeError::RouteNotReady { .. }
             | ServeError::ModelNotFound { .. }
             | ServeError::NotExplainable { .. }
-            | ServeError::DeadlineExceeded { .. } => error.to_string(),
+            | ServeError::DeadlineExceeded { .. }
+            | ServeError::NotRecorded(_)
+            | ServeError::RecordDeadline => error.to_string(),
         };
         Status::new(code, message)
     }
@@ -87,6 +89,9 @@ pub fn code_of(error: &ServeError) -> Code {
         ServeError::ModelDirectory { dir: _, error: _ } => Code::FailedPrecondition,
         ServeError::StoreOff => Code::FailedPrecondition,
         ServeError::Store(error) => log_code(error),
+        // Retryable: the store may take it a moment later (or on another replica).
+        ServeError::NotRecorded(_) => Code::Unavailable,
+        ServeError::RecordDeadline => Code::DeadlineExceeded,
         ServeError::Unauthenticated { reason: _ } => Code::Unauthenticated,
         ServeError::PermissionDenied {
             caller: _,

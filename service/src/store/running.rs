@@ -54,6 +54,9 @@ pub const WRITTEN: &str = "probity_store_predictions_written_total";
 /// Predictions not written, by route and reason (`queue_full`, `closed`, `disk_full`, `read_only`, `write_error`,
 /// `duplicate_id`).
 pub const DROPPED: &str = "probity_store_predictions_dropped_total";
+/// Calls of routes with `record = "before-answer"` refused because their predictions were not committed, by route
+/// and reason (`queue_full`, `closed`, `disk_full`, `read_only`, `write_error`, `deadline`).
+pub const RECORD_REFUSALS: &str = "probity_store_record_refusals_total";
 /// Predictions waiting in the queue.
 pub const QUEUE_DEPTH: &str = "probity_store_queue_depth";
 /// Predictions removed by the retention sweep.
@@ -170,6 +173,12 @@ pub fn written(route: &str, n: u64) {
     metrics::counter!(WRITTEN, "route" => route.to_string()).increment(n);
 }
 
+/// Records a call refused for want of its record.
+pub fn record_refused(route: &str, reason: &'static str) {
+    metrics::counter!(RECORD_REFUSALS, "route" => route.to_string(), "reason" => reason)
+        .increment(1);
+}
+
 /// Sets the queue depth gauge.
 pub fn queue_depth(n: usize) {
     metrics::gauge!(QUEUE_DEPTH).set(n as f64);
@@ -223,6 +232,10 @@ pub fn describe() {
     metrics::describe_counter!(
         DROPPED,
         "Predictions not written to the prediction store, by reason."
+    );
+    metrics::describe_counter!(
+        RECORD_REFUSALS,
+        "Calls of record = before-answer routes refused because their predictions were not committed, by reason."
     );
     metrics::describe_gauge!(
         QUEUE_DEPTH,

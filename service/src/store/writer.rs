@@ -6,6 +6,14 @@
 //! nothing but the log. Outcome calls write synchronously (their answer says what was recorded), and reports read
 //! the store; both share it with the writer thread behind one lock.
 //!
+//! A route with `record = "before-answer"` calls [`PredictionStore::record`] instead: its predictions go into the
+//! same queue with a [`Receipt`] that the writer fulfils after the transaction holding them has committed (or
+//! failed), and the call answers only then. The writer does not wait out the flush interval for a batch that holds
+//! such calls: it takes what is queued at that moment and commits, and calls arriving during that commit form
+//! the next batch (group commit: one transaction, and with `durability = "full"` one disk flush, per batch, not
+//! per call). A call whose predictions cannot be queued (queue full, store closed) or committed gets the reason
+//! ([`NotRecorded`]) and is refused, never answered without its record.
+//!
 //! A batch that cannot be written (full disk, read-only file system, any database error) is rolled back whole and
 //! its predictions are counted as dropped with the reason (`disk_full`, `read_only`, `write_error`); the writer
 //! goes on with the next batch, so the log resumes by itself when the disk has room again. The failures are
@@ -13,7 +21,7 @@
 
 use std::collections::{BTreeMap, HashSet};
 use std::sync::atomic::{AtomicUsize, Ordering};
-use std::sync::mpsc::{self, Receiver, RecvTimeoutError, SyncSender, TrySendError};
+use std::sync::mpsc::{self, Receiver, RecvTimeoutError, SyncSender, TryRecvError, TrySendError};
 use std::sync::{Arc, Mutex, MutexGuard};
 use std::thread::JoinHandle;
 use std::time::{Duration, Instant};
@@ -22,7 +30,7 @@ use super::faults::{Failures, Operation};
 use super::running::{self, Windows};
 use super::{
     Clock, ModelVersionInfo, OutcomeInput, OutcomeResult, PredictionRecord, Store, StoreConfig,
-    StoreError,
+    StoreError, WriteFailure,
 };
 
 /// How often the PSI and base-rate gauges are recomputed at most.
@@ -50,8 +58,42 @@ pub struct Queued {
 /// A call run on the log's thread for calls.
 type CallJob = Box<dyn FnOnce() + Send>;
 
+/// Why predictions that a call waits for were not recorded.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, thiserror::Error)]
+pub enum NotRecorded {
+    /// The queue to the writer was full.
+    #[error("its queue is full")]
+    QueueFull,
+    /// The store is closed (the server is stopping).
+    #[error("it is closed")]
+    Closed,
+    /// The transaction holding them failed and was rolled back.
+    #[error("the commit failed: {}", .0.as_str())]
+    Write(WriteFailure),
+}
+
+impl NotRecorded {
+    /// The metric label (`reason`), the same words as `probity_store_predictions_dropped_total`.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            NotRecorded::QueueFull => "queue_full",
+            NotRecorded::Closed => "closed",
+            NotRecorded::Write(failure) => failure.as_str(),
+        }
+    }
+}
+
+/// Resolves once the predictions of one [`PredictionStore::record`] call are committed, or with why not. A receipt
+/// whose sender is gone (the writer stopped) means [`NotRecorded::Closed`].
+pub type Receipt = tokio::sync::oneshot::Receiver<Result<(), NotRecorded>>;
+
 enum Message {
     Record(Box<Queued>),
+    /// Predictions of one call that waits for their commit.
+    Recorded(
+        Vec<Queued>,
+        tokio::sync::oneshot::Sender<Result<(), NotRecorded>>,
+    ),
     /// Write everything queued before this, then answer.
     Flush(mpsc::Sender<()>),
 }
@@ -161,6 +203,52 @@ impl PredictionStore {
                 running::dropped(&route, "closed", 1);
             }
         }
+    }
+
+    /// Queues the predictions of one call that answers only once they are committed; never blocks. The receipt
+    /// resolves after the commit of the batch they are in (all of them in the same transaction), or at once with
+    /// [`NotRecorded::QueueFull`] or [`NotRecorded::Closed`]; predictions not recorded are counted as dropped with
+    /// that reason (the caller counts the refused call, [`running::record_refused`]).
+    pub fn record(&self, queued: Vec<Queued>) -> Receipt {
+        let (done, receipt) = tokio::sync::oneshot::channel();
+        if queued.is_empty() {
+            let _ = done.send(Ok(()));
+            return receipt;
+        }
+        let route = queued[0].record.route.clone();
+        let n = queued.len();
+        let refuse = |done: tokio::sync::oneshot::Sender<_>, why: NotRecorded| {
+            running::dropped(&route, why.as_str(), n as u64);
+            let _ = done.send(Err(why));
+        };
+        let guard = self.sender.lock().unwrap_or_else(|e| e.into_inner());
+        let Some(sender) = guard.as_ref() else {
+            refuse(done, NotRecorded::Closed);
+            return receipt;
+        };
+        // The queue holds messages; its size is counted in predictions, so a call of many rows takes its share.
+        let before = self.depth.fetch_add(n, Ordering::Relaxed);
+        if before > 0 && before + n > self.config.queue_size {
+            self.depth.fetch_sub(n, Ordering::Relaxed);
+            refuse(done, NotRecorded::QueueFull);
+            return receipt;
+        }
+        match sender.try_send(Message::Recorded(queued, done)) {
+            Ok(()) => {}
+            Err(TrySendError::Full(Message::Recorded(_, done))) => {
+                self.depth.fetch_sub(n, Ordering::Relaxed);
+                refuse(done, NotRecorded::QueueFull);
+            }
+            Err(TrySendError::Disconnected(Message::Recorded(_, done))) => {
+                self.depth.fetch_sub(n, Ordering::Relaxed);
+                refuse(done, NotRecorded::Closed);
+            }
+            // Only a Recorded message was sent.
+            Err(TrySendError::Full(_) | TrySendError::Disconnected(_)) => {
+                self.depth.fetch_sub(n, Ordering::Relaxed);
+            }
+        }
+        receipt
     }
 
     /// Waits until every prediction queued before the call is committed (blocking; call off the async runtime).
@@ -313,6 +401,9 @@ impl PredictionStore {
     }
 }
 
+/// The answer channel of one waiting call.
+type Done = tokio::sync::oneshot::Sender<Result<(), NotRecorded>>;
+
 /// The writer thread's state.
 struct Writer {
     failures: Arc<Failures>,
@@ -330,8 +421,10 @@ impl Writer {
     fn run(mut self) {
         let mut batch: Vec<Queued> = Vec::with_capacity(self.batch_size);
         let mut waiters: Vec<mpsc::Sender<()>> = Vec::new();
+        let mut receipts: Vec<Done> = Vec::new();
         loop {
-            // Block for the first message, then gather until the batch is full or the flush interval ends.
+            // Block for the first message, then gather until the batch is full or the flush interval ends; once a
+            // call waits for its record, gather only what is queued already and commit.
             let first = match self.receiver.recv_timeout(PUBLISH_EVERY) {
                 Ok(m) => m,
                 Err(RecvTimeoutError::Timeout) => {
@@ -346,6 +439,10 @@ impl Writer {
             while let Some(message) = next.take() {
                 match message {
                     Message::Record(q) => batch.push(*q),
+                    Message::Recorded(qs, done) => {
+                        batch.extend(qs);
+                        receipts.push(done);
+                    }
                     Message::Flush(w) => {
                         waiters.push(w);
                         break;
@@ -354,14 +451,25 @@ impl Writer {
                 if batch.len() >= self.batch_size {
                     break;
                 }
-                let left = deadline.saturating_duration_since(Instant::now());
-                match self.receiver.recv_timeout(left) {
-                    Ok(m) => next = Some(m),
-                    Err(RecvTimeoutError::Timeout) => {}
-                    Err(RecvTimeoutError::Disconnected) => open = false,
+                if receipts.is_empty() {
+                    let left = deadline.saturating_duration_since(Instant::now());
+                    match self.receiver.recv_timeout(left) {
+                        Ok(m) => next = Some(m),
+                        Err(RecvTimeoutError::Timeout) => {}
+                        Err(RecvTimeoutError::Disconnected) => open = false,
+                    }
+                } else {
+                    match self.receiver.try_recv() {
+                        Ok(m) => next = Some(m),
+                        Err(TryRecvError::Empty) => {}
+                        Err(TryRecvError::Disconnected) => open = false,
+                    }
                 }
             }
-            self.write(&mut batch);
+            let result = self.write(&mut batch);
+            for done in receipts.drain(..) {
+                let _ = done.send(result);
+            }
             if !waiters.is_empty() {
                 // A flush brings the gauges up to date too.
                 self.publish();
@@ -377,19 +485,27 @@ impl Writer {
         while let Ok(message) = self.receiver.try_recv() {
             match message {
                 Message::Record(q) => batch.push(*q),
+                Message::Recorded(qs, done) => {
+                    batch.extend(qs);
+                    receipts.push(done);
+                }
                 Message::Flush(w) => waiters.push(w),
             }
         }
-        self.write(&mut batch);
+        let result = self.write(&mut batch);
+        for done in receipts.drain(..) {
+            let _ = done.send(result);
+        }
         for w in waiters.drain(..) {
             let _ = w.send(());
         }
         self.publish();
     }
 
-    fn write(&mut self, batch: &mut Vec<Queued>) {
+    /// Commits the batch in one transaction; the error is what the calls waiting for it are told.
+    fn write(&mut self, batch: &mut Vec<Queued>) -> Result<(), NotRecorded> {
         if batch.is_empty() {
-            return;
+            return Ok(());
         }
         self.depth.fetch_sub(batch.len(), Ordering::Relaxed);
         running::queue_depth(self.depth.load(Ordering::Relaxed));
@@ -410,7 +526,7 @@ impl Writer {
             }
         }
         let records: Vec<PredictionRecord> = batch.iter().map(|q| q.record.clone()).collect();
-        match store.insert_predictions(&records) {
+        let result = match store.insert_predictions(&records) {
             Ok((written, pairs)) => {
                 drop(store);
                 self.failures.succeeded(Operation::Predictions);
@@ -426,6 +542,7 @@ impl Writer {
                     }
                 }
                 running::settled(&pairs);
+                Ok(())
             }
             Err(error) => {
                 // The transaction was rolled back: none of the batch is in the log.
@@ -438,8 +555,9 @@ impl Writer {
                 for (route, n) in by_route {
                     running::dropped(route, reason.as_str(), n);
                 }
+                Err(NotRecorded::Write(reason))
             }
-        }
+        };
         for q in batch.drain(..) {
             let facts = &q.facts;
             let r = &q.record;
@@ -454,6 +572,7 @@ impl Writer {
         if self.last_publish.elapsed() >= PUBLISH_EVERY {
             self.publish();
         }
+        result
     }
 
     fn publish(&mut self) {

@@ -364,13 +364,63 @@ async fn bad_requests_get_the_right_status_and_the_server_keeps_serving() {
     }
     assert!(failures.is_empty(), "{}", failures.join("\n"));
 
-    // A message above limits.max_message_bytes is refused by the transport, not by a crash.
+    // Refusals made by the gRPC layer before any handler runs are counted like the others (the metrics are shared
+    // by the binary's tests, so the counts are compared before and after).
+    let count = |text: &str, code: &str| -> f64 {
+        text.lines()
+            .filter(|l| {
+                l.starts_with("probity_grpc_requests_total{")
+                    && l.contains("method=\"Score\"")
+                    && l.contains(&format!("code=\"{code}\""))
+            })
+            .filter_map(|l| l.rsplit(' ').next()?.parse::<f64>().ok())
+            .sum()
+    };
+    let before = t.http_get("/metrics").await.1;
+
+    // A message above limits.max_message_bytes: RESOURCE_EXHAUSTED, as the gRPC status table prescribes (the
+    // library alone answers OUT_OF_RANGE), naming the limit's key.
     let huge = dense(&vec![1.0; 600_000]);
     let status = scoring
         .score(score_request("fraud", huge))
         .await
         .unwrap_err();
-    assert_ne!(status.code(), Code::Ok);
+    assert_eq!(status.code(), Code::ResourceExhausted, "{status:?}");
+    assert!(
+        status.message().contains("limits.max_message_bytes"),
+        "{status:?}"
+    );
+
+    // A body that is not a ScoreRequest (field 1, the route, with bytes that are not UTF-8): INTERNAL, per the table.
+    #[derive(Clone, PartialEq, prost::Message)]
+    struct NotARequest {
+        #[prost(bytes = "vec", tag = "1")]
+        route: Vec<u8>,
+    }
+    let mut raw = tonic::client::Grpc::new(t.channel().await);
+    raw.ready().await.unwrap();
+    let status = raw
+        .unary::<_, pb::ScoreResponse, _>(
+            tonic::Request::new(NotARequest {
+                route: vec![0xff, 0xfe, 0x00],
+            }),
+            "/probity.v1.Scoring/Score".parse().unwrap(),
+            tonic_prost::ProstCodec::default(),
+        )
+        .await
+        .unwrap_err();
+    assert_eq!(status.code(), Code::Internal, "{status:?}");
+    let after = t.http_get("/metrics").await.1;
+    assert_eq!(
+        count(&after, "RESOURCE_EXHAUSTED") - count(&before, "RESOURCE_EXHAUSTED"),
+        1.0,
+        "{after}"
+    );
+    assert_eq!(
+        count(&after, "INTERNAL") - count(&before, "INTERNAL"),
+        1.0,
+        "{after}"
+    );
 
     let good = scoring
         .score(score_request("fraud", fraud_row("after")))

@@ -170,6 +170,7 @@ async fn every_rpc_answers() {
         ]
     );
     let fraud = list.routes.iter().find(|r| r.name == "fraud").unwrap();
+    assert_eq!(fraud.record, "after-answer", "the default");
     assert_eq!(
         (fraud.target_base_rate, fraud.decision.as_str()),
         (Some(0.01), "threshold 0.5")

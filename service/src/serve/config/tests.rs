@@ -531,3 +531,27 @@ fn names_of_earlier_releases_are_refused_with_the_new_name() {
         "other live 0.1 paired"
     );
 }
+
+#[test]
+fn route_record_words_and_the_store_it_needs() {
+    let c = load(MINIMAL, &[], &[]).unwrap();
+    assert_eq!(c.routes["fraud"].record, RecordMode::AfterAnswer);
+    let text = "[store]\ndirectory = \"/var/lib/probity\"\n\
+                [routes.fraud]\nmodel = \"m\"\n[routes.credit]\nmodel = \"m\"\nrecord = \"before-answer\"\n";
+    let c = load(text, &[], &[]).unwrap();
+    assert_eq!(c.routes["credit"].record, RecordMode::BeforeAnswer);
+    assert_eq!(c.routes["fraud"].record, RecordMode::AfterAnswer);
+    let bad = "[store]\ndirectory = \"/var/lib/probity\"\n[routes.credit]\nmodel = \"m\"\nrecord = \"sync\"\n";
+    let e = load(bad, &[], &[]).unwrap_err().to_string();
+    assert!(
+        e.contains("routes.credit.record: must be `after-answer` or `before-answer`, got `sync`"),
+        "{e}"
+    );
+    // Waiting for a record needs a store to record in.
+    let no_store = "[routes.credit]\nmodel = \"m\"\nrecord = \"before-answer\"\n";
+    let e = load(no_store, &[], &[]).unwrap_err().to_string();
+    assert!(
+        e.contains("routes.credit.record") && e.contains("store.directory"),
+        "{e}"
+    );
+}

@@ -3,8 +3,9 @@
 //! [`Grants::check`](crate::serve::security::access::Grants::check), and either passes the call on with its
 //! [`Caller`](crate::serve::security::access::Caller) in the request extensions or answers with the refusal's
 //! status (through [`crate::serve::status`], like every other error). Each refusal is logged with the method, the
-//! reason, the caller's configured name when known and the peer address, and counted in
-//! `probity_auth_refusals_total{reason, method}`; the token itself is never logged.
+//! reason, the caller's configured name when known and the peer address (at most one line per method and reason in ten seconds, with
+//! the number left out since), and counted in `probity_auth_refusals_total{reason, method}`; the token itself is never
+//! logged.
 
 use std::future::Future;
 use std::pin::Pin;
@@ -16,8 +17,13 @@ use tower::{Layer, Service, ServiceExt as _};
 
 use crate::serve::error::ServeError;
 use crate::serve::metrics;
+use crate::serve::refusals::Throttle;
 use crate::serve::security::access::{need_of, PeerInfo, RENAMED_METHODS};
 use crate::serve::security::Security;
+
+/// The refusal log line, at most once per [`crate::serve::refusals::LOG_EVERY`] with the count left out since: a
+/// client retrying without credentials cannot flood the log.
+static REFUSED: Throttle = Throttle::new("call refused");
 
 /// Wraps the gRPC services with the access check.
 #[derive(Clone)]
@@ -114,13 +120,16 @@ where
                     .map(|a| a.to_string())
                     .unwrap_or_default();
                 metrics::auth_refused(refusal.reason(), method);
-                tracing::warn!(
-                    method,
-                    reason = refusal.reason(),
-                    caller = refusal.caller().unwrap_or("-"),
-                    %peer,
-                    "call refused"
-                );
+                if let Some(unlogged) = REFUSED.admit(method, refusal.reason()) {
+                    tracing::warn!(
+                        method,
+                        reason = refusal.reason(),
+                        caller = refusal.caller().unwrap_or("-"),
+                        %peer,
+                        unlogged_since_last = unlogged,
+                        "call refused"
+                    );
+                }
                 let status = tonic::Status::from(ServeError::from(refusal));
                 Box::pin(std::future::ready(Ok(status.into_http())))
             }
