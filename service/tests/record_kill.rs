@@ -28,6 +28,10 @@ use std::time::Duration;
 
 use probity::serve::proto as pb;
 
+#[path = "support/postgres.rs"]
+mod pg;
+use pg::{admin_url, TestDb};
+
 fn free_port() -> u16 {
     std::net::TcpListener::bind("127.0.0.1:0")
         .unwrap()
@@ -84,71 +88,6 @@ async fn start(config: &std::path::Path) -> Server {
 }
 
 // ------------------------------------------------------------------------------------------------ the stores
-
-fn admin_url() -> String {
-    std::env::var("PROBITY_TEST_POSTGRES")
-        .unwrap_or_else(|_| "postgresql://postgres@127.0.0.1:5432/postgres".into())
-}
-
-/// A PostgreSQL database of the test's own, dropped at the end.
-struct TestDb {
-    name: String,
-}
-
-impl TestDb {
-    /// `None` when PostgreSQL is missing and the run asked to skip it.
-    fn create(tag: &str) -> Option<TestDb> {
-        let mut admin = match postgres::Client::connect(&admin_url(), postgres::NoTls) {
-            Ok(c) => c,
-            Err(e) => {
-                if std::env::var("PROBITY_SKIP_POSTGRES").as_deref() == Ok("1") {
-                    eprintln!(
-                        "PROBITY_SKIP_POSTGRES=1: skipping, PostgreSQL is not reachable ({e})"
-                    );
-                    return None;
-                }
-                panic!(
-                    "this test needs PostgreSQL 15 at {} (trust authentication; set PROBITY_TEST_POSTGRES to \
-                     another administrative URL, or PROBITY_SKIP_POSTGRES=1 to skip it): {e}",
-                    admin_url()
-                );
-            }
-        };
-        let nanos = std::time::SystemTime::now()
-            .duration_since(std::time::UNIX_EPOCH)
-            .unwrap()
-            .as_nanos();
-        let name = format!(
-            "probity_t_{tag}_{}_{}",
-            std::process::id(),
-            nanos % 1_000_000_000
-        );
-        admin
-            .batch_execute(&format!("CREATE DATABASE {name}"))
-            .unwrap();
-        Some(TestDb { name })
-    }
-
-    fn url(&self) -> String {
-        let admin = admin_url();
-        let base = admin
-            .rsplit_once('/')
-            .map_or(admin.as_str(), |(b, _)| b)
-            .to_string();
-        format!("{base}/{}", self.name)
-    }
-}
-
-impl Drop for TestDb {
-    fn drop(&mut self) {
-        if let Ok(mut admin) = postgres::Client::connect(&admin_url(), postgres::NoTls) {
-            let _ = admin.batch_execute(&format!(
-                "DROP DATABASE IF EXISTS {} WITH (FORCE)",
-                self.name
-            ));
-        }
-    }
-}
 
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 enum Backend {

@@ -24,81 +24,12 @@ use probity::store::{
 };
 use rand::{Rng, SeedableRng};
 
+#[path = "support/postgres.rs"]
+mod pg;
+use pg::TestDb;
+
 const DAY: i64 = 86_400_000;
 const T0: i64 = 1_767_225_600_000; // 2026-01-01T00:00:00Z
-
-fn admin_url() -> String {
-    std::env::var("PROBITY_TEST_POSTGRES")
-        .unwrap_or_else(|_| "postgresql://postgres@127.0.0.1:5432/postgres".into())
-}
-
-/// A database of the test's own, dropped at the end.
-struct TestDb {
-    name: String,
-}
-
-impl TestDb {
-    /// `None` when PostgreSQL is missing and the run asked to skip it.
-    fn create(tag: &str) -> Option<TestDb> {
-        let mut admin = match postgres::Client::connect(&admin_url(), postgres::NoTls) {
-            Ok(c) => c,
-            Err(e) => {
-                if std::env::var("PROBITY_SKIP_POSTGRES").as_deref() == Ok("1") {
-                    eprintln!(
-                        "PROBITY_SKIP_POSTGRES=1: skipping, PostgreSQL is not reachable ({e})"
-                    );
-                    return None;
-                }
-                panic!(
-                    "these tests need PostgreSQL 15 at {} (trust authentication; set PROBITY_TEST_POSTGRES to \
-                     another administrative URL, or PROBITY_SKIP_POSTGRES=1 to skip them): {e}",
-                    admin_url()
-                );
-            }
-        };
-        let nanos = std::time::SystemTime::now()
-            .duration_since(std::time::UNIX_EPOCH)
-            .unwrap()
-            .as_nanos();
-        let name = format!(
-            "probity_t_{tag}_{}_{}",
-            std::process::id(),
-            nanos % 1_000_000_000
-        );
-        admin
-            .batch_execute(&format!("CREATE DATABASE {name}"))
-            .unwrap();
-        Some(TestDb { name })
-    }
-
-    fn url(&self) -> String {
-        let admin = admin_url();
-        let base = admin
-            .rsplit_once('/')
-            .map_or(admin.as_str(), |(b, _)| b)
-            .to_string();
-        format!("{base}/{}", self.name)
-    }
-
-    fn open(&self, now_ms: i64) -> PgStore {
-        PgStore::open(ConnectionUrl::new(&self.url()).unwrap(), None, now_ms).unwrap()
-    }
-
-    fn client(&self) -> postgres::Client {
-        postgres::Client::connect(&self.url(), postgres::NoTls).unwrap()
-    }
-}
-
-impl Drop for TestDb {
-    fn drop(&mut self) {
-        if let Ok(mut admin) = postgres::Client::connect(&admin_url(), postgres::NoTls) {
-            let _ = admin.batch_execute(&format!(
-                "DROP DATABASE IF EXISTS {} WITH (FORCE)",
-                self.name
-            ));
-        }
-    }
-}
 
 fn record(id: &str, route: &str, role: &str, time_ms: i64, h: f64) -> PredictionRecord {
     PredictionRecord {
