@@ -5,7 +5,7 @@
 //! The rows are made to reach the edge cases of the streamed arithmetic: tied log-odds and probabilities across
 //! classes and across group boundaries, corrected labels, labels settled by maturity, predictions served under two
 //! base rates, outcomes received at many delays, a reference distribution for the PSI, and a series too small for
-//! most figures (whose notes must match too). PostgreSQL as in `tests/store_postgres.rs` (`PROBITY_TEST_POSTGRES`,
+//! most figures (whose notes must match too). PostgreSQL as in `tests/support/postgres.rs` (`PROBITY_TEST_POSTGRES`,
 //! `PROBITY_SKIP_POSTGRES=1`).
 
 use std::collections::BTreeMap;
@@ -13,7 +13,6 @@ use std::collections::BTreeMap;
 use probity::compare::CompareRequest;
 use probity::report::stream::build as build_binned;
 use probity::report::{build_loaded, Horizons};
-use probity::store::postgres::{ConnectionUrl, PgStore};
 use probity::store::{
     ModelVersionInfo, OutcomeInput, PredictionRecord, Reference, ReportFilter, SqliteStore, Store,
 };
@@ -21,67 +20,10 @@ use probity_models::metrics::BinStrategy;
 use rand::{Rng, SeedableRng};
 use serde_json::Value;
 
+#[path = "support/postgres.rs"]
+mod pg;
+
 const NOW: i64 = 1_780_000_000_000;
-
-fn admin_url() -> String {
-    std::env::var("PROBITY_TEST_POSTGRES")
-        .unwrap_or_else(|_| "postgresql://postgres@127.0.0.1:5432/postgres".into())
-}
-
-struct TestDb {
-    name: String,
-}
-
-impl TestDb {
-    fn create() -> Option<TestDb> {
-        let mut admin = match postgres::Client::connect(&admin_url(), postgres::NoTls) {
-            Ok(c) => c,
-            Err(e) => {
-                if std::env::var("PROBITY_SKIP_POSTGRES").as_deref() == Ok("1") {
-                    eprintln!(
-                        "PROBITY_SKIP_POSTGRES=1: skipping, PostgreSQL is not reachable ({e})"
-                    );
-                    return None;
-                }
-                panic!(
-                    "this test needs PostgreSQL 15 at {} (set PROBITY_TEST_POSTGRES, or PROBITY_SKIP_POSTGRES=1 to \
-                     skip): {e}",
-                    admin_url()
-                );
-            }
-        };
-        let name = format!("probity_t_stream_{}", std::process::id());
-        admin
-            .batch_execute(&format!("DROP DATABASE IF EXISTS {name} WITH (FORCE)"))
-            .unwrap();
-        admin
-            .batch_execute(&format!("CREATE DATABASE {name}"))
-            .unwrap();
-        Some(TestDb { name })
-    }
-
-    fn open(&self) -> PgStore {
-        let admin = admin_url();
-        let base = admin.rsplit_once('/').map_or(admin.as_str(), |(b, _)| b);
-        PgStore::open(
-            ConnectionUrl::new(&format!("{base}/{}", self.name)).unwrap(),
-            None,
-            NOW,
-        )
-        .unwrap()
-    }
-}
-
-impl Drop for TestDb {
-    fn drop(&mut self) {
-        if let Ok(mut admin) = postgres::Client::connect(&admin_url(), postgres::NoTls) {
-            let _ = admin.batch_execute(&format!(
-                "DROP DATABASE IF EXISTS {} WITH (FORCE)",
-                self.name
-            ));
-        }
-    }
-}
 
 /// Writes the same made-up rows into `store`.
 fn fill(store: &mut dyn Store) {
@@ -392,7 +334,9 @@ fn streamed_report_equals_the_loaded_one_on_sqlite() {
 
 #[test]
 fn streamed_report_equals_the_loaded_one_on_postgres() {
-    let Some(db) = TestDb::create() else { return };
-    let mut store = db.open();
+    let Some(db) = pg::TestDb::create("stream") else {
+        return;
+    };
+    let mut store = db.open(NOW);
     check(&mut store, "postgres");
 }
