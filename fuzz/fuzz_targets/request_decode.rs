@@ -61,6 +61,7 @@ fn fixture() -> &'static Fixture {
                 let name = format!("r{m}{policy}");
                 let route = Route {
                     reasons: Default::default(),
+                    record: Default::default(),
                     name: name.clone(),
                     model: model.to_string(),
                     output: OutputSpec {
@@ -167,7 +168,7 @@ fuzz_target!(|data: &[u8]| {
                 request.route = route;
             }
             match f.scorer.score(request) {
-                Ok(response) => check_response(&response),
+                Ok(response) => check_response(&response.answer),
                 Err(error) => check_error(&error),
             }
         }
@@ -184,8 +185,8 @@ fuzz_target!(|data: &[u8]| {
                 .score_batch(request, Instant::now() + Duration::from_secs(60))
             {
                 Ok(response) => {
-                    assert_eq!(response.results.len(), rows);
-                    response.results.iter().for_each(check_response);
+                    assert_eq!(response.answer.results.len(), rows);
+                    response.answer.results.iter().for_each(check_response);
                 }
                 Err(error) => check_error(&error),
             }
