@@ -101,6 +101,8 @@ fn fixture() -> &'static Fixture {
             max_message_bytes: 4 * 1024 * 1024,
             max_concurrent_requests: 8,
             default_deadline: Duration::from_secs(60),
+            max_connections: 16,
+            max_streams_per_connection: 16,
         };
         Fixture {
             scorer: Scorer::new(registry, routes, limits),

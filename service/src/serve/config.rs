@@ -132,6 +132,8 @@ struct RawLimits {
     max_message_bytes: u64,
     max_concurrent_requests: u64,
     default_deadline_ms: u64,
+    max_connections: u64,
+    max_streams_per_connection: u64,
 }
 
 impl Default for RawLimits {
@@ -141,6 +143,8 @@ impl Default for RawLimits {
             max_message_bytes: 4 * 1024 * 1024,
             max_concurrent_requests: 1_024,
             default_deadline_ms: 1_000,
+            max_connections: 1_024,
+            max_streams_per_connection: 100,
         }
     }
 }
@@ -254,6 +258,12 @@ pub struct Limits {
     pub max_concurrent_requests: usize,
     /// Deadline of a call that does not set a shorter one.
     pub default_deadline: Duration,
+    /// Most client connections open at once on the gRPC port; a connection over it is closed at once (counted in
+    /// `probity_connections_refused_total`), so a client can try another replica.
+    pub max_connections: usize,
+    /// Most calls open at once on one connection (HTTP/2 SETTINGS_MAX_CONCURRENT_STREAMS, RFC 9113 section 6.5.2);
+    /// the client queues further calls itself.
+    pub max_streams_per_connection: u32,
 }
 
 /// Log output.
@@ -689,6 +699,8 @@ fn limits(raw: RawLimits) -> Result<Limits, ConfigError> {
         max_message_bytes,
         max_concurrent_requests,
         default_deadline_ms,
+        max_connections,
+        max_streams_per_connection,
     } = raw;
     let usize_of = |v: u64| usize::try_from(v).unwrap_or(usize::MAX);
     Ok(Limits {
@@ -716,6 +728,19 @@ fn limits(raw: RawLimits) -> Result<Limits, ConfigError> {
             1,
             3_600_000,
         )?),
+        max_connections: usize_of(in_range(
+            "limits.max_connections",
+            max_connections,
+            1,
+            1_000_000,
+        )?),
+        max_streams_per_connection: u32::try_from(in_range(
+            "limits.max_streams_per_connection",
+            max_streams_per_connection,
+            1,
+            100_000,
+        )?)
+        .unwrap_or(u32::MAX),
     })
 }
 

@@ -44,6 +44,10 @@ pub const AUTH_REFUSALS: &str = "probity_auth_refusals_total";
 pub const TLS_HANDSHAKE_FAILURES: &str = "probity_tls_handshake_failures_total";
 /// Reloads of the TLS files and token files that changed something, by part and result (`loaded`, `failed`).
 pub const SECURITY_RELOADS: &str = "probity_security_reloads_total";
+/// Connections open on the gRPC port (each holds a slot of `limits.max_connections`).
+pub const CONNECTIONS_OPEN: &str = "probity_connections_open";
+/// Connections closed at once because `limits.max_connections` were open.
+pub const CONNECTIONS_REFUSED: &str = "probity_connections_refused_total";
 /// End of validity of the server certificate in use, seconds since the Unix epoch, labelled with its fingerprint.
 pub const TLS_CERTIFICATE_EXPIRY: &str = "probity_tls_certificate_expiry_timestamp_seconds";
 
@@ -159,6 +163,14 @@ fn describe() {
         "Reloads of TLS or token files that changed something, by part and result."
     );
     metrics::describe_gauge!(
+        CONNECTIONS_OPEN,
+        "Connections open on the gRPC port (at most limits.max_connections)."
+    );
+    metrics::describe_counter!(
+        CONNECTIONS_REFUSED,
+        "Connections closed at once because limits.max_connections were open."
+    );
+    metrics::describe_gauge!(
         TLS_CERTIFICATE_EXPIRY,
         metrics::Unit::Seconds,
         "End of validity of the server certificate in use (Unix time); 0 for a replaced one."
@@ -168,6 +180,21 @@ fn describe() {
 /// Records a refused call (`method` is a path from the access table or `unknown`, never the caller's text).
 pub fn auth_refused(reason: &'static str, method: &'static str) {
     metrics::counter!(AUTH_REFUSALS, "reason" => reason, "method" => method).increment(1);
+}
+
+/// Records a connection taking a slot of `limits.max_connections`.
+pub fn connection_opened() {
+    metrics::gauge!(CONNECTIONS_OPEN).increment(1.0);
+}
+
+/// Records a connection giving its slot back.
+pub fn connection_closed() {
+    metrics::gauge!(CONNECTIONS_OPEN).decrement(1.0);
+}
+
+/// Records a connection closed because every slot was taken.
+pub fn connection_refused() {
+    metrics::counter!(CONNECTIONS_REFUSED).increment(1);
 }
 
 /// Records a TLS handshake that did not complete.

@@ -17,6 +17,7 @@ pub mod challenger;
 pub mod challengers_api;
 pub mod compare_metrics;
 pub mod config;
+pub mod connections;
 pub mod conversions;
 pub mod error;
 pub mod explain;

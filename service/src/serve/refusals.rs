@@ -43,6 +43,11 @@ impl Throttle {
         }
     }
 
+    /// What this throttle's refusals are, for the log line.
+    pub fn what(&self) -> &'static str {
+        self.what
+    }
+
     /// `Some(refusals left out since the last line)` when a line for (`method`, `reason`) is due (none within
     /// [`LOG_EVERY`]); `None` when this one is only counted for the next line.
     pub fn admit(&self, method: &'static str, reason: &'static str) -> Option<u64> {

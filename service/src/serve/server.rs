@@ -413,9 +413,11 @@ async fn start_inner(
     if let Some(age) = max_connection_age {
         // Past its age a connection gets GOAWAY and closes once its calls in flight have finished. No
         // `max_connection_age_grace`: in tonic 0.14 setting it replaces the GOAWAY by a plain close at age + grace,
-        // cutting calls in flight (tests/connection_age.rs sees the GOAWAY).
+        // cutting calls in flight (tests/connections.rs sees the GOAWAY).
         builder = builder.max_connection_age(age);
     }
+    builder = builder.max_concurrent_streams(limits.max_streams_per_connection);
+    let gate = crate::serve::connections::Gate::new(limits.max_connections);
     let router = builder
         .layer(AccessLayer::new(Arc::clone(&security)))
         .layer(tower::limit::GlobalConcurrencyLimitLayer::new(
@@ -433,14 +435,18 @@ async fn start_inner(
     let grpc = match security.tls() {
         None => {
             let incoming =
-                tonic::transport::server::TcpIncoming::from(grpc_listener).with_nodelay(Some(true));
+                crate::serve::connections::plain_incoming(grpc_listener, gate, shutdown_rx.clone());
             tokio::spawn(
                 router.serve_with_incoming_shutdown(incoming, stopped(shutdown_rx.clone())),
             )
         }
         Some(tls) => {
-            let incoming =
-                crate::serve::security::tls::incoming(grpc_listener, tls, shutdown_rx.clone());
+            let incoming = crate::serve::security::tls::incoming(
+                grpc_listener,
+                tls,
+                gate,
+                shutdown_rx.clone(),
+            );
             tokio::spawn(
                 router.serve_with_incoming_shutdown(incoming, stopped(shutdown_rx.clone())),
             )

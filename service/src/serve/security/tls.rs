@@ -26,6 +26,7 @@ use tokio::net::{TcpListener, TcpStream};
 use tokio::sync::{mpsc, watch, Semaphore};
 use tokio_stream::wrappers::ReceiverStream;
 
+use crate::serve::connections::{accept, Admitted, Gate};
 use crate::serve::metrics;
 use crate::serve::security::access::PeerInfo;
 use crate::serve::security::config::{ClientCertificates, TlsFiles};
@@ -246,30 +247,17 @@ impl AsyncWrite for TlsConnection {
 pub fn incoming(
     listener: TcpListener,
     current: Arc<ArcSwap<LoadedTls>>,
+    gate: Arc<Gate>,
     mut shutdown: watch::Receiver<bool>,
-) -> ReceiverStream<io::Result<TlsConnection>> {
+) -> ReceiverStream<io::Result<Admitted<TlsConnection>>> {
     let (tx, rx) = mpsc::channel(64);
     tokio::spawn(async move {
         let slots = Arc::new(Semaphore::new(MAX_HANDSHAKES));
-        loop {
-            let accepted = tokio::select! {
-                _ = shutdown.wait_for(|stop| *stop) => break,
-                accepted = listener.accept() => accepted,
-            };
-            let (tcp, remote) = match accepted {
-                Ok(pair) => pair,
-                Err(error) => {
-                    // Out of file descriptors and the like: wait a little instead of spinning.
-                    tracing::warn!(%error, "gRPC accept failed");
-                    tokio::time::sleep(Duration::from_millis(50)).await;
-                    continue;
-                }
-            };
+        while let Some((tcp, remote, connection)) = accept(&listener, &gate, &mut shutdown).await {
             let Ok(slot) = Arc::clone(&slots).try_acquire_owned() else {
                 metrics::tls_handshake_failed("busy");
                 continue;
             };
-            let _ = tcp.set_nodelay(true);
             let acceptor = tokio_rustls::TlsAcceptor::from(Arc::clone(&current.load().config));
             let tx = tx.clone();
             tokio::spawn(async move {
@@ -286,7 +274,12 @@ pub fn incoming(
                             remote_addr: Some(remote),
                             certificate_name,
                         };
-                        let _ = tx.send(Ok(TlsConnection { stream, info })).await;
+                        let _ = tx
+                            .send(Ok(Admitted::new(
+                                TlsConnection { stream, info },
+                                connection,
+                            )))
+                            .await;
                     }
                     Ok(Err(error)) => {
                         metrics::tls_handshake_failed("handshake");
