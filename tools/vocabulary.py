@@ -67,6 +67,8 @@ CONFIG = [
     ("limits.max_batch_rows", "Most rows in one ScoreBatch call."),
     ("limits.max_message_bytes", "Largest gRPC message."),
     ("limits.max_concurrent_requests", "Calls served at once; more wait within their deadline."),
+    ("limits.max_connections", "Connections open at once on the gRPC port; one over it is closed at once."),
+    ("limits.max_streams_per_connection", "Calls open at once on one connection (HTTP/2 SETTINGS_MAX_CONCURRENT_STREAMS)."),
     ("limits.default_deadline_ms", "Deadline of a call that sends none."),
     ("logging.format", "`text` or `json`."),
     ("logging.level", "Process log filter (e.g. `info`)."),

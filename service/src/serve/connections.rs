@@ -41,6 +41,8 @@ impl Drop for Slot {
 impl Gate {
     /// A gate of `max` slots.
     pub fn new(max: usize) -> Arc<Gate> {
+        // Both series exist from the start, so a rate or an alert on them needs no first refusal.
+        metrics::connections_start();
         Arc::new(Gate {
             slots: Arc::new(Semaphore::new(max)),
         })

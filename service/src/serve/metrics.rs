@@ -182,6 +182,12 @@ pub fn auth_refused(reason: &'static str, method: &'static str) {
     metrics::counter!(AUTH_REFUSALS, "reason" => reason, "method" => method).increment(1);
 }
 
+/// Shows the connection series at zero before the first connection.
+pub fn connections_start() {
+    metrics::gauge!(CONNECTIONS_OPEN).set(0.0);
+    metrics::counter!(CONNECTIONS_REFUSED).increment(0);
+}
+
 /// Records a connection taking a slot of `limits.max_connections`.
 pub fn connection_opened() {
     metrics::gauge!(CONNECTIONS_OPEN).increment(1.0);
