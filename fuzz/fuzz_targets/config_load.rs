@@ -2,7 +2,7 @@
 //! overrides, layered as `probity serve` layers them.
 //!
 //! The input is split on 0xFF bytes: the first part is the file's text, each later part one `NAME=VALUE` (an
-//! environment variable when NAME starts with `PROBITY_`, an override otherwise). Checked beyond "no panic": a
+//! environment variable when NAME starts with `PROBITY_`, otherwise a `--set` flag's text, read as the flag is). Checked beyond "no panic": a
 //! refusal names where it is (a key path, a file or an override) in a message short enough to print on one screen,
 //! and an accepted configuration keeps the rules the server relies on (positive limits, every route's model named,
 //! challenger shares in [0, 1]).
@@ -13,7 +13,7 @@ use std::sync::OnceLock;
 
 use libfuzzer_sys::fuzz_target;
 use probity::serve::challenger::ChallengerMode;
-use probity::serve::config::{Config, ConfigError, Sources};
+use probity::serve::config::{parse_override, Config, ConfigError, Sources};
 
 /// The longest refusal a caller may get back.
 const MAX_MESSAGE_CHARS: usize = 4096;
@@ -39,11 +39,18 @@ fuzz_target!(|data: &[u8]| {
     }
     for part in parts.take(16) {
         let part = String::from_utf8_lossy(part);
-        let (name, value) = part.split_once('=').unwrap_or((&part, ""));
-        if name.starts_with("PROBITY_") {
+        if part.starts_with("PROBITY_") {
+            let (name, value) = part.split_once('=').unwrap_or((&part, ""));
             sources.env.push((name.to_string(), value.to_string()));
         } else {
-            sources.overrides.push((name.to_string(), value.to_string()));
+            // As `--set` reads it.
+            match parse_override(&part) {
+                Ok(pair) => sources.overrides.push(pair),
+                Err(error) => {
+                    assert!(matches!(error, ConfigError::Override { .. }), "{error}");
+                    return;
+                }
+            }
         }
     }
     match Config::load(&sources) {

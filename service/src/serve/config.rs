@@ -423,7 +423,14 @@ impl Config {
                 // The TOML deserializer appends `in <table>` on a second line; the key path says where already.
                 let message = e.into_inner().to_string();
                 let message = message.lines().next().unwrap_or_default().to_string();
-                invalid(if key == "." { "$".to_string() } else { key }, message)
+                invalid(
+                    if key.is_empty() || key == "." {
+                        "$".to_string()
+                    } else {
+                        key
+                    },
+                    message,
+                )
             })?;
         Config::from_raw(raw)
     }

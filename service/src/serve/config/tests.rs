@@ -83,6 +83,8 @@ fn errors_name_the_key() {
             "[limits]\nmax_batch_row = 5\n[routes.a]\nmodel = \"m\"\n",
             "limits.max_batch_row: unknown field `max_batch_row`",
         ),
+        // An empty quoted key at the top (found by the config_load fuzz target): the error says where, `$`.
+        ("\"\" = 2\n", "$: unknown field ``"),
         (
             "[server]\ngrpc_listen = \"nowhere\"\n[routes.a]\nmodel = \"m\"\n",
             "server.grpc_listen: must be HOST:PORT",
