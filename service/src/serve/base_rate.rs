@@ -116,7 +116,7 @@ pub fn apply_once(
         let Some(route) = routes.get(name) else {
             continue;
         };
-        let Some(&(estimate, count)) = latest.get(&(name.clone(), route.model.clone())) else {
+        let Some(&(estimate, count)) = latest.get(&(name.clone(), route.model.name.clone())) else {
             continue;
         };
         let Some(target) = b.effective(estimate, count) else {
