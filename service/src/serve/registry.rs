@@ -89,14 +89,21 @@ impl Snapshot {
         }
     }
 
-    /// Every loaded model as `NAME@VERSION`, comma-separated, or `none`.
+    /// Every loaded model, comma-separated, or `none`: `NAME` for a name loaded in one version, `NAME@VERSION` for
+    /// each version of a name loaded in several.
     pub fn loaded_list(&self) -> String {
         if self.models.is_empty() {
             return "none".into();
         }
         self.models
             .keys()
-            .map(|(n, v)| format!("{n}@{v}"))
+            .map(|(n, v)| {
+                if self.versions_of(n).nth(1).is_some() {
+                    format!("{n}@{v}")
+                } else {
+                    n.clone()
+                }
+            })
             .collect::<Vec<_>>()
             .join(", ")
     }

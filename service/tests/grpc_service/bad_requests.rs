@@ -267,7 +267,7 @@ fn table() -> Vec<(&'static str, Call, Code, &'static str)> {
                 ..Default::default()
             }),
             Code::InvalidArgument,
-            "challenger: is 100000 characters long; the limit is 128",
+            "challenger: is 100000 characters long; the limit is 257",
         ),
         (
             "promote: 100,000-character route",
