@@ -611,4 +611,37 @@ async fn the_next_version_challenges_its_own_model_and_restore_returns_the_previ
         "the rows scored after the restore count, those scored under the promotion do not"
     );
     server.shutdown().await;
+
+    // `probity compare` on the store: both versions of the name answered as champion and as challenger on this
+    // route, so the challenger must be named; the champion is then pinned to its most frequent other version.
+    let store = data.path().to_str().unwrap().to_string();
+    let offline = |extra: &[&str]| {
+        let out = std::process::Command::new(env!("CARGO_BIN_EXE_probity"))
+            .args(["compare", "--store", &store, "--route", "bc", "--json"])
+            .args(extra)
+            .output()
+            .unwrap();
+        (
+            out.status.success(),
+            String::from_utf8_lossy(&out.stdout).to_string(),
+            String::from_utf8_lossy(&out.stderr).to_string(),
+        )
+    };
+    let (ok, _, err) = offline(&[]);
+    assert!(
+        !ok && err.contains("name one as bc-linear@VERSION"),
+        "{err}"
+    );
+    let (ok, out, err) = offline(&["--challenger", "bc-linear@2"]);
+    assert!(ok, "{err}");
+    let offline_report: Value = serde_json::from_str(&out).unwrap();
+    for key in [
+        "champion",
+        "challenger",
+        "champion_predictions",
+        "challenger_predictions",
+        "paired",
+    ] {
+        assert_eq!(offline_report[key], report[key], "{key}");
+    }
 }
