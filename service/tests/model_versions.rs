@@ -341,6 +341,25 @@ async fn the_next_version_challenges_its_own_model_and_restore_returns_the_previ
         .map(|m| (m.name.as_str(), m.version.as_str()))
         .collect();
     assert_eq!(versions, [(NAME, "1"), (NAME, "2")]);
+    let facts = |model: &str| {
+        let mut models_api = models_api.clone();
+        let target = Some(pb::model_facts_request::Target::Model(model.to_string()));
+        async move {
+            models_api
+                .model_facts(pb::ModelFactsRequest { target })
+                .await
+                .map(|r| r.into_inner().model.unwrap().version)
+        }
+    };
+    assert_eq!(facts("bc-linear@2").await.unwrap(), "2");
+    let refused = facts(NAME).await.unwrap_err();
+    assert_eq!(refused.code(), tonic::Code::InvalidArgument);
+    assert!(
+        refused
+            .message()
+            .contains("several versions (1, 2); name one as bc-linear@VERSION"),
+        "{refused:?}"
+    );
     let (m, version, role, log_odds) = score(&mut scoring, "pinned", "p-1", 0.25, -1.5).await;
     assert_eq!(
         (m.as_str(), version.as_str(), role.as_str()),

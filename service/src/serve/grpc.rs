@@ -309,12 +309,25 @@ impl pb::models_server::Models for ModelsApi {
                 ModelTarget::Model(model) => {
                     let named = crate::serve::model_ref::ModelRef::parse(&model)
                         .map_err(|e| ServeError::invalid("model", e.to_string()))?;
-                    self.scorer
-                        .registry()
-                        .snapshot()
-                        .find(&named)
-                        .cloned()
-                        .ok_or(ServeError::ModelNotFound { model })?
+                    let snapshot = self.scorer.registry().snapshot();
+                    match snapshot.find(&named) {
+                        Some(loaded) => Arc::clone(loaded),
+                        None if !named.is_pinned() && snapshot.versions_of(&named.name).nth(1).is_some() => {
+                            let versions = snapshot
+                                .versions_of(&named.name)
+                                .map(|m| m.model.version())
+                                .collect::<Vec<_>>()
+                                .join(", ");
+                            return Err(ServeError::invalid(
+                                "model",
+                                format!(
+                                    "`{}` is loaded in several versions ({versions}); name one as {}@VERSION",
+                                    named.name, named.name
+                                ),
+                            ));
+                        }
+                        None => return Err(ServeError::ModelNotFound { model }),
+                    }
                 }
             };
             let features = feature_infos(loaded.model.schema());
