@@ -43,6 +43,10 @@ WORDS = [
     ("target base rate", "The live positive rate a route's probabilities are corrected to."),
     ("promote", "Make a route's challenger its champion (and the champion the challenger), recorded in the route "
                 "history."),
+    ("restore", "Return a route to its previous champion (the one before its last promotion not yet undone), "
+                "recorded in the route history like a promotion."),
+    ("NAME@VERSION", "A model pinned to one version, in routes, challengers, requests and commands; a bare NAME means "
+                     "the one version of that model loaded (a model named bare is loaded in one version at a time)."),
     ("reasons", "The features that pushed a score most towards the adverse side, for an explanation."),
 ]
 
@@ -86,7 +90,8 @@ CONFIG = [
     ("store.psi_window", "Recent predictions per route, model and version in the PSI gauge."),
     ("store.prior_window", "Recent predictions per route in the base-rate estimate."),
     ("store.maturity.<route>", "Maturity period of a route."),
-    ("routes.<route>.model", "The champion."),
+    ("routes.<route>.model", "The champion: NAME, or NAME@VERSION to pin a version (a model name is pinned in every "
+                             "reference of the configuration or in none)."),
     ("routes.<route>.target_base_rate", "Live base rate the probabilities are corrected to."),
     ("routes.<route>.decision.threshold", "Decide positive at or above this probability."),
     ("routes.<route>.decision.false_positive", "Cost of a false positive (with `false_negative`: the "
@@ -104,7 +109,8 @@ CONFIG = [
     ("routes.<route>.base_rate_from_estimate.min", "Lowest applied estimate."),
     ("routes.<route>.base_rate_from_estimate.max", "Highest applied estimate."),
     ("routes.<route>.base_rate_from_estimate.min_predictions", "Window size before the estimate applies."),
-    ("routes.<route>.challengers[].model", "The challenger model."),
+    ("routes.<route>.challengers[].model", "The challenger: NAME or NAME@VERSION (another version of the "
+                                            "champion's own model is written NAME@VERSION on both)."),
     ("routes.<route>.challengers[].mode", "`silent` or `live`."),
     ("routes.<route>.challengers[].share", "A live challenger's share of subjects."),
     ("routes.<route>.challengers[].paired", "A live challenger: the other model scores silently too."),

@@ -63,7 +63,7 @@ fn fixture() -> &'static Fixture {
                     reasons: Default::default(),
                     record: Default::default(),
                     name: name.clone(),
-                    model: model.to_string(),
+                    model: probity::serve::model_ref::ModelRef::bare(*model),
                     output: OutputSpec {
                         target_base_rate: (policy % 2 == 0).then_some(0.013),
                         decision: Some(if policy < 4 {

@@ -46,7 +46,10 @@ enum Command {
     SendOutcomes(cli::send_outcomes::SendOutcomesArgs),
     /// Make a challenger a route's champion on a running server (the `admin` role); recorded in the history.
     Promote(cli::promote::PromoteArgs),
-    /// A running server's route promotion history.
+    /// Return a route to its previous champion from the route history, on a running server (the `admin` role);
+    /// recorded in the history like a promotion.
+    Restore(cli::promote::RestoreArgs),
+    /// A running server's route history: promotions and restores.
     RouteHistory(cli::promote::HistoryArgs),
     /// Run the gRPC scoring service until SIGTERM or SIGINT.
     Serve(probity::serve::ServeArgs),
@@ -83,6 +86,7 @@ fn run() -> anyhow::Result<()> {
         Command::Compare(args) => cli::compare::run(&args),
         Command::SendOutcomes(args) => cli::send_outcomes::run(&args),
         Command::Promote(args) => cli::promote::run_promote(&args),
+        Command::Restore(args) => cli::promote::run_restore(&args),
         Command::RouteHistory(args) => cli::promote::run_history(&args),
         Command::Serve(args) => Ok(probity::serve::run(&args)?),
     }

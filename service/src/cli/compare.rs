@@ -17,12 +17,12 @@ pub struct CompareArgs {
     /// The route whose champion and challenger are compared.
     #[arg(long)]
     pub route: String,
-    /// The champion model (default: the model of the route's champion predictions).
-    #[arg(long)]
-    pub champion: Option<String>,
-    /// The challenger model (default: the route's only challenger).
-    #[arg(long)]
-    pub challenger: Option<String>,
+    /// The champion model, NAME or NAME@VERSION (default: the model of the route's champion predictions).
+    #[arg(long, value_parser = model_ref)]
+    pub champion: Option<probity::serve::model_ref::ModelRef>,
+    /// The challenger model, NAME or NAME@VERSION (default: the route's only challenger).
+    #[arg(long, value_parser = model_ref)]
+    pub challenger: Option<probity::serve::model_ref::ModelRef>,
     /// Decision threshold on the probability, for the share of flipped decisions.
     #[arg(long, value_name = "P")]
     pub threshold: Option<f64>,
@@ -82,4 +82,9 @@ pub fn run(args: &CompareArgs) -> anyhow::Result<()> {
         }
     }
     Ok(())
+}
+
+/// Reads `NAME` or `NAME@VERSION` for `--champion` and `--challenger`.
+fn model_ref(text: &str) -> Result<probity::serve::model_ref::ModelRef, String> {
+    probity::serve::model_ref::ModelRef::parse(text).map_err(|e| e.to_string())
 }

@@ -1,5 +1,6 @@
-//! `probity promote` and `probity route-history`: the admin call that makes a challenger a route's champion on a
-//! running server, and the route's promotion history.
+//! `probity promote`, `probity restore` and `probity route-history`: the admin calls that make a challenger a
+//! route's champion on a running server and return a route to its previous champion, and the route's history of
+//! both.
 
 use anyhow::Context;
 use probity::client::{ConnectArgs, Connection};
@@ -14,7 +15,7 @@ pub struct PromoteArgs {
     /// The route.
     #[arg(long)]
     pub route: String,
-    /// The challenger model to make champion.
+    /// The challenger to make champion: NAME@VERSION, or NAME when the route has one challenger of that name.
     #[arg(long)]
     pub challenger: String,
     /// Who asks (recorded with the change) [default: the USER, else the LOGNAME environment variable; required
@@ -24,6 +25,24 @@ pub struct PromoteArgs {
     /// Promote even when the comparison's verdict is that the champion is better.
     #[arg(long)]
     pub force: bool,
+    /// Why (recorded with the change).
+    #[arg(long, default_value = "")]
+    pub reason: String,
+}
+
+/// Arguments of `probity restore`.
+#[derive(Debug, clap::Args)]
+pub struct RestoreArgs {
+    /// The server and the credentials of a caller with the `admin` role.
+    #[command(flatten)]
+    pub connect: ConnectArgs,
+    /// The route to return to the champion it had before its last promotion.
+    #[arg(long)]
+    pub route: String,
+    /// Who asks (recorded with the change) [default: the USER, else the LOGNAME environment variable; required
+    /// where neither is set].
+    #[arg(long)]
+    pub requested_by: Option<String>,
     /// Why (recorded with the change).
     #[arg(long, default_value = "")]
     pub reason: String,
@@ -58,11 +77,32 @@ async fn client(
     ))
 }
 
+/// The versions that served, when the route names a model without one (` [versions 3 -> 4]`).
+fn versions(c: &pb::RouteChange) -> String {
+    let named = c.previous_champion.contains('@') && c.new_champion.contains('@');
+    if named || (c.previous_champion_version.is_empty() && c.new_champion_version.is_empty()) {
+        return String::new();
+    }
+    let v = |s: &str| {
+        if s.is_empty() {
+            "not loaded".to_string()
+        } else {
+            s.to_string()
+        }
+    };
+    format!(
+        " [versions {} -> {}]",
+        v(&c.previous_champion_version),
+        v(&c.new_champion_version)
+    )
+}
+
 fn line(c: &pb::RouteChange) -> String {
     format!(
-        "{} route {}: {} -> {} by {} from {}{}",
+        "{} route {}: {}{} -> {} by {} from {}{}{}",
         super::when::iso(c.time_unix_ms),
         c.route,
+        if c.kind == "restore" { "restore " } else { "" },
         c.previous_champion,
         c.new_champion,
         c.requested_by,
@@ -71,7 +111,8 @@ fn line(c: &pb::RouteChange) -> String {
             String::new()
         } else {
             format!(" ({})", c.reason)
-        }
+        },
+        versions(c)
     )
 }
 
@@ -131,6 +172,26 @@ pub fn run_promote(args: &PromoteArgs) -> anyhow::Result<()> {
     Ok(())
 }
 
+/// Runs `probity restore`.
+pub fn run_restore(args: &RestoreArgs) -> anyhow::Result<()> {
+    let who = requester(args.requested_by.as_deref(), |k| std::env::var(k).ok())?;
+    let changed = runtime()?.block_on(async {
+        let mut c = client(&args.connect).await?;
+        c.restore(pb::RestoreRequest {
+            route: args.route.clone(),
+            requested_by: who,
+            reason: args.reason.clone(),
+        })
+        .await
+        .map_err(|s| anyhow::anyhow!(probity::client::status_text(&s)))
+    })?;
+    match changed.into_inner().change {
+        Some(c) => super::emit(&format!("restored: {}\n", line(&c)))?,
+        None => anyhow::bail!("the server answered without the change"),
+    }
+    Ok(())
+}
+
 /// Runs `probity route-history`.
 pub fn run_history(args: &HistoryArgs) -> anyhow::Result<()> {
     let answer = runtime()?.block_on(async {
@@ -143,13 +204,15 @@ pub fn run_history(args: &HistoryArgs) -> anyhow::Result<()> {
     })?;
     let changes = answer.into_inner().changes;
     if changes.is_empty() && !args.json {
-        super::emit("no promotion recorded\n")?;
+        super::emit("no promotion or restore recorded\n")?;
     }
     for c in &changes {
         if args.json {
             let json = serde_json::json!({
-                "time": super::when::iso(c.time_unix_ms), "time_unix_ms": c.time_unix_ms, "route": c.route,
-                "previous_champion": c.previous_champion, "new_champion": c.new_champion,
+                "time": super::when::iso(c.time_unix_ms), "time_unix_ms": c.time_unix_ms, "kind": c.kind,
+                "route": c.route, "previous_champion": c.previous_champion,
+                "previous_champion_version": c.previous_champion_version, "new_champion": c.new_champion,
+                "new_champion_version": c.new_champion_version,
                 "requested_by": c.requested_by, "peer": c.peer, "reason": c.reason,
             });
             super::emit(&format!("{json}\n"))?;

@@ -2,7 +2,9 @@
 //! route, compared with [`probity_models::compare`] before and with outcomes.
 //!
 //! Pairing: the champion's predictions are those logged with role `champion` by the champion model, the challenger's
-//! those with role `challenger` by the challenger model; a pair is one prediction id present in both (silent
+//! those with role `challenger` by the challenger model. A model is named `NAME` (any version of it) or
+//! `NAME@VERSION` ([`ModelRef`]), so a challenger that is the next version of the champion's own model is compared
+//! by its role and version, and after a promotion between two versions each side keeps its own predictions; a pair is one prediction id present in both (silent
 //! challengers, or a live one with `paired`). Predictions of only one side are counted but not compared. The store
 //! keeps the latest outcome per id, so both sides of a pair carry the same label.
 //!
@@ -24,6 +26,7 @@ use probity_models::metrics::{calibration_table, BinStrategy, CalibrationTable};
 use serde::Serialize;
 use serde_json::{json, Value};
 
+use crate::serve::model_ref::ModelRef;
 use crate::store::{LoggedPrediction, ReportFilter, Store, StoreError};
 
 /// Why a comparison could not be built.
@@ -45,10 +48,12 @@ pub enum CompareReportError {
 pub struct CompareRequest {
     /// Route and time window (the route is required).
     pub filter: ReportFilter,
-    /// The champion model; by default the model of the route's champion-role predictions (the most frequent one).
-    pub champion: Option<String>,
-    /// The challenger model; by default the only challenger-role model on the route.
-    pub challenger: Option<String>,
+    /// The champion model; by default the model of the route's champion-role predictions (the most frequent name;
+    /// pinned to its most frequent version when the challenger is another version of it).
+    pub champion: Option<ModelRef>,
+    /// The challenger model; by default the only challenger-role model on the route (by name, or by version when
+    /// it has the champion's name).
+    pub challenger: Option<ModelRef>,
     /// The decision threshold on the probability, for the share of flipped decisions.
     pub threshold: Option<f64>,
     /// Newey-West lag for the paired tests instead of the independent-cases variance.
@@ -60,9 +65,9 @@ pub struct CompareRequest {
 pub struct CompareReport {
     /// Route.
     pub route: String,
-    /// Champion model name.
+    /// Champion model (`NAME` or `NAME@VERSION`).
     pub champion: String,
-    /// Challenger model name.
+    /// Challenger model (`NAME` or `NAME@VERSION`).
     pub challenger: String,
     /// Predictions by the champion in the window.
     pub champion_predictions: usize,
@@ -178,20 +183,26 @@ pub fn build(
     let by_role = |role: &'static str| all.iter().filter(move |p| p.role == role);
     let champion = match &request.champion {
         Some(m) => m.clone(),
-        None => most_frequent(by_role("champion").map(|p| p.model.as_str())).ok_or_else(|| {
-            CompareReportError::Models(format!(
-                "route {route}: no champion prediction in the store"
-            ))
-        })?,
+        None => most_frequent(by_role("champion").map(|p| p.model.as_str()))
+            .map(ModelRef::bare)
+            .ok_or_else(|| {
+                CompareReportError::Models(format!(
+                    "route {route}: no champion prediction in the store"
+                ))
+            })?,
+    };
+    let distinct = |role: &'static str, f: &dyn Fn(&LoggedPrediction) -> Option<String>| {
+        let mut v: Vec<String> = by_role(role).filter_map(f).collect();
+        v.sort_unstable();
+        v.dedup();
+        v
     };
     let challenger = match &request.challenger {
         Some(m) => m.clone(),
         None => {
-            let mut models: Vec<&str> = by_role("challenger").map(|p| p.model.as_str()).collect();
-            models.sort_unstable();
-            models.dedup();
-            match models.as_slice() {
-                [one] => one.to_string(),
+            let names = distinct("challenger", &|p| Some(p.model.clone()));
+            let one = match names.as_slice() {
+                [one] => one.clone(),
                 [] => {
                     return Err(CompareReportError::Models(format!(
                         "route {route}: no challenger prediction in the store"
@@ -203,23 +214,63 @@ pub fn build(
                         many.join(", ")
                     )))
                 }
+            };
+            if one != champion.name {
+                ModelRef::bare(one)
+            } else {
+                // Another version of the champion's model: told apart by version.
+                let champion_versions = match &champion.version {
+                    Some(v) => vec![v.clone()],
+                    None => Vec::new(),
+                };
+                let versions = distinct("challenger", &|p| {
+                    (p.model == one && !champion_versions.contains(&p.version))
+                        .then(|| p.version.clone())
+                });
+                match versions.as_slice() {
+                    [v] => ModelRef::pinned(one, v.clone()),
+                    _ => {
+                        return Err(CompareReportError::Models(format!(
+                            "route {route}: the challengers are versions of the champion's model `{one}` ({}); \
+                             name one as {one}@VERSION",
+                            versions.join(", ")
+                        )))
+                    }
+                }
             }
         }
     };
+    // A challenger of the champion's own name pins the champion to a version too (its most frequent one), so the
+    // two sides never share predictions.
+    let champion = if champion.version.is_none() && challenger.name == champion.name {
+        let versions = by_role("champion")
+            .filter(|p| p.model == champion.name && !challenger.matches(&p.model, &p.version));
+        match most_frequent(versions.map(|p| p.version.as_str())) {
+            Some(v) => ModelRef::pinned(champion.name.clone(), v),
+            None => champion,
+        }
+    } else {
+        champion
+    };
+    if champion == challenger || (champion.name == challenger.name && !challenger.is_pinned()) {
+        return Err(CompareReportError::Models(format!(
+            "route {route}: champion `{champion}` and challenger `{challenger}` are not told apart; name the \
+             challenger as {}@VERSION",
+            challenger.name
+        )));
+    }
     let champs: Vec<&LoggedPrediction> = by_role("champion")
-        .filter(|p| p.model == champion)
+        .filter(|p| champion.matches(&p.model, &p.version))
         .collect();
     let challs: Vec<&LoggedPrediction> = by_role("challenger")
-        .filter(|p| p.model == challenger)
+        .filter(|p| challenger.matches(&p.model, &p.version))
         .collect();
     for (role, model, missing) in [
         ("champion", &champion, champs.is_empty()),
         ("challenger", &challenger, challs.is_empty()),
     ] {
         if missing {
-            let mut known: Vec<&str> = by_role(role).map(|p| p.model.as_str()).collect();
-            known.sort_unstable();
-            known.dedup();
+            let known = distinct(role, &|p| Some(format!("{}@{}", p.model, p.version)));
             return Err(CompareReportError::Models(format!(
                 "route {route}: no {role} prediction by `{model}` in the store ({role}s logged: {})",
                 if known.is_empty() {
@@ -293,8 +344,8 @@ pub fn build(
     };
     Ok(CompareReport {
         route,
-        champion,
-        challenger,
+        champion: champion.to_string(),
+        challenger: challenger.to_string(),
         champion_predictions: champs.len(),
         challenger_predictions: challs.len(),
         paired: pairs.len(),

@@ -104,11 +104,12 @@ pub fn bounds(
 }
 
 /// One pass: sets the effective target of every opted-in route whose champion's window is full enough. `latest`
-/// maps (route, model) to (estimate, predictions in the window). Returns the routes changed, with their new target.
+/// maps (route, model, version) to (estimate, predictions in the window); a champion named without a version reads
+/// the version `""` (the model's latest estimate, [`crate::store::running::LatestEstimates`]). Returns the routes changed, with their new target.
 pub fn apply_once(
     table: &RouteTable,
     opted_in: &BTreeMap<String, EstimateBounds>,
-    latest: &BTreeMap<(String, String), (f64, usize)>,
+    latest: &BTreeMap<(String, String, String), (f64, usize)>,
 ) -> Vec<(String, f64)> {
     let mut changed = Vec::new();
     let routes = table.load();
@@ -116,7 +117,11 @@ pub fn apply_once(
         let Some(route) = routes.get(name) else {
             continue;
         };
-        let Some(&(estimate, count)) = latest.get(&(name.clone(), route.model.clone())) else {
+        let Some(&(estimate, count)) = latest.get(&(
+            name.clone(),
+            route.model.name.clone(),
+            route.model.version.clone().unwrap_or_default(),
+        )) else {
             continue;
         };
         let Some(target) = b.effective(estimate, count) else {

@@ -12,10 +12,16 @@
 //! calls are answered by the champion as a whole (one model version per batch, as the contract promises); their
 //! rows are still scored by the silent challengers.
 //!
+//! A challenger is named like the champion, `NAME` or `NAME@VERSION` ([`crate::serve::model_ref`]); the next
+//! version of the champion's own model is a challenger written `NAME@NEXT` beside a champion `NAME@CURRENT`.
+//! Models are told apart by name and version everywhere below, never by name alone.
+//!
 //! The words of earlier releases (`mirror`, `split`, `fraction`, `mirror_back`) are refused with the new word named.
 
 use probity_models::compare::{Assignment, SharePlan};
 use serde::Deserialize;
+
+use crate::serve::model_ref::ModelRef;
 
 /// A challenger as written in the configuration file.
 #[derive(Debug, Default, Deserialize)]
@@ -48,8 +54,8 @@ pub enum ChallengerMode {
 /// One validated challenger.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Challenger {
-    /// The model name.
-    pub model: String,
+    /// The model (`NAME` or `NAME@VERSION`).
+    pub model: ModelRef,
     /// Its mode.
     pub mode: ChallengerMode,
 }
@@ -73,15 +79,15 @@ impl Challenger {
 pub struct Challengers {
     /// All challengers in configuration order.
     pub list: Vec<Challenger>,
-    /// The live challengers' shares, in configuration order (the plan's names are model names).
+    /// The live challengers' shares, in configuration order (the plan's names are the models as written).
     pub plan: SharePlan,
 }
 
 /// The model that answers and the role it answers in.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct Answer {
-    /// Model name.
-    pub model: String,
+    /// The model.
+    pub model: ModelRef,
     /// `champion` or `challenger`.
     pub role: &'static str,
 }
@@ -93,26 +99,39 @@ impl Challengers {
     }
 
     /// Which model answers `subject_key` on `route` (the champion when the key is empty).
-    pub fn answer(&self, route: &str, champion: &str, subject_key: &str) -> Answer {
+    pub fn answer(&self, route: &str, champion: &ModelRef, subject_key: &str) -> Answer {
         let assignment = if subject_key.is_empty() {
             Assignment::Champion
         } else {
             self.plan.assign(route, subject_key)
         };
+        let live = |k: usize| {
+            let name = self.plan.names().get(k)?;
+            self.list
+                .iter()
+                .find(|c| c.model.to_string() == *name)
+                .map(|c| c.model.clone())
+        };
         match assignment {
-            Assignment::Challenger(k) => Answer {
-                model: self.plan.names()[k].clone(),
-                role: "challenger",
+            Assignment::Challenger(k) => match live(k) {
+                Some(model) => Answer {
+                    model,
+                    role: "challenger",
+                },
+                None => Answer {
+                    model: champion.clone(),
+                    role: "champion",
+                },
             },
             Assignment::Champion => Answer {
-                model: champion.to_string(),
+                model: champion.clone(),
                 role: "champion",
             },
         }
     }
 
     /// The models that score a request silently when `answered` answered it, with their roles.
-    pub fn silent(&self, champion: &str, answered: &str) -> Vec<Answer> {
+    pub fn silent(&self, champion: &ModelRef, answered: &ModelRef) -> Vec<Answer> {
         let mut out = Vec::new();
         for c in &self.list {
             match c.mode {
@@ -126,9 +145,9 @@ impl Challengers {
                             model: c.model.clone(),
                             role: "challenger",
                         });
-                    } else if answered == c.model {
+                    } else if *answered == c.model {
                         out.push(Answer {
-                            model: champion.to_string(),
+                            model: champion.clone(),
                             role: "champion",
                         });
                     }
@@ -143,9 +162,8 @@ impl Challengers {
 /// Validates a route's challengers; errors are `(dotted key, message)`.
 pub fn challengers(
     route: &str,
-    champion: &str,
+    champion: &ModelRef,
     raw: Vec<RawChallenger>,
-    valid_name: impl Fn(&str) -> bool,
 ) -> Result<Challengers, (String, String)> {
     let mut list = Vec::new();
     for (i, c) in raw.into_iter().enumerate() {
@@ -168,13 +186,8 @@ pub fn challengers(
             ));
         }
         let model = model.ok_or_else(|| (key("model"), "is required".to_string()))?;
-        if !valid_name(&model) {
-            return Err((
-                key("model"),
-                format!("not a model name (1 to 128 of A-Za-z0-9._-), got `{model}`"),
-            ));
-        }
-        if model == champion || list.iter().any(|c: &Challenger| c.model == model) {
+        let model = ModelRef::parse(&model).map_err(|e| (key("model"), e.to_string()))?;
+        if model == *champion || list.iter().any(|c: &Challenger| c.model == model) {
             return Err((
                 key("model"),
                 format!("`{model}` already serves this route as champion or challenger"),
@@ -223,7 +236,7 @@ pub fn challengers(
         list.push(Challenger { model, mode });
     }
     let plan = SharePlan::new(list.iter().filter_map(|c| match c.mode {
-        ChallengerMode::Live { share, .. } => Some((c.model.clone(), share)),
+        ChallengerMode::Live { share, .. } => Some((c.model.to_string(), share)),
         ChallengerMode::Silent => None,
     }))
     .map_err(|e| (format!("routes.{route}.challengers"), e.to_string()))?;
@@ -244,27 +257,26 @@ mod tests {
         }
     }
 
-    fn ok(_: &str) -> bool {
-        true
+    fn r(text: &str) -> ModelRef {
+        ModelRef::parse(text).unwrap()
     }
 
     #[test]
     fn validation_names_the_key() {
-        let e = challengers("fraud", "a", vec![raw("a", "silent", None, None)], ok).unwrap_err();
+        let e = challengers("fraud", &r("a"), vec![raw("a", "silent", None, None)]).unwrap_err();
         assert_eq!(e.0, "routes.fraud.challengers[0].model");
-        let e = challengers("fraud", "a", vec![raw("b", "live", None, None)], ok).unwrap_err();
+        let e = challengers("fraud", &r("a"), vec![raw("b", "live", None, None)]).unwrap_err();
         assert_eq!(e.0, "routes.fraud.challengers[0].share");
         let e =
-            challengers("fraud", "a", vec![raw("b", "silent", Some(0.1), None)], ok).unwrap_err();
+            challengers("fraud", &r("a"), vec![raw("b", "silent", Some(0.1), None)]).unwrap_err();
         assert_eq!(e.0, "routes.fraud.challengers[0].mode");
         let e = challengers(
             "fraud",
-            "a",
+            &r("a"),
             vec![
                 raw("b", "live", Some(0.7), None),
                 raw("c", "live", Some(0.4), None),
             ],
-            ok,
         )
         .unwrap_err();
         assert_eq!(e.0, "routes.fraud.challengers");
@@ -275,32 +287,73 @@ mod tests {
     fn answers_and_silent_scorers() {
         let c = challengers(
             "fraud",
-            "a",
+            &r("a"),
             vec![
                 raw("m", "silent", None, None),
                 raw("s", "live", Some(1.0), Some(true)),
             ],
-            ok,
         )
         .unwrap();
         // Share 1: every keyed subject goes to the live challenger; no key means the champion.
-        assert_eq!(c.answer("fraud", "a", "cust-1").model, "s");
-        assert_eq!(c.answer("fraud", "a", "").role, "champion");
-        let models = |v: Vec<Answer>| v.into_iter().map(|a| (a.model, a.role)).collect::<Vec<_>>();
+        assert_eq!(c.answer("fraud", &r("a"), "cust-1").model, "s");
+        assert_eq!(c.answer("fraud", &r("a"), "").role, "champion");
+        let models = |v: Vec<Answer>| {
+            v.into_iter()
+                .map(|a| (a.model.to_string(), a.role))
+                .collect::<Vec<_>>()
+        };
         assert_eq!(
-            models(c.silent("a", "s")),
+            models(c.silent(&r("a"), &r("s"))),
             vec![("m".into(), "challenger"), ("a".into(), "champion")]
         );
         assert_eq!(
-            models(c.silent("a", "a")),
+            models(c.silent(&r("a"), &r("a"))),
             vec![("m".into(), "challenger"), ("s".into(), "challenger")]
         );
     }
 
     #[test]
+    fn the_next_version_of_the_champion_is_a_challenger_told_apart_by_version() {
+        let c = challengers(
+            "fraud",
+            &r("gbm@1"),
+            vec![raw("gbm@2", "live", Some(1.0), Some(true))],
+        )
+        .unwrap();
+        let answer = c.answer("fraud", &r("gbm@1"), "cust-1");
+        assert_eq!(
+            (answer.model.to_string(), answer.role),
+            ("gbm@2".into(), "challenger")
+        );
+        let models = |v: Vec<Answer>| {
+            v.into_iter()
+                .map(|a| (a.model.to_string(), a.role))
+                .collect::<Vec<_>>()
+        };
+        assert_eq!(
+            models(c.silent(&r("gbm@1"), &r("gbm@2"))),
+            vec![("gbm@1".into(), "champion")]
+        );
+        assert_eq!(
+            models(c.silent(&r("gbm@1"), &r("gbm@1"))),
+            vec![("gbm@2".into(), "challenger")]
+        );
+        let e = challengers(
+            "fraud",
+            &r("gbm@1"),
+            vec![raw("gbm@1", "silent", None, None)],
+        )
+        .unwrap_err();
+        assert!(e.1.contains("already serves"), "{}", e.1);
+        let e =
+            challengers("fraud", &r("gbm"), vec![raw("gbm@", "silent", None, None)]).unwrap_err();
+        assert_eq!(e.0, "routes.fraud.challengers[0].model");
+    }
+
+    #[test]
     fn the_words_of_earlier_releases_are_refused_with_the_new_ones() {
         for (old, key, new) in [("mirror", "mode", "silent"), ("split", "mode", "live")] {
-            let e = challengers("fraud", "a", vec![raw("b", old, None, None)], ok).unwrap_err();
+            let e = challengers("fraud", &r("a"), vec![raw("b", old, None, None)]).unwrap_err();
             assert_eq!(e.0, format!("routes.fraud.challengers[0].{key}"));
             assert!(e.1.contains(&format!("write `{new}`")), "{}", e.1);
         }
@@ -308,7 +361,7 @@ mod tests {
             fraction: Some(toml::Value::Float(0.1)),
             ..raw("b", "live", Some(0.1), None)
         };
-        let e = challengers("fraud", "a", vec![old], ok).unwrap_err();
+        let e = challengers("fraud", &r("a"), vec![old]).unwrap_err();
         assert_eq!(
             e,
             (
@@ -320,7 +373,7 @@ mod tests {
             mirror_back: Some(toml::Value::Boolean(true)),
             ..raw("b", "live", Some(0.1), None)
         };
-        let e = challengers("fraud", "a", vec![old], ok).unwrap_err();
+        let e = challengers("fraud", &r("a"), vec![old]).unwrap_err();
         assert_eq!(e.0, "routes.fraud.challengers[0].mirror_back");
         assert!(e.1.contains("`paired`"), "{}", e.1);
     }

@@ -1,5 +1,5 @@
-//! The `probity.v1.Challengers` service: Compare (from the prediction store), Promote (the `admin` role) and
-//! RouteHistory. Handlers validate, call [`crate::compare`] or [`crate::serve::promotion`], and convert back.
+//! The `probity.v1.Challengers` service: Compare (from the prediction store), Promote and Restore (the `admin`
+//! role) and RouteHistory. Handlers validate, call [`crate::compare`] or [`crate::serve::promotion`], and convert back.
 
 use std::sync::Arc;
 use std::time::Instant;
@@ -10,6 +10,7 @@ use crate::compare::{self, CompareRequest};
 use crate::serve::error::ServeError;
 use crate::serve::grpc::finish;
 use crate::serve::limits;
+use crate::serve::model_ref::ModelRef;
 use crate::serve::promotion::RouteChange;
 use crate::serve::proto as pb;
 use crate::serve::scoring::Scorer;
@@ -39,22 +40,76 @@ impl ChallengersApi {
             requested_by,
             reason,
         } = request;
-        limits::names(&[("route", &route), ("challenger", &challenger)])?;
-        limits::text("requested_by", &requested_by, limits::REQUESTED_BY)?;
-        limits::text("reason", &reason, limits::REASON)?;
-        if requested_by.trim().is_empty() {
-            return Err(ServeError::invalid(
-                "requested_by",
-                "is required: who asks for the promotion",
-            ));
-        }
-        let c =
-            self.scorer
-                .route_table()
-                .promote(&route, &challenger, &requested_by, peer, &reason)?;
+        limits::names(&[("route", &route)])?;
+        limits::text("challenger", &challenger, limits::MODEL_REF)?;
+        who_and_why(&requested_by, &reason, "promotion")?;
+        let snapshot = self.scorer.registry().snapshot();
+        let c = self.scorer.route_table().promote(
+            &route,
+            &challenger,
+            &requested_by,
+            peer,
+            &reason,
+            |m| version_of(&snapshot, m),
+        )?;
         Ok(pb::PromoteResponse {
             change: Some(change(c)),
         })
+    }
+
+    fn restore_as(
+        &self,
+        request: pb::RestoreRequest,
+        peer: &str,
+    ) -> Result<pb::RestoreResponse, ServeError> {
+        let pb::RestoreRequest {
+            route,
+            requested_by,
+            reason,
+        } = request;
+        limits::names(&[("route", &route)])?;
+        who_and_why(&requested_by, &reason, "restore")?;
+        let snapshot = self.scorer.registry().snapshot();
+        let c = self.scorer.route_table().restore(
+            &route,
+            &requested_by,
+            peer,
+            &reason,
+            |m| version_of(&snapshot, m),
+            || snapshot.loaded_list(),
+        )?;
+        Ok(pb::RestoreResponse {
+            change: Some(change(c)),
+        })
+    }
+}
+
+/// The version serving for `model` in `snapshot`.
+fn version_of(snapshot: &crate::serve::registry::Snapshot, model: &ModelRef) -> Option<String> {
+    snapshot.find(model).map(|m| m.model.version().to_string())
+}
+
+/// The limits of `requested_by` and `reason`, and `requested_by` required.
+fn who_and_why(requested_by: &str, reason: &str, what: &str) -> Result<(), ServeError> {
+    limits::text("requested_by", requested_by, limits::REQUESTED_BY)?;
+    limits::text("reason", reason, limits::REASON)?;
+    if requested_by.trim().is_empty() {
+        return Err(ServeError::invalid(
+            "requested_by",
+            format!("is required: who asks for the {what}"),
+        ));
+    }
+    Ok(())
+}
+
+/// The peer as recorded: its address and, when access control is on, the caller it authenticated as.
+fn peer_of<T>(request: &Request<T>) -> String {
+    let address = crate::serve::security::tls::remote_addr(request)
+        .map(|a| a.to_string())
+        .unwrap_or_default();
+    match request.extensions().get::<Arc<Caller>>() {
+        Some(caller) => format!("{address} as {}", caller.name),
+        None => address,
     }
 }
 
@@ -69,7 +124,16 @@ fn compare_on(
         from_unix_ms,
         to_unix_ms,
     } = request;
-    limits::names(&[("route", &route), ("challenger", &challenger)])?;
+    limits::names(&[("route", &route)])?;
+    limits::text("challenger", &challenger, limits::MODEL_REF)?;
+    let challenger = if challenger.is_empty() {
+        None
+    } else {
+        Some(
+            ModelRef::parse(&challenger)
+                .map_err(|e| ServeError::invalid("challenger", e.to_string()))?,
+        )
+    };
     let (config, _) = scorer.resolve(&route)?;
     let log = scorer.store().ok_or(ServeError::StoreOff)?;
     // The flip share uses the route's threshold.
@@ -84,7 +148,7 @@ fn compare_on(
         },
         // The current champion: after a promotion the comparison follows the new arrangement.
         champion: Some(config.model.clone()),
-        challenger: (!challenger.is_empty()).then_some(challenger),
+        challenger,
         threshold,
         newey_west_lag: None,
     };
@@ -125,9 +189,12 @@ impl From<compare::CompareReportError> for ServeError {
 fn change(c: RouteChange) -> pb::RouteChange {
     let RouteChange {
         time_ms,
+        kind,
         route,
         previous_champion,
+        previous_version,
         new_champion,
+        new_version,
         requested_by,
         peer,
         reason,
@@ -140,6 +207,9 @@ fn change(c: RouteChange) -> pb::RouteChange {
         peer,
         time_unix_ms: time_ms,
         reason,
+        kind,
+        previous_champion_version: previous_version,
+        new_champion_version: new_version,
     }
 }
 
@@ -169,16 +239,20 @@ impl pb::challengers_server::Challengers for ChallengersApi {
     ) -> Result<Response<pb::PromoteResponse>, Status> {
         let started = Instant::now();
         let route = self.scorer.route_label(&request.get_ref().route);
-        // The peer as recorded: its address and, when access control is on, the caller it authenticated as.
-        let address = crate::serve::security::tls::remote_addr(&request)
-            .map(|a| a.to_string())
-            .unwrap_or_default();
-        let peer = match request.extensions().get::<Arc<Caller>>() {
-            Some(caller) => format!("{address} as {}", caller.name),
-            None => address,
-        };
+        let peer = peer_of(&request);
         let result = self.promote_as(request.into_inner(), &peer);
         finish("Promote", &route, started, result)
+    }
+
+    async fn restore(
+        &self,
+        request: Request<pb::RestoreRequest>,
+    ) -> Result<Response<pb::RestoreResponse>, Status> {
+        let started = Instant::now();
+        let route = self.scorer.route_label(&request.get_ref().route);
+        let peer = peer_of(&request);
+        let result = self.restore_as(request.into_inner(), &peer);
+        finish("Restore", &route, started, result)
     }
 
     async fn route_history(

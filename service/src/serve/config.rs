@@ -289,8 +289,8 @@ pub enum LogFormat {
 pub struct Route {
     /// The route's name.
     pub name: String,
-    /// The model name it serves.
-    pub model: String,
+    /// The model it serves (its champion): a name, or `NAME@VERSION` to pin a version.
+    pub model: crate::serve::model_ref::ModelRef,
     /// Target base rate and decision rule.
     pub output: OutputSpec,
     /// What to do when a model feature has no value (or a non-finite one).
@@ -495,6 +495,7 @@ impl Config {
                 Ok((name.clone(), route(&name, raw)?))
             })
             .collect::<Result<BTreeMap<_, _>, ConfigError>>()?;
+        pinned_everywhere_or_nowhere(&routes)?;
         let names = routes.keys().cloned().collect();
         let store = crate::store::StoreConfig::from_raw(store, &names)
             .map_err(|(key, message)| invalid(key, message))?;
@@ -820,15 +821,11 @@ fn route(name: &str, raw: RawRoute) -> Result<Route, ConfigError> {
     let model = model.ok_or_else(|| {
         invalid(
             key("model"),
-            "is required (the model name this route serves)",
+            "is required (the model this route serves: NAME, or NAME@VERSION to pin a version)",
         )
     })?;
-    if !valid_name(&model) {
-        return Err(invalid(
-            key("model"),
-            format!("not a model name (1 to 128 of A-Za-z0-9._-), got `{model}`"),
-        ));
-    }
+    let model = crate::serve::model_ref::ModelRef::parse(&model)
+        .map_err(|e| invalid(key("model"), e.to_string()))?;
     if let Some(rate) = target_base_rate {
         if !(rate > 0.0 && rate < 1.0) {
             return Err(invalid(
@@ -870,7 +867,7 @@ fn route(name: &str, raw: RawRoute) -> Result<Route, ConfigError> {
             ))
         }
     };
-    let challengers = crate::serve::challenger::challengers(name, &model, challengers, valid_name)
+    let challengers = crate::serve::challenger::challengers(name, &model, challengers)
         .map_err(|(key, message)| invalid(key, message))?;
     Ok(Route {
         name: name.to_string(),
@@ -886,6 +883,54 @@ fn route(name: &str, raw: RawRoute) -> Result<Route, ConfigError> {
         reasons,
         record,
     })
+}
+
+/// A model name is pinned (`NAME@VERSION`) in every reference of the configuration or in none: a bare name means
+/// "the one version loaded" (the registry then loads one version of it at a time), which cannot hold beside a pinned
+/// reference that expects several. The first reference that breaks the rule is named with the one it contradicts.
+fn pinned_everywhere_or_nowhere(routes: &BTreeMap<String, Route>) -> Result<(), ConfigError> {
+    let mut first: BTreeMap<&str, (String, bool)> = BTreeMap::new();
+    for (name, route) in routes {
+        let refs = std::iter::once((format!("routes.{name}.model"), &route.model)).chain(
+            route
+                .challengers
+                .list
+                .iter()
+                .enumerate()
+                .map(|(i, c)| (format!("routes.{name}.challengers[{i}].model"), &c.model)),
+        );
+        for (key, model) in refs {
+            match first.get(model.name.as_str()) {
+                Some((other, pinned)) if *pinned != model.is_pinned() => {
+                    return Err(invalid(
+                        key,
+                        format!(
+                            "`{model}` and {other} name model `{}` one with a version and one without; pin the \
+                             version (`{}@VERSION`) in every reference to it, or in none",
+                            model.name, model.name
+                        ),
+                    ))
+                }
+                Some(_) => {}
+                None => {
+                    first.insert(&model.name, (key, model.is_pinned()));
+                }
+            }
+        }
+    }
+    Ok(())
+}
+
+/// The model names the routes name without a version: the registry serves one version of each at a time.
+pub fn single_version_names(
+    routes: &BTreeMap<String, Route>,
+) -> std::collections::BTreeSet<String> {
+    routes
+        .values()
+        .flat_map(|r| std::iter::once(&r.model).chain(r.challengers.list.iter().map(|c| &c.model)))
+        .filter(|m| !m.is_pinned())
+        .map(|m| m.name.clone())
+        .collect()
 }
 
 /// Exactly one form: `threshold`, the cost pair `false_positive` + `false_negative`, or bands `edges` + `labels`.

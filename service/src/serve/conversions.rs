@@ -504,7 +504,7 @@ pub fn route_info(route: &Route, serving: Option<&LoadedModel>) -> pb::RouteInfo
     };
     pb::RouteInfo {
         name: name.clone(),
-        model: model.clone(),
+        model: model.name.clone(),
         model_version: serving
             .map(|m| m.model.version().to_string())
             .unwrap_or_default(),

@@ -274,7 +274,7 @@ impl pb::models_server::Models for ModelsApi {
             .scorer
             .routes()
             .values()
-            .map(|r| route_info(r, snapshot.models.get(&r.model).map(|m| m.as_ref())))
+            .map(|r| route_info(r, snapshot.find(&r.model).map(|m| m.as_ref())))
             .collect();
         let models = snapshot.models.values().map(|m| model_info(m)).collect();
         let problems = snapshot
@@ -302,18 +302,33 @@ impl pb::models_server::Models for ModelsApi {
         let result = ModelTarget::try_from(request.into_inner()).and_then(|target| {
             match &target {
                 ModelTarget::Route(route) => limits::names(&[("route", route)])?,
-                ModelTarget::Model(model) => limits::names(&[("model", model)])?,
+                ModelTarget::Model(model) => limits::text("model", model, limits::MODEL_REF)?,
             }
             let loaded = match target {
                 ModelTarget::Route(route) => self.scorer.resolve(&route)?.1,
-                ModelTarget::Model(model) => self
-                    .scorer
-                    .registry()
-                    .snapshot()
-                    .models
-                    .get(&model)
-                    .cloned()
-                    .ok_or(ServeError::ModelNotFound { model })?,
+                ModelTarget::Model(model) => {
+                    let named = crate::serve::model_ref::ModelRef::parse(&model)
+                        .map_err(|e| ServeError::invalid("model", e.to_string()))?;
+                    let snapshot = self.scorer.registry().snapshot();
+                    match snapshot.find(&named) {
+                        Some(loaded) => Arc::clone(loaded),
+                        None if !named.is_pinned() && snapshot.versions_of(&named.name).nth(1).is_some() => {
+                            let versions = snapshot
+                                .versions_of(&named.name)
+                                .map(|m| m.model.version())
+                                .collect::<Vec<_>>()
+                                .join(", ");
+                            return Err(ServeError::invalid(
+                                "model",
+                                format!(
+                                    "`{}` is loaded in several versions ({versions}); name one as {}@VERSION",
+                                    named.name, named.name
+                                ),
+                            ));
+                        }
+                        None => return Err(ServeError::ModelNotFound { model }),
+                    }
+                }
             };
             let features = feature_infos(loaded.model.schema());
             Ok(pb::ModelFactsResponse {

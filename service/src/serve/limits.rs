@@ -7,9 +7,11 @@ use crate::serve::error::ServeError;
 /// Route, model, challenger and version names in requests (model names are at most 128 characters by the model
 /// format, route names by the configuration).
 pub const NAME: usize = 128;
-/// `PromoteRequest.requested_by`.
+/// A model named in a request, `NAME` or `NAME@VERSION` (`Compare`, `Promote`, `ModelFacts`): two names and the `@`.
+pub const MODEL_REF: usize = 2 * NAME + 1;
+/// `PromoteRequest.requested_by`, `RestoreRequest.requested_by`.
 pub const REQUESTED_BY: usize = 256;
-/// `PromoteRequest.reason`.
+/// `PromoteRequest.reason`, `RestoreRequest.reason`.
 pub const REASON: usize = 1024;
 /// Most characters of a caller's value repeated in a message.
 pub const QUOTE: usize = 120;

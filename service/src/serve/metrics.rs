@@ -328,8 +328,8 @@ pub fn model_load_failed(file: &str) {
 
 /// Updates the serving-model gauges after a snapshot swap.
 pub fn models_published(
-    old: &BTreeMap<String, Arc<LoadedModel>>,
-    new: &BTreeMap<String, Arc<LoadedModel>>,
+    old: &BTreeMap<crate::serve::registry::ModelKey, Arc<LoadedModel>>,
+    new: &BTreeMap<crate::serve::registry::ModelKey, Arc<LoadedModel>>,
 ) {
     let info = |m: &LoadedModel, v: f64| {
         metrics::gauge!(MODEL_INFO, "model" => m.model.name().to_string(),

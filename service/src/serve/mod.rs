@@ -24,6 +24,7 @@ pub mod explain;
 pub mod grpc;
 pub mod limits;
 pub mod metrics;
+pub mod model_ref;
 pub mod outcomes;
 pub mod promotion;
 pub mod proto;

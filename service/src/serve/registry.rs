@@ -6,11 +6,15 @@
 //! path, builds the next snapshot beside the current one and swaps it in with one atomic store. A file that fails
 //! to load never replaces a model that is serving: the previous version from that file stays in the snapshot.
 //!
-//! Files are told apart by name; a change is seen through a fingerprint of the bytes. Two files that declare the
-//! same model name are a conflict: the file already serving that name keeps it (else the first by file name), and
-//! the other is reported as a problem until one of them goes away.
+//! Files are told apart by name; a change is seen through a fingerprint of the bytes. Models are keyed by name and
+//! version, so two files of one model name with different versions serve side by side (routes and challengers pin
+//! one with `NAME@VERSION`, [`crate::serve::model_ref`]). Two files that declare the same name and version are a
+//! conflict: the file already serving it keeps it (else the first by file name), and the other is reported as a
+//! problem naming both files until one of them goes away. A name that a route names without a version
+//! ([`Registry::with_single_version`]) is served in one version at a time: a second version of it is the same
+//! conflict, so a file dropped into the directory never changes what a bare name means.
 
-use std::collections::{BTreeMap, HashMap};
+use std::collections::{BTreeMap, BTreeSet};
 use std::hash::{Hash, Hasher};
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
@@ -21,6 +25,7 @@ use probity_models::Model;
 
 use crate::serve::error::ServeError;
 use crate::serve::metrics;
+use crate::serve::model_ref::ModelRef;
 
 /// Largest model file read, as `docs/model-format.md` allows (256 MiB).
 const MAX_FILE_BYTES: u64 = 256 * 1024 * 1024;
@@ -47,13 +52,61 @@ pub struct FileProblem {
     pub error: String,
 }
 
+/// A loaded model's key: (name, version).
+pub type ModelKey = (String, String);
+
 /// What is served at one moment.
 #[derive(Debug, Default)]
 pub struct Snapshot {
-    /// Models by model name.
-    pub models: BTreeMap<String, Arc<LoadedModel>>,
-    /// Files that did not load or lost a name conflict, by file name.
+    /// Models by (name, version).
+    pub models: BTreeMap<ModelKey, Arc<LoadedModel>>,
+    /// Files that did not load or lost a conflict, by file name.
     pub problems: Vec<FileProblem>,
+}
+
+impl Snapshot {
+    /// The versions of `name` that are loaded, lowest key first.
+    pub fn versions_of(&self, name: &str) -> impl Iterator<Item = &Arc<LoadedModel>> + '_ {
+        let name = name.to_string();
+        self.models
+            .range((name.clone(), String::new())..)
+            .take_while(move |((n, _), _)| *n == name)
+            .map(|(_, m)| m)
+    }
+
+    /// The model `model` names: the pinned version, or for a bare name the one version loaded (none when several
+    /// are, which the registry prevents for the names routes use bare).
+    pub fn find(&self, model: &ModelRef) -> Option<&Arc<LoadedModel>> {
+        match &model.version {
+            Some(v) => self.models.get(&(model.name.clone(), v.clone())),
+            None => {
+                let mut versions = self.versions_of(&model.name);
+                match (versions.next(), versions.next()) {
+                    (Some(one), None) => Some(one),
+                    _ => None,
+                }
+            }
+        }
+    }
+
+    /// Every loaded model, comma-separated, or `none`: `NAME` for a name loaded in one version, `NAME@VERSION` for
+    /// each version of a name loaded in several.
+    pub fn loaded_list(&self) -> String {
+        if self.models.is_empty() {
+            return "none".into();
+        }
+        self.models
+            .keys()
+            .map(|(n, v)| {
+                if self.versions_of(n).nth(1).is_some() {
+                    format!("{n}@{v}")
+                } else {
+                    n.clone()
+                }
+            })
+            .collect::<Vec<_>>()
+            .join(", ")
+    }
 }
 
 /// What a reload did with one file.
@@ -97,6 +150,7 @@ pub struct Registry {
     dir: PathBuf,
     current: ArcSwap<Snapshot>,
     files: tokio::sync::Mutex<BTreeMap<String, FileState>>,
+    single_version: BTreeSet<String>,
 }
 
 impl Registry {
@@ -106,7 +160,15 @@ impl Registry {
             dir,
             current: ArcSwap::from_pointee(Snapshot::default()),
             files: Default::default(),
+            single_version: BTreeSet::new(),
         }
+    }
+
+    /// The same registry, serving one version at a time of each of `names` (the model names routes name without a
+    /// version): a second version of one of them is a conflict like a second file of the same version.
+    pub fn with_single_version(mut self, names: impl IntoIterator<Item = String>) -> Registry {
+        self.single_version = names.into_iter().collect();
+        self
     }
 
     /// The model directory.
@@ -192,7 +254,7 @@ impl Registry {
             });
         }
         let old = self.snapshot();
-        let snapshot = build_snapshot(&old, &next, &mut report);
+        let snapshot = build_snapshot(&old, &next, &mut report, &self.single_version);
         metrics::models_published(&old.models, &snapshot.models);
         self.current.store(Arc::new(snapshot));
         (next, report, Ok(()))
@@ -272,33 +334,58 @@ impl Registry {
     }
 }
 
-/// The next snapshot from the file states: name conflicts resolved in favour of the serving file, failed files
-/// keeping the version they served.
+/// The next snapshot from the file states: conflicts (same name and version, or two versions of a name served one
+/// at a time) resolved in favour of the serving file, failed files keeping the version they served.
 fn build_snapshot(
     old: &Snapshot,
     files: &BTreeMap<String, FileState>,
     report: &mut [FileReport],
+    single_version: &BTreeSet<String>,
 ) -> Snapshot {
-    let serving_file = |model: &str| old.models.get(model).map(|m| m.file.as_str());
-    let mut claims: HashMap<&str, Vec<&Arc<LoadedModel>>> = HashMap::new();
+    // What a file claims: its name and version, or its name alone when one version of it is served at a time.
+    let claim_of = |m: &LoadedModel| -> (String, Option<String>) {
+        let name = m.model.name().to_string();
+        if single_version.contains(&name) {
+            (name, None)
+        } else {
+            (name, Some(m.model.version().to_string()))
+        }
+    };
+    let mut claims: BTreeMap<(String, Option<String>), Vec<&Arc<LoadedModel>>> = BTreeMap::new();
     for state in files.values() {
         if let FileState::Loaded(m) = state {
-            claims.entry(m.model.name()).or_default().push(m);
+            claims.entry(claim_of(m)).or_default().push(m);
         }
     }
     let mut models = BTreeMap::new();
     let mut problems = Vec::new();
-    for (name, candidates) in claims {
+    for ((name, version), candidates) in &claims {
+        // The file that served this claim before keeps it, else the first by file name.
         let winner = candidates
             .iter()
-            .position(|m| Some(m.file.as_str()) == serving_file(name))
+            .position(|m| {
+                old.models
+                    .values()
+                    .any(|o| o.file == m.file && claim_of(o) == (name.clone(), version.clone()))
+            })
             .unwrap_or(0);
+        let kept = candidates[winner];
         for (i, m) in candidates.iter().enumerate() {
             if i != winner {
-                let error = format!(
-                    "model `{name}` is also in file `{}`, which serves it; remove one of the two files",
-                    candidates[winner].file
-                );
+                let error = match version {
+                    Some(version) => format!(
+                        "model `{name}` version `{version}` is also in file `{}`, which serves it; remove one of \
+                         the two files (or give this one another version)",
+                        kept.file
+                    ),
+                    None => format!(
+                        "model `{name}` is also in file `{}`, which serves it (version `{}`); a route names `{name}` \
+                         without a version, so one version of it is served at a time: remove one of the two \
+                         files, or pin the version in every route (`{name}@VERSION`) to serve both",
+                        kept.file,
+                        kept.model.version()
+                    ),
+                };
                 mark_failed(report, &m.file, &error);
                 problems.push(FileProblem {
                     file: m.file.clone(),
@@ -306,7 +393,10 @@ fn build_snapshot(
                 });
             }
         }
-        models.insert(name.to_string(), Arc::clone(candidates[winner]));
+        models.insert(
+            (name.clone(), kept.model.version().to_string()),
+            Arc::clone(kept),
+        );
     }
     for (file, state) in files {
         if let FileState::Failed { error, .. } = state {
@@ -314,15 +404,20 @@ fn build_snapshot(
                 file: file.clone(),
                 error: error.clone(),
             });
-            // The version this file served before keeps serving, unless another file now serves the name.
+            // The version this file served before keeps serving, unless another file now serves it.
             if let Some(kept) = old.models.values().find(|m| &m.file == file) {
-                if !models.contains_key(kept.model.name()) {
-                    models.insert(kept.model.name().to_string(), Arc::clone(kept));
+                let (name, version) = claim_of(kept);
+                let taken = match &version {
+                    Some(v) => models.contains_key(&(name.clone(), v.clone())),
+                    None => models.keys().any(|(n, _)| *n == name),
+                };
+                if !taken {
+                    models.insert(
+                        (name.clone(), kept.model.version().to_string()),
+                        Arc::clone(kept),
+                    );
                     if let Some(line) = report.iter_mut().find(|l| &l.file == file) {
-                        line.model = Some((
-                            kept.model.name().to_string(),
-                            kept.model.version().to_string(),
-                        ));
+                        line.model = Some((name, kept.model.version().to_string()));
                     }
                 }
             }

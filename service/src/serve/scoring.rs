@@ -135,7 +135,11 @@ impl Scorer {
     }
 
     /// The models that score in the background when `answered` answers on `config`'s route.
-    fn silent_models(&self, config: &Route, answered: &str) -> Vec<Answer> {
+    fn silent_models(
+        &self,
+        config: &Route,
+        answered: &crate::serve::model_ref::ModelRef,
+    ) -> Vec<Answer> {
         if self.silent.is_none() {
             return Vec::new();
         }
@@ -213,21 +217,12 @@ impl Scorer {
             });
         };
         let snapshot = self.registry.snapshot();
-        match snapshot.models.get(&config.model) {
+        match snapshot.find(&config.model) {
             Some(model) => Ok((config, Arc::clone(model))),
             None => Err(ServeError::RouteNotReady {
                 route: route.to_string(),
-                model: config.model.clone(),
-                loaded: if snapshot.models.is_empty() {
-                    "none".into()
-                } else {
-                    snapshot
-                        .models
-                        .keys()
-                        .map(String::as_str)
-                        .collect::<Vec<_>>()
-                        .join(", ")
-                },
+                model: config.model.to_string(),
+                loaded: snapshot.loaded_list(),
             }),
         }
     }
@@ -262,11 +257,13 @@ impl Scorer {
             .challengers
             .answer(&config.name, &config.model, &row.subject_key);
         // A live challenger that is not loaded leaves its subjects with the champion.
-        let (loaded, role) = match self.registry.snapshot().models.get(&answer.model) {
-            Some(model) if answer.role == "challenger" => (Arc::clone(model), "challenger"),
-            _ => (champion, "champion"),
+        let (loaded, role, answered) = match self.registry.snapshot().find(&answer.model) {
+            Some(model) if answer.role == "challenger" => {
+                (Arc::clone(model), "challenger", answer.model)
+            }
+            _ => (champion, "champion", config.model.clone()),
         };
-        let silent_models = self.silent_models(config, loaded.model.name());
+        let silent_models = self.silent_models(config, &answered);
         let kept = (!silent_models.is_empty()).then(|| row.clone());
         let level = explain::level(explain, "explain")?;
         let prepared = prepare_row(row, "row", loaded.model.schema(), config)?;
@@ -333,7 +330,7 @@ impl Scorer {
                 ),
             ));
         }
-        let silent_models = self.silent_models(config, loaded.model.name());
+        let silent_models = self.silent_models(config, &config.model);
         let kept = (!silent_models.is_empty()).then(|| rows.clone());
         let schema = loaded.model.schema();
         let total = rows.len();

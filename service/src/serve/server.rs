@@ -81,7 +81,7 @@ pub enum StartError {
 /// Reloads the registry and keeps health, readiness and route gauges in step with it.
 pub struct Reloader {
     registry: Arc<Registry>,
-    routes: Vec<(String, String)>,
+    routes: Vec<(String, crate::serve::model_ref::ModelRef)>,
     health: HealthReporter,
     security: Arc<Security>,
 }
@@ -121,7 +121,7 @@ impl Reloader {
         let snapshot = self.registry.snapshot();
         self.routes
             .iter()
-            .filter(|(_, model)| !snapshot.models.contains_key(model))
+            .filter(|(_, model)| snapshot.find(model).is_none())
             .map(|(r, _)| r.clone())
             .collect()
     }
@@ -291,7 +291,10 @@ async fn start_inner(
     } = config;
     let handle = metrics::install().map_err(StartError::Metrics)?;
     let security = Arc::new(Security::load(&transport, &access).map_err(StartError::Security)?);
-    let registry = Arc::new(Registry::new(model_dir.clone()));
+    let registry = Arc::new(
+        Registry::new(model_dir.clone())
+            .with_single_version(crate::serve::config::single_version_names(&routes)),
+    );
     let (health, health_service) = tonic_health::server::health_reporter();
     let reloader = Arc::new(Reloader {
         registry: Arc::clone(&registry),

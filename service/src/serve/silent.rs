@@ -135,19 +135,21 @@ fn work(
         };
         let snapshot = registry.snapshot();
         for model in &job.models {
-            let Some(loaded) = snapshot.models.get(&model.model) else {
-                failure(&job.route, &model.model, "model_not_loaded", job.rows.len());
+            // A configured reference (bounded by the configuration), as the metric label.
+            let label = model.model.to_string();
+            let Some(loaded) = snapshot.find(&model.model) else {
+                failure(&job.route, &label, "model_not_loaded", job.rows.len());
                 continue;
             };
             for answered in &job.rows {
                 let prepared =
                     prepare_row(answered.row.clone(), "row", loaded.model.schema(), route);
                 let Ok(mut prepared) = prepared else {
-                    failure(&job.route, &model.model, "row_refused", 1);
+                    failure(&job.route, &label, "row_refused", 1);
                     continue;
                 };
                 let Ok(scored) = loaded.model.score(&prepared.values, &route.output) else {
-                    failure(&job.route, &model.model, "row_refused", 1);
+                    failure(&job.route, &label, "row_refused", 1);
                     continue;
                 };
                 if let Some(log) = log {
@@ -159,9 +161,9 @@ fn work(
                         &scored,
                     ));
                 }
-                let labels = [("route", job.route.clone()), ("model", model.model.clone())];
+                let labels = [("route", job.route.clone()), ("model", label.clone())];
                 metrics::counter!(SILENT_PREDICTIONS, "route" => job.route.clone(),
-                    "model" => model.model.clone(), "role" => model.role)
+                    "model" => label.clone(), "role" => model.role)
                 .increment(1);
                 let decision = scored.decision.as_ref().map(|d| d.as_str().to_string());
                 if decision != answered.decision {

@@ -39,8 +39,8 @@ impl From<ServeError> for Status {
                 "the prediction store failed; the server log has the details".to_string()
             }
             ServeError::Promotion(PromotionError::History { file, error: io }) => {
-                tracing::error!(%file, error = %io, "route history not written; promotion refused");
-                "the promotion could not be recorded, so it was not made; the server log has the details"
+                tracing::error!(%file, error = %io, "route history not written; change refused");
+                "the change could not be recorded in the route history, so it was not made; the server log has the details"
                     .to_string()
             }
             ServeError::Store(_) | ServeError::StoreOff => error.to_string(),
@@ -106,6 +106,14 @@ pub fn code_of(error: &ServeError) -> Code {
                 known: _,
             } => Code::FailedPrecondition,
             PromotionError::History { file: _, error: _ } => Code::Internal,
+            PromotionError::BadModel(_) => Code::InvalidArgument,
+            PromotionError::NoEarlierChampion(_) => Code::FailedPrecondition,
+            PromotionError::NotOnRoute { route: _, model: _ } => Code::FailedPrecondition,
+            PromotionError::NotLoaded {
+                route: _,
+                model: _,
+                loaded: _,
+            } => Code::FailedPrecondition,
         },
         ServeError::Comparison(_) => Code::FailedPrecondition,
     }

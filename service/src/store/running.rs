@@ -265,9 +265,10 @@ struct Window {
     dirty: bool,
 }
 
-/// The latest base-rate estimate per (route, model): (estimate, predictions in its window). Shared with the
-/// server, which applies it to the routes that opt in (`serve::base_rate`).
-pub type LatestEstimates = Arc<Mutex<BTreeMap<(String, String), (f64, usize)>>>;
+/// The latest base-rate estimate per (route, model, version): (estimate, predictions in its window); the version
+/// `""` holds the estimate of whichever version of the model published last (for routes that name the model
+/// without a version). Shared with the server, which applies it to the routes that opt in (`serve::base_rate`).
+pub type LatestEstimates = Arc<Mutex<BTreeMap<(String, String, String), (f64, usize)>>>;
 
 /// The windows behind the PSI and base-rate gauges.
 #[derive(Debug, Default)]
@@ -369,13 +370,16 @@ impl Windows {
             };
             if let Ok(estimate) = estimate_prior(&sample, w.prior, EmOptions::default()) {
                 metrics::gauge!(BASE_RATE_ESTIMATE, &labels).set(estimate.prior);
-                self.latest
+                let mut latest = self
+                    .latest
                     .lock()
-                    .unwrap_or_else(std::sync::PoisonError::into_inner)
-                    .insert(
-                        (route.clone(), model.clone()),
+                    .unwrap_or_else(std::sync::PoisonError::into_inner);
+                for v in [version.clone(), String::new()] {
+                    latest.insert(
+                        (route.clone(), model.clone(), v),
                         (estimate.prior, sample.len()),
                     );
+                }
             }
         }
     }

@@ -166,7 +166,7 @@ impl PredictionStore {
     /// The latest base-rate estimate per (route, model): (estimate, predictions in its window).
     pub fn base_rate_estimates(
         &self,
-    ) -> std::collections::BTreeMap<(String, String), (f64, usize)> {
+    ) -> std::collections::BTreeMap<(String, String, String), (f64, usize)> {
         self.estimates
             .lock()
             .unwrap_or_else(std::sync::PoisonError::into_inner)

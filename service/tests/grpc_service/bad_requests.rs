@@ -12,6 +12,7 @@ enum Call {
     Describe(pb::ModelFactsRequest),
     Compare(pb::CompareRequest),
     Promote(pb::PromoteRequest),
+    Restore(pb::RestoreRequest),
     History(pb::RouteHistoryRequest),
     Report(pb::ReportRequest),
 }
@@ -267,7 +268,7 @@ fn table() -> Vec<(&'static str, Call, Code, &'static str)> {
                 ..Default::default()
             }),
             Code::InvalidArgument,
-            "challenger: is 100000 characters long; the limit is 128",
+            "challenger: is 100000 characters long; the limit is 257",
         ),
         (
             "promote: 100,000-character route",
@@ -279,6 +280,66 @@ fn table() -> Vec<(&'static str, Call, Code, &'static str)> {
             }),
             Code::InvalidArgument,
             "route: is 100000 characters long; the limit is 128",
+        ),
+        (
+            "restore: 1,000,000-character reason",
+            Call::Restore(pb::RestoreRequest {
+                route: "fraud".into(),
+                requested_by: "t".into(),
+                reason: "x".repeat(1_000_000),
+            }),
+            Code::InvalidArgument,
+            "reason: is 1000000 characters long; the limit is 1024",
+        ),
+        (
+            "restore: long requested_by",
+            Call::Restore(pb::RestoreRequest {
+                route: "fraud".into(),
+                requested_by: "y".repeat(1_000_000),
+                reason: String::new(),
+            }),
+            Code::InvalidArgument,
+            "requested_by: is 1000000 characters long; the limit is 256",
+        ),
+        (
+            "restore: nobody asks",
+            Call::Restore(pb::RestoreRequest {
+                route: "fraud".into(),
+                requested_by: " ".into(),
+                reason: String::new(),
+            }),
+            Code::InvalidArgument,
+            "requested_by: is required: who asks for the restore",
+        ),
+        (
+            "restore: 100,000-character route",
+            Call::Restore(pb::RestoreRequest {
+                route: "r".repeat(100_000),
+                requested_by: "t".into(),
+                reason: String::new(),
+            }),
+            Code::InvalidArgument,
+            "route: is 100000 characters long; the limit is 128",
+        ),
+        (
+            "restore: unknown route",
+            Call::Restore(pb::RestoreRequest {
+                route: "no-such-route".into(),
+                requested_by: "t".into(),
+                reason: String::new(),
+            }),
+            Code::NotFound,
+            "route `no-such-route` is not configured",
+        ),
+        (
+            "restore: nothing promoted yet",
+            Call::Restore(pb::RestoreRequest {
+                route: "fraud".into(),
+                requested_by: "t".into(),
+                reason: String::new(),
+            }),
+            Code::FailedPrecondition,
+            "route `fraud` has no earlier champion in the route history",
         ),
         (
             "promote: 1,000,000-character reason",
@@ -346,6 +407,7 @@ async fn bad_requests_get_the_right_status_and_the_server_keeps_serving() {
             Call::Describe(r) => models.model_facts(r).await.map(|_| ()),
             Call::Compare(r) => challengers.compare(r).await.map(|_| ()),
             Call::Promote(r) => challengers.promote(r).await.map(|_| ()),
+            Call::Restore(r) => challengers.restore(r).await.map(|_| ()),
             Call::History(r) => challengers.route_history(r).await.map(|_| ()),
             Call::Report(r) => outcomes.report(r).await.map(|_| ()),
         };

@@ -95,8 +95,15 @@ fn table(c: &Config) -> RouteTable {
     RouteTable::new(c.routes.clone())
 }
 
-fn latest(route: &str, estimate: f64, count: usize) -> BTreeMap<(String, String), (f64, usize)> {
-    BTreeMap::from([((route.to_string(), "m".to_string()), (estimate, count))])
+fn latest(
+    route: &str,
+    estimate: f64,
+    count: usize,
+) -> BTreeMap<(String, String, String), (f64, usize)> {
+    BTreeMap::from([(
+        (route.to_string(), "m".to_string(), String::new()),
+        (estimate, count),
+    )])
 }
 
 #[test]
@@ -144,7 +151,10 @@ fn the_estimate_is_applied_clamped_once_the_window_is_full_enough() {
         vec![("fraud".to_string(), 0.001)]
     );
     // Only the champion's estimate counts.
-    let other = BTreeMap::from([(("fraud".to_string(), "other".to_string()), (0.03, 9000))]);
+    let other = BTreeMap::from([(
+        ("fraud".to_string(), "other".to_string(), String::new()),
+        (0.03, 9000),
+    )]);
     assert!(apply_once(&t, b, &other).is_empty());
     // The other route was never touched.
     assert_eq!(t.load()["plain"].output.target_base_rate, Some(0.02));
@@ -169,7 +179,11 @@ fn the_window_keeps_one_prior_when_the_served_target_changes() {
         under_first.push(sigmoid(3.0 * x + logit(0.2)));
     }
     w.publish();
-    let (estimate, count) = w.latest().lock().unwrap()[&("fraud".to_string(), "m".to_string())];
+    let latest = w.latest().lock().unwrap().clone();
+    let key = |v: &str| ("fraud".to_string(), "m".to_string(), v.to_string());
+    // Kept by version, and as the model's latest for routes naming it without one.
+    assert_eq!(latest[&key("1")], latest[&key("")]);
+    let (estimate, count) = latest[&key("")];
     assert_eq!(count, 10_000);
     let direct = estimate_prior(&under_first, 0.2, EmOptions::default())
         .unwrap()

@@ -26,7 +26,7 @@ pub enum Role {
     OutcomeWrite,
     /// Reading what the log shows: `Outcomes.Report`, `Challengers.Compare`, `Challengers.RouteHistory`.
     ReportRead,
-    /// Changing the server: `Models.Reload`, `Challengers.Promote`.
+    /// Changing the server: `Models.Reload`, `Challengers.Promote`, `Challengers.Restore`.
     Admin,
 }
 
@@ -119,6 +119,7 @@ pub const METHODS: &[(&str, Need)] = &[
         Need::Role(Role::ReportRead),
     ),
     ("/probity.v1.Challengers/Promote", Need::Role(Role::Admin)),
+    ("/probity.v1.Challengers/Restore", Need::Role(Role::Admin)),
     (
         "/probity.v1.Challengers/RouteHistory",
         Need::Role(Role::ReportRead),
