@@ -20,6 +20,7 @@ pub mod config;
 pub mod conversions;
 pub mod error;
 pub mod explain;
+pub mod feature_metrics;
 pub mod grpc;
 pub mod limits;
 pub mod metrics;
