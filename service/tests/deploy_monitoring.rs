@@ -4,7 +4,7 @@
 //!    every metric name used by `deploy/prometheus/*.yml` or the dashboard is on a running server's `/metrics`, so
 //!    the rules cannot rot when a metric is renamed. The server is started with TLS (the certificate gauge), the
 //!    prediction store, a silent challenger (the comparison gauges), a maturity period (matured outcomes), a model
-//!    reference distribution (PSI), a broken model file (load failures) and repeated prediction ids (drops).
+//!    reference distribution (PSI), a training distribution (per-feature counts), a broken model file (load failures) and repeated prediction ids (drops).
 //! 2. Debian's `prometheus` binary (started here on a free port with a data directory of its own) scrapes the same
 //!    kind of server with `rules.yml` and `alerts.yml` loaded, and the recorded fleet figures equal the server's own
 //!    report over the same pairs: settled pairs, log-loss, Brier, observed and predicted base rates, and each
@@ -141,7 +141,8 @@ impl Drop for Server {
 fn model(name: &str, intercept: f64, coefficient: f64) -> String {
     format!(
         r#"{{"format": "probity.model", "format_version": 1, "name": "{name}", "version": "1",
-            "features": [{{"name": "x", "type": "numeric"}}], "margin_scale": "log_odds", "base_rate": 0.5,
+            "features": [{{"name": "x", "type": "numeric", "training_distribution": {{"edges": [-1.0, 0.0, 1.0],
+                "shares": [0.25, 0.25, 0.25, 0.25], "missing": 0.0}}}}], "margin_scale": "log_odds", "base_rate": 0.5,
             "reference_distribution": {{"on": "probability", "edges": [0.2, 0.4, 0.6, 0.8],
                                         "fractions": [0.2, 0.2, 0.2, 0.2, 0.2]}},
             "linear": {{"intercept": {intercept}, "terms": [{{"numeric": {{"feature": 0, "coefficient": {coefficient}}}}}]}}}}"#
