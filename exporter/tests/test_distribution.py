@@ -91,3 +91,22 @@ def test_bad_training_rows_are_refused():
         probity_export.with_training_distribution(doc, np.zeros((0, 2)))
     with pytest.raises(ExportError, match="not a number"):
         probity_export.with_training_distribution(doc, [["x", 1.0]])
+
+
+def test_lightgbm_category_names_map_training_codes(cancer):
+    """With LightGBM's `category_names`, the training rows hold codes and the document names: code k is names[k]."""
+    import lightgbm as lgb
+
+    c = cancer
+    x = c["x_cat"][c["tr"]]
+    b = lgb.train({"objective": "binary", "verbose": -1, "num_leaves": 4, "min_data_per_group": 5},
+                  lgb.Dataset(x, c["y"][c["tr"]], categorical_feature=[2]), num_boost_round=3)
+    names = ["low", "mid", "high", "top", "spare"]
+    doc = probity_export.export(b, name="lgb", version="1", feature_names=c["names"], y=c["y"][c["tr"]],
+                                category_names={c["names"][2]: names}, training_x=x)
+    check_document(doc)
+    d = doc["features"][2]["training_distribution"]
+    codes, k = np.unique(x[:, 2], return_counts=True)
+    assert list(codes) == [0.0, 1.0, 2.0, 3.0]
+    assert d["shares"] == [c_ / len(x) for c_ in k] + [0.0]
+    assert d["unknown"] == 0.0 and d["missing"] == 0.0

@@ -68,7 +68,7 @@ def export(model, *, name: str, version: str, feature_names=None, **options) -> 
     if families is not None:
         with_reason_families(doc, families)
     if training_x is not None:
-        with_training_distribution(doc, training_x, n_bins=n_bins)
+        with_training_distribution(doc, training_x, n_bins=n_bins, category_names=options.get("category_names"))
     return doc
 
 

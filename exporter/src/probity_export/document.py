@@ -327,7 +327,8 @@ def _numeric_distribution(name: str, column: Sequence[Any], n_bins: int) -> dict
     }
 
 
-def _categorical_distribution(categories: Sequence[str], column: Sequence[Any]) -> dict:
+def _categorical_distribution(categories: Sequence[str], column: Sequence[Any],
+                              code_names: Sequence[str] | None = None) -> dict:
     index = {c: i for i, c in enumerate(categories)}
     counts = [0] * len(categories)
     missing = unknown = 0
@@ -335,7 +336,10 @@ def _categorical_distribution(categories: Sequence[str], column: Sequence[Any]) 
         if _is_missing(v):
             missing += 1
             continue
-        k = index.get(category_name(v))
+        name = category_name(v)
+        if code_names is not None and name.isdigit() and int(name) < len(code_names):
+            name = str(code_names[int(name)])
+        k = index.get(name)
         if k is None:
             unknown += 1
         else:
@@ -348,7 +352,8 @@ def _categorical_distribution(categories: Sequence[str], column: Sequence[Any]) 
     }
 
 
-def with_training_distribution(doc: dict, x: Any, n_bins: int = 10) -> dict:
+def with_training_distribution(doc: dict, x: Any, n_bins: int = 10,
+                               category_names: Mapping[str, Sequence[str]] | None = None) -> dict:
     """Adds each feature's training distribution (`features[i].training_distribution`) from the training rows `x`:
     a 2-D array or data frame with one column per feature of the document, in its order, values as given to the
     library (categorical columns as the library's codes or labels: a category is matched by `category_name`).
@@ -357,6 +362,8 @@ def with_training_distribution(doc: dict, x: Any, n_bins: int = 10) -> dict:
     of all rows in each bin `(e[i-1], e[i]]`, and the missing share (None, NaN or infinite, as the server reads
     them). Categorical features: the share of each category, of a value that is none of them (unknown), and of
     missing values. A categorical feature with more than 32 categories gets none (the format's limit).
+    `category_names` (as the LightGBM exporter takes it: feature name -> names indexed by integer code) maps the
+    codes of `x` to the category names of the document.
     """
     if not 1 <= n_bins <= MAX_DISTRIBUTION_BINS:
         raise ExportError(f"training distribution: n_bins must be 1 to {MAX_DISTRIBUTION_BINS}, got {n_bins!r}")
@@ -382,5 +389,6 @@ def with_training_distribution(doc: dict, x: Any, n_bins: int = 10) -> dict:
         if f["type"] == "numeric":
             f["training_distribution"] = _numeric_distribution(f["name"], column, n_bins)
         elif len(f["categories"]) <= MAX_DISTRIBUTION_BINS:
-            f["training_distribution"] = _categorical_distribution(f["categories"], column)
+            f["training_distribution"] = _categorical_distribution(
+                f["categories"], column, (category_names or {}).get(f["name"]))
     return doc
