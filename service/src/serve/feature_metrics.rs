@@ -11,6 +11,9 @@
 //! 32 x 34 = 1,088 counter series per route and model version. Label values: the route's configured name, the
 //! model's name and version, the feature's name from the file, and the slot (`0` to `31`, `missing`, `unknown`).
 //!
+//! The handles of a configured route are registered when its model loads (`serve/server.rs`), at zero, so that
+//! Prometheus's `increase()` and `rate()` count every row, and the first slots hit are not lost to the first scrape.
+//!
 //! Cost per scored row: one slot lookup per monitored feature (a binary search over at most 31 edges, or a range
 //! check) and one relaxed atomic increment, through handles registered once per (route, model, version); a batch
 //! counts into a local array first and adds each slot once.
