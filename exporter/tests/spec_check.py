@@ -27,12 +27,35 @@ def check_features(features):
         assert f["name"] and f["name"] not in names, f"{p}.name"
         names.add(f["name"])
         if f["type"] == "numeric":
-            assert set(f) == {"name", "type"}, p
+            assert set(f) - {"training_distribution"} == {"name", "type"}, p
         else:
-            assert f["type"] == "categorical" and set(f) == {"name", "type", "categories"}, p
+            assert f["type"] == "categorical" and set(f) - {"training_distribution"} == {"name", "type", "categories"}, p
             cats = f["categories"]
             assert 1 <= len(cats) <= 65536 and len(set(cats)) == len(cats), f"{p}.categories"
             assert all(isinstance(c, str) and c for c in cats), f"{p}.categories"
+        if "training_distribution" in f:
+            check_training_distribution(p + ".training_distribution", f, f["training_distribution"])
+
+
+def check_training_distribution(p, f, d):
+    """`docs/model-format.md`, Training distribution: shares in [0, 1] summing to 1 within 1e-6; numeric edges
+    finite, strictly increasing, one fewer than the shares; categorical one share per category; at most 32 bins."""
+    if f["type"] == "numeric":
+        assert set(d) == {"edges", "shares", "missing"}, p
+        e = d["edges"]
+        for j, v in enumerate(e):
+            _finite(f"{p}.edges[{j}]", v)
+        assert all(b > a for a, b in zip(e, e[1:])), f"{p}.edges"
+        assert len(d["shares"]) == len(e) + 1 <= 32, f"{p}.shares"
+        total = sum(d["shares"]) + d["missing"]
+    else:
+        assert set(d) <= {"shares", "missing", "unknown"} and {"shares", "missing"} <= set(d), p
+        assert len(d["shares"]) == len(f["categories"]) <= 32, f"{p}.shares"
+        total = sum(d["shares"]) + d["missing"] + d.get("unknown", 0.0)
+    for j, v in enumerate(d["shares"] + [d["missing"], d.get("unknown", 0.0)]):
+        _finite(f"{p}[{j}]", v)
+        assert 0.0 <= v <= 1.0, f"{p}: share {v!r}"
+    assert abs(total - 1.0) <= 1e-6, f"{p}: shares sum to {total!r}"
 
 
 def check_tree(t, nodes, features):

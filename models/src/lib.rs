@@ -21,6 +21,7 @@ pub mod metrics;
 pub mod model;
 pub mod monitor;
 pub mod schema;
+pub mod stability;
 pub mod transform;
 
 pub use calibration::{Calibration, IsotonicInput};
@@ -34,4 +35,5 @@ pub use model::{
     BodyKind, MarginScale, Model, ModelSummary, OddsOf, ReferenceDistribution, ScoreScale,
 };
 pub use schema::{Cell, CellNote, Feature, FeatureKind, Schema, UNKNOWN_CATEGORY};
+pub use stability::{DistributionBins, FeatureStability, TrainingDistribution};
 pub use transform::{OutputSpec, Scored};

@@ -141,6 +141,8 @@ pub struct Model {
     pub(crate) attribution: crate::explain::Attribution,
     /// The deployer's reason families (empty when the file has none).
     pub(crate) families: crate::explain::ReasonFamilies,
+    /// Each feature's training distribution, when the file states it (`features[i].training_distribution`).
+    pub(crate) distributions: Vec<Option<crate::stability::TrainingDistribution>>,
 }
 
 impl Model {
@@ -184,5 +186,21 @@ impl Model {
     /// The points scale, if any.
     pub fn score_scale(&self) -> Option<&ScoreScale> {
         self.score_scale.as_ref()
+    }
+    /// The training distribution of feature `i`, when the file states it.
+    pub fn training_distribution(
+        &self,
+        i: usize,
+    ) -> Option<&crate::stability::TrainingDistribution> {
+        self.distributions.get(i)?.as_ref()
+    }
+    /// The features that carry a training distribution, in schema order: (index, distribution).
+    pub fn training_distributions(
+        &self,
+    ) -> impl Iterator<Item = (usize, &crate::stability::TrainingDistribution)> {
+        self.distributions
+            .iter()
+            .enumerate()
+            .filter_map(|(i, d)| d.as_ref().map(|d| (i, d)))
     }
 }

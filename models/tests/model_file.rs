@@ -76,6 +76,16 @@ fn annotated_ensemble_example_loads() {
     assert!(model.explainable().is_ok(), "the example carries cover");
     assert_eq!(model.reason_families().families().len(), 2);
     assert!(model.score_scale().is_some());
+    // Training distributions on features 0 and 1, none on feature 2.
+    let with: Vec<usize> = model.training_distributions().map(|(i, _)| i).collect();
+    assert_eq!(with, vec![0, 1]);
+    let amount = model.training_distribution(0).unwrap();
+    assert_eq!(amount.slots(), 6);
+    assert_eq!(amount.slot_of(41.0), 2);
+    assert_eq!(amount.slot_of(f64::NAN), 5);
+    let channel = model.training_distribution(1).unwrap();
+    assert_eq!(channel.expected(), vec![0.6, 0.3, 0.09, 0.01, 0.0]);
+    assert!(model.training_distribution(2).is_none());
     // Hand-computed from the example's trees: amount 300 > 250 goes right, channel 1 (online) is in {1, 2}
     // so leaf 1.1; hour 3 < 6 so leaf 0.5. Margin = -3.5 + 1.1 + 0.5.
     assert_eq!(model.margin(&[300.0, 1.0, 3.0]).unwrap(), -3.5 + 1.1 + 0.5);
@@ -405,6 +415,51 @@ const BROKEN_FILES: &[(&str, &str, &str)] = &[
         "term_without_kind",
         "linear.terms[3]",
         "a term needs exactly one of `numeric`, `categorical` and `binned`",
+    ),
+    (
+        "training_edges_not_increasing",
+        "features[0].training_distribution.edges[1]",
+        "must be strictly increasing: 100 follows 100",
+    ),
+    (
+        "training_edges_on_categorical",
+        "features[1].training_distribution.edges",
+        "a categorical feature's distribution has one share per category and no edges",
+    ),
+    (
+        "training_missing_negative",
+        "features[2].training_distribution.missing",
+        "must be in [0, 1], got -0.1",
+    ),
+    (
+        "training_numeric_unknown",
+        "features[0].training_distribution.unknown",
+        "a numeric feature has no unknown categories",
+    ),
+    (
+        "training_numeric_without_edges",
+        "features[0].training_distribution",
+        "a numeric feature's distribution needs `edges`",
+    ),
+    (
+        "training_share_count",
+        "features[1].training_distribution.shares",
+        "2 shares for 3 categories; there must be one share per category",
+    ),
+    (
+        "training_shares_sum",
+        "features[0].training_distribution.shares",
+        "shares, missing and unknown sum to 1.09999",
+    ),
+    (
+        "training_too_many_bins",
+        "features[0].training_distribution.edges",
+        "32 edges make 33 bins; at most 32 bins are allowed",
+    ),
+    (
+        "training_unknown_key",
+        "features[0].training_distribution.bins",
+        "unknown field `bins`",
     ),
     ("trailing_characters", "", "trailing characters"),
     (

@@ -126,6 +126,36 @@ fn check_prints_a_summary_of_a_good_model() {
     assert!(v["calibration"].is_null());
 }
 
+/// `probity check` names each feature's training distribution (tests/fixtures/stability/model.json, written by
+/// tests/fixtures/gen_stability.py: 10 quantile bins; mean_radius has every 5th training value missing, 85 of 426).
+#[test]
+fn check_shows_training_distributions() {
+    let model = std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("../tests/fixtures/stability/model.json");
+    let text = stdout(&ok(&["check", s(&model)]));
+    assert!(
+        text.contains(
+            "mean_radius       numeric; training distribution: 10 bins, missing 19.95%\n"
+        ),
+        "{text}"
+    );
+    assert!(
+        text.contains("training distribution: missing 0.00%, unknown 0.00%"),
+        "{text}"
+    );
+    let o = ok(&["check", "--json", s(&model)]);
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    assert_eq!(v["features"][0]["training_distribution"]["bins"], 10);
+    assert_eq!(
+        v["features"][0]["training_distribution"]["missing"],
+        85.0 / 426.0
+    );
+    // A file without distributions prints none.
+    let o = ok(&["check", "--json", s(&data("small-trees.json"))]);
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    assert!(v["features"][0].get("training_distribution").is_none());
+}
+
 #[test]
 fn check_refuses_a_broken_model_naming_the_json_path() {
     let o = probity(&["check", s(&data("broken-node.json"))]);

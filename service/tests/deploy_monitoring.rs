@@ -4,7 +4,7 @@
 //!    every metric name used by `deploy/prometheus/*.yml` or the dashboard is on a running server's `/metrics`, so
 //!    the rules cannot rot when a metric is renamed. The server is started with TLS (the certificate gauge), the
 //!    prediction store, a silent challenger (the comparison gauges), a maturity period (matured outcomes), a model
-//!    reference distribution (PSI), a broken model file (load failures) and repeated prediction ids (drops).
+//!    reference distribution (PSI), a training distribution (per-feature counts), a broken model file (load failures) and repeated prediction ids (drops).
 //! 2. Debian's `prometheus` binary (started here on a free port with a data directory of its own) scrapes the same
 //!    kind of server with `rules.yml` and `alerts.yml` loaded, and the recorded fleet figures equal the server's own
 //!    report over the same pairs: settled pairs, log-loss, Brier, observed and predicted base rates, and each
@@ -141,7 +141,8 @@ impl Drop for Server {
 fn model(name: &str, intercept: f64, coefficient: f64) -> String {
     format!(
         r#"{{"format": "probity.model", "format_version": 1, "name": "{name}", "version": "1",
-            "features": [{{"name": "x", "type": "numeric"}}], "margin_scale": "log_odds", "base_rate": 0.5,
+            "features": [{{"name": "x", "type": "numeric", "training_distribution": {{"edges": [-1.0, 0.0, 1.0],
+                "shares": [0.25, 0.25, 0.25, 0.25], "missing": 0.0}}}}], "margin_scale": "log_odds", "base_rate": 0.5,
             "reference_distribution": {{"on": "probability", "edges": [0.2, 0.4, 0.6, 0.8],
                                         "fractions": [0.2, 0.2, 0.2, 0.2, 0.2]}},
             "linear": {{"intercept": {intercept}, "terms": [{{"numeric": {{"feature": 0, "coefficient": {coefficient}}}}}]}}}}"#
@@ -196,7 +197,8 @@ async fn start() -> Server {
              [store.maturity]\naged = \"1s\"\n\
              [routes.card-auth]\nmodel = \"fleet-a\"\ntarget_base_rate = 0.2\n\
              [[routes.card-auth.challengers]]\nmodel = \"fleet-b\"\nmode = \"silent\"\n\
-             [routes.aged]\nmodel = \"fleet-a\"\ntarget_base_rate = 0.2\n",
+             [routes.aged]\nmodel = \"fleet-a\"\ntarget_base_rate = 0.2\n\
+             [routes.drift]\nmodel = \"fleet-a\"\n",
             toml_path(&dir.path().join("server.crt")),
             toml_path(&dir.path().join("server.key")),
             toml_path(&dir.path().join("token")),
@@ -698,6 +700,84 @@ async fn prometheus_records_the_servers_own_figures() {
             }
         }
     }
+    // Per-feature stability: the `drift` route's slot counters are out at zero before its first row (registered
+    // when its model loaded), so Prometheus's `increase()` sees every row scored after its first scrape; the
+    // recorded fleet PSI and missing rate then equal the figures of probity_models::stability on the server's own
+    // counts (same formula, floor 1e-4).
+    let zero_seen = Instant::now() + Duration::from_secs(20);
+    while prometheus
+        .query(r#"probity_feature_values_total{route="drift"}"#)
+        .is_empty()
+    {
+        assert!(
+            Instant::now() < zero_seen,
+            "the drift route's counters were never scraped"
+        );
+        std::thread::sleep(Duration::from_millis(200));
+    }
+    let conn = server.connection().await;
+    pb::scoring_client::ScoringClient::new(conn)
+        .score_batch(pb::ScoreBatchRequest {
+            explain: 0,
+            route: "drift".into(),
+            rows: rows("d", 0..200),
+        })
+        .await
+        .unwrap();
+    let (_, exposition) = http_get(&server.metrics, "/metrics").unwrap();
+    let fleet = probity_models::Model::from_json_str(&model("fleet-a", 0.25, 1.5)).unwrap();
+    let dist = fleet.training_distribution(0).unwrap();
+    let counts: Vec<u64> = ["0", "1", "2", "3", "missing"]
+        .iter()
+        .map(|bin| {
+            exposition
+                .lines()
+                .find(|l| {
+                    l.starts_with("probity_feature_values_total{")
+                        && l.contains(r#"route="drift""#)
+                        && l.contains(&format!(r#"bin="{bin}""#))
+                })
+                .and_then(|l| l.rsplit(' ').next()?.parse::<f64>().ok())
+                .unwrap() as u64
+        })
+        .collect();
+    assert_eq!(counts.iter().sum::<u64>(), 200);
+    let want = probity_models::stability::stability(
+        dist,
+        &counts,
+        probity_models::metrics::EmptyBinRule::Floor(1e-4),
+    )
+    .unwrap();
+    let labels = [("route", "drift"), ("model", "fleet-a"), ("feature", "x")];
+    for (record, want) in [
+        (
+            "route_model_version_feature:probity_feature_psi:1h",
+            want.psi,
+        ),
+        (
+            "route_model_version_feature:probity_feature_missing:ratio1h",
+            want.missing_rate,
+        ),
+    ] {
+        let got = loop {
+            let got = prometheus.value(record, &labels);
+            if got.is_some_and(|v| close(v, want)) || Instant::now() >= deadline {
+                break got;
+            }
+            std::thread::sleep(Duration::from_millis(200));
+        };
+        println!("drift {record}: recorded {got:?}, server counts {want} ({counts:?})");
+        assert!(
+            got.is_some_and(|v| close(v, want)),
+            "{record}: recorded {got:?}, want {want}"
+        );
+        checked += 1;
+    }
+    assert!(
+        want.psi > 0.25,
+        "the rows are drawn away from the training shares: {want:?}"
+    );
+
     // The corrections and maturity made it into the figures compared above.
     assert_eq!(series(&report, "card-auth", "fleet-a")["corrected"], 20);
     assert_eq!(series(&report, "aged", "fleet-a")["with_outcome"], 40);

@@ -454,3 +454,52 @@ fn calibration_tests_match_statsmodels() {
         );
     }
 }
+
+/// Per-feature stability of a labelled file against the model's training distributions, equal to the NumPy
+/// reference of `tests/fixtures/gen_stability.py` (slot counts by `np.digitize(right=True)`, PSI by its formula,
+/// sum (a - e) ln(a / e), Siddiqi 2006, shares floored at 1e-4), within 1e-12; and a model file without training
+/// distributions prints no such section.
+#[test]
+fn feature_stability_matches_numpy() {
+    let dir = PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("../tests/fixtures/stability");
+    let path = |n: &str| dir.join(n).to_string_lossy().into_owned();
+    let reference: Value =
+        serde_json::from_str(&std::fs::read_to_string(path("reference.json")).unwrap()).unwrap();
+    for window in ["steady", "shifted"] {
+        let (model, input) = (path("model.json"), path(&format!("{window}.csv")));
+        let out = probity(&[
+            "evaluate",
+            "--model",
+            &model,
+            "--input",
+            &input,
+            "--label-column",
+            "y",
+            "--json",
+        ]);
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        let got: Value = serde_json::from_slice(&out.stdout).unwrap();
+        let features = got["champion"]["feature_stability"]["features"]
+            .as_array()
+            .unwrap();
+        assert_eq!(features.len(), 6);
+        for f in features {
+            let name = f["feature"].as_str().unwrap();
+            let want = &reference[window][name];
+            for key in ["psi", "missing_rate"] {
+                let (g, w) = (f[key].as_f64().unwrap(), want[key].as_f64().unwrap());
+                assert!(
+                    (g - w).abs() <= 1e-12 * w.abs().max(1.0),
+                    "{window} {name} {key}: {g} vs {w}"
+                );
+            }
+            assert_eq!(f["unknown_rate"], want["unknown_rate"], "{window} {name}");
+        }
+    }
+    let plain = run_json(&[]);
+    assert!(plain["champion"].get("feature_stability").is_none());
+}

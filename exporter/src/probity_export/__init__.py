@@ -22,6 +22,7 @@ from .document import (
     dumps,
     reference_distribution,
     with_reason_families,
+    with_training_distribution,
     write,
 )
 from .lightgbm_trees import export_lightgbm
@@ -45,6 +46,7 @@ __all__ = [
     "export_xgboost",
     "reference_distribution",
     "with_reason_families",
+    "with_training_distribution",
     "write",
 ]
 
@@ -55,12 +57,18 @@ def export(model, *, name: str, version: str, feature_names=None, **options) -> 
     Options (all keyword): `base_rate` (or `y`, the training labels, to use their positive share), `metadata`
     (merged into the library's own), `calibration`, `reference_distribution`, `score_scale` (passed through
     after checking them against the spec), `reason_families` (the deployer's reason codes: a list of
-    `{"code", "text", "features": [feature names]}`, see `document.with_reason_families`).
+    `{"code", "text", "features": [feature names]}`, see `document.with_reason_families`), `training_x` (the
+    training rows, one column per feature: each feature's training distribution is written for drift monitoring,
+    see `document.with_training_distribution`) and `distribution_bins` (its number of quantile bins, default 10).
     """
     families = options.pop("reason_families", None)
+    training_x = options.pop("training_x", None)
+    n_bins = options.pop("distribution_bins", 10)
     doc = _export(model, name=name, version=version, feature_names=feature_names, **options)
     if families is not None:
         with_reason_families(doc, families)
+    if training_x is not None:
+        with_training_distribution(doc, training_x, n_bins=n_bins, category_names=options.get("category_names"))
     return doc
 
 

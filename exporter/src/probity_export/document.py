@@ -285,3 +285,110 @@ def flatten_tree(root: Any, visit) -> list[dict]:
             stack.append((right, idx, "right"))
             stack.append((left, idx, "left"))
     return nodes  # type: ignore[return-value]
+
+
+# Most value bins (numeric bins or categories) of one feature's training distribution (`docs/model-format.md`).
+MAX_DISTRIBUTION_BINS = 32
+
+
+def _is_missing(value: Any) -> bool:
+    """Whether a training cell is missing as the server reads it: None, NaN, or a number that is not finite."""
+    if value is None:
+        return True
+    if isinstance(value, (float, np.floating)):
+        return not math.isfinite(float(value))
+    return False
+
+
+def _numeric_distribution(name: str, column: Sequence[Any], n_bins: int) -> dict:
+    values = []
+    missing = 0
+    for v in column:
+        if _is_missing(v):
+            missing += 1
+            continue
+        try:
+            values.append(float(v))
+        except (TypeError, ValueError):
+            raise ExportError(f"training data, feature {name!r}: {v!r} is not a number") from None
+    total = len(values) + missing
+    if not values:
+        return {"edges": [], "shares": [0.0], "missing": 1.0}
+    s = np.sort(np.asarray(values, dtype=float))
+    # Quantile edges of the values present, as `reference_distribution` cuts scores: ties merged, no edge at the
+    # largest value; bins (e[i-1], e[i]]. Quantile binning for drift monitoring is common practice, no single source.
+    qs = np.quantile(s, np.arange(1, n_bins) / n_bins, method="lower")
+    edges = sorted({float(q) for q in qs if q < s[-1]})
+    counts = np.bincount(np.searchsorted(np.asarray(edges), s, side="left"), minlength=len(edges) + 1)
+    return {
+        "edges": edges,
+        "shares": [float(c) / total for c in counts],
+        "missing": missing / total,
+    }
+
+
+def _categorical_distribution(categories: Sequence[str], column: Sequence[Any],
+                              code_names: Sequence[str] | None = None) -> dict:
+    index = {c: i for i, c in enumerate(categories)}
+    counts = [0] * len(categories)
+    missing = unknown = 0
+    for v in column:
+        if _is_missing(v):
+            missing += 1
+            continue
+        name = category_name(v)
+        if code_names is not None and name.isdigit() and int(name) < len(code_names):
+            name = str(code_names[int(name)])
+        k = index.get(name)
+        if k is None:
+            unknown += 1
+        else:
+            counts[k] += 1
+    total = sum(counts) + missing + unknown
+    return {
+        "shares": [c / total for c in counts],
+        "missing": missing / total,
+        "unknown": unknown / total,
+    }
+
+
+def with_training_distribution(doc: dict, x: Any, n_bins: int = 10,
+                               category_names: Mapping[str, Sequence[str]] | None = None) -> dict:
+    """Adds each feature's training distribution (`features[i].training_distribution`) from the training rows `x`:
+    a 2-D array or data frame with one column per feature of the document, in its order, values as given to the
+    library (categorical columns as the library's codes or labels: a category is matched by `category_name`).
+
+    Numeric features: interior edges at the quantiles `k / n_bins` of the values present (ties merged), the share
+    of all rows in each bin `(e[i-1], e[i]]`, and the missing share (None, NaN or infinite, as the server reads
+    them). Categorical features: the share of each category, of a value that is none of them (unknown), and of
+    missing values. A categorical feature with more than 32 categories gets none (the format's limit).
+    `category_names` (as the LightGBM exporter takes it: feature name -> names indexed by integer code) maps the
+    codes of `x` to the category names of the document.
+    """
+    if not 1 <= n_bins <= MAX_DISTRIBUTION_BINS:
+        raise ExportError(f"training distribution: n_bins must be 1 to {MAX_DISTRIBUTION_BINS}, got {n_bins!r}")
+    if isinstance(x, np.ndarray):
+        if x.ndim != 2:
+            raise ExportError(f"training data: expected a 2-D array, got {x.ndim} dimensions")
+        columns = list(x.T)
+    else:
+        if hasattr(x, "columns") and hasattr(x, "iloc"):
+            columns = [x.iloc[:, j].tolist() for j in range(x.shape[1])]
+        else:
+            rows = [list(r) for r in x]
+            width = len(rows[0]) if rows else 0
+            if any(len(r) != width for r in rows):
+                raise ExportError("training data: rows of different lengths")
+            columns = [[r[j] for r in rows] for j in range(width)]
+    features = doc["features"]
+    if len(columns) != len(features):
+        raise ExportError(f"training data has {len(columns)} columns, the model has {len(features)} features")
+    if len(features) and len(columns[0]) == 0:
+        raise ExportError("training data has no rows")
+    for f, column in zip(features, columns):
+        if f["type"] == "numeric":
+            f["training_distribution"] = _numeric_distribution(f["name"], column, n_bins)
+        elif len(f["categories"]) <= MAX_DISTRIBUTION_BINS:
+            f["training_distribution"] = _categorical_distribution(
+                f["categories"], column, (category_names or {}).get(f["name"]))
+    return doc

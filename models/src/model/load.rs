@@ -5,6 +5,7 @@
 //! in the same style (`ensemble.trees[3].nodes[17].left`), and compiles the body for the engine. Nothing here
 //! recurses on input: trees are walked with an explicit stack.
 
+mod distribution;
 mod extras;
 mod linear;
 mod raw;
@@ -15,6 +16,7 @@ use crate::error::ModelError;
 use crate::explain::{Attribution, ReasonFamilies};
 use crate::model::{MarginScale, Model};
 use crate::schema::{Feature, FeatureKind, Schema};
+use crate::stability::TrainingDistribution;
 
 use raw::{RawFeatureType, RawMarginScale, RawModel};
 
@@ -177,7 +179,7 @@ fn build(raw: RawModel) -> Result<Model, ModelError> {
         Some(v @ serde_json::Value::Object(_)) => v,
         Some(_) => return Err(ModelError::rule("metadata", "must be an object")),
     };
-    let schema = schema(raw.features)?;
+    let (schema, distributions) = schema(raw.features)?;
     let margin_scale = match raw.margin_scale {
         RawMarginScale::LogOdds => MarginScale::LogOdds,
         RawMarginScale::HalfLogOdds => MarginScale::HalfLogOdds,
@@ -254,13 +256,18 @@ fn build(raw: RawModel) -> Result<Model, ModelError> {
         score_scale,
         attribution,
         families,
+        distributions,
     })
 }
 
-/// The `features` array as a [`Schema`].
-fn schema(raw: Vec<raw::RawFeature>) -> Result<Schema, ModelError> {
+/// The `features` array as a [`Schema`], and each feature's training distribution when it has one.
+fn schema(
+    raw: Vec<raw::RawFeature>,
+) -> Result<(Schema, Vec<Option<TrainingDistribution>>), ModelError> {
     let mut features = Vec::with_capacity(raw.len());
+    let mut raw_distributions = Vec::with_capacity(raw.len());
     for (i, f) in raw.into_iter().enumerate() {
+        raw_distributions.push(f.training_distribution);
         let kind = match (f.kind, f.categories) {
             (RawFeatureType::Numeric, None) => FeatureKind::Numeric,
             (RawFeatureType::Numeric, Some(_)) => {
@@ -281,5 +288,15 @@ fn schema(raw: Vec<raw::RawFeature>) -> Result<Schema, ModelError> {
         };
         features.push(Feature { name: f.name, kind });
     }
-    Schema::new(features)
+    let schema = Schema::new(features)?;
+    let distributions = raw_distributions
+        .into_iter()
+        .zip(schema.features())
+        .enumerate()
+        .map(|(i, (raw, feature))| {
+            raw.map(|d| distribution::training_distribution(i, feature, d))
+                .transpose()
+        })
+        .collect::<Result<Vec<_>, _>>()?;
+    Ok((schema, distributions))
 }

@@ -46,11 +46,22 @@ pub fn summary_json(model: &Model) -> Value {
         .schema()
         .features()
         .iter()
-        .map(|f| match &f.kind {
-            FeatureKind::Numeric => json!({"name": f.name, "type": "numeric"}),
-            FeatureKind::Categorical { categories } => {
-                json!({"name": f.name, "type": "categorical", "categories": categories.len()})
+        .enumerate()
+        .map(|(i, f)| {
+            let mut v = match &f.kind {
+                FeatureKind::Numeric => json!({"name": f.name, "type": "numeric"}),
+                FeatureKind::Categorical { categories } => {
+                    json!({"name": f.name, "type": "categorical", "categories": categories.len()})
+                }
+            };
+            if let Some(d) = model.training_distribution(i) {
+                v["training_distribution"] = json!({
+                    "bins": d.shares.len(),
+                    "missing": d.missing,
+                    "unknown": d.unknown,
+                });
             }
+            v
         })
         .collect();
     let calibration = model.calibration().map(|c| match c {
@@ -101,7 +112,7 @@ pub fn summary_text(model: &Model) -> String {
     let features = model.schema().features();
     out += &format!("features       {}\n", features.len());
     let width = features.iter().map(|f| f.name.len()).max().unwrap_or(0);
-    for f in features {
+    for (i, f) in features.iter().enumerate() {
         let kind = match &f.kind {
             FeatureKind::Numeric => "numeric".to_string(),
             FeatureKind::Categorical { categories } => {
@@ -112,7 +123,20 @@ pub fn summary_text(model: &Model) -> String {
                 )
             }
         };
-        out += &format!("  {:width$}  {kind}\n", f.name);
+        let trained = match model.training_distribution(i) {
+            None => String::new(),
+            Some(d) if d.is_categorical() => format!(
+                "; training distribution: missing {:.2}%, unknown {:.2}%",
+                100.0 * d.missing,
+                100.0 * d.unknown
+            ),
+            Some(d) => format!(
+                "; training distribution: {} bins, missing {:.2}%",
+                d.shares.len(),
+                100.0 * d.missing
+            ),
+        };
+        out += &format!("  {:width$}  {kind}{trained}\n", f.name);
     }
     out += &format!("margin scale   {}\n", model.margin_scale().as_str());
     out += &format!(

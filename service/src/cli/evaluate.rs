@@ -13,11 +13,13 @@ use probity_models::evaluate::{
     band_points, compare_on_labels, evaluate, operating_point, BandPoint, Costs, EvaluateOptions,
     Evaluation, OperatingPoint, PairedComparison,
 };
+use probity_models::metrics::EmptyBinRule;
 use probity_models::metrics::{BinStrategy, HlGrouping};
+use probity_models::stability::{stability, FeatureStability};
 use probity_models::{Model, OutputSpec};
 use serde_json::{json, Value};
 
-use super::pipeline::{csv_reader_with, decompressed, score_records, ColumnMap};
+use super::pipeline::{csv_reader_with, decompressed, score_rows, ColumnMap};
 use super::score::load_model;
 use probity::charts::palette;
 use probity::charts::pictures::{self, Curve, ProbabilityAxis};
@@ -106,6 +108,8 @@ struct Outcome {
     /// computed noted.
     champion_tests: (CalibrationTests, Vec<String>),
     challenger_tests: Option<(CalibrationTests, Vec<String>)>,
+    /// The champion's per-feature stability against the training distributions in its file (empty without any).
+    features: Vec<(String, FeatureStability)>,
 }
 
 /// The live report's calibration tests on the same pairs.
@@ -148,7 +152,21 @@ pub fn run(args: &EvaluateArgs) -> anyhow::Result<()> {
         _ => None,
     };
     let model = load_model(&args.model)?;
-    let (h, p, y) = read_scored(&model, args)?;
+    let (h, p, y, slot_counts) = read_scored(&model, args)?;
+    let features = model
+        .training_distributions()
+        .zip(&slot_counts)
+        .map(|((i, d), counts)| {
+            let name = model
+                .schema()
+                .feature(i)
+                .map(|f| f.name.clone())
+                .unwrap_or_default();
+            stability(d, counts, EmptyBinRule::default())
+                .map(|s| (name.clone(), s))
+                .with_context(|| format!("stability of feature `{name}`"))
+        })
+        .collect::<anyhow::Result<Vec<_>>>()?;
     let champion = evaluate(&h, &p, &y, &options)
         .with_context(|| format!("cannot evaluate {}", args.model.display()))?;
     let point = threshold
@@ -172,7 +190,7 @@ pub fn run(args: &EvaluateArgs) -> anyhow::Result<()> {
         None => (None, None, None),
         Some(path) => {
             let other = load_model(path)?;
-            let (h2, p2, y2) = read_scored(&other, args)?;
+            let (h2, p2, y2, _) = read_scored(&other, args)?;
             if y2 != y {
                 bail!(
                     "the challenger read different rows from {}",
@@ -202,6 +220,7 @@ pub fn run(args: &EvaluateArgs) -> anyhow::Result<()> {
         comparison,
         champion_tests: calibration_tests(&p, &h, &y),
         challenger_tests,
+        features,
     };
     if let Some(dir) = &args.svg_dir {
         write_pictures(dir, &outcome)?;
@@ -218,11 +237,13 @@ fn name_of(model: &Model) -> String {
     format!("{} {}", model.name(), model.version())
 }
 
-/// Final log-odds, probabilities and labels of every row, in file order; the first bad row stops the run.
-fn read_scored(
-    model: &Model,
-    args: &EvaluateArgs,
-) -> anyhow::Result<(Vec<f64>, Vec<f64>, Vec<bool>)> {
+/// What `read_scored` returns: final log-odds, probabilities, labels, and the slot counts of every feature with a
+/// training distribution (in [`Model::training_distributions`] order).
+type Scored = (Vec<f64>, Vec<f64>, Vec<bool>, Vec<Vec<u64>>);
+
+/// Final log-odds, probabilities and labels of every row, in file order, and each training distribution's slot
+/// counts; the first bad row stops the run.
+fn read_scored(model: &Model, args: &EvaluateArgs) -> anyhow::Result<Scored> {
     let file =
         File::open(&args.input).with_context(|| format!("cannot open {}", args.input.display()))?;
     let mut reader = csv_reader_with(
@@ -246,15 +267,25 @@ fn read_scored(
             )
         })?;
     let (mut h, mut p, mut y) = (Vec::new(), Vec::new(), Vec::new());
+    let distributions: Vec<_> = model.training_distributions().collect();
+    let mut slot_counts: Vec<Vec<u64>> = distributions
+        .iter()
+        .map(|(_, d)| vec![0; d.slots()])
+        .collect();
     let mut row = 0u64;
-    score_records(
+    score_rows(
         model,
         &columns,
         &OutputSpec::default(),
         &mut reader,
         None,
-        |record, scored, _| {
+        |record, values, scored, _| {
             row += 1;
+            for ((i, d), counts) in distributions.iter().zip(&mut slot_counts) {
+                if let Some(c) = values.get(*i).and_then(|&v| counts.get_mut(d.slot_of(v))) {
+                    *c += 1;
+                }
+            }
             let text = record.get(label_col).unwrap_or("").trim();
             let label = match text {
                 "0" => false,
@@ -279,7 +310,7 @@ fn read_scored(
     if y.is_empty() {
         bail!("{} has no data rows", args.input.display());
     }
-    Ok((h, p, y))
+    Ok((h, p, y, slot_counts))
 }
 
 fn binning_words(o: &EvaluateOptions) -> String {
@@ -469,6 +500,35 @@ fn text(o: &Outcome) -> String {
             );
         }
     }
+    if !o.features.is_empty() {
+        let _ = writeln!(
+            s,
+            "\n== feature stability of {} against its training distributions (PSI, empty slots floored at 1e-4)",
+            o.champion_name
+        );
+        let width = o
+            .features
+            .iter()
+            .map(|(n, _)| n.len())
+            .max()
+            .unwrap_or(0)
+            .max(7);
+        let _ = writeln!(
+            s,
+            "{:<width$}  {:>9}  {:>9}  {:>9}",
+            "feature", "PSI", "missing", "unknown"
+        );
+        for (name, f) in &o.features {
+            let _ = writeln!(
+                s,
+                "{name:<width$}  {:>9.6}  {:>9.6}  {:>9}",
+                f.psi,
+                f.missing_rate,
+                f.unknown_rate
+                    .map_or_else(|| "-".to_string(), |u| format!("{u:.6}"))
+            );
+        }
+    }
     let _ = writeln!(s, "\n{}", super::CAUTIONS);
     s
 }
@@ -574,6 +634,18 @@ fn to_json(o: &Outcome) -> Value {
         "cautions": super::CAUTIONS,
     });
     v["champion"]["calibration_tests"] = tests_json(&o.champion_tests);
+    if !o.features.is_empty() {
+        v["champion"]["feature_stability"] = json!({
+            "empty_bin_rule": "both shares floored at 1e-4",
+            "features": o.features.iter().map(|(name, f)| json!({
+                "feature": name,
+                "rows": f.rows,
+                "psi": f.psi,
+                "missing_rate": f.missing_rate,
+                "unknown_rate": f.unknown_rate,
+            })).collect::<Vec<_>>(),
+        });
+    }
     if let (Some(name), Some(e), Some(c)) = (&o.challenger_name, &o.challenger, &o.comparison) {
         let paired = |t: &Option<probity_models::compare::PairedTest>, tp: Option<f64>| {
             t.as_ref().map(|t| {

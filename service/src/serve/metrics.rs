@@ -14,6 +14,9 @@ use axum::response::IntoResponse;
 use axum::routing::get;
 use metrics_exporter_prometheus::{Matcher, PrometheusBuilder, PrometheusHandle};
 
+use probity_models::Model;
+
+use crate::serve::feature_metrics::FeatureCounters;
 use crate::serve::registry::LoadedModel;
 
 /// Calls by method, route and gRPC status code; for `ScoreStream`, one per streamed message.
@@ -123,6 +126,7 @@ fn describe() {
     crate::serve::silent::describe();
     crate::serve::compare_metrics::describe();
     crate::serve::calibration_metrics::describe();
+    crate::serve::feature_metrics::describe();
     metrics::describe_counter!(
         REQUESTS,
         "gRPC calls by method, route and status code (ScoreStream: per message)."
@@ -239,13 +243,22 @@ pub fn request(method: &'static str, route: &str, code: tonic::Code, seconds: f6
 }
 
 /// The metric handles of one (route, model, version), registered once.
-struct PredictionSeries {
+pub struct PredictionSeries {
     route: String,
     model: String,
     version: String,
     count: metrics::Counter,
     probability: metrics::Histogram,
     log_odds: metrics::Histogram,
+    /// The per-feature stability counters, when the model file carries training distributions.
+    features: Option<FeatureCounters>,
+}
+
+impl PredictionSeries {
+    /// The per-feature stability counters, when the model file carries training distributions.
+    pub fn features(&self) -> Option<&FeatureCounters> {
+        self.features.as_ref()
+    }
 }
 
 /// Handles by a hash of (route, model, version), so that recording a row needs no label strings and no registry
@@ -259,42 +272,45 @@ fn series_key(route: &str, model: &str, version: &str) -> u64 {
     foldhash::fast::FixedState::with_seed(0).hash_one((route, model, version))
 }
 
-fn prediction_series(route: &str, model: &str, version: &str) -> Option<Arc<PredictionSeries>> {
-    let key = series_key(route, model, version);
-    let same = |s: &PredictionSeries| s.route == route && s.model == model && s.version == version;
+/// The handles of (route, model version), registered on first use; `None` on a hash collision between two
+/// series (never seen), where the caller records without the cache.
+pub fn prediction_series(route: &str, model: &Model) -> Option<Arc<PredictionSeries>> {
+    let (name, version) = (model.name(), model.version());
+    let key = series_key(route, name, version);
+    let same = |s: &PredictionSeries| s.route == route && s.model == name && s.version == version;
     {
         let cache = PREDICTION_SERIES
             .read()
             .unwrap_or_else(std::sync::PoisonError::into_inner);
         if let Some(s) = cache.get(&key) {
-            // A hash collision between two series (never seen) falls back to the uncached path.
             return same(s).then(|| Arc::clone(s));
         }
     }
     let labels = [
         ("route", route.to_string()),
-        ("model", model.to_string()),
+        ("model", name.to_string()),
         ("version", version.to_string()),
     ];
-    let series = Arc::new(PredictionSeries {
-        route: route.to_string(),
-        model: model.to_string(),
-        version: version.to_string(),
-        count: metrics::counter!(PREDICTIONS, &labels),
-        probability: metrics::histogram!(PROBABILITY, &labels),
-        log_odds: metrics::histogram!(LOG_ODDS, &labels),
-    });
-    PREDICTION_SERIES
+    let mut cache = PREDICTION_SERIES
         .write()
-        .unwrap_or_else(std::sync::PoisonError::into_inner)
-        .entry(key)
-        .or_insert_with(|| Arc::clone(&series));
-    Some(series)
+        .unwrap_or_else(std::sync::PoisonError::into_inner);
+    let series = cache.entry(key).or_insert_with(|| {
+        Arc::new(PredictionSeries {
+            route: route.to_string(),
+            model: name.to_string(),
+            version: version.to_string(),
+            count: metrics::counter!(PREDICTIONS, &labels),
+            probability: metrics::histogram!(PROBABILITY, &labels),
+            log_odds: metrics::histogram!(LOG_ODDS, &labels),
+            features: FeatureCounters::new(route, model),
+        })
+    });
+    same(series).then(|| Arc::clone(series))
 }
 
 /// Records one scored row.
-pub fn prediction(route: &str, model: &str, version: &str, probability: f64, log_odds: f64) {
-    if let Some(s) = prediction_series(route, model, version) {
+pub fn prediction(route: &str, model: &Model, probability: f64, log_odds: f64) {
+    if let Some(s) = prediction_series(route, model) {
         s.count.increment(1);
         s.probability.record(probability);
         s.log_odds.record(log_odds);
@@ -302,8 +318,8 @@ pub fn prediction(route: &str, model: &str, version: &str, probability: f64, log
     }
     let labels = [
         ("route", route.to_string()),
-        ("model", model.to_string()),
-        ("version", version.to_string()),
+        ("model", model.name().to_string()),
+        ("version", model.version().to_string()),
     ];
     metrics::counter!(PREDICTIONS, &labels).increment(1);
     metrics::histogram!(PROBABILITY, &labels).record(probability);

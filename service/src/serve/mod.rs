@@ -21,6 +21,7 @@ pub mod connections;
 pub mod conversions;
 pub mod error;
 pub mod explain;
+pub mod feature_metrics;
 pub mod grpc;
 pub mod limits;
 pub mod metrics;

@@ -131,6 +131,15 @@ impl Reloader {
         for (route, _) in &self.routes {
             metrics::route_ready(route, !not_ready.contains(route));
         }
+        // A route's series (per-feature slot counters included) are registered at zero once its model is loaded,
+        // before its first row: a counter that first appears with a value loses, to `rate()` and `increase()`,
+        // every row counted before the first scrape.
+        let snapshot = self.registry.snapshot();
+        for (route, model) in &self.routes {
+            if let Some(loaded) = snapshot.models.get(model) {
+                metrics::prediction_series(route, &loaded.model);
+            }
+        }
         let status = if not_ready.is_empty() {
             ServingStatus::Serving
         } else {

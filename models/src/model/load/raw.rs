@@ -55,6 +55,16 @@ pub(crate) struct RawFeature {
     #[serde(rename = "type")]
     pub kind: RawFeatureType,
     pub categories: Option<Vec<String>>,
+    pub training_distribution: Option<RawTrainingDistribution>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(crate) struct RawTrainingDistribution {
+    pub edges: Option<Vec<f64>>,
+    pub shares: Vec<f64>,
+    pub missing: f64,
+    pub unknown: Option<f64>,
 }
 
 #[derive(Debug, Clone, Copy, Deserialize)]

@@ -1,0 +1,159 @@
+//! Per-feature stability on a live route: every scored row's feature values counted into the slots of the model
+//! file's training distributions (`features[i].training_distribution`), exported as counters that add across
+//! replicas, with the training shares beside them as gauges. The fleet's PSI, missing rate and unknown-category
+//! rate over a window are recording rules on these (`deploy/prometheus/rules.yml`); the formula and the empty-bin
+//! rule are those of [`probity_models::stability::stability`].
+//!
+//! Cardinality, bounded by the model file and the configuration, never by a caller: per (configured route, model
+//! version answering on it), at most [`MAX_MONITORED_FEATURES`] features (the first ones in file order that carry a
+//! training distribution; the others are not counted) and per feature at most
+//! [`probity_models::stability::MAX_DISTRIBUTION_BINS`] value bins plus `missing` and `unknown`: at most
+//! 32 x 34 = 1,088 counter series per route and model version. Label values: the route's configured name, the
+//! model's name and version, the feature's name from the file, and the slot (`0` to `31`, `missing`, `unknown`).
+//!
+//! The handles of a configured route are registered when its model loads (`serve/server.rs`), at zero, so that
+//! Prometheus's `increase()` and `rate()` count every row, and the first slots hit are not lost to the first scrape.
+//!
+//! Cost per scored row: one slot lookup per monitored feature (a binary search over at most 31 edges, or a range
+//! check) and one relaxed atomic increment, through handles registered once per (route, model, version); a batch
+//! counts into a local array first and adds each slot once.
+
+use probity_models::stability::{Slot, TrainingDistribution, MAX_DISTRIBUTION_BINS};
+use probity_models::Model;
+
+/// Rows counted per slot of a feature's training distribution, by route, model, version, feature and slot.
+pub const FEATURE_VALUES: &str = "probity_feature_values_total";
+/// The training share of each slot, by model, version, feature and slot (from the model file).
+pub const FEATURE_TRAINING_SHARE: &str = "probity_feature_training_share";
+
+/// Most features counted per (route, model version): the first ones in file order with a training distribution.
+pub const MAX_MONITORED_FEATURES: usize = 32;
+
+/// The `bin` label of value bin `i` (at most [`MAX_DISTRIBUTION_BINS`]).
+const BIN_LABELS: [&str; MAX_DISTRIBUTION_BINS] = [
+    "0", "1", "2", "3", "4", "5", "6", "7", "8", "9", "10", "11", "12", "13", "14", "15", "16",
+    "17", "18", "19", "20", "21", "22", "23", "24", "25", "26", "27", "28", "29", "30", "31",
+];
+
+/// The `bin` label of a slot.
+pub fn slot_label(slot: Slot) -> &'static str {
+    match slot {
+        Slot::Bin(i) => BIN_LABELS.get(i).copied().unwrap_or("other"),
+        Slot::Missing => "missing",
+        Slot::Unknown => "unknown",
+    }
+}
+
+/// The HELP texts.
+pub fn describe() {
+    metrics::describe_counter!(
+        FEATURE_VALUES,
+        "Scored rows by the slot of each monitored feature's value in its training distribution (bin, missing, unknown)."
+    );
+    metrics::describe_gauge!(
+        FEATURE_TRAINING_SHARE,
+        "Share of the training rows in each slot of a feature's training distribution (from the model file)."
+    );
+}
+
+/// One monitored feature: its column, distribution and one counter per slot.
+struct Monitored {
+    column: usize,
+    distribution: TrainingDistribution,
+    counters: Vec<metrics::Counter>,
+    /// Where its slots start in a [`Tally`].
+    offset: usize,
+}
+
+/// The counters of one (route, model, version).
+pub struct FeatureCounters {
+    features: Vec<Monitored>,
+    slots: usize,
+}
+
+/// Counts of a batch, added to the counters once ([`FeatureCounters::add`]).
+pub struct Tally(Vec<u64>);
+
+impl FeatureCounters {
+    /// Registers the counters of `model` on `route` (all at zero, so a slot never hit still has a series for
+    /// `rate()`), and sets the training-share gauges. `None` when the model has no training distribution.
+    pub fn new(route: &str, model: &Model) -> Option<FeatureCounters> {
+        let mut features = Vec::new();
+        let mut offset = 0;
+        for (column, distribution) in model.training_distributions().take(MAX_MONITORED_FEATURES) {
+            let name = model
+                .schema()
+                .feature(column)
+                .map(|f| f.name.clone())
+                .unwrap_or_default();
+            let expected = distribution.expected();
+            let counters = (0..distribution.slots())
+                .map(|s| {
+                    let bin = slot_label(distribution.slot(s));
+                    metrics::gauge!(FEATURE_TRAINING_SHARE,
+                        "model" => model.name().to_string(), "version" => model.version().to_string(),
+                        "feature" => name.clone(), "bin" => bin)
+                    .set(expected[s]);
+                    metrics::counter!(FEATURE_VALUES,
+                        "route" => route.to_string(), "model" => model.name().to_string(),
+                        "version" => model.version().to_string(), "feature" => name.clone(), "bin" => bin)
+                })
+                .collect::<Vec<_>>();
+            // Registered at zero: the exposition lists it before the first row arrives.
+            for c in &counters {
+                c.increment(0);
+            }
+            features.push(Monitored {
+                column,
+                distribution: distribution.clone(),
+                counters,
+                offset,
+            });
+            offset += distribution.slots();
+        }
+        (!features.is_empty()).then_some(FeatureCounters {
+            features,
+            slots: offset,
+        })
+    }
+
+    /// Counts one row (its dense values, in the model's feature order).
+    pub fn count(&self, row: &[f64]) {
+        for m in &self.features {
+            if let Some(&v) = row.get(m.column) {
+                if let Some(c) = m.counters.get(m.distribution.slot_of(v)) {
+                    c.increment(1);
+                }
+            }
+        }
+    }
+
+    /// An empty tally for a batch.
+    pub fn tally(&self) -> Tally {
+        Tally(vec![0; self.slots])
+    }
+
+    /// Counts one row of a batch into `tally`.
+    pub fn count_into(&self, tally: &mut Tally, row: &[f64]) {
+        for m in &self.features {
+            if let Some(&v) = row.get(m.column) {
+                if let Some(n) = tally.0.get_mut(m.offset + m.distribution.slot_of(v)) {
+                    *n += 1;
+                }
+            }
+        }
+    }
+
+    /// Adds a batch's tally to the counters.
+    pub fn add(&self, tally: &Tally) {
+        for m in &self.features {
+            for (s, c) in m.counters.iter().enumerate() {
+                if let Some(&n) = tally.0.get(m.offset + s) {
+                    if n > 0 {
+                        c.increment(n);
+                    }
+                }
+            }
+        }
+    }
+}
