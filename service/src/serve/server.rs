@@ -136,7 +136,7 @@ impl Reloader {
         // every row counted before the first scrape.
         let snapshot = self.registry.snapshot();
         for (route, model) in &self.routes {
-            if let Some(loaded) = snapshot.models.get(model) {
+            if let Some(loaded) = snapshot.find(model) {
                 metrics::prediction_series(route, &loaded.model);
             }
         }
