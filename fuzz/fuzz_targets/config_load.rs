@@ -60,7 +60,7 @@ fuzz_target!(|data: &[u8]| {
             assert!(config.limits.max_concurrent_requests > 0);
             for (name, route) in &config.routes {
                 assert_eq!(&route.name, name);
-                assert!(!route.model.is_empty(), "route {name} without a model");
+                assert!(!route.model.name.is_empty(), "route {name} without a model");
                 let mut live = 0.0;
                 for c in &route.challengers.list {
                     if let ChallengerMode::Live { share, .. } = c.mode {
