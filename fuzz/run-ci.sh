@@ -7,13 +7,13 @@
 # panics, overflow checks and debug assertions, which stay on. The instrumented build is kept in FUZZ_TARGET_DIR
 # (default ~/.cache/probity-fuzz-target) so that a later run on the same machine only rebuilds what changed.
 #
-#   fuzz/run-ci.sh                      # 3 targets x 60 s
+#   fuzz/run-ci.sh                      # 5 targets x 60 s
 #   FUZZ_SECONDS=600 fuzz/run-ci.sh     # the long form
 set -euo pipefail
 cd "$(dirname "$0")"
 
 seconds=${FUZZ_SECONDS:-60}
-targets=(${FUZZ_TARGETS:-model_load request_decode csv_cell})
+targets=(${FUZZ_TARGETS:-model_load request_decode csv_cell config_load outcome_path})
 target_dir=${FUZZ_TARGET_DIR:-$HOME/.cache/probity-fuzz-target}
 export RUSTC_BOOTSTRAP=1
 
