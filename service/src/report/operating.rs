@@ -222,7 +222,7 @@ fn opt(v: Option<f64>) -> String {
 fn point_row(s: &mut String, what: &str, pairs: usize, p: &Point) {
     let _ = writeln!(
         s,
-        "  {what:<42} {pairs:>7} {:>9.4} {:>9.4} {:>9} {:>7} {:>10}",
+        "  {what:<42} {pairs:>7} {:>9.4} {:>9.4} {:>10} {:>7} {:>10}",
         p.approval_rate,
         p.decline_rate,
         opt(p.precision),
@@ -243,7 +243,7 @@ pub fn render(s: &mut String, rules: &[ServedRule]) {
     );
     let _ = writeln!(
         s,
-        "  {:<42} {:>7} {:>9} {:>9} {:>9} {:>7} {:>10}",
+        "  {:<42} {:>7} {:>9} {:>9} {:>10} {:>7} {:>10}",
         "rule", "pairs", "approved", "declined", "precision", "recall", "cost/case"
     );
     for r in rules {
