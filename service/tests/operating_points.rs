@@ -43,8 +43,7 @@ fn f64s(v: &Value) -> Vec<f64> {
 }
 
 fn num(v: &Value) -> f64 {
-    v.as_f64()
-        .unwrap_or_else(|| panic!("not a number: {v}"))
+    v.as_f64().unwrap_or_else(|| panic!("not a number: {v}"))
 }
 
 fn close(actual: f64, expected: f64, what: &str) {
@@ -77,8 +76,8 @@ fn write_store(dir: &std::path::Path, rows: &Rows) {
             reference: None,
         })
         .unwrap();
-    let record = |id: String, route: &str, time_ms: i64, i: usize, decision: String| {
-        PredictionRecord {
+    let record =
+        |id: String, route: &str, time_ms: i64, i: usize, decision: String| PredictionRecord {
             prediction_id: id,
             route: route.into(),
             model: "m".into(),
@@ -95,8 +94,7 @@ fn write_store(dir: &std::path::Path, rows: &Rows) {
                 prior: Some(0.5),
                 decision,
             },
-        }
-    };
+        };
     let n = rows.p.len();
     let costs = decision_words(&DecisionRule::Costs {
         false_positive: 3.0,
@@ -169,8 +167,13 @@ fn hand_counts(rows: &Rows, t: f64) -> [usize; 4] {
 }
 
 fn counts_of(point: &Value) -> [usize; 4] {
-    ["true_positive", "false_positive", "true_negative", "false_negative"]
-        .map(|k| point[k].as_u64().unwrap() as usize)
+    [
+        "true_positive",
+        "false_positive",
+        "true_negative",
+        "false_negative",
+    ]
+    .map(|k| point[k].as_u64().unwrap() as usize)
 }
 
 /// The fixture's scikit-learn entry at threshold `t`: (tp, fp, tn, fn), precision, recall.
@@ -270,7 +273,9 @@ fn operating_points_per_served_rule_equal_hand_counts_and_scikit_learn() {
 
     // The cost rule: threshold 3 / (3 + 7) = 0.3 (Elkan 2001); expected cost (3 FP + 7 FN) / n from scikit-learn's
     // confusion matrix at 0.3.
-    let costs = section(&doc, "costs")["operating_points"].as_array().unwrap();
+    let costs = section(&doc, "costs")["operating_points"]
+        .as_array()
+        .unwrap();
     assert_eq!(costs.len(), 1);
     assert_eq!(costs[0]["rule"], "costs false_positive=3 false_negative=7");
     assert_eq!(num(&costs[0]["costs"]["false_positive"]), 3.0);
@@ -287,7 +292,9 @@ fn operating_points_per_served_rule_equal_hand_counts_and_scikit_learn() {
     // Bands at 0.1, 0.3, 0.5, 0.7, 0.9: each band's cases and positives are differences of scikit-learn's counts at
     // its edges; declining a band and every band above is the point at its lower edge; declining from the first
     // declines everything.
-    let bands = section(&doc, "bands")["operating_points"].as_array().unwrap();
+    let bands = section(&doc, "bands")["operating_points"]
+        .as_array()
+        .unwrap();
     assert_eq!(bands.len(), 1);
     let b = bands[0]["bands"].as_array().unwrap();
     assert_eq!(b.len(), 6);
@@ -362,8 +369,6 @@ fn operating_points_per_served_rule_equal_hand_counts_and_scikit_learn() {
         )
     );
     assert!(line("threshold 0.5").starts_with(&format!("threshold 0.5 {n} ")));
-    assert!(line("costs false_positive=3").ends_with(&format!(
-        "{:.6}",
-        num(&costs[0]["point"]["expected_cost"])
-    )));
+    assert!(line("costs false_positive=3")
+        .ends_with(&format!("{:.6}", num(&costs[0]["point"]["expected_cost"]))));
 }

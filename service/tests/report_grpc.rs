@@ -454,15 +454,24 @@ async fn outcomes_through_the_service_give_the_reference_report_and_matching_sum
         g(&at["recall"]),
         "recall vs sklearn.metrics.recall_score",
     );
-    assert_eq!(point.expected_cost, None, "a threshold rule carries no costs");
+    assert_eq!(
+        point.expected_cost, None,
+        "a threshold rule carries no costs"
+    );
     assert_eq!(bc["operating_points"][0]["rule"], "threshold 0.3");
     // The `mature` route's 30 pairs were settled as negatives at maturity: every decline there is a false
     // positive (counted by hand), and recall is undefined without positives.
     let points = typed("mature");
     assert_eq!(points.len(), 1);
     let point = points[0].point.clone().unwrap();
-    let declined = h[..30].iter().filter(|&&x| 1.0 / (1.0 + (-x).exp()) > 0.5).count();
-    assert_eq!((point.true_positive, point.false_positive), (0, declined as u64));
+    let declined = h[..30]
+        .iter()
+        .filter(|&&x| 1.0 / (1.0 + (-x).exp()) > 0.5)
+        .count();
+    assert_eq!(
+        (point.true_positive, point.false_positive),
+        (0, declined as u64)
+    );
     assert_eq!(point.recall, None);
     assert!(typed("drift").is_empty(), "no rule, no operating points");
 

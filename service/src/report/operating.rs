@@ -298,10 +298,7 @@ mod tests {
                     .to_vec(),
             },
         ] {
-            assert_eq!(
-                parse_decision_words(&decision_words(&rule)),
-                Some(rule)
-            );
+            assert_eq!(parse_decision_words(&decision_words(&rule)), Some(rule));
         }
         assert_eq!(parse_decision_words(""), None);
         assert_eq!(parse_decision_words("threshold 1.5"), None);
