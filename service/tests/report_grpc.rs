@@ -433,7 +433,7 @@ async fn outcomes_through_the_service_give_the_reference_report_and_matching_sum
         .iter()
         .find(|t| t["threshold"] == 0.3)
         .unwrap();
-    let point = points[0].point.clone().unwrap();
+    let point = points[0].point.unwrap();
     assert_eq!(
         [
             point.true_positive,
@@ -463,7 +463,7 @@ async fn outcomes_through_the_service_give_the_reference_report_and_matching_sum
     // positive (counted by hand), and recall is undefined without positives.
     let points = typed("mature");
     assert_eq!(points.len(), 1);
-    let point = points[0].point.clone().unwrap();
+    let point = points[0].point.unwrap();
     let declined = h[..30]
         .iter()
         .filter(|&&x| 1.0 / (1.0 + (-x).exp()) > 0.5)
