@@ -134,14 +134,14 @@ pub fn compute(rows: &[LoggedPrediction], notes: &mut Vec<String>) -> Vec<Served
     }
     if without > 0 && !groups.is_empty() {
         notes.push(format!(
-            "operating points: {without} predictions were served without a decision rule"
+            "operating points: predictions served without a decision rule, left out: {without}"
         ));
     }
     let mut out = Vec::new();
     for (words, members) in groups {
         let Some(rule) = parse_decision_words(words) else {
             notes.push(format!(
-                "operating points: the stored decision rule `{words}` of {} predictions is not readable",
+                "operating points: the stored decision rule `{words}` is not readable ({} predictions left out)",
                 members.len()
             ));
             continue;
@@ -175,7 +175,7 @@ pub fn compute(rows: &[LoggedPrediction], notes: &mut Vec<String>) -> Vec<Served
         };
         if pairs.is_empty() {
             notes.push(format!(
-                "operating points ({words}): none of its {} predictions has an outcome yet",
+                "operating points ({words}): no outcome yet among its predictions ({})",
                 members.len()
             ));
             out.push(entry);
@@ -302,5 +302,79 @@ mod tests {
         }
         assert_eq!(parse_decision_words(""), None);
         assert_eq!(parse_decision_words("threshold 1.5"), None);
+    }
+
+    fn row(
+        time_ms: i64,
+        p: f64,
+        label: Option<bool>,
+        decision: &str,
+    ) -> crate::store::LoggedPrediction {
+        crate::store::LoggedPrediction {
+            prediction_id: format!("p{time_ms}"),
+            route: "r".into(),
+            model: "m".into(),
+            version: "1".into(),
+            role: "champion".into(),
+            time_ms,
+            adjusted_log_odds: (p / (1.0 - p)).ln(),
+            probability: p,
+            label,
+            by_maturity: false,
+            corrected: false,
+            served_prior: None,
+            outcome_received_ms: None,
+            served_decision: decision.into(),
+        }
+    }
+
+    #[test]
+    fn rules_are_kept_apart_and_what_cannot_be_computed_is_noted() {
+        // Hand-computed: under `threshold 0.5`, 0.6 (positive) and 0.9 (negative) are declined, 0.2 (negative)
+        // approved: precision 1/2, recall 1, decline rate 2/3. The row without an outcome counts as a prediction
+        // only; the rule served later with no outcome yet gets an entry without a point; a row without a rule and
+        // one with unreadable words are noted.
+        let rows = vec![
+            row(1, 0.6, Some(true), "threshold 0.5"),
+            row(2, 0.9, Some(false), "threshold 0.5"),
+            row(3, 0.2, Some(false), "threshold 0.5"),
+            row(4, 0.7, None, "threshold 0.5"),
+            row(5, 0.7, None, "threshold 0.8"),
+            row(6, 0.7, Some(true), ""),
+            row(7, 0.7, Some(true), "threshold 2"),
+        ];
+        let mut notes = Vec::new();
+        let rules = super::compute(&rows, &mut notes);
+        assert_eq!(rules.len(), 2);
+        assert_eq!(
+            (
+                rules[0].predictions,
+                rules[0].with_outcome,
+                rules[0].positives
+            ),
+            (4, 3, 1)
+        );
+        assert_eq!((rules[0].first_ms, rules[0].last_ms), (1, 4));
+        let p = rules[0].point.as_ref().unwrap();
+        assert_eq!(
+            (
+                p.true_positive,
+                p.false_positive,
+                p.true_negative,
+                p.false_negative
+            ),
+            (1, 1, 1, 0)
+        );
+        assert_eq!((p.precision, p.recall), (Some(0.5), Some(1.0)));
+        assert_eq!(p.decline_rate, 2.0 / 3.0);
+        assert_eq!(p.expected_cost, None);
+        assert_eq!(rules[1].rule, "threshold 0.8");
+        assert!(rules[1].point.is_none());
+        assert_eq!(notes.len(), 3, "{notes:?}");
+        assert!(notes[0].contains("predictions served without a decision rule, left out: 1"));
+        assert!(notes.iter().any(|n| n.contains("`threshold 2`")));
+        assert!(notes
+            .iter()
+            .any(|n| n.contains("threshold 0.8") && n.contains("no outcome yet")));
     }
 }
