@@ -93,7 +93,7 @@ CONFIG = [
     ("routes.<route>.model", "The champion: NAME, or NAME@VERSION to pin a version (a model name is pinned in every "
                              "reference of the configuration or in none)."),
     ("routes.<route>.target_base_rate", "Live base rate the probabilities are corrected to."),
-    ("routes.<route>.decision.threshold", "Decide positive at or above this probability."),
+    ("routes.<route>.decision.threshold", "Decide positive above this probability (at it, negative)."),
     ("routes.<route>.decision.false_positive", "Cost of a false positive (with `false_negative`: the "
                                                "cost-minimising threshold)."),
     ("routes.<route>.decision.false_negative", "Cost of a false negative."),

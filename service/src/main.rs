@@ -38,7 +38,8 @@ enum Command {
     /// The report's figures on a labelled CSV file, offline: calibration, log-loss, Brier, AUC, KS, gains, the
     /// operating point, and a paired comparison with a challenger (table, JSON, SVG).
     Evaluate(cli::evaluate::EvaluateArgs),
-    /// Report from a prediction store: calibration, log-loss, Brier, AUC, KS, gains, PSI (table, JSON, SVG).
+    /// Report from a prediction store: calibration, log-loss, Brier, AUC, KS, gains, PSI, operating points at the
+    /// served decision rules (table, JSON, SVG).
     Report(cli::report::ReportArgs),
     /// Champion against challenger on one route, from a prediction store (table, JSON, SVG).
     Compare(cli::compare::CompareArgs),

@@ -142,7 +142,9 @@ async fn outcomes_through_the_service_give_the_reference_report_and_matching_sum
              [limits]\nmax_batch_rows = 1000\n\
              [store]\ndirectory = {:?}\nflush_interval = \"5ms\"\nsweep_interval = \"20ms\"\noutcome_hold = \"1h\"\n\
              [store.maturity]\nmature = \"1ms\"\n\
-             [routes.bc]\nmodel = \"identity\"\n[routes.drift]\nmodel = \"identity\"\n[routes.mature]\nmodel = \"identity\"\n",
+             [routes.bc]\nmodel = \"identity\"\n[routes.bc.decision]\nthreshold = 0.3\n\
+             [routes.drift]\nmodel = \"identity\"\n\
+             [routes.mature]\nmodel = \"identity\"\n[routes.mature.decision]\nthreshold = 0.5\n",
             models.path().display().to_string(),
             data.path().display().to_string()
         ),
@@ -407,6 +409,71 @@ async fn outcomes_through_the_service_give_the_reference_report_and_matching_sum
         ),
         (Some(30), Some(0))
     );
+
+    // Operating points, typed in the Report RPC, at the rule the route served under (threshold 0.3 from the
+    // configuration, kept with each prediction): counts, precision and recall equal scikit-learn's
+    // (sklearn.metrics.confusion_matrix, precision_score, recall_score at 0.3 in the fixture).
+    let typed = |route: &str| {
+        report
+            .series
+            .iter()
+            .find(|s| s.route == route)
+            .unwrap()
+            .operating_points
+            .clone()
+    };
+    let points = typed("bc");
+    assert_eq!(points.len(), 1);
+    assert_eq!(points[0].rule, "threshold 0.3");
+    assert_eq!(points[0].with_outcome, n as u64);
+    assert_eq!(points[0].false_positive_cost, None);
+    let at = fix["exact"]["thresholds"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|t| t["threshold"] == 0.3)
+        .unwrap();
+    let point = points[0].point.unwrap();
+    assert_eq!(
+        [
+            point.true_positive,
+            point.false_positive,
+            point.true_negative,
+            point.false_negative
+        ],
+        ["tp", "fp", "tn", "fn"].map(|k| at[k].as_u64().unwrap()),
+        "sklearn.metrics.confusion_matrix at 0.3"
+    );
+    close(
+        point.precision.unwrap(),
+        g(&at["precision"]),
+        "precision vs sklearn.metrics.precision_score",
+    );
+    close(
+        point.recall.unwrap(),
+        g(&at["recall"]),
+        "recall vs sklearn.metrics.recall_score",
+    );
+    assert_eq!(
+        point.expected_cost, None,
+        "a threshold rule carries no costs"
+    );
+    assert_eq!(bc["operating_points"][0]["rule"], "threshold 0.3");
+    // The `mature` route's 30 pairs were settled as negatives at maturity: every decline there is a false
+    // positive (counted by hand), and recall is undefined without positives.
+    let points = typed("mature");
+    assert_eq!(points.len(), 1);
+    let point = points[0].point.unwrap();
+    let declined = h[..30]
+        .iter()
+        .filter(|&&x| 1.0 / (1.0 + (-x).exp()) > 0.5)
+        .count();
+    assert_eq!(
+        (point.true_positive, point.false_positive),
+        (0, declined as u64)
+    );
+    assert_eq!(point.recall, None);
+    assert!(typed("drift").is_empty(), "no rule, no operating points");
 
     // The running sums on /metrics reproduce the report (any window: here, all of it).
     let text = http_get(server.metrics_addr(), "/metrics").await;

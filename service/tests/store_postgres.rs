@@ -149,6 +149,10 @@ fn the_same_operations_give_the_same_answers_and_rows_on_sqlite_and_postgres() {
     }
     assert_eq!(rows(&mut lite), rows(&mut pg));
     assert_eq!(lite.outcome_counts().unwrap(), pg.outcome_counts().unwrap());
+    // Both read back the decision rule each row was served under (reports group operating points by it).
+    assert!(rows(&mut pg)
+        .iter()
+        .all(|r| r.served_decision == "threshold 0.5"));
     let statuses: Vec<_> = rows(&mut pg)
         .iter()
         .filter(|r| r.label.is_some())

@@ -39,7 +39,7 @@ def server(tmp_path_factory):
         f"[models]\ndirectory = {json.dumps(str(models))}\nwatch = false\n"
         "[limits]\nmax_batch_rows = 1000\n"
         f'[store]\ndirectory = {json.dumps(str(work / "log"))}\nflush_interval = "5ms"\n'
-        '[routes.bc]\nmodel = "breast_cancer_champion"\n'
+        '[routes.bc]\nmodel = "breast_cancer_champion"\n[routes.bc.decision]\nthreshold = 0.3\n'
     )
     proc = subprocess.Popen(
         [binary(), "serve", "--config", str(config), "--log-format", "json"], stderr=subprocess.PIPE, text=True
@@ -108,6 +108,20 @@ def test_score_outcomes_and_report_match_scikit_learn(server):
         assert abs(s.roc_auc - expected["auc"]) <= 1e-9
         assert abs(s.brier - expected["brier"]) <= 1e-9
         assert report.full["series"][0]["route"] == "bc"
+        # The operating point at the route's threshold 0.3 on the matured outcomes equals scikit-learn 1.9.1
+        # sklearn.metrics.confusion_matrix, precision_score and recall_score at 0.3 (gen_evaluate.py, "threshold").
+        at = json.loads((FIXTURE / "expected.json").read_text())["threshold"]
+        (rule,) = s.operating_points
+        assert rule.rule == "threshold 0.3"
+        assert (rule.predictions, rule.with_outcome) == (len(ids) + 1, len(ids))
+        p = rule.point
+        assert (p.true_positive, p.false_positive, p.true_negative, p.false_negative) == (
+            at["tp"], at["fp"], at["tn"], at["fn"]
+        )
+        assert abs(p.precision - at["precision"]) <= 1e-12
+        assert abs(p.recall - at["recall"]) <= 1e-12
+        assert abs(p.decline_rate - at["decline_rate"]) <= 1e-12
+        assert p.expected_cost is None and rule.false_positive_cost is None
 
 
 def test_bad_feature_type_is_refused_before_sending(server):

@@ -40,6 +40,7 @@ fn simulate(served: f64, seed: u64) -> Vec<LoggedPrediction> {
                 by_maturity: false,
                 corrected: false,
                 served_prior: None,
+                served_decision: String::new(),
                 outcome_received_ms: Some(i as i64),
             }
         })

@@ -632,6 +632,7 @@ mod tests {
             by_maturity: false,
             corrected: false,
             served_prior: None,
+            served_decision: String::new(),
             outcome_received_ms: received,
         }
     }

@@ -17,10 +17,14 @@
 //! target base rate, and a route without one is taken to have served under the model's own base rate (recorded in
 //! the store's model version facts).
 //!
+//! Each section also has the operating points (approval and decline rates, precision, recall, expected cost) at
+//! each decision rule its predictions were served under, as the store kept it with them ([`operating`]).
+//!
 //! [`text`] renders the terminal table, [`svg`] the pictures; the JSON is this module's types through serde.
 
 pub mod calibration_tests;
 pub mod immature;
+pub mod operating;
 pub mod svg;
 pub mod text;
 
@@ -132,6 +136,9 @@ pub struct SeriesReport {
     /// Estimated eventual figures of the predictions younger than the horizon, beside the matured ones (see
     /// [`immature`]), or why they are unknown.
     pub immature_window: immature::ImmatureWindow,
+    /// The operating points on the pairs with an outcome at each distinct decision rule the predictions were served
+    /// under, in the order first served (see [`operating`]); empty when the route had no rule.
+    pub operating_points: Vec<operating::ServedRule>,
 }
 
 /// Murphy's decomposition with the two within-bin terms.
@@ -562,6 +569,7 @@ pub fn section(
     let calibration_tests = calibration_tests::compute(&p, &h, &y, &mut notes);
     let eventual_positive_rate = immature::compute(rows, &mut notes);
     let immature_window = immature::window(rows, bins, horizon_ms);
+    let operating_points = operating::compute(rows, &mut notes);
     SeriesReport {
         route,
         model,
@@ -593,6 +601,7 @@ pub fn section(
         calibration_tests,
         eventual_positive_rate,
         immature_window,
+        operating_points,
     }
 }
 

@@ -95,6 +95,7 @@ fn section(s: &mut String, r: &SeriesReport) {
     super::calibration_tests::render(s, &r.calibration_tests);
     super::immature::render(s, &r.eventual_positive_rate);
     super::immature::render_window(s, &r.immature_window);
+    super::operating::render(s, &r.operating_points);
     if !r.gains.is_empty() {
         let _ = writeln!(
             s,

@@ -186,6 +186,50 @@ fn monitor_fields(s: &crate::report::SeriesReport) -> pb::ReportSeries {
     }
 }
 
+/// An operating point as its wire message.
+fn point_message(p: &crate::report::operating::Point) -> pb::OperatingPoint {
+    pb::OperatingPoint {
+        threshold: p.threshold,
+        true_positive: p.true_positive as u64,
+        false_positive: p.false_positive as u64,
+        true_negative: p.true_negative as u64,
+        false_negative: p.false_negative as u64,
+        approval_rate: p.approval_rate,
+        decline_rate: p.decline_rate,
+        precision: p.precision,
+        recall: p.recall,
+        expected_cost: p.expected_cost,
+    }
+}
+
+/// The operating points of one served decision rule as its wire message.
+fn served_rule(r: &crate::report::operating::ServedRule) -> pb::ServedRule {
+    pb::ServedRule {
+        rule: r.rule.clone(),
+        predictions: r.predictions as u64,
+        with_outcome: r.with_outcome as u64,
+        positives: r.positives as u64,
+        first_unix_ms: r.first_ms,
+        last_unix_ms: r.last_ms,
+        false_positive_cost: r.costs.map(|c| c.false_positive),
+        false_negative_cost: r.costs.map(|c| c.false_negative),
+        point: r.point.as_ref().map(point_message),
+        bands: r
+            .bands
+            .iter()
+            .map(|b| pb::ScoreBand {
+                label: b.label.clone(),
+                lower: b.lower,
+                upper: b.upper,
+                count: b.count as u64,
+                positives: b.positives as u64,
+                positive_rate: b.positive_rate,
+                declining_from_here: Some(point_message(&b.declining_from_here)),
+            })
+            .collect(),
+    }
+}
+
 /// The report as its wire message.
 pub fn report_response(report: &Report) -> pb::ReportResponse {
     let series = report
@@ -213,6 +257,7 @@ pub fn report_response(report: &Report) -> pb::ReportResponse {
             psi: s.psi.as_ref().map(|p| p.value),
             base_rate_estimate: s.base_rate_estimate,
             configured_base_rate: s.configured_base_rate,
+            operating_points: s.operating_points.iter().map(served_rule).collect(),
             ..monitor_fields(s)
         })
         .collect();

@@ -95,6 +95,42 @@ pub fn decision_words(rule: &probity_models::DecisionRule) -> String {
     }
 }
 
+/// The decision rule of [`decision_words`]'s words, or `None` when they are empty or not in its form (a band label
+/// holding a comma splits into two labels; a rule whose label count then disagrees with its edges is not read).
+pub fn parse_decision_words(words: &str) -> Option<probity_models::DecisionRule> {
+    use probity_models::DecisionRule;
+    let (kind, rest) = words.split_once(' ')?;
+    let rule = match kind {
+        "threshold" => DecisionRule::Threshold {
+            threshold: rest.parse().ok()?,
+        },
+        "costs" => {
+            let (a, b) = rest.split_once(' ')?;
+            DecisionRule::Costs {
+                false_positive: a.strip_prefix("false_positive=")?.parse().ok()?,
+                false_negative: b.strip_prefix("false_negative=")?.parse().ok()?,
+            }
+        }
+        "bands" => {
+            let (edges, labels) = rest.split_once(' ')?;
+            let edges = if edges.is_empty() {
+                Vec::new()
+            } else {
+                edges
+                    .split(',')
+                    .map(|e| e.parse().ok())
+                    .collect::<Option<Vec<f64>>>()?
+            };
+            DecisionRule::Bands {
+                edges,
+                labels: labels.split(',').map(str::to_string).collect(),
+            }
+        }
+        _ => return None,
+    };
+    rule.validate().is_ok().then_some(rule)
+}
+
 /// What the log keeps about a model version, so that a report needs nothing but the log file.
 #[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct ModelVersionInfo {
@@ -260,6 +296,9 @@ pub struct LoggedPrediction {
     pub corrected: bool,
     /// The base rate its probability is calibrated to, when the log kept it ([`Served::prior`]).
     pub served_prior: Option<f64>,
+    /// The decision rule it was served under in the words of [`decision_words`] ([`Served::decision`]); empty when
+    /// the route had none or the row was logged before the log kept it.
+    pub served_decision: String,
     /// When the latest label was received (ms), if the outcome is known.
     pub outcome_received_ms: Option<i64>,
 }

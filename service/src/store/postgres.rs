@@ -917,7 +917,8 @@ impl Store for PgStore {
         self.transact("report query", |tx, _| {
             let rows = tx.query(
                 "SELECT p.route, p.model, p.version, p.role, p.time_ms, p.adjusted_log_odds, p.probability,
-                        o.label, o.source, o.revision, p.prediction_id, p.served_prior, o.received_ms
+                        o.label, o.source, o.revision, p.prediction_id, p.served_prior, o.received_ms,
+                        p.decision
                  FROM predictions p
                  LEFT JOIN outcomes o ON o.prediction_id = p.prediction_id AND o.state = $6
                  WHERE ($1::int8 IS NULL OR p.time_ms >= $1) AND ($2::int8 IS NULL OR p.time_ms < $2)
@@ -952,6 +953,7 @@ impl Store for PgStore {
                         corrected: revision.unwrap_or(0) > 0,
                         served_prior: r.get(11),
                         outcome_received_ms: r.get(12),
+                        served_decision: r.get(13),
                     }
                 })
                 .collect())

@@ -11,12 +11,26 @@ Stubs are generated from the repository's proto/ when the package is built (see 
 
 from probity_client.client import (
     Client,
+    OperatingPoint,
     Outcome,
     OutcomeResult,
     Report,
     ReportSeries,
     Score,
+    ScoreBand,
+    ServedRule,
     Warning,
 )
 
-__all__ = ["Client", "Outcome", "OutcomeResult", "Report", "ReportSeries", "Score", "Warning"]
+__all__ = [
+    "Client",
+    "OperatingPoint",
+    "Outcome",
+    "OutcomeResult",
+    "Report",
+    "ReportSeries",
+    "Score",
+    "ScoreBand",
+    "ServedRule",
+    "Warning",
+]

@@ -71,6 +71,50 @@ class OutcomeResult:
 
 
 @dataclass(frozen=True)
+class OperatingPoint:
+    """Approvals and declines at one probability threshold (declined when the probability is above it)."""
+
+    threshold: float
+    true_positive: int
+    false_positive: int
+    true_negative: int
+    false_negative: int
+    approval_rate: float
+    decline_rate: float
+    precision: Optional[float]
+    recall: Optional[float]
+    expected_cost: Optional[float]
+
+
+@dataclass(frozen=True)
+class ScoreBand:
+    """One band of a bands rule, and the operating point of declining it and every band above."""
+
+    label: str
+    lower: float
+    upper: float
+    count: int
+    positives: int
+    positive_rate: Optional[float]
+    declining_from_here: OperatingPoint
+
+
+@dataclass(frozen=True)
+class ServedRule:
+    """The predictions of a series served under one decision rule (in words, e.g. `threshold 0.5`), with the
+    operating point at its threshold (threshold and cost rules) or its bands, on the pairs with an outcome."""
+
+    rule: str
+    predictions: int
+    with_outcome: int
+    positives: int
+    false_positive_cost: Optional[float]
+    false_negative_cost: Optional[float]
+    point: Optional[OperatingPoint]
+    bands: tuple[ScoreBand, ...]
+
+
+@dataclass(frozen=True)
 class ReportSeries:
     """The headline figures of one route, model, version and role (None where the report could not compute one)."""
 
@@ -88,6 +132,8 @@ class ReportSeries:
     ece: Optional[float]
     observed_base_rate: Optional[float]
     predicted_base_rate: Optional[float]
+    # One entry per decision rule the series' predictions were served under, in the order first served.
+    operating_points: tuple[ServedRule, ...] = ()
 
 
 @dataclass(frozen=True)
@@ -102,6 +148,45 @@ class Report:
 
 def _opt(msg, name: str) -> Optional[float]:
     return getattr(msg, name) if msg.HasField(name) else None
+
+
+def _point(p) -> OperatingPoint:
+    return OperatingPoint(
+        threshold=p.threshold,
+        true_positive=p.true_positive,
+        false_positive=p.false_positive,
+        true_negative=p.true_negative,
+        false_negative=p.false_negative,
+        approval_rate=p.approval_rate,
+        decline_rate=p.decline_rate,
+        precision=_opt(p, "precision"),
+        recall=_opt(p, "recall"),
+        expected_cost=_opt(p, "expected_cost"),
+    )
+
+
+def _served_rule(r) -> ServedRule:
+    return ServedRule(
+        rule=r.rule,
+        predictions=r.predictions,
+        with_outcome=r.with_outcome,
+        positives=r.positives,
+        false_positive_cost=_opt(r, "false_positive_cost"),
+        false_negative_cost=_opt(r, "false_negative_cost"),
+        point=_point(r.point) if r.HasField("point") else None,
+        bands=tuple(
+            ScoreBand(
+                label=b.label,
+                lower=b.lower,
+                upper=b.upper,
+                count=b.count,
+                positives=b.positives,
+                positive_rate=_opt(b, "positive_rate"),
+                declining_from_here=_point(b.declining_from_here),
+            )
+            for b in r.bands
+        ),
+    )
 
 
 def _row(features: Mapping[str, FeatureValue], prediction_id: str, subject_key: str) -> scoring_pb2.Row:
@@ -243,6 +328,7 @@ class Client:
                     ece=_opt(s, "ece"),
                     observed_base_rate=_opt(s, "observed_base_rate"),
                     predicted_base_rate=_opt(s, "predicted_base_rate"),
+                    operating_points=tuple(_served_rule(r) for r in s.operating_points),
                 )
                 for s in r.series
             ),
