@@ -824,9 +824,26 @@ mod fleet {
             logged.len(),
             lost.len()
         );
-        // Lost: what the killed replica had queued, and the batches in flight when the sessions were cut (dropped and
-        // counted as write_error); their outcomes stay held (checked above).
-        assert!(lost.len() <= 8 * PER_BATCH, "lost {}", lost.len());
+        // Lost: what the killed replica had queued, and what a writer held when the sessions were cut (dropped and
+        // counted as write_error); their outcomes stay held (checked above). How much a writer holds depends on how
+        // far it lags behind scoring, which a loaded machine stretches, so the check is where the losses come from,
+        // not how many: a batch of the killed replica scored before the kill, or any replica's batch scored between
+        // the kill and 3 batches after the cut (a writer holds nothing older than the previous flush; the first
+        // write after the cut fails). A loss outside both windows is a prediction lost with no fault to blame.
+        let cut = BATCHES * 3 / 4;
+        let unexplained: Vec<usize> = lost_batches
+            .iter()
+            .copied()
+            .filter(|&b| {
+                let killed_queue = b % 3 == 1 && b < BATCHES / 2; // batch b is scored by replica b % 3
+                let around_cut = (BATCHES / 2..=cut + 3).contains(&b);
+                !(killed_queue || around_cut)
+            })
+            .collect();
+        assert!(
+            unexplained.is_empty(),
+            "batches lost outside the kill and the cut: {unexplained:?}"
+        );
 
         // The fleet report from a replica (every replica reads the same database) ...
         let fleet: Value = rt.block_on(async {
