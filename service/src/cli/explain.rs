@@ -53,6 +53,9 @@ pub struct ExplainArgs {
     /// Read a feature the input has no column for as missing on every row, instead of stopping.
     #[arg(long)]
     pub allow_missing_columns: bool,
+    /// Field separator of the input: one ASCII character, or `tab`. Gzip-compressed input is read as is.
+    #[arg(long, value_name = "CHAR", default_value = ",", value_parser = super::pipeline::parse_delimiter)]
+    pub delimiter: u8,
     /// No progress bar and no summary line.
     #[arg(long, short)]
     pub quiet: bool,
@@ -72,7 +75,7 @@ pub fn run(args: &ExplainArgs) -> anyhow::Result<()> {
             AdverseArg::Lower => Adverse::Lower,
         },
     };
-    let (progress, mut reader) = open_input(&args.input, b',', args.quiet)?;
+    let (progress, mut reader) = open_input(&args.input, args.delimiter, args.quiet)?;
     let output = File::create(&args.output)
         .with_context(|| format!("cannot create {}", args.output.display()))?;
     let start = Instant::now();
