@@ -1,5 +1,5 @@
-//! `probity evaluate`: the live report's figures on a labelled CSV file, offline, with the operating point at a
-//! threshold and, given a challenger, the paired comparison. The file is read through the scoring pipeline (same
+//! `probity evaluate`: the live report's figures on a labelled CSV or Parquet file, offline, with the operating point
+//! at a threshold and, given a challenger, the paired comparison. The file is read through the scoring pipeline (same
 //! columns, same bad-input rules as `probity score`); every figure is computed by
 //! [`probity_models::evaluate`].
 

@@ -1,5 +1,5 @@
-//! `probity explain`: every row of a CSV or Parquet file with its contributions and top reasons, one output row per input
-//! row. Same input rules, progress and error messages as `probity score` (the shared [`super::pipeline`]).
+//! `probity explain`: every row of a CSV or Parquet file with its contributions and top reasons, one output row per
+//! input row. Same input rules, progress and error messages as `probity score` (the shared [`super::pipeline`]).
 
 use std::fmt::Write as _;
 use std::fs::File;
