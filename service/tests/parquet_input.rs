@@ -116,7 +116,30 @@ fn score_and_explain_give_the_same_bytes_from_csv_and_parquet() {
     let dir = tempfile::tempdir().unwrap();
     let case = fixtures().join("cases/lightgbm_nan_cat_breast_cancer");
     let model = fixtures().join("models/lightgbm_nan_cat_breast_cancer.json");
-    let csv = case.join("rows.csv");
+    // The fixture's rows, with a few cells of `mean_perimeter` made the edge cases of the numeric rule: not finite,
+    // NaN (missing), digits a float64 needs all 17 of, a subnormal, a negative zero.
+    let text = std::fs::read_to_string(case.join("rows.csv")).unwrap();
+    let mut lines: Vec<String> = text.lines().map(str::to_string).collect();
+    let column = lines[0]
+        .split(',')
+        .position(|h| h == "mean_perimeter")
+        .unwrap();
+    let edge = [
+        "inf",
+        "-inf",
+        "NaN",
+        "0.30000000000000004",
+        "1e-320",
+        "-0.0",
+        "123.45678901234567",
+    ];
+    for (line, value) in lines[1..].iter_mut().zip(edge) {
+        let mut cells: Vec<&str> = line.split(',').collect();
+        cells[column] = value;
+        *line = cells.join(",");
+    }
+    let csv = dir.path().join("rows.csv");
+    std::fs::write(&csv, lines.join("\n") + "\n").unwrap();
     // Not named .parquet: the file is known by its first bytes.
     let pq = dir.path().join("rows.data");
     to_parquet(&csv, &pq, case_kind);
@@ -146,6 +169,8 @@ fn score_and_explain_give_the_same_bytes_from_csv_and_parquet() {
     assert!(outputs[1].contains("texture_band: unknown category"));
     assert!(outputs[1].contains("mean_radius: missing"));
     assert!(outputs[1].contains("texture_band: missing"));
+    assert!(outputs[1].contains("mean_perimeter: not finite, read as missing"));
+    assert!(outputs[1].contains("mean_perimeter: missing"));
 
     // explain: the same contributions and reasons.
     let mut explained = Vec::new();
