@@ -3,25 +3,21 @@
 //! The rows are the project's fixtures drawn from scikit-learn's bundled `load_breast_cancer` (Street, Wolberg and
 //! Mangasarian 1993): `tests/fixtures/cases/lightgbm_nan_cat_breast_cancer` (LightGBM 4.7.0, a categorical feature
 //! with an unseen category, missing cells; written by `tests/fixtures/generate.py`) and `tests/fixtures/evaluate`
-//! (labelled rows, `tests/fixtures/gen_evaluate.py`). Each CSV file is turned into Parquet here with the parquet
-//! crate's Arrow writer (snappy pages, several row groups), each column typed as a data frame library would type it
-//! (integers, float64 with nulls for empty cells, a dictionary of strings for the categorical feature, a boolean
-//! label); the reference for every check is the CSV path reading the same rows.
+//! (labelled rows, `tests/fixtures/gen_evaluate.py`). Each CSV file is turned into Parquet (`support/parquet.rs`)
+//! with the parquet crate's Arrow writer (snappy pages, several row groups), each column typed as a data frame
+//! library would type it (integers, float64 with nulls for empty cells, a dictionary of strings for the categorical
+//! feature, a boolean label); the reference for every check is the CSV path reading the same rows.
 
 #![allow(clippy::unwrap_used, clippy::expect_used)]
 
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output};
-use std::sync::Arc;
 
-use arrow_array::types::{Int32Type, Int64Type};
-use arrow_array::{
-    ArrayRef, BooleanArray, DictionaryArray, Float64Array, Int64Array, ListArray, RecordBatch,
-};
-use parquet::arrow::ArrowWriter;
-use parquet::basic::Compression;
-use parquet::file::properties::WriterProperties;
 use serde_json::Value;
+
+#[path = "support/parquet.rs"]
+mod parquet_copy;
+use parquet_copy::{to_parquet, As};
 
 fn fixtures() -> PathBuf {
     PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("../tests/fixtures")
@@ -44,63 +40,6 @@ fn ok(out: &Output) {
 
 fn s(p: &Path) -> &str {
     p.to_str().unwrap()
-}
-
-/// How a CSV column is typed in the Parquet copy.
-#[derive(Clone, Copy)]
-enum As {
-    Int,
-    Float,
-    Dictionary,
-    Bool,
-    /// A list of the cell's number (a type probity does not read).
-    List,
-}
-
-/// The CSV file at `csv` as a Parquet file at `out`: each column typed by `kind_of(name)`; an empty cell is a null.
-/// Rows of 64 to a row group, so a file has several.
-fn to_parquet(csv: &Path, out: &Path, kind_of: impl Fn(&str) -> As) {
-    let mut reader = csv::Reader::from_path(csv).unwrap();
-    let header = reader.headers().unwrap().clone();
-    let records: Vec<csv::StringRecord> = reader.records().map(Result::unwrap).collect();
-    let mut fields = Vec::new();
-    for (c, name) in header.iter().enumerate() {
-        let cells = records.iter().map(|r| {
-            let t = r.get(c).unwrap();
-            (!t.is_empty()).then_some(t)
-        });
-        let array: ArrayRef = match kind_of(name) {
-            As::Int => Arc::new(
-                cells
-                    .map(|t| t.map(|t| t.parse::<i64>().unwrap()))
-                    .collect::<Int64Array>(),
-            ),
-            As::Float => Arc::new(
-                cells
-                    .map(|t| t.map(|t| t.parse::<f64>().unwrap()))
-                    .collect::<Float64Array>(),
-            ),
-            As::Dictionary => Arc::new(cells.collect::<DictionaryArray<Int32Type>>()),
-            As::Bool => Arc::new(cells.map(|t| t.map(|t| t == "1")).collect::<BooleanArray>()),
-            As::List => Arc::new(ListArray::from_iter_primitive::<Int64Type, _, _>(
-                cells.map(|t| t.map(|t| vec![Some(t.parse::<f64>().unwrap() as i64)])),
-            )),
-        };
-        fields.push((name.to_string(), array));
-    }
-    let batch = RecordBatch::try_from_iter(fields).unwrap();
-    let props = WriterProperties::builder()
-        .set_compression(Compression::SNAPPY)
-        .set_max_row_group_row_count(Some(64))
-        .build();
-    let mut writer = ArrowWriter::try_new(
-        std::fs::File::create(out).unwrap(),
-        batch.schema(),
-        Some(props),
-    )
-    .unwrap();
-    writer.write(&batch).unwrap();
-    writer.close().unwrap();
 }
 
 fn case_kind(name: &str) -> As {
