@@ -111,6 +111,41 @@ fn score_and_explain_give_the_same_bytes_from_csv_and_parquet() {
     assert!(outputs[1].contains("mean_perimeter: not finite, read as missing"));
     assert!(outputs[1].contains("mean_perimeter: missing"));
 
+    // --keep-columns: every kept cell reads back as the CSV cell's value (a Parquet cell is written in its own
+    // shortest form, which need not be the CSV file's text; the value is the check).
+    let mut kept = Vec::new();
+    for (input, name) in [(&csv, "k_csv.csv"), (&pq, "k_parquet.csv")] {
+        let out = dir.path().join(name);
+        ok(&probity(&[
+            "score",
+            "--model",
+            s(&model),
+            "--input",
+            s(input),
+            "--output",
+            s(&out),
+            "--keep-training-base-rate",
+            "--full-precision",
+            "--keep-columns",
+            "-q",
+        ]));
+        let mut reader = csv::Reader::from_path(&out).unwrap();
+        let header = reader.headers().unwrap().clone();
+        let rows: Vec<csv::StringRecord> = reader.records().map(Result::unwrap).collect();
+        kept.push((header, rows));
+    }
+    assert_eq!(kept[0].0, kept[1].0);
+    assert_eq!(kept[0].1.len(), kept[1].1.len());
+    for (a, b) in kept[0].1.iter().zip(&kept[1].1) {
+        for (x, y) in a.iter().zip(b.iter()) {
+            match (x.parse::<f64>(), y.parse::<f64>()) {
+                (Ok(x), Ok(y)) if x.is_nan() => assert!(y.is_nan()),
+                (Ok(x), Ok(y)) => assert_eq!(x.to_bits(), y.to_bits(), "{a:?} / {b:?}"),
+                _ => assert_eq!(x, y),
+            }
+        }
+    }
+
     // explain: the same contributions and reasons.
     let mut explained = Vec::new();
     for (input, name) in [(&csv, "x_csv.csv"), (&pq, "x_parquet.csv")] {
@@ -286,4 +321,49 @@ fn an_unreadable_column_type_and_a_wrong_label_are_named() {
             "{err}"
         );
     }
+}
+
+/// A float32 column is widened exactly (IEEE 754-2008, 3.2: every binary32 value is a binary64 value), not read
+/// through its shortest text: the same bytes out as a float64 column holding each float32 value widened.
+#[test]
+fn float32_columns_are_widened_exactly() {
+    let dir = tempfile::tempdir().unwrap();
+    let csv = fixtures().join("evaluate/labelled.csv");
+    let model = fixtures().join("evaluate/champion.json");
+    let (narrow, wide) = (
+        dir.path().join("f32.parquet"),
+        dir.path().join("f64.parquet"),
+    );
+    to_parquet(&csv, &narrow, |name| match name {
+        "id" | "y" => As::Int,
+        _ => As::Float32,
+    });
+    to_parquet(&csv, &wide, |name| match name {
+        "id" | "y" => As::Int,
+        _ => As::Float32Widened,
+    });
+    let mut outputs = Vec::new();
+    for (input, name) in [
+        (&narrow, "narrow.csv"),
+        (&wide, "wide.csv"),
+        (&csv, "text.csv"),
+    ] {
+        let out = dir.path().join(name);
+        ok(&probity(&[
+            "score",
+            "--model",
+            s(&model),
+            "--input",
+            s(input),
+            "--output",
+            s(&out),
+            "--keep-training-base-rate",
+            "--full-precision",
+            "-q",
+        ]));
+        outputs.push(std::fs::read_to_string(&out).unwrap());
+    }
+    assert_eq!(outputs[0], outputs[1]);
+    // And not the float64 text values: the widened float32 values differ from them in the low bits.
+    assert_ne!(outputs[0], outputs[2]);
 }

@@ -8,8 +8,8 @@ use std::sync::Arc;
 
 use arrow_array::types::{Int32Type, Int64Type};
 use arrow_array::{
-    ArrayRef, BooleanArray, DictionaryArray, Float64Array, Int64Array, ListArray, RecordBatch,
-    StringArray,
+    ArrayRef, BooleanArray, DictionaryArray, Float32Array, Float64Array, Int64Array, ListArray,
+    RecordBatch, StringArray,
 };
 use parquet::arrow::ArrowWriter;
 use parquet::basic::Compression;
@@ -26,6 +26,10 @@ pub enum As {
     List,
     /// A string column holding the cell's text.
     Text,
+    /// Float32: the cell's number rounded to the nearest binary32 value.
+    Float32,
+    /// Float64 holding that binary32 value widened.
+    Float32Widened,
 }
 
 /// The CSV file at `csv` as a Parquet file at `out`: each column typed by `kind_of(name)`; an empty cell is a null.
@@ -54,6 +58,16 @@ pub fn to_parquet(csv: &Path, out: &Path, kind_of: impl Fn(&str) -> As) {
             As::Dictionary => Arc::new(cells.collect::<DictionaryArray<Int32Type>>()),
             As::Bool => Arc::new(cells.map(|t| t.map(|t| t == "1")).collect::<BooleanArray>()),
             As::Text => Arc::new(cells.collect::<StringArray>()),
+            As::Float32 => Arc::new(
+                cells
+                    .map(|t| t.map(|t| t.parse::<f32>().unwrap()))
+                    .collect::<Float32Array>(),
+            ),
+            As::Float32Widened => Arc::new(
+                cells
+                    .map(|t| t.map(|t| f64::from(t.parse::<f32>().unwrap())))
+                    .collect::<Float64Array>(),
+            ),
             As::List => Arc::new(ListArray::from_iter_primitive::<Int64Type, _, _>(
                 cells.map(|t| t.map(|t| vec![Some(t.parse::<f64>().unwrap() as i64)])),
             )),
