@@ -35,6 +35,11 @@ pub enum As {
 /// The CSV file at `csv` as a Parquet file at `out`: each column typed by `kind_of(name)`; an empty cell is a null.
 /// Rows of 64 to a row group, so a file has several.
 pub fn to_parquet(csv: &Path, out: &Path, kind_of: impl Fn(&str) -> As) {
+    to_parquet_grouped(csv, out, kind_of, 64);
+}
+
+/// [`to_parquet`] with `group_rows` rows to a row group.
+pub fn to_parquet_grouped(csv: &Path, out: &Path, kind_of: impl Fn(&str) -> As, group_rows: usize) {
     let mut reader = csv::Reader::from_path(csv).unwrap();
     let header = reader.headers().unwrap().clone();
     let records: Vec<csv::StringRecord> = reader.records().map(Result::unwrap).collect();
@@ -77,7 +82,7 @@ pub fn to_parquet(csv: &Path, out: &Path, kind_of: impl Fn(&str) -> As) {
     let batch = RecordBatch::try_from_iter(fields).unwrap();
     let props = WriterProperties::builder()
         .set_compression(Compression::SNAPPY)
-        .set_max_row_group_row_count(Some(64))
+        .set_max_row_group_row_count(Some(group_rows))
         .build();
     let mut writer = ArrowWriter::try_new(
         std::fs::File::create(out).unwrap(),
