@@ -73,7 +73,10 @@ fn kind_of(data_type: &DataType) -> Option<Kind> {
         DataType::LargeUtf8 => Kind::LargeUtf8,
         DataType::Utf8View => Kind::Utf8View,
         DataType::Decimal128(_, _) => Kind::Decimal,
-        DataType::Dictionary(_, values) => return kind_of(values),
+        // One level: a dictionary is flattened once per batch.
+        DataType::Dictionary(_, values) if !matches!(values.as_ref(), DataType::Dictionary(..)) => {
+            return kind_of(values)
+        }
         _ => return None,
     })
 }
@@ -141,8 +144,8 @@ impl ParquetRows {
         StringRecord::from(self.names.clone())
     }
 
-    /// Reads only `columns` (indices into the header) from now on; the others are empty cells. A used column of a
-    /// type probity cannot read is an error naming it and its type.
+    /// Reads only `columns` (indices into the header), said before the first row is read; the others are empty
+    /// cells. A used column of a type probity cannot read is an error naming it and its type.
     pub fn select(&mut self, columns: &[usize]) -> anyhow::Result<()> {
         let schema = self.meta.schema().clone();
         for &c in columns {
