@@ -25,18 +25,18 @@ struct Cli {
 enum Command {
     /// Load and validate a model file, then print a summary of it.
     Check(cli::check::CheckArgs),
-    /// Score every row of a CSV file with a model and write the results as CSV.
+    /// Score every row of a CSV or Parquet file with a model and write the results as CSV.
     Score(cli::score::ScoreArgs),
-    /// Explain every row of a CSV file: each feature's contribution to the log-odds and the top reasons.
+    /// Explain every row of a CSV or Parquet file: each feature's contribution to the log-odds and the top reasons.
     Explain(cli::explain::ExplainArgs),
     /// Write the demo scenario's invented card transactions (Harbourline Card Services) as CSV.
     GenerateDemoData(cli::demo_data::GenerateArgs),
     /// Run the demo: generate transactions, score them with both demo models, show how well each does.
     Demo(cli::demo::DemoArgs),
-    /// Fit a calibration map from a labelled holdout CSV and write a new model file version carrying it.
+    /// Fit a calibration map from a labelled holdout (CSV or Parquet) and write a new model file version carrying it.
     Calibrate(cli::calibrate::CalibrateArgs),
-    /// The report's figures on a labelled CSV file, offline: calibration, log-loss, Brier, AUC, KS, gains, the
-    /// operating point, and a paired comparison with a challenger (table, JSON, SVG).
+    /// The report's figures on a labelled CSV or Parquet file, offline: calibration, log-loss, Brier, AUC, KS,
+    /// gains, the operating point, and a paired comparison with a challenger (table, JSON, SVG).
     Evaluate(cli::evaluate::EvaluateArgs),
     /// Report from a prediction store: calibration, log-loss, Brier, AUC, KS, gains, PSI, operating points at the
     /// served decision rules (table, JSON, SVG).

@@ -8,6 +8,9 @@ use std::path::{Path, PathBuf};
 use std::process::Output;
 
 use probity::serve::config::{Config, Sources};
+
+#[path = "support/parquet.rs"]
+mod parquet_copy;
 use probity::serve::proto as pb;
 
 fn fixture(name: &str) -> PathBuf {
@@ -245,6 +248,40 @@ async fn score_through_the_server_writes_what_offline_scoring_writes() {
     assert_eq!(a.lines().count(), 285);
     assert_eq!(a, b, "the server's output differs from offline scoring");
 
+    // The same rows as Parquet, through the server: the same output.
+    let pq = dir.path().join("labelled.parquet");
+    parquet_copy::to_parquet(Path::new(&input), &pq, |name| match name {
+        "id" | "y" => parquet_copy::As::Int,
+        _ => parquet_copy::As::Float,
+    });
+    let remote_pq = dir
+        .path()
+        .join("remote_pq.csv")
+        .to_string_lossy()
+        .into_owned();
+    let out = probity(strings(&[
+        "score",
+        "--server",
+        &url,
+        "--route",
+        "bc",
+        "--input",
+        pq.to_str().unwrap(),
+        "--output",
+        &remote_pq,
+        "--batch-size",
+        "100",
+        "--warnings-column",
+        "-q",
+    ]))
+    .await;
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert_eq!(a, std::fs::read_to_string(&remote_pq).unwrap());
+
     // A bad cell: the same error, naming row and column, from both; no output is left behind.
     let body = std::fs::read_to_string(&input).unwrap();
     let header = body.lines().next().unwrap();
@@ -283,5 +320,38 @@ async fn score_through_the_server_writes_what_offline_scoring_writes() {
         e2.contains("row 2 (line 3), column `mean_texture`: `abc` is not a number"),
         "{e2}"
     );
+    assert!(!Path::new(&gone).exists());
+
+    // The bad cell in a Parquet string column: the same message, by row (a Parquet file has no lines).
+    let bad_pq = dir.path().join("bad.parquet");
+    parquet_copy::to_parquet(Path::new(&bad), &bad_pq, |name| match name {
+        "id" | "y" => parquet_copy::As::Int,
+        "mean_texture" => parquet_copy::As::Text,
+        _ => parquet_copy::As::Float,
+    });
+    let bad_pq = bad_pq.to_string_lossy().into_owned();
+    let off = probity(strings(&[
+        "score",
+        "--model",
+        &model,
+        "--input",
+        &bad_pq,
+        "--output",
+        &gone,
+        "--keep-training-base-rate",
+    ]))
+    .await;
+    let rem = probity(strings(&[
+        "score", "--server", &url, "--route", "bc", "--input", &bad_pq, "--output", &gone,
+    ]))
+    .await;
+    for out in [off, rem] {
+        assert!(!out.status.success());
+        let err = String::from_utf8_lossy(&out.stderr);
+        assert!(
+            err.contains("row 2, column `mean_texture`: `abc` is not a number"),
+            "{err}"
+        );
+    }
     assert!(!Path::new(&gone).exists());
 }

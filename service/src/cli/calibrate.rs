@@ -9,7 +9,6 @@
 //! `metadata.calibration_fit` record added; it is loaded back and validated before it is written. A calibration
 //! already in the file is replaced, not composed: the new map is fitted on the raw log-odds.
 
-use std::fs::File;
 use std::path::{Path, PathBuf};
 
 use anyhow::{anyhow, bail, Context};
@@ -17,7 +16,7 @@ use probity_models::fit::{self, BaseRateCorrection, FitReport, Method, Sampling}
 use probity_models::{Calibration, IsotonicInput, Model, OutputSpec};
 use serde_json::{json, Value};
 
-use super::pipeline::{csv_reader_with, decompressed, score_records, ColumnMap};
+use super::pipeline::{read_label, score_records, ColumnMap, Input, Row};
 use super::reliability::reliability_svg;
 
 /// Arguments of `probity calibrate`.
@@ -26,13 +25,14 @@ pub struct CalibrateArgs {
     /// The model file to calibrate.
     #[arg(long)]
     pub model: PathBuf,
-    /// The labelled holdout CSV.
+    /// The labelled holdout: a CSV file (gzip-compressed is read as is) or a Parquet file (found by its first bytes
+    /// `PAR1`, not its name).
     #[arg(long)]
     pub holdout: PathBuf,
     /// Where to write the new model file.
     #[arg(long)]
     pub output: PathBuf,
-    /// The label column (values 0 or 1).
+    /// The label column (values 0 or 1; also true/false, as a Parquet boolean column).
     #[arg(long, default_value = "label")]
     pub label_column: String,
     /// Field separator of the input: one ASCII character, or `tab`. Gzip-compressed input is read as is.
@@ -207,9 +207,12 @@ pub fn run(args: &CalibrateArgs) -> anyhow::Result<()> {
 
 /// The raw log-odds and 0/1 labels of the holdout, in file order.
 fn read_holdout(model: &Model, args: &CalibrateArgs) -> anyhow::Result<(Vec<f64>, Vec<f64>)> {
-    let file = File::open(&args.holdout).context("cannot open")?;
-    let mut reader = csv_reader_with(decompressed(file).context("cannot read")?, args.delimiter);
-    let header = reader.headers().context("cannot read the header")?.clone();
+    let mut reader = Input::open(
+        &args.holdout,
+        args.delimiter,
+        &indicatif::ProgressBar::hidden(),
+    )?;
+    let header = reader.header().context("cannot read the header")?;
     let column = |name: &str| {
         header
             .iter()
@@ -220,8 +223,12 @@ fn read_holdout(model: &Model, args: &CalibrateArgs) -> anyhow::Result<(Vec<f64>
     let (mut h, mut y) = (Vec::new(), Vec::new());
     let label = |record: &csv::StringRecord, row: usize| -> anyhow::Result<f64> {
         let text = record.get(label_col).unwrap_or("").trim();
-        match text.parse::<f64>() {
-            Ok(v) if v == 0.0 || v == 1.0 => Ok(v),
+        match text
+            .parse::<f64>()
+            .ok()
+            .or_else(|| read_label(text).map(f64::from))
+        {
+            Some(v) if v == 0.0 || v == 1.0 => Ok(v),
             _ => Err(anyhow!(
                 "{}, column `{}`: label `{text}` is not 0 or 1",
                 row_name(row, record),
@@ -232,8 +239,16 @@ fn read_holdout(model: &Model, args: &CalibrateArgs) -> anyhow::Result<(Vec<f64>
     match &args.margin_column {
         Some(name) => {
             let margin_col = column(name)?;
-            for (i, record) in reader.records().enumerate() {
-                let record = record.with_context(|| format!("cannot read data row {}", i + 1))?;
+            reader.select(Some(&[margin_col, label_col]))?;
+            let mut row = Row::default();
+            for i in 0.. {
+                if !reader
+                    .read(&mut row)
+                    .with_context(|| format!("cannot read data row {}", i + 1))?
+                {
+                    break;
+                }
+                let record = &row.record;
                 let text = record.get(margin_col).unwrap_or("").trim();
                 let margin: f64 = text
                     .parse()
@@ -242,16 +257,19 @@ fn read_holdout(model: &Model, args: &CalibrateArgs) -> anyhow::Result<(Vec<f64>
                     .ok_or_else(|| {
                         anyhow!(
                             "{}, column `{name}`: margin `{text}` is not a finite number",
-                            row_name(i + 1, &record)
+                            row_name(i + 1, record)
                         )
                     })?;
                 h.push(model.margin_scale().to_log_odds(margin));
-                y.push(label(&record, i + 1)?);
+                y.push(label(record, i + 1)?);
             }
         }
         None => {
             let columns =
                 ColumnMap::new(model.schema(), &header, None, args.allow_missing_columns)?;
+            let mut used = columns.used();
+            used.push(label_col);
+            reader.select(Some(&used))?;
             let mut row = 0;
             score_records(
                 model,

@@ -1,10 +1,9 @@
-//! `probity evaluate`: the live report's figures on a labelled CSV file, offline, with the operating point at a
-//! threshold and, given a challenger, the paired comparison. The file is read through the scoring pipeline (same
+//! `probity evaluate`: the live report's figures on a labelled CSV or Parquet file, offline, with the operating point
+//! at a threshold and, given a challenger, the paired comparison. The file is read through the scoring pipeline (same
 //! columns, same bad-input rules as `probity score`); every figure is computed by
 //! [`probity_models::evaluate`].
 
 use std::fmt::Write as _;
-use std::fs::File;
 use std::path::{Path, PathBuf};
 
 use anyhow::{anyhow, bail, Context};
@@ -19,7 +18,7 @@ use probity_models::stability::{stability, FeatureStability};
 use probity_models::{Model, OutputSpec};
 use serde_json::{json, Value};
 
-use super::pipeline::{csv_reader_with, decompressed, score_rows, ColumnMap};
+use super::pipeline::{read_label, score_rows, ColumnMap, Input};
 use super::score::load_model;
 use probity::charts::palette;
 use probity::charts::pictures::{self, Curve, ProbabilityAxis};
@@ -48,10 +47,11 @@ pub struct EvaluateArgs {
     /// The model file.
     #[arg(long)]
     pub model: PathBuf,
-    /// Labelled CSV file: a column per model feature and a 0/1 label column.
+    /// Labelled CSV file (gzip-compressed is read as is) or Parquet file (found by its first bytes `PAR1`, not its
+    /// name): a column per model feature and a 0/1 label column.
     #[arg(long)]
     pub input: PathBuf,
-    /// The label column (1 = the positive class).
+    /// The label column: 1 = the positive class, 0 the other (also true/false, as a Parquet boolean column).
     #[arg(long)]
     pub label_column: String,
     /// A second model file, compared with the first on the same rows.
@@ -244,16 +244,14 @@ type Scored = (Vec<f64>, Vec<f64>, Vec<bool>, Vec<Vec<u64>>);
 /// Final log-odds, probabilities and labels of every row, in file order, and each training distribution's slot
 /// counts; the first bad row stops the run.
 fn read_scored(model: &Model, args: &EvaluateArgs) -> anyhow::Result<Scored> {
-    let file =
-        File::open(&args.input).with_context(|| format!("cannot open {}", args.input.display()))?;
-    let mut reader = csv_reader_with(
-        decompressed(file).with_context(|| format!("cannot read {}", args.input.display()))?,
+    let mut reader = Input::open(
+        &args.input,
         args.delimiter,
-    );
+        &indicatif::ProgressBar::hidden(),
+    )?;
     let header = reader
-        .headers()
-        .with_context(|| format!("cannot read the header row of {}", args.input.display()))?
-        .clone();
+        .header()
+        .with_context(|| format!("cannot read the header row of {}", args.input.display()))?;
     let columns = ColumnMap::new(model.schema(), &header, None, args.allow_missing_columns)
         .with_context(|| format!("cannot read {}", args.input.display()))?;
     let label_col = header
@@ -266,6 +264,11 @@ fn read_scored(model: &Model, args: &EvaluateArgs) -> anyhow::Result<Scored> {
                 args.label_column
             )
         })?;
+    let mut used = columns.used();
+    used.push(label_col);
+    reader
+        .select(Some(&used))
+        .with_context(|| format!("cannot read {}", args.input.display()))?;
     let (mut h, mut p, mut y) = (Vec::new(), Vec::new(), Vec::new());
     let distributions: Vec<_> = model.training_distributions().collect();
     let mut slot_counts: Vec<Vec<u64>> = distributions
@@ -287,10 +290,9 @@ fn read_scored(model: &Model, args: &EvaluateArgs) -> anyhow::Result<Scored> {
                 }
             }
             let text = record.get(label_col).unwrap_or("").trim();
-            let label = match text {
-                "0" => false,
-                "1" => true,
-                _ => {
+            let label = match read_label(text) {
+                Some(label) => label,
+                None => {
                     let place = record.position().map_or(format!("row {row}"), |q| {
                         format!("row {row} (line {})", q.line())
                     });

@@ -1,20 +1,19 @@
-//! `probity explain`: every row of a CSV file with its contributions and top reasons, one output row per input
-//! row. Same input rules, progress and error messages as `probity score` (the shared [`super::pipeline`]).
+//! `probity explain`: every row of a CSV or Parquet file with its contributions and top reasons, one output row per
+//! input row. Same input rules, progress and error messages as `probity score` (the shared [`super::pipeline`]).
 
 use std::fmt::Write as _;
 use std::fs::File;
-use std::io::{BufWriter, IsTerminal, Read, Write};
+use std::io::{BufWriter, Write};
 use std::path::PathBuf;
 use std::time::Instant;
 
 use anyhow::{bail, Context};
 use csv::StringRecord;
-use indicatif::ProgressBar;
 use probity_models::explain::Workspace;
 use probity_models::{Adverse, Model, OutputSpec, ReasonRequest};
 
-use super::pipeline::{csv_reader, score_rows};
-use super::score::{bar, load_model, output_spec, PROGRESS_MIN_BYTES};
+use super::pipeline::{score_rows, Input};
+use super::score::{load_model, open_input, output_spec};
 
 /// Which direction of the log-odds counts against the subject.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
@@ -31,7 +30,8 @@ pub struct ExplainArgs {
     /// The model file (a tree ensemble needs per-node `cover`, model format version 2).
     #[arg(long)]
     pub model: PathBuf,
-    /// The CSV file to explain; its header names the columns, and a column per model feature is expected.
+    /// The file to explain: CSV (its header names the columns; gzip-compressed is read as is) or Parquet (found by
+    /// its first bytes `PAR1`, not its name); a column per model feature is expected.
     #[arg(long)]
     pub input: PathBuf,
     /// Where to write the CSV file: id, log_odds, probability, bias, one `contribution.FEATURE` column per
@@ -53,6 +53,9 @@ pub struct ExplainArgs {
     /// Read a feature the input has no column for as missing on every row, instead of stopping.
     #[arg(long)]
     pub allow_missing_columns: bool,
+    /// Field separator of the input: one ASCII character, or `tab`. Gzip-compressed input is read as is.
+    #[arg(long, value_name = "CHAR", default_value = ",", value_parser = super::pipeline::parse_delimiter)]
+    pub delimiter: u8,
     /// No progress bar and no summary line.
     #[arg(long, short)]
     pub quiet: bool,
@@ -72,16 +75,7 @@ pub fn run(args: &ExplainArgs) -> anyhow::Result<()> {
             AdverseArg::Lower => Adverse::Lower,
         },
     };
-    let input =
-        File::open(&args.input).with_context(|| format!("cannot open {}", args.input.display()))?;
-    let size = input.metadata().map(|m| m.len()).unwrap_or(0);
-    let show = !args.quiet && size >= PROGRESS_MIN_BYTES && std::io::stderr().is_terminal();
-    let progress = if show {
-        bar(size)
-    } else {
-        ProgressBar::hidden()
-    };
-    let mut reader = csv_reader(progress.wrap_read(input));
+    let (progress, mut reader) = open_input(&args.input, args.delimiter, args.quiet)?;
     let output = File::create(&args.output)
         .with_context(|| format!("cannot create {}", args.output.display()))?;
     let start = Instant::now();
@@ -113,12 +107,12 @@ pub fn run(args: &ExplainArgs) -> anyhow::Result<()> {
     Ok(())
 }
 
-fn explain_file<R: Read, W: Write>(
+fn explain_file<W: Write>(
     model: &Model,
     spec: &OutputSpec,
     request: &ReasonRequest,
     args: &ExplainArgs,
-    reader: &mut csv::Reader<R>,
+    reader: &mut Input,
     output: W,
 ) -> anyhow::Result<u64> {
     let (header, columns) = super::pipeline::map_header(
@@ -128,6 +122,7 @@ fn explain_file<R: Read, W: Write>(
         args.allow_missing_columns,
         args.quiet,
     )?;
+    reader.select(Some(&columns.used()))?;
     let mut out_header = StringRecord::new();
     if let Some(id) = columns.id {
         out_header.push_field(&header[id]);

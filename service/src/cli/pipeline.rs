@@ -1,20 +1,127 @@
-//! The CSV scoring pipeline shared by `probity score` and `probity demo`.
+//! The scoring pipeline shared by `probity score`, `explain`, `evaluate`, `calibrate` and `demo`.
+//!
+//! An input file is opened in one place, [`Input::open`]: a Parquet file (found by its first four bytes, `PAR1`,
+//! not by its name; [`parquet`]) or a CSV file, gzip-compressed or not, with any one-character separator. Either
+//! gives [`Row`]s: a text record plus, for Parquet's numeric columns, the numbers themselves.
 //!
 //! A header is mapped once to the model's features ([`ColumnMap`]); records are then read into blocks of
 //! [`BLOCK_ROWS`] rows, each cell encoded with [`Schema::encode_text`], the block's margins computed in one call to
 //! [`Model::margins`], and each row finished with [`Model::finish`] and handed to a sink with its record. The batch
 //! path gives the same bits as [`Model::score`] on each row alone.
 
+use std::fs::File;
 use std::io::Read;
+use std::path::Path;
 
 use anyhow::{anyhow, bail, Context};
 use csv::StringRecord;
 use std::collections::BTreeMap;
 
+use indicatif::ProgressBar;
 use probity_models::{CellError, CellNote, EvalError, Model, OutputSpec, Schema, Scored};
+
+pub mod parquet;
 
 /// Rows evaluated together: large enough to amortise the call, small enough to stay in cache.
 pub const BLOCK_ROWS: usize = 1024;
+
+/// One row of the input: its cells as text (what a CSV file holds; the id, label and `--keep-columns` columns are
+/// copied from here) and, by column, the number of a numeric Parquet cell, which a numeric feature reads as is.
+#[derive(Debug, Clone, Default)]
+pub struct Row {
+    /// Every cell as text, in header order (a column a command does not use is empty in Parquet input).
+    pub record: StringRecord,
+    /// By column: `Some` for a non-null numeric Parquet cell; empty for CSV input.
+    pub numbers: Vec<Option<f64>>,
+}
+
+/// An input file opened for reading rows: CSV (plain or gzip) or Parquet.
+pub enum Input {
+    /// A CSV file, decompressed when it is gzip.
+    Csv(csv::Reader<Box<dyn Read>>),
+    /// A Parquet file.
+    Parquet(Box<parquet::ParquetRows>),
+}
+
+impl Input {
+    /// Opens `path`: Parquet when the file starts with `PAR1`, otherwise CSV separated by `delimiter` (gzip
+    /// when it starts with `1f 8b`). `progress` follows the bytes read (CSV) or the row groups done (Parquet).
+    pub fn open(path: &Path, delimiter: u8, progress: &ProgressBar) -> anyhow::Result<Input> {
+        let mut file =
+            File::open(path).with_context(|| format!("cannot open {}", path.display()))?;
+        let mut start = [0u8; 4];
+        let mut got = 0;
+        while got < start.len() {
+            match file.read(&mut start[got..]) {
+                Ok(0) => break,
+                Ok(n) => got += n,
+                Err(e) if e.kind() == std::io::ErrorKind::Interrupted => {}
+                Err(e) => return Err(e).with_context(|| format!("cannot read {}", path.display())),
+            }
+        }
+        if &start[..got] == parquet::MAGIC {
+            let rows = parquet::ParquetRows::open(file, progress.clone())
+                .with_context(|| format!("cannot read {} as Parquet", path.display()))?;
+            return Ok(Input::Parquet(Box::new(rows)));
+        }
+        let raw = std::io::Cursor::new(start[..got].to_vec()).chain(progress.wrap_read(file));
+        progress.inc(got as u64);
+        let read = decompressed(raw).with_context(|| format!("cannot read {}", path.display()))?;
+        Ok(Input::Csv(csv_reader_with(read, delimiter)))
+    }
+
+    /// Comma-separated CSV text held in memory.
+    pub fn csv_bytes(bytes: Vec<u8>) -> Input {
+        Input::Csv(csv_reader(Box::new(std::io::Cursor::new(bytes))))
+    }
+
+    /// The header: the CSV file's first row, or the Parquet file's column names.
+    pub fn header(&mut self) -> anyhow::Result<StringRecord> {
+        match self {
+            Input::Csv(reader) => Ok(reader
+                .headers()
+                .context("cannot read the header row")?
+                .clone()),
+            Input::Parquet(rows) => Ok(rows.header()),
+        }
+    }
+
+    /// Says which columns (header indices) the command uses; Parquet input reads only those and refuses a used
+    /// column of a type it cannot read. `None`: every column (`--keep-columns`).
+    pub fn select(&mut self, columns: Option<&[usize]>) -> anyhow::Result<()> {
+        match self {
+            Input::Csv(_) => Ok(()),
+            Input::Parquet(rows) => match columns {
+                Some(c) => rows.select(c),
+                None => {
+                    let all: Vec<usize> = (0..rows.header().len()).collect();
+                    rows.select(&all)
+                }
+            },
+        }
+    }
+
+    /// Reads the next row into `row`; `false` at the end.
+    pub fn read(&mut self, row: &mut Row) -> anyhow::Result<bool> {
+        match self {
+            Input::Csv(reader) => {
+                row.numbers.clear();
+                Ok(reader.read_record(&mut row.record)?)
+            }
+            Input::Parquet(rows) => rows.read(row),
+        }
+    }
+}
+
+/// Reads a label cell: `0` or `1` (also `true`/`false`, as a Parquet boolean column reads), surrounding spaces
+/// ignored.
+pub fn read_label(text: &str) -> Option<bool> {
+    match text.trim() {
+        "0" | "false" => Some(false),
+        "1" | "true" => Some(true),
+        _ => None,
+    }
+}
 
 /// Where each of a model's features is found in a CSV record.
 #[derive(Debug, Clone)]
@@ -110,11 +217,12 @@ impl ColumnMap {
     pub fn encode(
         &self,
         schema: &Schema,
-        record: &StringRecord,
+        input: &Row,
         number: u64,
         row: &mut [f64],
         notes: &mut RowNotes,
     ) -> Result<(), BadCell> {
+        let record = &input.record;
         notes.cells.clear();
         for (f, (slot, col)) in row.iter_mut().zip(&self.features).enumerate() {
             let cell = match col {
@@ -123,6 +231,22 @@ impl ColumnMap {
                     note: Some(CellNote::Missing),
                 },
                 Some(c) => {
+                    if let Some(Some(x)) = input.numbers.get(*c) {
+                        if !schema.features()[f].is_categorical() {
+                            *slot = read_number(*x);
+                            let note = if x.is_nan() {
+                                Some(CellNote::Missing)
+                            } else if x.is_infinite() {
+                                Some(CellNote::NonFinite)
+                            } else {
+                                None
+                            };
+                            if let Some(note) = note {
+                                notes.cells.push((f, note));
+                            }
+                            continue;
+                        }
+                    }
                     let text = record.get(*c).unwrap_or("");
                     schema.read_text(f, text).map_err(|e| {
                         let why = match e {
@@ -147,9 +271,30 @@ impl ColumnMap {
         Ok(())
     }
 
+    /// The columns this map reads: every feature's and the id's.
+    pub fn used(&self) -> Vec<usize> {
+        self.features
+            .iter()
+            .flatten()
+            .copied()
+            .chain(self.id)
+            .collect()
+    }
+
     /// The feature names, in schema order.
     pub fn names(&self) -> &[String] {
         &self.names
+    }
+}
+
+/// A numeric feature's value from a Parquet number, under the rule [`Schema::read_text`] applies to its text: NaN is
+/// missing (as the text `NaN` is), an infinity is not finite (read as missing), any other number is itself, bit for
+/// bit.
+fn read_number(x: f64) -> f64 {
+    if x.is_finite() {
+        x
+    } else {
+        f64::NAN
     }
 }
 
@@ -266,17 +411,14 @@ fn where_(number: u64, record: &StringRecord) -> String {
 /// Reads the header of `reader` and maps it to `schema`'s features ([`ColumnMap::new`]); unless `quiet`, says which
 /// features have no column (read as missing on every row). The header and the map, for every command that reads
 /// rows for a model.
-pub fn map_header<R: Read>(
-    reader: &mut csv::Reader<R>,
+pub fn map_header(
+    reader: &mut Input,
     schema: &Schema,
     id_column: Option<&str>,
     allow_missing: bool,
     quiet: bool,
 ) -> anyhow::Result<(StringRecord, ColumnMap)> {
-    let header = reader
-        .headers()
-        .context("cannot read the header row")?
-        .clone();
+    let header = reader.header()?;
     let columns = ColumnMap::new(schema, &header, id_column, allow_missing)?;
     let absent: Vec<&str> = columns.absent_features().collect();
     if !absent.is_empty() && !quiet {
@@ -304,11 +446,11 @@ pub type OnReject<'s> = Option<&'s mut dyn FnMut(Rejected<'_>) -> anyhow::Result
 /// Scores every remaining record of `reader` and calls `sink` with each record and its result, in file order.
 /// Returns the number of rows scored. A row that cannot be scored stops the run with an error naming the data row
 /// (1-based), its line and, for a bad cell, the column, unless `on_reject` takes it (then it is skipped).
-pub fn score_records<R: Read>(
+pub fn score_records(
     model: &Model,
     columns: &ColumnMap,
     spec: &OutputSpec,
-    reader: &mut csv::Reader<R>,
+    reader: &mut Input,
     on_reject: OnReject<'_>,
     mut sink: impl FnMut(&StringRecord, &Scored, &RowNotes) -> anyhow::Result<()>,
 ) -> anyhow::Result<u64> {
@@ -323,17 +465,17 @@ pub fn score_records<R: Read>(
 }
 
 /// [`score_records`], also handing the sink each row as the model scored it (its dense values).
-pub fn score_rows<R: Read>(
+pub fn score_rows(
     model: &Model,
     columns: &ColumnMap,
     spec: &OutputSpec,
-    reader: &mut csv::Reader<R>,
+    reader: &mut Input,
     mut on_reject: OnReject<'_>,
     mut sink: impl FnMut(&StringRecord, &[f64], &Scored, &RowNotes) -> anyhow::Result<()>,
 ) -> anyhow::Result<u64> {
     let schema = model.schema();
     let n = schema.len();
-    let mut records = vec![StringRecord::new(); BLOCK_ROWS];
+    let mut records = vec![Row::default(); BLOCK_ROWS];
     let mut notes = vec![RowNotes::default(); BLOCK_ROWS];
     let mut numbers = vec![0u64; BLOCK_ROWS];
     let mut rows = vec![0.0; BLOCK_ROWS * n];
@@ -346,7 +488,7 @@ pub fn score_rows<R: Read>(
         while filled < BLOCK_ROWS {
             let number = read + 1;
             let more = reader
-                .read_record(&mut records[filled])
+                .read(&mut records[filled])
                 .with_context(|| format!("cannot read data row {number}"))?;
             if !more {
                 exhausted = true;
@@ -368,7 +510,7 @@ pub fn score_rows<R: Read>(
                 (Err(e), None) => return Err(e.into()),
                 (Err(e), Some(reject)) => reject(Rejected {
                     number,
-                    record: &records[filled],
+                    record: &records[filled].record,
                     reason: e.reason,
                 })?,
             }
@@ -384,7 +526,7 @@ pub fn score_rows<R: Read>(
                         .enumerate()
                     {
                         sink(
-                            record,
+                            &record.record,
                             &rows[k * n..(k + 1) * n],
                             &model.finish(margin, spec),
                             row_notes,
@@ -395,7 +537,7 @@ pub fn score_rows<R: Read>(
                 (Err(e), None) => {
                     return Err(match e {
                         EvalError::InRow { row, error } => {
-                            anyhow!("{}: {error}", where_(numbers[row], &records[row]))
+                            anyhow!("{}: {error}", where_(numbers[row], &records[row].record))
                         }
                         other => anyhow!(other),
                     })
@@ -407,7 +549,7 @@ pub fn score_rows<R: Read>(
                         match model.margins(&rows[i * n..(i + 1) * n], &mut one) {
                             Ok(()) => {
                                 sink(
-                                    &records[i],
+                                    &records[i].record,
                                     &rows[i * n..(i + 1) * n],
                                     &model.finish(one[0], spec),
                                     &notes[i],
@@ -416,7 +558,7 @@ pub fn score_rows<R: Read>(
                             }
                             Err(e) => reject(Rejected {
                                 number: numbers[i],
-                                record: &records[i],
+                                record: &records[i].record,
                                 reason: match e {
                                     EvalError::InRow { error, .. } => error.to_string(),
                                     other => other.to_string(),

@@ -2,7 +2,7 @@
 
 use std::fmt::Write as _;
 use std::fs::File;
-use std::io::{BufWriter, IsTerminal, Read, Write};
+use std::io::{BufWriter, IsTerminal, Write};
 use std::path::{Path, PathBuf};
 use std::time::Instant;
 
@@ -11,7 +11,7 @@ use csv::StringRecord;
 use indicatif::{ProgressBar, ProgressStyle};
 use probity_models::{DecisionRule, Model, OutputSpec, Scored};
 
-use super::pipeline::{csv_reader_with, decompressed, score_records, OnReject, Rejected, RunNotes};
+use super::pipeline::{score_records, Input, OnReject, Rejected, RunNotes};
 
 mod remote;
 
@@ -24,7 +24,8 @@ pub struct ScoreArgs {
     /// The model file (or --server and --route to score through a running server).
     #[arg(long, required_unless_present = "server")]
     pub model: Option<PathBuf>,
-    /// The CSV file to score; its header names the columns, and a column per model feature is expected.
+    /// The file to score: CSV (its header names the columns; gzip-compressed is read as is) or Parquet (found by
+    /// its first bytes `PAR1`, not its name); a column per model feature is expected.
     #[arg(long)]
     pub input: PathBuf,
     /// Where to write the scored CSV file.
@@ -171,20 +172,7 @@ pub fn run(args: &ScoreArgs) -> anyhow::Result<()> {
             bail!("--rejects and --output name the same file {}", r.display());
         }
     }
-    let input =
-        File::open(&args.input).with_context(|| format!("cannot open {}", args.input.display()))?;
-    let size = input.metadata().map(|m| m.len()).unwrap_or(0);
-    let show = !args.quiet && size >= PROGRESS_MIN_BYTES && std::io::stderr().is_terminal();
-    let progress = if show {
-        bar(size)
-    } else {
-        ProgressBar::hidden()
-    };
-    let mut reader = csv_reader_with(
-        decompressed(progress.wrap_read(input))
-            .with_context(|| format!("cannot read {}", args.input.display()))?,
-        args.delimiter,
-    );
+    let (progress, mut reader) = open_input(&args.input, args.delimiter, args.quiet)?;
     // Written beside the target and renamed over it only when the whole run succeeds: a failed run leaves any
     // existing file as it was, and a half-written output never passes for a result.
     let output = Staged::beside(&args.output)?;
@@ -440,11 +428,11 @@ pub fn push_scores(
 
 /// Scores the whole input into `output`, and rows that cannot be scored into `rejects` when it is given; returns
 /// the numbers of rows scored and rejected.
-fn score_file<R: Read, W: Write>(
+fn score_file<W: Write>(
     model: &Model,
     spec: &OutputSpec,
     args: &ScoreArgs,
-    reader: &mut csv::Reader<R>,
+    reader: &mut Input,
     output: W,
     rejects: Option<W>,
 ) -> anyhow::Result<(u64, u64, RunNotes)> {
@@ -455,6 +443,7 @@ fn score_file<R: Read, W: Write>(
         args.allow_missing_columns,
         args.quiet,
     )?;
+    reader.select((!args.keep_columns).then(|| columns.used()).as_deref())?;
     let scores = score_columns(model, spec);
     let mut out_header = StringRecord::new();
     if args.keep_columns {
@@ -531,6 +520,24 @@ fn score_file<R: Read, W: Write>(
         r.flush().context("cannot write the rejects file")?;
     }
     Ok((rows, rejected, run_notes))
+}
+
+/// Opens an input file ([`Input::open`]) with a progress bar on stderr when it is large, not `quiet` and stderr is
+/// a terminal.
+pub(crate) fn open_input(
+    path: &Path,
+    delimiter: u8,
+    quiet: bool,
+) -> anyhow::Result<(ProgressBar, Input)> {
+    let size = std::fs::metadata(path).map(|m| m.len()).unwrap_or(0);
+    let show = !quiet && size >= PROGRESS_MIN_BYTES && std::io::stderr().is_terminal();
+    let progress = if show {
+        bar(size)
+    } else {
+        ProgressBar::hidden()
+    };
+    let input = Input::open(path, delimiter, &progress)?;
+    Ok((progress, input))
 }
 
 /// A byte-count progress bar on stderr.

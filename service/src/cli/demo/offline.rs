@@ -9,7 +9,7 @@ use csv::StringRecord;
 use probity_models::Model;
 
 use super::{summary, DemoData, DemoModel, DemoRun, CAUTIONS};
-use crate::cli::pipeline::{csv_reader, score_records, ColumnMap};
+use crate::cli::pipeline::{score_records, ColumnMap, Input};
 use crate::cli::score::{push_scores, score_columns, Precision};
 
 /// Scores the demo data with every model in process and prints the report.
@@ -32,8 +32,9 @@ pub fn run(args: &super::DemoArgs, data: &DemoData, models: &[DemoModel]) -> any
 pub fn score_demo(model: &Model, data: &DemoData) -> anyhow::Result<DemoRun> {
     let spec = data.spec();
     let start = Instant::now();
-    let mut reader = csv_reader(data.csv.as_slice());
-    let header = reader.headers()?.clone();
+    // A copy of the demo's CSV text: an input owns what it reads.
+    let mut reader = Input::csv_bytes(data.csv.clone());
+    let header = reader.header()?;
     let columns = ColumnMap::new(model.schema(), &header, None, false)
         .with_context(|| format!("model {} does not fit the demo data", model.name()))?;
     let n = data.transactions.len();

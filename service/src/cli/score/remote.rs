@@ -4,7 +4,6 @@
 //! `--on-error skip`) naming its row and column before anything is sent for it; rows go to the server in batches
 //! as dense vectors, with the id column's value as the prediction id (so outcomes can be sent for it later).
 
-use std::fs::File;
 use std::io::{BufWriter, Write};
 use std::time::Instant;
 
@@ -15,12 +14,12 @@ use probity::serve::proto as pb;
 use probity_models::{Feature, FeatureKind, Schema};
 
 use super::{refuse_same_file, OnError, ScoreArgs, Staged};
-use crate::cli::pipeline::{csv_reader_with, decompressed, ColumnMap, RowNotes, RunNotes};
+use crate::cli::pipeline::{ColumnMap, Input, Row, RowNotes, RunNotes};
 
 /// One row read and encoded, waiting for its batch.
 struct Pending {
     number: u64,
-    record: StringRecord,
+    record: Row,
     values: Vec<f64>,
     notes: RowNotes,
 }
@@ -140,12 +139,11 @@ async fn score_remote<W: Write>(
     let connection = connect.connect().await?;
     let schema = schema_of(connection.clone(), route).await?;
     let mut scoring = pb::scoring_client::ScoringClient::new(connection);
-    let file =
-        File::open(&args.input).with_context(|| format!("cannot open {}", args.input.display()))?;
-    let mut reader = csv_reader_with(
-        decompressed(file).with_context(|| format!("cannot read {}", args.input.display()))?,
+    let mut reader = Input::open(
+        &args.input,
         args.delimiter,
-    );
+        &indicatif::ProgressBar::hidden(),
+    )?;
     let (header, columns) = super::super::pipeline::map_header(
         &mut reader,
         &schema,
@@ -153,6 +151,7 @@ async fn score_remote<W: Write>(
         args.allow_missing_columns,
         args.quiet,
     )?;
+    reader.select((!args.keep_columns).then(|| columns.used()).as_deref())?;
     let mut writer = csv::Writer::from_writer(output);
     let mut rejects = rejects.map(csv::Writer::from_writer);
     if let Some(r) = rejects.as_mut() {
@@ -170,10 +169,10 @@ async fn score_remote<W: Write>(
     while !exhausted {
         // Fill a batch.
         while batch.len() < args.batch_size {
-            let mut record = StringRecord::new();
+            let mut record = Row::default();
             let number = read + 1;
             let more = reader
-                .read_record(&mut record)
+                .read(&mut record)
                 .with_context(|| format!("cannot read data row {number}"))?;
             if !more {
                 exhausted = true;
@@ -194,6 +193,7 @@ async fn score_remote<W: Write>(
                     Some(r) => {
                         rejected += 1;
                         let line = record
+                            .record
                             .position()
                             .map(|p| p.line().to_string())
                             .unwrap_or_default();
@@ -211,7 +211,7 @@ async fn score_remote<W: Write>(
             .map(|p| pb::Row {
                 prediction_id: columns
                     .id
-                    .and_then(|c| p.record.get(c))
+                    .and_then(|c| p.record.record.get(c))
                     .unwrap_or("")
                     .to_string(),
                 features: Some(pb::row::Features::Dense(pb::DenseFeatures {
@@ -252,9 +252,9 @@ async fn score_remote<W: Write>(
             run_notes.add(&p.notes);
             line.clear();
             if args.keep_columns {
-                line.extend(p.record.iter());
+                line.extend(p.record.record.iter());
             } else if let Some(id) = columns.id {
-                line.push_field(p.record.get(id).unwrap_or(""));
+                line.push_field(p.record.record.get(id).unwrap_or(""));
             }
             let precision = super::Precision::of(args);
             for v in [
