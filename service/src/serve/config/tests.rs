@@ -557,3 +557,30 @@ fn route_record_words_and_the_store_it_needs() {
         "{e}"
     );
 }
+
+#[test]
+fn a_syntax_error_on_a_long_line_stays_short() {
+    // The config_load fuzz target's input (fuzz/regressions/config_load/long-line-syntax-error-message).
+    let text = std::fs::read(concat!(
+        env!("CARGO_MANIFEST_DIR"),
+        "/../fuzz/regressions/config_load/long-line-syntax-error-message"
+    ))
+    .unwrap();
+    let (_dir, path) = write(&String::from_utf8_lossy(&text));
+    let error = Config::load(&Sources {
+        file: Some(path),
+        ..Sources::default()
+    })
+    .unwrap_err();
+    let message = error.to_string();
+    assert!(matches!(error, ConfigError::Syntax { .. }), "{message}");
+    assert!(
+        message.lines().all(|l| l.chars().count() <= 400),
+        "{message}"
+    );
+    assert!(
+        message.chars().count() < 2_000,
+        "{} characters",
+        message.chars().count()
+    );
+}
