@@ -15,8 +15,8 @@
 //! Prometheus's `increase()` and `rate()` count every row, and the first slots hit are not lost to the first scrape.
 //!
 //! Cost per scored row: one slot lookup per monitored feature (a binary search over at most 31 edges, or a range
-//! check) and one relaxed atomic increment, through handles registered once per (route, model, version); a batch
-//! counts into a local array first and adds each slot once.
+//! check) and one relaxed atomic increment, through the handles of the row's prediction series (one lookup per row
+//! records the prediction and its features, `serve/metrics.rs`).
 
 use probity_models::stability::{Slot, TrainingDistribution, MAX_DISTRIBUTION_BINS};
 use probity_models::Model;
@@ -61,25 +61,18 @@ struct Monitored {
     column: usize,
     distribution: TrainingDistribution,
     counters: Vec<metrics::Counter>,
-    /// Where its slots start in a [`Tally`].
-    offset: usize,
 }
 
 /// The counters of one (route, model, version).
 pub struct FeatureCounters {
     features: Vec<Monitored>,
-    slots: usize,
 }
-
-/// Counts of a batch, added to the counters once ([`FeatureCounters::add`]).
-pub struct Tally(Vec<u64>);
 
 impl FeatureCounters {
     /// Registers the counters of `model` on `route` (all at zero, so a slot never hit still has a series for
     /// `rate()`), and sets the training-share gauges. `None` when the model has no training distribution.
     pub fn new(route: &str, model: &Model) -> Option<FeatureCounters> {
         let mut features = Vec::new();
-        let mut offset = 0;
         for (column, distribution) in model.training_distributions().take(MAX_MONITORED_FEATURES) {
             let name = model
                 .schema()
@@ -107,14 +100,9 @@ impl FeatureCounters {
                 column,
                 distribution: distribution.clone(),
                 counters,
-                offset,
             });
-            offset += distribution.slots();
         }
-        (!features.is_empty()).then_some(FeatureCounters {
-            features,
-            slots: offset,
-        })
+        (!features.is_empty()).then_some(FeatureCounters { features })
     }
 
     /// Counts one row (its dense values, in the model's feature order).
@@ -123,35 +111,6 @@ impl FeatureCounters {
             if let Some(&v) = row.get(m.column) {
                 if let Some(c) = m.counters.get(m.distribution.slot_of(v)) {
                     c.increment(1);
-                }
-            }
-        }
-    }
-
-    /// An empty tally for a batch.
-    pub fn tally(&self) -> Tally {
-        Tally(vec![0; self.slots])
-    }
-
-    /// Counts one row of a batch into `tally`.
-    pub fn count_into(&self, tally: &mut Tally, row: &[f64]) {
-        for m in &self.features {
-            if let Some(&v) = row.get(m.column) {
-                if let Some(n) = tally.0.get_mut(m.offset + m.distribution.slot_of(v)) {
-                    *n += 1;
-                }
-            }
-        }
-    }
-
-    /// Adds a batch's tally to the counters.
-    pub fn add(&self, tally: &Tally) {
-        for m in &self.features {
-            for (s, c) in m.counters.iter().enumerate() {
-                if let Some(&n) = tally.0.get(m.offset + s) {
-                    if n > 0 {
-                        c.increment(n);
-                    }
                 }
             }
         }

@@ -254,13 +254,6 @@ pub struct PredictionSeries {
     features: Option<FeatureCounters>,
 }
 
-impl PredictionSeries {
-    /// The per-feature stability counters, when the model file carries training distributions.
-    pub fn features(&self) -> Option<&FeatureCounters> {
-        self.features.as_ref()
-    }
-}
-
 /// Handles by a hash of (route, model, version), so that recording a row needs no label strings and no registry
 /// lookup. Bounded by the configured routes times the model versions loaded since start.
 static PREDICTION_SERIES: std::sync::LazyLock<
@@ -309,11 +302,15 @@ pub fn prediction_series(route: &str, model: &Model) -> Option<Arc<PredictionSer
 }
 
 /// Records one scored row.
-pub fn prediction(route: &str, model: &Model, probability: f64, log_odds: f64) {
+pub fn prediction(route: &str, model: &Model, probability: f64, log_odds: f64, values: &[f64]) {
     if let Some(s) = prediction_series(route, model) {
         s.count.increment(1);
         s.probability.record(probability);
         s.log_odds.record(log_odds);
+        // The row's feature values, into the slots of their training distributions (same series lookup).
+        if let Some(features) = &s.features {
+            features.count(values);
+        }
         return;
     }
     let labels = [

@@ -284,11 +284,6 @@ impl Scorer {
                 "row",
             )?),
         };
-        if let Some(series) = metrics::prediction_series(&config.name, &loaded.model) {
-            if let Some(features) = series.features() {
-                features.count(&prepared.values);
-            }
-        }
         let mut held = Vec::new();
         let mut response = self.respond(config, &loaded, role, prepared, scored, &mut held);
         response.explanation = explanation;
@@ -392,15 +387,6 @@ impl Scorer {
                 )?);
             }
         }
-        if let Some(series) = metrics::prediction_series(&config.name, &loaded.model) {
-            if let Some(features) = series.features() {
-                let mut tally = features.tally();
-                for row in &prepared {
-                    features.count_into(&mut tally, &row.values);
-                }
-                features.add(&tally);
-            }
-        }
         let mut explanations = explanations.into_iter();
         let mut held = Vec::new();
         let results: Vec<pb::ScoreResponse> = prepared
@@ -455,6 +441,7 @@ impl Scorer {
             &loaded.model,
             scored.probability,
             scored.adjusted_log_odds,
+            &row.values,
         );
         for w in &row.warnings {
             metrics::warning(&config.name, w.kind.as_str());
