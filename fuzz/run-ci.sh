@@ -31,6 +31,11 @@ for t in "${targets[@]}"; do
     echo "== fuzzing $t for ${seconds}s"
     work=$(mktemp -d)
     mkdir -p "artifacts/$t"
+    if [ ! -d "corpus/$t" ]; then
+        echo "!! $t has no committed corpus (fuzz/corpus/$t)" >&2
+        status=1
+        continue
+    fi
     # New inputs go to a scratch directory, so the committed corpus is only read. Model files up to 100 kB keep
     # the reference fixtures whole.
     if ! cargo fuzz run "${flags[@]}" "$t" "$work" "corpus/$t" -- \
