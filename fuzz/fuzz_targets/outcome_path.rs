@@ -1,6 +1,6 @@
 //! Bytes -> the outcome path of a running server: prost decode of `RecordOutcomesRequest` and `ReportRequest`, the
 //! `probity.v1.Outcomes` handlers (`OutcomesApi`), the outcome-matching rules and the embedded SQLite store, over
-//! 16 logged predictions (`p0` to `p15`, two of them logged twice) and a clock the input moves.
+//! 16 logged ids (`p0` to `p15`; `p0` and `p1` logged on both routes) and a clock the input moves.
 //!
 //! The first input byte picks the call (outcomes, report, or a clock step followed by a sweep); the rest is the
 //! protobuf message. Checked beyond "no panic": a refusal is never INTERNAL and its message is short enough for a
@@ -64,19 +64,23 @@ impl Fixture {
             directory: Some(dir.path().to_path_buf()),
             flush_interval: Duration::from_millis(1),
             outcome_hold: Duration::from_millis(u64::try_from(DAY).unwrap_or(0)),
-            retention: Duration::from_millis(u64::try_from(30 * DAY).unwrap_or(0)),
+            // Longer than any run of clock steps before the fixture is renewed (2,000 x 8 days), so the logged
+            // predictions are never removed and an outcome for one is never held.
+            retention: Duration::from_millis(u64::try_from(100 * 365 * DAY).unwrap_or(0)),
             maturity: [("fraud".to_string(), Duration::from_millis(7 * 86_400_000))].into(),
             ..StoreConfig::default()
         };
         let log = PredictionStore::start(Box::new(store), config, Clock::manual(Arc::clone(&clock)));
         for i in 0..LOGGED + 2 {
-            // p0 and p1 are logged twice (a retried call): one outcome settles both.
+            // p0 and p1 are logged a second time on the other route (the same id on two routes): one outcome
+            // settles both. (The same id on the same route, model and role is a retried call, stored once.)
             let id = format!("p{}", i % LOGGED);
+            let first_route = (i % LOGGED) % 2 == 0;
             let h = i as f64 / 4.0 - 2.0;
             log.log(Queued {
                 record: PredictionRecord {
                     prediction_id: id,
-                    route: if i % 2 == 0 { "fraud" } else { "credit" }.into(),
+                    route: if first_route == (i < LOGGED) { "fraud" } else { "credit" }.into(),
                     model: "fuzz-model".into(),
                     version: "1".into(),
                     role: "champion".into(),
