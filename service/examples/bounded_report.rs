@@ -64,6 +64,12 @@ fn row(rng: &mut rand_chacha::ChaCha8Rng, i: u64) -> (String, f64, f64, Option<b
     (format!("p{i:010}"), h, h2, label)
 }
 
+/// The delay of row `i`'s outcome (ms): 1 minute to 12 hours in 43,200 distinct steps of a second, so that the
+/// Kaplan-Meier curves of the eventual rate and the immature window have as many steps as a real delay would give.
+fn delay(i: u64) -> i64 {
+    60_000 + ((i * 7919) % 43_200) as i64 * 1000
+}
+
 fn info() -> ModelVersionInfo {
     ModelVersionInfo {
         model: "m".into(),
@@ -134,7 +140,7 @@ fn fill_sqlite(dir: &Path, n: u64) -> anyhow::Result<()> {
                 ])?;
             }
             if let Some(y) = label {
-                o.execute(rusqlite::params![id, i64::from(y), t, t + 3_600_000])?;
+                o.execute(rusqlite::params![id, i64::from(y), t, t + delay(i)])?;
             }
         }
     }
@@ -177,7 +183,7 @@ fn fill_postgres(url: &str, n: u64) -> anyhow::Result<()> {
             if let Some(y) = label {
                 outcomes.push(format!(
                     "{id}\t{y}\t{t}\t{}\treported\t0\tmatched\n",
-                    t + 3_600_000
+                    t + delay(i)
                 ));
             }
         }

@@ -52,9 +52,11 @@ fn fill(store: &mut dyn Store) {
             0.05
         };
         let time_ms = NOW - 20 * 86_400_000 + i * 500_000;
-        // The decision rule moves during the range (a threshold, costs, bands; a few rows without one).
+        // The decision rule moves during the range (a threshold, costs, bands; a few rows without one, a few with
+        // words no rule reads).
         let decision = match i {
             _ if i % 97 == 0 => "",
+            _ if i % 89 == 0 => "threshold 2",
             0..=999 => "threshold 0.5",
             1000..=1999 => "costs false_positive=1 false_negative=5",
             _ => "bands 0.2,0.6 low,medium,high",

@@ -494,6 +494,68 @@ mod tests {
     }
 
     #[test]
+    fn figures_from_a_pass_equal_the_figures_of_the_held_window() {
+        // `eventual_figures_by` keeps per-bin and per-step sums instead of the cases; on the same window it gives
+        // `eventual_figures`'s figures to rounding, with a merged bin (0.1 is younger than the first delay), several
+        // bins and cases on the same step.
+        let km = reference();
+        let mut w = window();
+        w.extend([
+            case(1.2, 0.25, false),
+            case(4.2, 0.65, true),
+            case(9.5, 0.95, false),
+        ]);
+        for edges in [vec![0.0, 1.0], vec![0.0, 0.15, 0.5, 0.75, 1.0]] {
+            let held = eventual_figures(&km, &w, &edges, 0.9).unwrap();
+            let passed = eventual_figures_by(&km, &edges, 0.9, |each| {
+                for c in &w {
+                    each(*c);
+                }
+            })
+            .unwrap();
+            let close = |a: f64, b: f64| (a - b).abs() <= 1e-12 * a.abs().max(b.abs()).max(1e-300);
+            let same = |a: &Estimate, b: &Estimate| {
+                close(a.estimate, b.estimate)
+                    && a.standard_error
+                        .zip(b.standard_error)
+                        .is_none_or(|(x, y)| close(x, y))
+                    && a.lower.zip(b.lower).is_none_or(|(x, y)| close(x, y))
+                    && a.upper.zip(b.upper).is_none_or(|(x, y)| close(x, y))
+                    && a.standard_error.is_some() == b.standard_error.is_some()
+            };
+            assert_eq!(
+                (held.cases, held.positives_so_far),
+                (passed.cases, passed.positives_so_far)
+            );
+            assert!(close(held.arrived_share, passed.arrived_share));
+            assert!(close(held.eventual_positives, passed.eventual_positives));
+            assert!(
+                same(&held.positive_rate, &passed.positive_rate),
+                "{held:?}\n{passed:?}"
+            );
+            assert!(same(&held.log_loss, &passed.log_loss));
+            assert!(same(&held.brier, &passed.brier));
+            assert_eq!(held.bins.len(), passed.bins.len());
+            for (a, b) in held.bins.iter().zip(&passed.bins) {
+                assert_eq!(
+                    (a.index, a.count, a.positives_so_far),
+                    (b.index, b.count, b.positives_so_far)
+                );
+                assert!(
+                    close(a.mean_predicted, b.mean_predicted)
+                        && close(a.arrived_share, b.arrived_share)
+                );
+                assert_eq!(a.rate.is_some(), b.rate.is_some());
+                if let (Some(x), Some(y)) = (&a.rate, &b.rate) {
+                    assert!(same(x, y), "{x:?} {y:?}");
+                }
+            }
+        }
+        // Refusals alike: an empty window.
+        assert!(eventual_figures_by(&km, &[0.0, 1.0], 0.9, |_| {}).is_err());
+    }
+
+    #[test]
     fn one_bin_is_the_eventual_rate() {
         // With a single bin the positive rate and its interval are `eventual_rate`'s, which computes the same
         // delta-method variance by another arrangement of the sums.

@@ -2,24 +2,25 @@
 //! order the database sorts ([`Store::scan`]), never from the range loaded at once.
 //!
 //! Every figure is the one [`section`](super::section) computes from the loaded rows, with the same arithmetic in
-//! the same order, so the two agree to the last bit or nearly so (`tests/report_stream.rs` checks it on both
-//! backends):
-//! - written order, every prediction: counts, means, PSI counts, histograms, log-loss and Brier sums, the
-//!   equal-width calibration bins and the first sums of the Brier decomposition (as `np.bincount` accumulates),
-//!   the base-rate EM's inputs (spilled to a temporary file, 8 bytes a prediction, which the EM's iterations read
-//!   again; see [`Spill`]), and "now" of the eventual positive rate;
-//! - written order, pairs: the within-bin terms of the decomposition, which need the bin means first;
-//! - final log-odds ascending (ties latest first): AUC and KS over groups of tied scores with exact integer
-//!   counts, and the gains groups (the order read backwards is the stable descending sort);
-//! - probability ascending (ties in written order): Hosmer-Lemeshow groups by rank and, for equal-count bins, the
-//!   order statistics the edges are interpolated from (then a written-order pass bins the pairs);
-//! - the follow-up of the eventual positive rate grouped by time in the database ([`Store::follow_up`]).
+//! the same order where it can be, so the two agree to the last bit or to rounding (`tests/report_stream.rs`
+//! checks every figure within 1e-9 relative on both backends). Passes per section, and what each figure holds:
 //!
-//! What is held: a few dozen counters and sums per section, the 10 to 20 bins of each table, the Kaplan-Meier steps
-//! (one per distinct delay of a positive outcome within the horizon), and, for the calibration tests only (Cox's
-//! logistic recalibration is a Newton fit over the pairs, not yet written as passes), the pairs' probability,
-//! log-odds and label, read in a last pass into vectors of exactly their size (17 bytes a pair with an outcome,
-//! dropped before the next section); no per-prediction state.
+//! | pass | figures | held |
+//! |---|---|---|
+//! | written order, every prediction | counts, means, PSI counts, class histograms, log-loss and Brier sums, equal-width calibration bins, operating points per served rule ([`operating::Tally`]), "now"; writes the base-rate EM's inputs and the calibration tests' pairs to spills | counters and sums; 10 to 20 bins; per distinct served rule (a handful) 4 counts or one pair of counts per band |
+//! | written order, pairs | within-bin terms of the Brier decomposition (with the bin means) | the bin means |
+//! | log-odds ascending, ties latest first | AUC and KS over groups of tied scores in exact integers; gains deciles (read backwards) | one tie group's counts |
+//! | probability ascending, ties in written order | Hosmer-Lemeshow groups by rank; order statistics of equal-count edges | 10 groups; 2 values per edge |
+//! | written order, pairs (equal-count bins only) | the calibration table on the edges | the bins |
+//! | the spill of every prediction, once per EM iteration | base-rate EM (Saerens, Latinne and Decaestecker 2002), `fit::estimate_prior_by` | [`Spill`]: up to 65,536 values in memory, beyond that a temporary file (8 bytes a prediction, 3 values) read 64 KiB at a time |
+//! | the spill of the pairs, a few dozen times | Spiegelhalter's z (once), Cox's logistic recalibration (both Newton fits read the pairs 2 to 4 times a step: `monitor::logistic_recalibration_by`) | the same kind of spill (24 bytes a pair on disk) |
+//! | follow-up grouped by time in the database ([`Store::follow_up`]) | eventual positive rate (Kaplan-Meier) | the Kaplan-Meier steps: one per distinct delay of a positive within the horizon |
+//! | immature window: follow-up of the matured predictions grouped in the database; probability order (equal-count bins only); one written-order pass | the window's eventual figures (`monitor::eventual_figures_by`) and the matured figures beside them | the Kaplan-Meier steps of the matured predictions and, per step and calibration bin, one count (twice: bins and merged strata) |
+//!
+//! So what grows with the range is only on disk (the spills) or in the database (its sorts); in memory, only the
+//! Kaplan-Meier steps grow, with the number of distinct delays of positive outcomes (at most one per positive; at
+//! one-second resolution, at most the horizon in seconds), and the immature window holds `steps x bins` counts.
+//! The store holds one fetch batch (`scan::FETCH_ROWS` rows on PostgreSQL; SQLite's cursor and page cache).
 
 use std::collections::BTreeMap;
 use std::io::{BufWriter, Read, Seek, SeekFrom, Write};
