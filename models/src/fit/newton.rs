@@ -45,6 +45,9 @@ pub fn fit_logistic(
     })
 }
 
+/// What a pass over the rows calls for each row: its columns and its target.
+pub type RowVisitor<'a> = &'a mut dyn FnMut(&[f64], f64);
+
 /// [`fit_logistic`] over rows it does not hold: `pass(each)` calls `each(columns, target)` for every row (`k`
 /// columns, unscaled), in the same order at every call (a pass over a file or a database cursor). The arithmetic
 /// is [`fit_logistic`]'s, which uses it, so the result is the same on the same rows in that order. The rows are
@@ -72,7 +75,7 @@ pub fn fit_logistic_by(
         out[k] = 1.0;
     };
     let mut x = vec![0.0; d];
-    let mut loss = |pass: &mut dyn FnMut(&mut dyn FnMut(&[f64], f64)), w: &[f64]| -> f64 {
+    let mut loss = |pass: &mut dyn FnMut(RowVisitor<'_>), w: &[f64]| -> f64 {
         let mut total = 0.0;
         pass(&mut |row: &[f64], t: f64| {
             scaled_row(row, &mut x);

@@ -287,16 +287,14 @@ impl Tally {
                     b.1 += usize::from(y);
                 }
             }
-            Some(rule) => {
-                if p > rule.threshold().unwrap_or(0.5) {
-                    if y {
-                        g.declined.0 += 1;
-                    } else {
-                        g.declined.1 += 1;
-                    }
+            Some(rule) if p > rule.threshold().unwrap_or(0.5) => {
+                if y {
+                    g.declined.0 += 1;
+                } else {
+                    g.declined.1 += 1;
                 }
             }
-            None => {}
+            _ => {}
         }
     }
 
