@@ -1015,7 +1015,8 @@ print(log_loss(y, p), brier_score_loss(y, p), roc_auc_score(y, h))\n";
     }
 
     /// A replica whose database cannot be used does not start, and says why without the password: once with the URL
-    /// in the environment and a database that does not exist, once with a URL file naming a port nothing listens on.
+    /// in the environment and a database that does not exist (at once: waiting would not help), once with a URL file
+    /// naming a port nothing listens on (after trying again for `store.postgres_start_wait`, each try logged).
     #[test]
     fn a_replica_without_its_database_stops_with_an_error_that_hides_the_password() {
         let secret = "Pw-fleet-never-shown-4410";
@@ -1045,7 +1046,8 @@ print(log_loss(y, p), brier_score_loss(y, p), roc_auc_score(y, h))\n";
                 &config,
                 format!(
                 "[server]\nplaintext = \"loopback\"\n[models]\ndirectory = {:?}\nwatch = false\n\
-                 [store]\nbackend = \"postgres\"\n{file_line}[routes.r]\nmodel = \"linear\"\n",
+                 [store]\nbackend = \"postgres\"\npostgres_start_wait = \"1s\"\n{file_line}\
+                 [routes.r]\nmodel = \"linear\"\n",
                 models.path().display().to_string()
             ),
             )
@@ -1077,6 +1079,10 @@ print(log_loss(y, p), brier_score_loss(y, p), roc_auc_score(y, h))\n";
             text.contains("store.backend") && text.contains("127.0.0.1:1/fleet"),
             "{text}"
         );
+        assert!(
+            text.contains("does not answer yet; trying again") && text.contains("attempts over"),
+            "tried again for store.postgres_start_wait, and said so: {text}"
+        );
         // No URL at all: the error names both places it may come from.
         let text = serve(&write_config(false), None);
         assert!(
@@ -1093,6 +1099,109 @@ print(log_loss(y, p), brier_score_loss(y, p), roc_auc_score(y, h))\n";
             );
             assert!(!text.contains(secret), "{text}");
             assert!(text.contains("no_such_db_fleet"), "{text}");
+            assert!(
+                !text.contains("trying again"),
+                "a database that answers with an error is not waited for: {text}"
+            );
         }
+    }
+
+    /// Replicas and their database often start together: a replica started while nothing answers at the database's
+    /// address waits (`store.postgres_start_wait`), and serves once the database answers. The database "starts" here
+    /// as a TCP relay to the real one, opened 1.5 s after the replica.
+    #[test]
+    fn a_replica_waits_for_a_database_that_starts_after_it() {
+        let Some(db) = TestDb::create("late") else {
+            return;
+        };
+        let relay_port = free_port();
+        let real = db.url();
+        let late_url = real.replacen("127.0.0.1:5432", &format!("127.0.0.1:{relay_port}"), 1);
+        assert_ne!(
+            late_url, real,
+            "the test database is on 127.0.0.1:5432: {real}"
+        );
+        let models = tempfile::tempdir().unwrap();
+        std::fs::write(
+            models.path().join("linear.json"),
+            r#"{"format": "probity.model", "format_version": 1, "name": "linear", "version": "1",
+            "features": [{"name": "x", "type": "numeric"}], "margin_scale": "log_odds", "base_rate": 0.3,
+            "linear": {"intercept": -0.5, "terms": [{"numeric": {"feature": 0, "coefficient": 1.2}}]}}"#,
+        )
+        .unwrap();
+        let data = tempfile::tempdir().unwrap();
+        let url_file = data.path().join("db-url");
+        std::fs::write(&url_file, &late_url).unwrap();
+        let config = data.path().join("probity.toml");
+        std::fs::write(
+            &config,
+            format!(
+                "[server]\nplaintext = \"loopback\"\n[models]\ndirectory = {:?}\nwatch = false\n\
+                 [store]\nbackend = \"postgres\"\npostgres_url_file = {:?}\npostgres_start_wait = \"60s\"\n\
+                 flush_interval = \"10ms\"\n[routes.r]\nmodel = \"linear\"\n",
+                models.path().display().to_string(),
+                url_file.display().to_string()
+            ),
+        )
+        .unwrap();
+        let relay = std::thread::spawn(move || {
+            std::thread::sleep(Duration::from_millis(1500));
+            let listener = std::net::TcpListener::bind(("127.0.0.1", relay_port)).unwrap();
+            for client in listener.incoming() {
+                let Ok(client) = client else { continue };
+                let Ok(upstream) = std::net::TcpStream::connect("127.0.0.1:5432") else {
+                    continue;
+                };
+                for (mut from, mut to) in [
+                    (client.try_clone().unwrap(), upstream.try_clone().unwrap()),
+                    (upstream, client),
+                ] {
+                    std::thread::spawn(move || {
+                        let _ = std::io::copy(&mut from, &mut to);
+                        let _ = to.shutdown(std::net::Shutdown::Write);
+                    });
+                }
+            }
+        });
+        let rt = tokio::runtime::Builder::new_current_thread()
+            .enable_all()
+            .build()
+            .unwrap();
+        let server = rt.block_on(start(&config));
+        assert!(!relay.is_finished(), "the relay stopped");
+        // It serves, and its predictions reach the database through the relay.
+        rt.block_on(async {
+            let mut scoring =
+                pb::scoring_client::ScoringClient::new(channel(&server.url).await.unwrap());
+            scoring
+                .score_batch(pb::ScoreBatchRequest {
+                    route: "r".into(),
+                    rows: rows(0..20),
+                    ..Default::default()
+                })
+                .await
+                .unwrap();
+        });
+        let mut logged = 0;
+        for _ in 0..200 {
+            logged = db
+                .client()
+                .query_one("SELECT count(*) FROM predictions", &[])
+                .unwrap()
+                .get::<_, i64>(0);
+            if logged == 20 {
+                break;
+            }
+            std::thread::sleep(Duration::from_millis(50));
+        }
+        assert_eq!(logged, 20);
+        let port = server.url.rsplit(':').next().unwrap().to_string();
+        drop(server);
+        let log =
+            std::fs::read_to_string(config.with_file_name(format!("replica-{port}.log"))).unwrap();
+        assert!(
+            log.contains("does not answer yet; trying again"),
+            "the replica started before the database answered, so it must have waited: {log}"
+        );
     }
 }
