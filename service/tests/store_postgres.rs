@@ -26,6 +26,8 @@ use rand::{Rng, SeedableRng};
 
 #[path = "support/postgres.rs"]
 mod pg;
+#[path = "support/prometheus.rs"]
+mod prom;
 use pg::TestDb;
 
 const DAY: i64 = 86_400_000;
@@ -515,6 +517,8 @@ mod fleet {
     struct Server {
         child: Child,
         url: String,
+        /// host:port of its `/metrics`.
+        metrics: String,
     }
 
     impl Drop for Server {
@@ -527,11 +531,12 @@ mod fleet {
 
     async fn start(config: &std::path::Path) -> Server {
         let port = free_port();
+        let metrics = format!("127.0.0.1:{}", free_port());
         let mut child = Command::new(env!("CARGO_BIN_EXE_probity"))
             .args(["serve", "--config"])
             .arg(config)
             .args(["--grpc-listen", &format!("127.0.0.1:{port}")])
-            .args(["--metrics-listen", &format!("127.0.0.1:{}", free_port())])
+            .args(["--metrics-listen", &metrics])
             .stdout(Stdio::null())
             .stderr(
                 std::fs::File::create(config.with_file_name(format!("replica-{port}.log")))
@@ -548,7 +553,11 @@ mod fleet {
                 .await
                 .is_ok()
             {
-                return Server { child, url };
+                return Server {
+                    child,
+                    url,
+                    metrics,
+                };
             }
             tokio::time::sleep(Duration::from_millis(50)).await;
         }
@@ -1203,5 +1212,160 @@ print(log_loss(y, p), brier_score_loss(y, p), roc_auc_score(y, h))\n";
             log.contains("does not answer yet; trying again"),
             "the replica started before the database answered, so it must have waited: {log}"
         );
+    }
+
+    /// A real Prometheus server scrapes three replicas of one database with `deploy/prometheus/rules.yml` loaded:
+    /// each replica counts the outcomes it matched (the one that received the outcome, or the one that logged the
+    /// prediction when the outcome came first and was held), and the recorded fleet figures (sums over the
+    /// replicas, then ratios) equal the report any replica makes from the shared database: matched pairs, log-loss,
+    /// Brier, observed base rate, within 1e-9 relative. No replica restarts in the window.
+    #[test]
+    fn prometheus_adds_three_replicas_into_the_fleet_report() {
+        let Some(db) = TestDb::create("prom") else {
+            return;
+        };
+        let models = tempfile::tempdir().unwrap();
+        std::fs::write(
+            models.path().join("linear.json"),
+            r#"{"format": "probity.model", "format_version": 1, "name": "linear", "version": "1",
+            "features": [{"name": "x", "type": "numeric"}], "margin_scale": "log_odds", "base_rate": 0.3,
+            "linear": {"intercept": -0.5, "terms": [{"numeric": {"feature": 0, "coefficient": 1.2}}]}}"#,
+        )
+        .unwrap();
+        let data = tempfile::tempdir().unwrap();
+        let url_file = data.path().join("db-url");
+        std::fs::write(&url_file, db.url()).unwrap();
+        let config = data.path().join("probity.toml");
+        std::fs::write(
+            &config,
+            format!(
+                "[server]\nplaintext = \"loopback\"\n[models]\ndirectory = {:?}\nwatch = false\n\
+                 [store]\nbackend = \"postgres\"\npostgres_url_file = {:?}\nflush_interval = \"10ms\"\n\
+                 sweep_interval = \"1s\"\n[routes.r]\nmodel = \"linear\"\n",
+                models.path().display().to_string(),
+                url_file.display().to_string()
+            ),
+        )
+        .unwrap();
+        let rt = tokio::runtime::Builder::new_multi_thread()
+            .worker_threads(2)
+            .enable_all()
+            .build()
+            .unwrap();
+        const N: usize = 30;
+        let (servers, report) = rt.block_on(async {
+            let mut servers = Vec::new();
+            for _ in 0..3 {
+                servers.push(start(&config).await);
+            }
+            let mut channels = Vec::new();
+            for s in &servers {
+                channels.push(channel(&s.url).await.unwrap());
+            }
+            // Batch b is scored on replica b % 3; its outcomes go to replica (b + 1) % 3, every other batch before
+            // the prediction can have been written (held, then matched by the writer's replica).
+            for b in 0..N {
+                let scorer = b % 3;
+                let receiver = (b + 1) % 3;
+                let mut scoring = pb::scoring_client::ScoringClient::new(channels[scorer].clone());
+                let mut outcomes =
+                    pb::outcomes_client::OutcomesClient::new(channels[receiver].clone());
+                let send = pb::RecordOutcomesRequest {
+                    outcomes: (b * PER_BATCH..(b + 1) * PER_BATCH)
+                        .map(|i| pb::Outcome {
+                            prediction_id: format!("f-{i}"),
+                            label: label(i),
+                            outcome_time_unix_ms: 0,
+                        })
+                        .collect(),
+                };
+                let score = pb::ScoreBatchRequest {
+                    route: "r".into(),
+                    rows: rows(b * PER_BATCH..(b + 1) * PER_BATCH),
+                    ..Default::default()
+                };
+                if b % 2 == 0 {
+                    outcomes.record_outcomes(send).await.unwrap();
+                    scoring.score_batch(score).await.unwrap();
+                } else {
+                    scoring.score_batch(score).await.unwrap();
+                    outcomes.record_outcomes(send).await.unwrap();
+                }
+            }
+            // Every outcome matched (held ones too, once their predictions are written).
+            let mut report = Value::Null;
+            for _ in 0..400 {
+                let mut o = pb::outcomes_client::OutcomesClient::new(channels[2].clone());
+                let r = o
+                    .report(pb::ReportRequest::default())
+                    .await
+                    .unwrap()
+                    .into_inner();
+                report = serde_json::from_str(&r.json).unwrap();
+                if report["series"][0]["with_outcome"].as_u64() == Some((N * PER_BATCH) as u64) {
+                    break;
+                }
+                tokio::time::sleep(Duration::from_millis(50)).await;
+            }
+            (servers, report)
+        });
+        let s = &report["series"][0];
+        assert_eq!(
+            s["with_outcome"].as_u64(),
+            Some((N * PER_BATCH) as u64),
+            "{report}"
+        );
+        let targets: Vec<&str> = servers.iter().map(|s| s.metrics.as_str()).collect();
+        let prometheus = super::prom::start_prometheus(&targets);
+        let labels = [("route", "r"), ("model", "linear"), ("version", "1")];
+        let deadline = std::time::Instant::now() + Duration::from_secs(60);
+        // Each replica matched some of the outcomes: the sum is over replicas, not one replica's own figures.
+        loop {
+            let per_replica = prometheus
+                .query(r#"sum by (instance) (probity_outcome_log_loss_count{entry="add"})"#);
+            if per_replica.len() == 3 {
+                assert!(per_replica.iter().all(|(_, v)| *v > 0.0), "{per_replica:?}");
+                break;
+            }
+            assert!(
+                std::time::Instant::now() < deadline,
+                "three replicas never scraped: {per_replica:?}"
+            );
+            std::thread::sleep(Duration::from_millis(200));
+        }
+        for (record, want) in [
+            (
+                "route_model_version:probity_outcomes_matched:net",
+                s["with_outcome"].as_f64().unwrap(),
+            ),
+            (
+                "route_model_version:probity_outcome_log_loss:mean",
+                s["log_loss"].as_f64().unwrap(),
+            ),
+            (
+                "route_model_version:probity_outcome_brier:mean",
+                s["brier"].as_f64().unwrap(),
+            ),
+            (
+                "route_model_version:probity_outcome_observed_base_rate:ratio",
+                s["observed_base_rate"].as_f64().unwrap(),
+            ),
+        ] {
+            let got = loop {
+                let got = prometheus.value(record, &labels);
+                if got.is_some_and(|v| super::prom::close(v, want))
+                    || std::time::Instant::now() >= deadline
+                {
+                    break got;
+                }
+                std::thread::sleep(Duration::from_millis(200));
+            };
+            println!("fleet {record}: recorded {got:?}, report {want}");
+            assert!(
+                got.is_some_and(|v| super::prom::close(v, want)),
+                "{record}: recorded {got:?}, report {want}"
+            );
+        }
+        assert!(prometheus.healthy_rules() >= 30);
     }
 }
