@@ -390,6 +390,7 @@ fn measure_both_backends() {
                 version: "v1".into(),
                 base_rate: 0.1,
                 reference: None,
+                features: Vec::new(),
             }
         }
     }
@@ -420,6 +421,7 @@ fn measure_both_backends() {
                 record: r,
                 prior: 0.02,
                 facts: Arc::new(Facts),
+                features: None,
             });
         }
         log.flush().unwrap();

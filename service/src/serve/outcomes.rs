@@ -34,18 +34,33 @@ impl ModelFacts for LoadedModel {
             version: self.model.version().to_string(),
             base_rate: self.model.base_rate(),
             reference: self.model.reference_distribution().map(Reference::of),
+            features: self
+                .model
+                .training_distributions()
+                .take(crate::serve::feature_metrics::MAX_MONITORED_FEATURES)
+                .map(|(column, d)| {
+                    let name = self
+                        .model
+                        .schema()
+                        .feature(column)
+                        .map(|f| f.name.as_str())
+                        .unwrap_or_default();
+                    crate::store::features::FeatureDistribution::of(name, d)
+                })
+                .collect(),
         }
     }
 }
 
 /// The log entry of a scored row (the subject key and tags are moved out of the row; the response does not carry
-/// them).
+/// them), with the slots of its monitored features when the scoring path found them.
 pub fn queued(
     route: &Route,
     loaded: &Arc<LoadedModel>,
     role: &str,
     row: &mut PreparedRow,
     scored: &probity_models::Scored,
+    features: Option<crate::store::features::RowFeatures>,
 ) -> Queued {
     let prior = route
         .output
@@ -77,6 +92,7 @@ pub fn queued(
         },
         prior,
         facts: Arc::clone(loaded) as Arc<dyn ModelFacts>,
+        features,
     }
 }
 
