@@ -246,6 +246,18 @@ fn served_rule(r: &crate::report::operating::ServedRule) -> pb::ServedRule {
     }
 }
 
+/// A feature's stability in a report section as its wire message.
+fn feature_stability(f: &crate::report::features::FeatureReport) -> pb::FeatureStability {
+    pb::FeatureStability {
+        feature: f.feature.clone(),
+        rows: f.rows,
+        psi: f.psi,
+        missing_rate: f.missing_rate,
+        unknown_rate: f.unknown_rate,
+        counts: f.counts.clone(),
+    }
+}
+
 /// The report as its wire message.
 pub fn report_response(report: &Report) -> pb::ReportResponse {
     let series = report
@@ -258,6 +270,7 @@ pub fn report_response(report: &Report) -> pb::ReportResponse {
             role: s.role.clone(),
             predictions: s.predictions as u64,
             with_outcome: s.with_outcome as u64,
+            features: s.features.iter().map(feature_stability).collect(),
             immature: s.immature as u64,
             settled_by_maturity: s.settled_by_maturity as u64,
             corrected: s.corrected as u64,
