@@ -354,7 +354,12 @@ fn a_version_1_log_is_migrated_and_keeps_its_rows() {
     let version: i64 = conn
         .pragma_query_value(None, "user_version", |r| r.get(0))
         .unwrap();
-    assert_eq!(version, 3);
+    assert_eq!(version, 4);
+    // Version 4 added the per-feature counts by hour, empty in a migrated log.
+    let windows: i64 = conn
+        .query_row("SELECT COUNT(*) FROM feature_counts", [], |r| r.get(0))
+        .unwrap();
+    assert_eq!(windows, 0);
     let decision: String = conn
         .query_row(
             "SELECT decision FROM predictions WHERE prediction_id = 'new'",

@@ -262,7 +262,7 @@ fn a_database_at_a_newer_schema_is_refused() {
         .unwrap();
     match PgStore::open(ConnectionUrl::new(&db.url()).unwrap(), None, T0) {
         Err(StoreError::Schema { found, supported }) => {
-            assert_eq!((found, supported), (99, 3));
+            assert_eq!((found, supported), (99, 4));
         }
         Err(other) => panic!("wrong error: {other}"),
         Ok(_) => panic!("a newer schema was accepted"),
