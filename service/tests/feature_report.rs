@@ -194,7 +194,10 @@ fn check(response: &pb::ReportResponse, window: &str) {
         let want: Vec<u64> = serde_json::from_value(r["counts"].clone()).unwrap();
         // Each row once: the steady batch sent twice counts once.
         assert_eq!(f.counts, want, "{window} {name}: counts");
-        assert_eq!(f.rows, s.predictions, "{window} {name}: one count per prediction");
+        assert_eq!(
+            f.rows, s.predictions,
+            "{window} {name}: one count per prediction"
+        );
         // NumPy, Siddiqi's formula (tests/fixtures/gen_stability.py).
         let psi = f.psi.unwrap();
         assert!(
@@ -244,7 +247,10 @@ async fn the_report_shows_each_features_stability_on_sqlite() {
             .unwrap()
     };
     for name in ["mean_radius", "mean_texture", "mean_perimeter"] {
-        assert!(psi(&steady, name) < 0.25 && psi(&shifted, name) > 0.25, "{name}");
+        assert!(
+            psi(&steady, name) < 0.25 && psi(&shifted, name) > 0.25,
+            "{name}"
+        );
     }
 
     // `probity report` reads the same store file and prints the figures.
@@ -265,8 +271,9 @@ async fn the_report_shows_each_features_stability_on_sqlite() {
     );
     let f = &shifted.series[0].features[0];
     assert!(
-        text.lines().any(|l| l.split_whitespace().next() == Some(f.feature.as_str())
-            && l.contains(&format!("{:.6}", f.psi.unwrap()))),
+        text.lines()
+            .any(|l| l.split_whitespace().next() == Some(f.feature.as_str())
+                && l.contains(&format!("{:.6}", f.psi.unwrap()))),
         "{text}"
     );
 }
@@ -340,16 +347,10 @@ fn sums(store: &mut dyn Store, filter: &ReportFilter) -> BTreeMap<(String, i64),
 /// windows are UTC hours, and retention removes an hour once all of it is past the cutoff.
 fn counts_add_up_once(first: &mut dyn Store, replica: &mut dyn Store) {
     let hour = T0 + 5 * WINDOW_MS;
-    assert_eq!(
-        batch(first, &["x1", "x2", "x3"], hour + 10, 2),
-        [true; 3]
-    );
+    assert_eq!(batch(first, &["x1", "x2", "x3"], hour + 10, 2), [true; 3]);
     assert_eq!(batch(first, &["x4", "x5"], hour + 20, 1), [true; 2]);
     // The retry of the first batch: logged already, nothing written, nothing counted.
-    assert_eq!(
-        batch(first, &["x1", "x2", "x3"], hour + 10, 2),
-        [false; 3]
-    );
+    assert_eq!(batch(first, &["x1", "x2", "x3"], hour + 10, 2), [false; 3]);
     // Another replica, same hour; one of its rows repeats an id the first wrote.
     assert_eq!(
         batch(replica, &["y1", "x5"], hour + WINDOW_MS - 1, 2),

@@ -45,7 +45,8 @@ pub struct FeatureReport {
 }
 
 /// How the report states the windows.
-pub const WINDOWS: &str = "one-hour windows aligned to UTC hours; the range is widened to whole hours";
+pub const WINDOWS: &str =
+    "one-hour windows aligned to UTC hours; the range is widened to whole hours";
 
 /// Fills each section's `features` from the store's hourly counts (one query for the whole report).
 pub fn add(
@@ -136,7 +137,10 @@ fn section(
         notes.push(format!(
             "feature {feature}: counted, but the store's facts of this model version hold no training distribution for it (no PSI)"
         ));
-        let total: u64 = rows.iter().map(|c| u64::try_from(c.rows).unwrap_or(0)).sum();
+        let total: u64 = rows
+            .iter()
+            .map(|c| u64::try_from(c.rows).unwrap_or(0))
+            .sum();
         out.push(FeatureReport {
             feature,
             rows: total,

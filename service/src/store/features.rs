@@ -93,17 +93,15 @@ pub fn counts_of(
     }
     sums.into_iter()
         .map(
-            |((window_ms, route, model, version, role, feature, slot), rows)| {
-                FeatureCount {
-                    window_ms,
-                    route: route.to_string(),
-                    model: model.to_string(),
-                    version: version.to_string(),
-                    role: role.to_string(),
-                    feature: feature.to_string(),
-                    slot: i64::from(slot),
-                    rows,
-                }
+            |((window_ms, route, model, version, role, feature, slot), rows)| FeatureCount {
+                window_ms,
+                route: route.to_string(),
+                model: model.to_string(),
+                version: version.to_string(),
+                role: role.to_string(),
+                feature: feature.to_string(),
+                slot: i64::from(slot),
+                rows,
             },
         )
         .collect()
