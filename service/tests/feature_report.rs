@@ -18,9 +18,10 @@ use std::sync::Arc;
 
 use probity::serve::config::{Config, Sources};
 use probity::serve::proto as pb;
+use probity::store::features::FeatureDistribution;
 use probity::store::features::{FeatureCount, RowFeatures, WINDOW_MS};
 use probity::store::sqlite::Durability;
-use probity::store::{PredictionRecord, ReportFilter, SqliteStore, Store};
+use probity::store::{ModelVersionInfo, PredictionRecord, ReportFilter, SqliteStore, Store};
 use probity_models::metrics::EmptyBinRule;
 use probity_models::stability::stability;
 use probity_models::Model;
@@ -385,6 +386,32 @@ fn counts_add_up_once(first: &mut dyn Store, replica: &mut dyn Store) {
     // Retention: a cutoff inside the second hour removes the first (wholly past) and keeps the second.
     first.remove_expired(0, hour + WINDOW_MS + 1).unwrap();
     assert_eq!(sums(first, &all), want(&[(("a", 3), 1), (("b", 0), 1)]));
+
+    // Facts recorded without training distributions (by an earlier build) get them when registered again; the
+    // rest stays as first recorded, and distributions once kept are not replaced.
+    let facts = |base_rate: f64, share: f64| ModelVersionInfo {
+        model: "old".into(),
+        version: "1".into(),
+        base_rate,
+        reference: None,
+        features: if share > 0.0 {
+            vec![FeatureDistribution {
+                feature: "a".into(),
+                edges: Some(vec![1.0]),
+                shares: vec![share, 1.0 - share],
+                missing: 0.0,
+                unknown: 0.0,
+            }]
+        } else {
+            Vec::new()
+        },
+    };
+    first.register_model(&facts(0.1, 0.0)).unwrap();
+    replica.register_model(&facts(0.2, 0.5)).unwrap();
+    first.register_model(&facts(0.3, 0.25)).unwrap();
+    let kept = first.model_version("old", "1").unwrap().unwrap();
+    assert_eq!(kept.base_rate, 0.1);
+    assert_eq!(kept.features, facts(0.2, 0.5).features);
 }
 
 #[test]

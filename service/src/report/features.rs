@@ -7,9 +7,9 @@
 //!   may therefore exceed the section's predictions by those of the partial hours at either end.
 //! - **Distributions.** Taken from the store's model version facts (what the model file stated when the version
 //!   first logged a prediction), not from the model files a server has loaded now, so that `probity report` on a
-//!   store file alone gives the same figures as the `Report` call. A version whose facts hold no distribution for
-//!   a counted feature (first registered by a build that did not keep them) shows its rows with the rates of the
-//!   slots that need no distribution, and no PSI.
+//!   store file alone gives the same figures as the `Report` call. Facts recorded by an earlier build get the
+//!   distributions when this build first writes a prediction of that version, before its counts; a counted feature
+//!   the facts still do not know (a hand-edited store) shows its rows, and no PSI, with a note.
 //! - **Figures.** [`probity_models::stability::stability`] with its default empty-bin rule (shares floored at
 //!   1e-4), the same function as `probity evaluate`, `probity check` and the recording rules use.
 

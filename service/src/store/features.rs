@@ -153,3 +153,18 @@ impl FeatureDistribution {
         }
     }
 }
+
+/// The facts text to store in place of `stored` when those facts, first registered by a build that did not keep
+/// training distributions, lack the ones `info` brings: `stored` with `info`'s distributions added, everything else
+/// left as first recorded. `None` when nothing is to change (the facts are recorded once otherwise).
+pub fn facts_with_distributions(stored: &str, info: &super::ModelVersionInfo) -> Option<String> {
+    if info.features.is_empty() {
+        return None;
+    }
+    let mut facts: super::ModelVersionInfo = serde_json::from_str(stored).ok()?;
+    if !facts.features.is_empty() {
+        return None;
+    }
+    facts.features.clone_from(&info.features);
+    serde_json::to_string(&facts).ok()
+}

@@ -490,7 +490,8 @@ pub trait Store: Send {
         Ok(Vec::new())
     }
 
-    /// Records a model version's facts (once; later calls for the same version change nothing).
+    /// Records a model version's facts (once; later calls for the same version change nothing, but for adding
+    /// the training distributions to facts an earlier build recorded without them).
     fn register_model(&mut self, info: &ModelVersionInfo) -> Result<(), StoreError>;
 
     /// Applies outcomes in order; one result per input, and the pairs settled or re-labelled.

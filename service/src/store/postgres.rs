@@ -826,10 +826,25 @@ impl Store for PgStore {
     fn register_model(&mut self, info: &ModelVersionInfo) -> Result<(), StoreError> {
         let text = serde_json::to_string(info).unwrap_or_else(|_| "{}".into());
         self.transact("register model", |tx, _| {
-            tx.execute(
+            let added = tx.execute(
                 "INSERT INTO model_versions (model, version, info) VALUES ($1, $2, $3) ON CONFLICT DO NOTHING",
                 &[&info.model, &info.version, &text],
             )?;
+            if added == 0 && !info.features.is_empty() {
+                // Facts of an earlier build get the training distributions they lack (`super::features`).
+                let stored: String = tx
+                    .query_one(
+                        "SELECT info FROM model_versions WHERE model = $1 AND version = $2 FOR UPDATE",
+                        &[&info.model, &info.version],
+                    )?
+                    .get(0);
+                if let Some(text) = super::features::facts_with_distributions(&stored, info) {
+                    tx.execute(
+                        "UPDATE model_versions SET info = $3 WHERE model = $1 AND version = $2",
+                        &[&info.model, &info.version, &text],
+                    )?;
+                }
+            }
             Ok(())
         })
     }

@@ -604,12 +604,31 @@ impl SqliteStore {
 
     fn register_model_inner(&mut self, info: &ModelVersionInfo) -> Result<(), StoreError> {
         let text = serde_json::to_string(info).unwrap_or_else(|_| "{}".into());
-        self.conn
+        let tx = self.conn.transaction().map_err(db("begin"))?;
+        let added = tx
             .execute(
                 "INSERT OR IGNORE INTO model_versions (model, version, info) VALUES (?1, ?2, ?3)",
                 params![info.model, info.version, text],
             )
             .map_err(db("register model"))?;
+        if added == 0 && !info.features.is_empty() {
+            // Facts of an earlier build get the training distributions they lack (`super::features`).
+            let stored: String = tx
+                .query_row(
+                    "SELECT info FROM model_versions WHERE model = ?1 AND version = ?2",
+                    params![info.model, info.version],
+                    |r| r.get(0),
+                )
+                .map_err(db("register model"))?;
+            if let Some(text) = super::features::facts_with_distributions(&stored, info) {
+                tx.execute(
+                    "UPDATE model_versions SET info = ?3 WHERE model = ?1 AND version = ?2",
+                    params![info.model, info.version, text],
+                )
+                .map_err(db("register model"))?;
+            }
+        }
+        tx.commit().map_err(db("commit model version"))?;
         Ok(())
     }
 
