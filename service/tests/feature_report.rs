@@ -325,10 +325,7 @@ fn batch(store: &mut dyn Store, ids: &[&str], time_ms: i64, slot: u8) -> Vec<boo
     let records: Vec<PredictionRecord> = ids.iter().map(|id| record(id, time_ms)).collect();
     let features: Vec<RowFeatures> = ids
         .iter()
-        .map(|_| RowFeatures {
-            names: Arc::clone(&names),
-            slots: vec![slot, 0].into_boxed_slice(),
-        })
+        .map(|_| RowFeatures::new(Arc::clone(&names), &[slot, 0]).unwrap())
         .collect();
     let refs: Vec<Option<&RowFeatures>> = features.iter().map(Some).collect();
     store.insert_predictions_counted(&records, &refs).unwrap().0

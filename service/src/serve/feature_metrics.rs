@@ -118,9 +118,9 @@ impl FeatureCounters {
     /// per monitored feature, for the store (`None` if a row is shorter than the schema, which the scorer never
     /// sends).
     pub fn count(&self, row: &[f64], keep: bool) -> Option<RowFeatures> {
-        let mut slots = Vec::with_capacity(if keep { self.features.len() } else { 0 });
+        let mut slots = [0u8; MAX_MONITORED_FEATURES];
         let mut whole = true;
-        for m in &self.features {
+        for (m, kept) in self.features.iter().zip(slots.iter_mut()) {
             let Some(&v) = row.get(m.column) else {
                 whole = false;
                 continue;
@@ -129,14 +129,15 @@ impl FeatureCounters {
             if let Some(c) = m.counters.get(slot) {
                 c.increment(1);
             }
-            if keep {
-                // At most MAX_DISTRIBUTION_BINS + 2 = 34 slots: a byte.
-                slots.push(u8::try_from(slot).unwrap_or(u8::MAX));
-            }
+            // At most MAX_DISTRIBUTION_BINS + 2 = 34 slots: a byte.
+            *kept = u8::try_from(slot).unwrap_or(u8::MAX);
         }
-        (keep && whole).then(|| RowFeatures {
-            names: std::sync::Arc::clone(&self.names),
-            slots: slots.into_boxed_slice(),
-        })
+        if !(keep && whole) {
+            return None;
+        }
+        RowFeatures::new(
+            std::sync::Arc::clone(&self.names),
+            &slots[..self.features.len()],
+        )
     }
 }

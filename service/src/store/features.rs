@@ -4,7 +4,8 @@
 //! - **What is counted.** The scoring path already finds, for every answered row, the slot of each monitored
 //!   feature's value (the first [`crate::serve::feature_metrics::MAX_MONITORED_FEATURES`] features of the model
 //!   file that carry a training distribution) for the `probity_feature_values_total` counters. The same slots, one
-//!   byte per feature, ride with the row's prediction to the store writer ([`RowFeatures`]); no second lookup.
+//!   byte per feature held inline, ride with the row's prediction to the store writer ([`RowFeatures`]): no second
+//!   lookup and no allocation per row.
 //!   Rows scored silently by a challenger are not counted (they are the answered row's values again).
 //! - **Windows.** One hour, aligned to UTC hours (`time_ms` rounded down to a multiple of 3,600,000, the Unix
 //!   epoch being an hour boundary of UTC): the prediction's own time decides its window.
@@ -35,14 +36,41 @@ pub fn window_of(time_ms: i64) -> i64 {
     time_ms.div_euclid(WINDOW_MS) * WINDOW_MS
 }
 
+/// Most features a row's slots hold: the monitored features of a model version.
+pub const MAX_ROW_FEATURES: usize = crate::serve::feature_metrics::MAX_MONITORED_FEATURES;
+
 /// The monitored features of one scored row: their names (shared by every row of the model version) and the slot
-/// of each one's value, in the same order.
+/// of each one's value, in the same order. The slots are held inline (no allocation per row).
 #[derive(Debug, Clone, PartialEq)]
 pub struct RowFeatures {
+    names: Arc<[String]>,
+    slots: [u8; MAX_ROW_FEATURES],
+}
+
+impl RowFeatures {
+    /// The slots `slots[i]` of features `names[i]`; `None` when the two lengths differ or exceed
+    /// [`MAX_ROW_FEATURES`].
+    pub fn new(names: Arc<[String]>, slots: &[u8]) -> Option<RowFeatures> {
+        if slots.len() != names.len() || slots.len() > MAX_ROW_FEATURES {
+            return None;
+        }
+        let mut inline = [0u8; MAX_ROW_FEATURES];
+        inline[..slots.len()].copy_from_slice(slots);
+        Some(RowFeatures {
+            names,
+            slots: inline,
+        })
+    }
+
     /// Feature names, in monitored order.
-    pub names: Arc<[String]>,
+    pub fn names(&self) -> &[String] {
+        &self.names
+    }
+
     /// Slot index of each feature's value in its training distribution.
-    pub slots: Box<[u8]>,
+    pub fn slots(&self) -> &[u8] {
+        &self.slots[..self.names.len()]
+    }
 }
 
 /// Rows counted in one slot of one window.
@@ -78,7 +106,7 @@ pub fn counts_of(
     for ((r, f), w) in records.iter().zip(features).zip(written) {
         let (Some(f), true) = (f, *w) else { continue };
         let window = window_of(r.time_ms);
-        for (name, &slot) in f.names.iter().zip(f.slots.iter()) {
+        for (name, &slot) in f.names().iter().zip(f.slots()) {
             let key = (
                 window,
                 r.route.as_str(),
