@@ -143,7 +143,25 @@ async fn score_and_report(backend: Backend<'_>) -> (pb::ReportResponse, pb::Repo
         // The retry is written in a batch of its own.
         flush().await.unwrap();
     }
-    for row in rows("shifted.csv", "shifted") {
+    let now = || {
+        i64::try_from(
+            std::time::SystemTime::now()
+                .duration_since(std::time::UNIX_EPOCH)
+                .unwrap()
+                .as_millis(),
+        )
+        .unwrap()
+    };
+    let shifted_rows = rows("shifted.csv", "shifted");
+    let total = shifted_rows.len();
+    let (start, mut middle) = (now(), 0);
+    for (i, row) in shifted_rows.into_iter().enumerate() {
+        if i == total / 2 {
+            // Strictly after the first half's prediction times.
+            tokio::time::sleep(std::time::Duration::from_millis(2)).await;
+            middle = now();
+            tokio::time::sleep(std::time::Duration::from_millis(2)).await;
+        }
         scoring
             .score(pb::ScoreRequest {
                 route: "card-shifted".into(),
@@ -164,17 +182,24 @@ async fn score_and_report(backend: Backend<'_>) -> (pb::ReportResponse, pb::Repo
     };
     let steady = report("card-steady").await;
     let shifted = report("card-shifted").await;
-    // A range that ends before the first hour counted holds no window.
-    let none = outcomes
+    // A range starting half-way through the shifted rows holds the second half's predictions, and the whole hour's
+    // counts: the range is widened to the hour (when the rows did not straddle an hour boundary).
+    let half = outcomes
         .report(pb::ReportRequest {
-            route: "card-steady".into(),
-            to_unix_ms: 1_000 * WINDOW_MS,
+            route: "card-shifted".into(),
+            from_unix_ms: middle,
             ..Default::default()
         })
         .await
         .unwrap()
         .into_inner();
-    assert!(none.series.is_empty() || none.series[0].features.is_empty());
+    assert_eq!(half.series[0].predictions as usize, total - total / 2);
+    if start.div_euclid(WINDOW_MS) == now().div_euclid(WINDOW_MS) {
+        assert!(half.series[0]
+            .features
+            .iter()
+            .all(|f| f.rows as usize == total));
+    }
     server.shutdown().await;
     (steady, shifted)
 }
