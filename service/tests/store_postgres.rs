@@ -264,7 +264,7 @@ fn a_database_at_a_newer_schema_is_refused() {
         .unwrap();
     match PgStore::open(ConnectionUrl::new(&db.url()).unwrap(), None, T0) {
         Err(StoreError::Schema { found, supported }) => {
-            assert_eq!((found, supported), (99, 3));
+            assert_eq!((found, supported), (99, 4));
         }
         Err(other) => panic!("wrong error: {other}"),
         Ok(_) => panic!("a newer schema was accepted"),
@@ -392,6 +392,7 @@ fn measure_both_backends() {
                 version: "v1".into(),
                 base_rate: 0.1,
                 reference: None,
+                features: Vec::new(),
             }
         }
     }
@@ -422,6 +423,7 @@ fn measure_both_backends() {
                 record: r,
                 prior: 0.02,
                 facts: Arc::new(Facts),
+                features: None,
             });
         }
         log.flush().unwrap();

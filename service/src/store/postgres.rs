@@ -32,6 +32,7 @@ use postgres::binary_copy::BinaryCopyInWriter;
 use postgres::types::Type;
 use postgres::{Client, Transaction};
 
+use super::features::{counts_of, FeatureCount, RowFeatures};
 use super::matching::{self, Outcome, OutcomeState, Source};
 use super::{
     LoggedPrediction, ModelVersionInfo, OutcomeCounts, OutcomeInput, OutcomeResult, OutcomeStatus,
@@ -39,7 +40,7 @@ use super::{
 };
 
 /// The newest schema version this build knows.
-pub const SCHEMA_VERSION: i32 = 3;
+pub const SCHEMA_VERSION: i32 = 4;
 
 const DAY_MS: i64 = 86_400_000;
 
@@ -109,6 +110,22 @@ ALTER TABLE predictions ADD COLUMN served_prior double precision,
         3,
         "
 ALTER TABLE predictions RENAME COLUMN entity_key TO subject_key;
+",
+    ),
+    (
+        4,
+        "
+CREATE TABLE feature_counts (
+    window_ms bigint NOT NULL,
+    route text NOT NULL,
+    model text NOT NULL,
+    version text NOT NULL,
+    role text NOT NULL,
+    feature text NOT NULL,
+    slot integer NOT NULL,
+    row_count bigint NOT NULL,
+    PRIMARY KEY (window_ms, route, model, version, role, feature, slot)
+);
 ",
     ),
 ];
@@ -612,10 +629,86 @@ fn archive(tx: &mut Transaction<'_>, rows: &[(&str, Outcome)]) -> Result<(), pos
     Ok(())
 }
 
+/// Adds the feature slot counts of a batch's written rows (`super::features`); in the batch's transaction.
+fn add_feature_counts(
+    tx: &mut Transaction<'_>,
+    counts: &[FeatureCount],
+) -> Result<(), postgres::Error> {
+    if counts.is_empty() {
+        return Ok(());
+    }
+    let windows: Vec<i64> = counts.iter().map(|c| c.window_ms).collect();
+    let routes: Vec<&str> = counts.iter().map(|c| c.route.as_str()).collect();
+    let models: Vec<&str> = counts.iter().map(|c| c.model.as_str()).collect();
+    let versions: Vec<&str> = counts.iter().map(|c| c.version.as_str()).collect();
+    let roles: Vec<&str> = counts.iter().map(|c| c.role.as_str()).collect();
+    let features: Vec<&str> = counts.iter().map(|c| c.feature.as_str()).collect();
+    let slots: Vec<i32> = counts
+        .iter()
+        .map(|c| i32::try_from(c.slot).unwrap_or(i32::MAX))
+        .collect();
+    let rows: Vec<i64> = counts.iter().map(|c| c.rows).collect();
+    // One row per key in `counts` (they are summed per key), so the upsert never meets its own key twice.
+    tx.execute(
+        "INSERT INTO feature_counts (window_ms, route, model, version, role, feature, slot, row_count)
+         SELECT * FROM unnest($1::int8[], $2::text[], $3::text[], $4::text[], $5::text[], $6::text[], $7::int4[],
+           $8::int8[])
+         ON CONFLICT (window_ms, route, model, version, role, feature, slot)
+         DO UPDATE SET row_count = feature_counts.row_count + excluded.row_count",
+        &[
+            &windows, &routes, &models, &versions, &roles, &features, &slots, &rows,
+        ],
+    )?;
+    Ok(())
+}
+
 impl Store for PgStore {
     fn insert_predictions(
         &mut self,
         records: &[PredictionRecord],
+    ) -> Result<(Vec<bool>, Vec<Settled>), StoreError> {
+        self.insert_predictions_counted(records, &[])
+    }
+
+    fn feature_counts(&mut self, filter: &ReportFilter) -> Result<Vec<FeatureCount>, StoreError> {
+        self.transact("feature counts query", |tx, _| {
+            let rows = tx.query(
+                "SELECT min(window_ms), route, model, version, role, feature, slot, sum(row_count)::int8
+                 FROM feature_counts
+                 WHERE ($1::int8 IS NULL OR window_ms + $6 > $1) AND ($2::int8 IS NULL OR window_ms < $2)
+                   AND ($3::text IS NULL OR route = $3) AND ($4::text IS NULL OR model = $4)
+                   AND ($5::text IS NULL OR version = $5)
+                 GROUP BY route, model, version, role, feature, slot
+                 ORDER BY route, model, version, role, feature, slot",
+                &[
+                    &filter.from_ms,
+                    &filter.to_ms,
+                    &filter.route,
+                    &filter.model,
+                    &filter.version,
+                    &super::features::WINDOW_MS,
+                ],
+            )?;
+            Ok(rows
+                .iter()
+                .map(|r| FeatureCount {
+                    window_ms: r.get(0),
+                    route: r.get(1),
+                    model: r.get(2),
+                    version: r.get(3),
+                    role: r.get(4),
+                    feature: r.get(5),
+                    slot: i64::from(r.get::<_, i32>(6)),
+                    rows: r.get(7),
+                })
+                .collect())
+        })
+    }
+
+    fn insert_predictions_counted(
+        &mut self,
+        records: &[PredictionRecord],
+        features: &[Option<&RowFeatures>],
     ) -> Result<(Vec<bool>, Vec<Settled>), StoreError> {
         if records.is_empty() {
             return Ok((Vec::new(), Vec::new()));
@@ -724,6 +817,8 @@ impl Store for PgStore {
                 };
                 pairs.push(settled(&row, next.label, None, next.outcome_time_ms));
             }
+            // The feature slots of the rows this transaction wrote (a retried batch writes none twice).
+            add_feature_counts(tx, &counts_of(records, features, &written))?;
             Ok((written, pairs))
         })
     }
@@ -731,10 +826,25 @@ impl Store for PgStore {
     fn register_model(&mut self, info: &ModelVersionInfo) -> Result<(), StoreError> {
         let text = serde_json::to_string(info).unwrap_or_else(|_| "{}".into());
         self.transact("register model", |tx, _| {
-            tx.execute(
+            let added = tx.execute(
                 "INSERT INTO model_versions (model, version, info) VALUES ($1, $2, $3) ON CONFLICT DO NOTHING",
                 &[&info.model, &info.version, &text],
             )?;
+            if added == 0 && !info.features.is_empty() {
+                // Facts of an earlier build get the training distributions they lack (`super::features`).
+                let stored: String = tx
+                    .query_one(
+                        "SELECT info FROM model_versions WHERE model = $1 AND version = $2 FOR UPDATE",
+                        &[&info.model, &info.version],
+                    )?
+                    .get(0);
+                if let Some(text) = super::features::facts_with_distributions(&stored, info) {
+                    tx.execute(
+                        "UPDATE model_versions SET info = $3 WHERE model = $1 AND version = $2",
+                        &[&info.model, &info.version, &text],
+                    )?;
+                }
+            }
             Ok(())
         })
     }
@@ -905,6 +1015,11 @@ impl Store for PgStore {
             tx.execute(
                 "DELETE FROM outcome_history WHERE received_ms < $1",
                 &[&cutoff],
+            )?;
+            // Windows whose whole hour is older than the cutoff.
+            tx.execute(
+                "DELETE FROM feature_counts WHERE window_ms + $2 <= $1",
+                &[&cutoff, &super::features::WINDOW_MS],
             )?;
             Ok(removed)
         })?;
