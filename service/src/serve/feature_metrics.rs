@@ -28,8 +28,7 @@ pub const FEATURE_VALUES: &str = "probity_feature_values_total";
 /// The training share of each slot, by model, version, feature and slot (from the model file).
 pub const FEATURE_TRAINING_SHARE: &str = "probity_feature_training_share";
 
-/// Most features counted per (route, model version): the first ones in file order with a training distribution.
-pub const MAX_MONITORED_FEATURES: usize = 32;
+pub use probity_models::stability::MAX_MONITORED_FEATURES;
 
 /// The `bin` label of value bin `i` (at most [`MAX_DISTRIBUTION_BINS`]).
 const BIN_LABELS: [&str; MAX_DISTRIBUTION_BINS] = [

@@ -2,7 +2,7 @@
 //! feature's training distribution, per hour.
 //!
 //! - **What is counted.** The scoring path already finds, for every answered row, the slot of each monitored
-//!   feature's value (the first [`crate::serve::feature_metrics::MAX_MONITORED_FEATURES`] features of the model
+//!   feature's value (the first [`probity_models::stability::MAX_MONITORED_FEATURES`] features of the model
 //!   file that carry a training distribution) for the `probity_feature_values_total` counters. The same slots, one
 //!   byte per feature held inline, ride with the row's prediction to the store writer ([`RowFeatures`]): no second
 //!   lookup and no allocation per row.
@@ -37,7 +37,7 @@ pub fn window_of(time_ms: i64) -> i64 {
 }
 
 /// Most features a row's slots hold: the monitored features of a model version.
-pub const MAX_ROW_FEATURES: usize = crate::serve::feature_metrics::MAX_MONITORED_FEATURES;
+pub const MAX_ROW_FEATURES: usize = probity_models::stability::MAX_MONITORED_FEATURES;
 
 /// The monitored features of one scored row: their names (shared by every row of the model version) and the slot
 /// of each one's value, in the same order. The slots are held inline (no allocation per row).
