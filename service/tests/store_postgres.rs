@@ -264,11 +264,86 @@ fn a_database_at_a_newer_schema_is_refused() {
         .unwrap();
     match PgStore::open(ConnectionUrl::new(&db.url()).unwrap(), None, T0) {
         Err(StoreError::Schema { found, supported }) => {
-            assert_eq!((found, supported), (99, 4));
+            assert_eq!((found, supported), (99, 5));
         }
         Err(other) => panic!("wrong error: {other}"),
         Ok(_) => panic!("a newer schema was accepted"),
     }
+}
+
+/// Schema 5 keeps every prediction's key (id, route, model, role -> time) in a table of its own, so the duplicate
+/// check and the lookups by id read one day's partition instead of every day kept. A database logged under schema 4
+/// gets the keys of the predictions it holds when it migrates: the same ids sent again write nothing, their
+/// outcomes find them, and retention removes the keys with their days.
+#[test]
+fn schema_5_backfills_the_keys_of_a_database_logged_before_it() {
+    let Some(db) = TestDb::create("keys") else {
+        return;
+    };
+    let day = 86_400_000i64;
+    let mut pg = db.open(T0);
+    let first: Vec<PredictionRecord> = (0..40)
+        .map(|i| {
+            record(
+                &format!("k{i}"),
+                "fraud",
+                "champion",
+                T0 + i64::from(i) * day / 10,
+                0.4,
+            )
+        })
+        .collect();
+    assert!(pg.insert_predictions(&first).unwrap().0.iter().all(|w| *w));
+    drop(pg);
+    // Back to schema 4: no key table.
+    db.client()
+        .batch_execute("DROP TABLE prediction_keys; DELETE FROM probity_schema WHERE version = 5")
+        .unwrap();
+    let mut pg = db.open(T0 + 4 * day);
+    let keys: i64 = db
+        .client()
+        .query_one("SELECT count(*) FROM prediction_keys", &[])
+        .unwrap()
+        .get(0);
+    assert_eq!(keys, 40, "every logged prediction's key backfilled");
+    // The same ids again, on other days: nothing written twice.
+    let again: Vec<PredictionRecord> = (0..40)
+        .map(|i| {
+            record(
+                &format!("k{i}"),
+                "fraud",
+                "champion",
+                T0 + 3 * day + i64::from(i),
+                0.9,
+            )
+        })
+        .collect();
+    let (written, _) = pg.insert_predictions(&again).unwrap();
+    assert!(written.iter().all(|w| !*w), "{written:?}");
+    assert_eq!(rows(&mut pg).len(), 40);
+    // Their outcomes find the predictions logged before the migration.
+    let outcomes: Vec<OutcomeInput> = (0..40)
+        .map(|i| outcome(&format!("k{i}"), i % 2 == 0, None))
+        .collect();
+    let (results, settled) = pg.record_outcomes(&outcomes, T0 + 4 * day).unwrap();
+    assert!(
+        results.iter().all(|r| r.status == OutcomeStatus::Matched),
+        "{results:?}"
+    );
+    assert_eq!(settled.len(), 40);
+    // Retention drops the first two whole days and their keys; the ids of later days stay known.
+    let removed = pg.remove_expired(2 * day, T0 + 4 * day).unwrap();
+    let keys_left: i64 = db
+        .client()
+        .query_one("SELECT count(*) FROM prediction_keys", &[])
+        .unwrap()
+        .get(0);
+    assert_eq!(keys_left, 40 - i64::try_from(removed).unwrap());
+    assert_eq!(usize::try_from(keys_left).unwrap(), rows(&mut pg).len());
+    assert!(
+        removed > 0 && keys_left > 0,
+        "removed {removed}, left {keys_left}"
+    );
 }
 
 #[test]

@@ -19,7 +19,9 @@
 //! - **Partitions**: predictions are range-partitioned by day of `time_ms` (`predictions_d<days since epoch>`),
 //!   created ahead (today and the next two days at start and at each sweep, and any day a batch needs); retention
 //!   drops whole partitions. Outcomes are one row per prediction id (the row the matching locks), not partitioned:
-//!   an outcome's prediction day is unknown while it is held.
+//!   an outcome's prediction day is unknown while it is held. A non-partitioned key table (`prediction_keys`: id,
+//!   route, model, role -> time) is the uniqueness check and tells the lookups by id which days to read, so that no
+//!   statement on the write or outcome path reads every day kept (DEVELOPERS.md, "Partitions").
 //! - **Migrations**: `probity_schema` records the versions applied; they run at start under an advisory lock, and
 //!   a database at a version newer than this build knows is refused ([`StoreError::Schema`]).
 //! - **Secrets**: the connection URL is read from a file or the environment, and no error, log line or metric
@@ -40,7 +42,7 @@ use super::{
 };
 
 /// The newest schema version this build knows.
-pub const SCHEMA_VERSION: i32 = 4;
+pub const SCHEMA_VERSION: i32 = 5;
 
 const DAY_MS: i64 = 86_400_000;
 
@@ -126,6 +128,23 @@ CREATE TABLE feature_counts (
     row_count bigint NOT NULL,
     PRIMARY KEY (window_ms, route, model, version, role, feature, slot)
 );
+",
+    ),
+    (
+        5,
+        "
+CREATE TABLE prediction_keys (
+    prediction_id text NOT NULL,
+    route text NOT NULL,
+    model text NOT NULL,
+    role text NOT NULL,
+    time_ms bigint NOT NULL,
+    PRIMARY KEY (prediction_id, route, model, role)
+);
+CREATE INDEX prediction_keys_time ON prediction_keys (time_ms);
+INSERT INTO prediction_keys (prediction_id, route, model, role, time_ms)
+SELECT DISTINCT ON (prediction_id, route, model, role) prediction_id, route, model, role, time_ms
+FROM predictions ORDER BY prediction_id, route, model, role, time_ms;
 ",
     ),
 ];
@@ -568,10 +587,20 @@ fn predictions_of(
     tx: &mut Transaction<'_>,
     ids: &[&str],
 ) -> Result<HashMap<String, Vec<Row>>, postgres::Error> {
+    // The key table first: the time span of these ids' predictions, so that the read below names it and
+    // PostgreSQL reads only those days' partitions (a lookup by id alone reads every day kept).
+    let span = tx.query_one(
+        "SELECT min(time_ms), max(time_ms) FROM prediction_keys WHERE prediction_id = ANY($1)",
+        &[&ids],
+    )?;
+    let (Some(first), Some(last)) = (span.get::<_, Option<i64>>(0), span.get::<_, Option<i64>>(1))
+    else {
+        return Ok(HashMap::new());
+    };
     let rows = tx.query(
         "SELECT prediction_id, route, model, version, time_ms, adjusted_log_odds, probability
-         FROM predictions WHERE prediction_id = ANY($1) ORDER BY seq",
-        &[&ids],
+         FROM predictions WHERE prediction_id = ANY($1) AND time_ms >= $2 AND time_ms <= $3 ORDER BY seq",
+        &[&ids, &first, &last],
     )?;
     let mut map: HashMap<String, Vec<Row>> = HashMap::new();
     for r in rows {
@@ -752,17 +781,23 @@ impl Store for PgStore {
                 .collect();
             lock_ids(tx, &ids)?;
             // The first of each (id, route, model, role) in the batch, unless that is logged already (at any
-            // time: the unique key holds the time too, since a partitioned table's keys must).
+            // time). The key table answers that with one index probe: the partitioned table's unique key must hold
+            // the time, and a check on it without the time would read every day kept.
             let inserted = tx.query(
-                "INSERT INTO predictions (prediction_id, route, model, version, role, time_ms, margin, log_odds,
+                "WITH firsts AS (
+                   SELECT DISTINCT ON (prediction_id, route, model, role) * FROM staging_predictions
+                   ORDER BY prediction_id, route, model, role, ord),
+                 fresh AS (
+                   INSERT INTO prediction_keys (prediction_id, route, model, role, time_ms)
+                   SELECT prediction_id, route, model, role, time_ms FROM firsts
+                   ON CONFLICT DO NOTHING
+                   RETURNING prediction_id, route, model, role)
+                 INSERT INTO predictions (prediction_id, route, model, version, role, time_ms, margin, log_odds,
                    adjusted_log_odds, probability, subject_key, tags, served_prior, decision)
-                 SELECT prediction_id, route, model, version, role, time_ms, margin, log_odds, adjusted_log_odds,
-                   probability, subject_key, tags, served_prior, decision
-                 FROM (SELECT DISTINCT ON (prediction_id, route, model, role) * FROM staging_predictions
-                       ORDER BY prediction_id, route, model, role, ord) s
-                 WHERE NOT EXISTS (SELECT 1 FROM predictions p WHERE p.prediction_id = s.prediction_id
-                   AND p.route = s.route AND p.model = s.model AND p.role = s.role)
-                 ORDER BY ord
+                 SELECT s.prediction_id, s.route, s.model, s.version, s.role, s.time_ms, s.margin, s.log_odds,
+                   s.adjusted_log_odds, s.probability, s.subject_key, s.tags, s.served_prior, s.decision
+                 FROM firsts s JOIN fresh f USING (prediction_id, route, model, role)
+                 ORDER BY s.ord
                  ON CONFLICT DO NOTHING
                  RETURNING prediction_id, route, model, role",
                 &[],
@@ -1007,9 +1042,14 @@ impl Store for PgStore {
                     removed += u64::try_from(n).unwrap_or(0);
                 }
             }
+            // The keys of the days dropped: every time before the first whole day kept.
+            tx.execute(
+                "DELETE FROM prediction_keys WHERE time_ms < $1",
+                &[&(cutoff.div_euclid(DAY_MS) * DAY_MS)],
+            )?;
             tx.execute(
                 "DELETE FROM outcomes WHERE state != $2 AND received_ms < $1 AND NOT EXISTS
-                 (SELECT 1 FROM predictions p WHERE p.prediction_id = outcomes.prediction_id)",
+                 (SELECT 1 FROM prediction_keys k WHERE k.prediction_id = outcomes.prediction_id)",
                 &[&cutoff, &OutcomeState::Pending.as_str()],
             )?;
             tx.execute(
