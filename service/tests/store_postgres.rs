@@ -297,7 +297,9 @@ fn schema_5_backfills_the_keys_of_a_database_logged_before_it() {
     drop(pg);
     // Back to schema 4: no key table.
     db.client()
-        .batch_execute("DROP TABLE prediction_keys; DELETE FROM probity_schema WHERE version = 5")
+        .batch_execute(
+            "DROP TABLE prediction_keys, maturity_marks; DELETE FROM probity_schema WHERE version = 5",
+        )
         .unwrap();
     let mut pg = db.open(T0 + 4 * day);
     let keys: i64 = db
@@ -344,6 +346,68 @@ fn schema_5_backfills_the_keys_of_a_database_logged_before_it() {
         removed > 0 && keys_left > 0,
         "removed {removed}, left {keys_left}"
     );
+}
+
+/// The maturity sweep reads from a day before the route's mark (everything up to it is settled), not every day
+/// kept: a sweep that hits its limit does not move the mark, so the next one finishes; predictions logged later
+/// inside the day before the mark still mature; one logged more than a day behind the mark is left waiting
+/// (DEVELOPERS.md, "Partitions").
+#[test]
+fn maturity_sweeps_read_from_the_routes_mark() {
+    let Some(db) = TestDb::create("marks") else {
+        return;
+    };
+    let day = 86_400_000i64;
+    let mut pg = db.open(T0);
+    let first: Vec<PredictionRecord> = (0..30)
+        .map(|i| {
+            record(
+                &format!("m{i}"),
+                "fraud",
+                "champion",
+                T0 + i64::from(i) * 1_000,
+                0.3,
+            )
+        })
+        .collect();
+    pg.insert_predictions(&first).unwrap();
+    let maturity: BTreeMap<String, i64> = [("fraud".to_string(), day)].into();
+    let now = T0 + 5 * day;
+    // Limit 20: the first sweep settles 20 and leaves the mark unset; the second settles the other 10.
+    assert_eq!(pg.settle_matured(&maturity, now, 20).unwrap().len(), 20);
+    let mark = |db: &TestDb| -> Option<i64> {
+        db.client()
+            .query_opt(
+                "SELECT through_ms FROM maturity_marks WHERE route = 'fraud'",
+                &[],
+            )
+            .unwrap()
+            .map(|r| r.get(0))
+    };
+    assert_eq!(mark(&db), None);
+    assert_eq!(pg.settle_matured(&maturity, now, 20).unwrap().len(), 10);
+    assert_eq!(mark(&db), Some(now - day));
+    // Logged late: one 12 hours behind the mark (matures), one three days behind it (left waiting).
+    let late = [
+        record("late-near", "fraud", "champion", now - day - day / 2, 0.3),
+        record("late-far", "fraud", "champion", now - 4 * day, 0.3),
+    ];
+    pg.insert_predictions(&late).unwrap();
+    assert_eq!(
+        pg.settle_matured(&maturity, now + 1_000, 50).unwrap().len(),
+        1
+    );
+    let matured: Vec<String> = db
+        .client()
+        .query(
+            "SELECT prediction_id FROM outcomes WHERE prediction_id LIKE 'late-%' AND state = 'matched'",
+            &[],
+        )
+        .unwrap()
+        .iter()
+        .map(|r| r.get(0))
+        .collect();
+    assert_eq!(matured, ["late-near"]);
 }
 
 #[test]

@@ -145,6 +145,10 @@ CREATE INDEX prediction_keys_time ON prediction_keys (time_ms);
 INSERT INTO prediction_keys (prediction_id, route, model, role, time_ms)
 SELECT DISTINCT ON (prediction_id, route, model, role) prediction_id, route, model, role, time_ms
 FROM predictions ORDER BY prediction_id, route, model, role, time_ms;
+CREATE TABLE maturity_marks (
+    route text PRIMARY KEY,
+    through_ms bigint NOT NULL
+);
 ",
     ),
 ];
@@ -964,22 +968,42 @@ impl Store for PgStore {
                 if left == 0 {
                     break;
                 }
+                // Everything up to the route's mark is settled: read from a day before it (predictions reach the
+                // database seconds after they are scored; one written more than a day late into a range already
+                // matured is left waiting), so a sweep reads about a day, not every day kept.
+                let cutoff = now_ms - maturity;
+                let mark: Option<i64> = tx
+                    .query_opt(
+                        "SELECT through_ms FROM maturity_marks WHERE route = $1",
+                        &[route],
+                    )?
+                    .map(|r| r.get(0));
+                let from = mark.map_or(i64::MIN, |m| m.saturating_sub(DAY_MS));
                 let due: Vec<(String, i64)> = tx
                     .query(
                         "SELECT p.prediction_id, MIN(p.time_ms) FROM predictions p
-                         WHERE p.route = $1 AND p.time_ms <= $2 AND NOT EXISTS
+                         WHERE p.route = $1 AND p.time_ms <= $2 AND p.time_ms > $5 AND NOT EXISTS
                            (SELECT 1 FROM outcomes o WHERE o.prediction_id = p.prediction_id AND o.state = $4)
                          GROUP BY p.prediction_id LIMIT $3",
                         &[
                             route,
-                            &(now_ms - maturity),
+                            &cutoff,
                             &i64::try_from(left).unwrap_or(i64::MAX),
                             &OutcomeState::Matched.as_str(),
+                            &from,
                         ],
                     )?
                     .iter()
                     .map(|r| (r.get(0), r.get(1)))
                     .collect();
+                if due.len() < left {
+                    // Every due prediction is in this batch: once it commits, the route is settled to the cutoff.
+                    tx.execute(
+                        "INSERT INTO maturity_marks (route, through_ms) VALUES ($1, $2)
+                         ON CONFLICT (route) DO UPDATE SET through_ms = GREATEST(maturity_marks.through_ms, $2)",
+                        &[route, &cutoff],
+                    )?;
+                }
                 left = left.saturating_sub(due.len());
                 let ids: Vec<&str> = due.iter().map(|d| d.0.as_str()).collect();
                 lock_ids(tx, &ids)?;
