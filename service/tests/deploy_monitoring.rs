@@ -19,7 +19,7 @@
 use std::collections::HashSet;
 use std::collections::{BTreeMap, BTreeSet};
 use std::path::Path;
-use std::process::{Child, Command, Stdio};
+use std::process::Command;
 use std::time::{Duration, Instant};
 
 use probity::client::ConnectArgs;
@@ -32,7 +32,9 @@ use serde_json::Value;
 
 #[path = "support/prometheus.rs"]
 mod prom;
-use prom::{close, free_port, http_get, repo, start_prometheus, tool};
+#[path = "support/serve.rs"]
+mod serve;
+use prom::{close, http_get, repo, start_prometheus, tool};
 
 // ---------------------------------------------------------------------------------------------------------------
 // The metric names and queries of deploy/
@@ -76,17 +78,11 @@ fn exposed_names(exposition: &str) -> BTreeSet<String> {
 // The server
 
 struct Server {
-    child: Child,
+    /// Killed with SIGKILL when the handle drops.
+    _process: serve::Spawned,
     grpc_port: u16,
     metrics: String,
     dir: tempfile::TempDir,
-}
-
-impl Drop for Server {
-    fn drop(&mut self) {
-        let _ = self.child.kill();
-        let _ = self.child.wait();
-    }
 }
 
 fn model(name: &str, intercept: f64, coefficient: f64) -> String {
@@ -132,14 +128,11 @@ async fn start() -> Server {
     std::fs::write(dir.path().join("server.key"), leaf_key.serialize_pem()).unwrap();
     std::fs::write(dir.path().join("token"), "deploy-test-token-0123456789\n").unwrap();
 
-    let grpc_port = free_port();
-    let metrics = format!("127.0.0.1:{}", free_port());
     let config = dir.path().join("probity.toml");
     std::fs::write(
         &config,
         format!(
-            "[server]\ngrpc_listen = \"127.0.0.1:{grpc_port}\"\nmetrics_listen = \"{metrics}\"\n\
-             shutdown_grace_ms = 1000\nmax_connection_age_ms = 60000\n\
+            "[server]\nshutdown_grace_ms = 1000\nmax_connection_age_ms = 60000\n\
              [server.tls]\ncertificate_file = {}\nkey_file = {}\n\
              [[access.callers]]\nname = \"deploy-test\"\ntoken_file = {}\n\
              roles = [\"score\", \"outcome-write\", \"report-read\"]\n\
@@ -158,17 +151,11 @@ async fn start() -> Server {
         ),
     )
     .unwrap();
-    let child = Command::new(env!("CARGO_BIN_EXE_probity"))
-        .args(["serve", "--config"])
-        .arg(&config)
-        .stdout(Stdio::null())
-        .stderr(Stdio::null())
-        .spawn()
-        .unwrap();
+    let process = serve::Spawned::start(&config, &[]);
     let server = Server {
-        child,
-        grpc_port,
-        metrics,
+        grpc_port: process.grpc.port(),
+        metrics: process.metrics_addr(),
+        _process: process,
         dir,
     };
     for _ in 0..300 {

@@ -28,6 +28,8 @@ use rand::{Rng, SeedableRng};
 mod pg;
 #[path = "support/prometheus.rs"]
 mod prom;
+#[path = "support/serve.rs"]
+mod serve;
 use pg::TestDb;
 
 const DAY: i64 = 86_400_000;
@@ -636,7 +638,7 @@ fn measure_both_backends() {
 /// from the same rows.
 mod fleet {
     use std::collections::HashMap;
-    use std::process::{Child, Command, Stdio};
+    use std::process::Command;
     use std::sync::{Arc, Mutex};
     use std::time::Duration;
 
@@ -656,55 +658,23 @@ mod fleet {
     }
 
     struct Server {
-        child: Child,
+        process: super::serve::Spawned,
         url: String,
         /// host:port of its `/metrics`.
         metrics: String,
     }
 
-    impl Drop for Server {
-        /// SIGKILL and reap, also when an assertion fails first.
-        fn drop(&mut self) {
-            let _ = self.child.kill();
-            let _ = self.child.wait();
-        }
-    }
-
     async fn start(config: &std::path::Path) -> Server {
-        let port = free_port();
-        let metrics = format!("127.0.0.1:{}", free_port());
-        let mut child = Command::new(env!("CARGO_BIN_EXE_probity"))
-            .args(["serve", "--config"])
-            .arg(config)
-            .args(["--grpc-listen", &format!("127.0.0.1:{port}")])
-            .args(["--metrics-listen", &metrics])
-            .stdout(Stdio::null())
-            .stderr(
-                std::fs::File::create(config.with_file_name(format!("replica-{port}.log")))
-                    .map(Stdio::from)
-                    .unwrap_or_else(|_| Stdio::null()),
-            )
-            .spawn()
-            .unwrap();
-        let url = format!("http://127.0.0.1:{port}");
-        for _ in 0..400 {
-            if tonic::transport::Channel::from_shared(url.clone())
-                .unwrap()
-                .connect()
+        let config = config.to_path_buf();
+        let process =
+            tokio::task::spawn_blocking(move || super::serve::Spawned::start(&config, &[]))
                 .await
-                .is_ok()
-            {
-                return Server {
-                    child,
-                    url,
-                    metrics,
-                };
-            }
-            tokio::time::sleep(Duration::from_millis(50)).await;
+                .unwrap();
+        Server {
+            url: process.url(),
+            metrics: process.metrics_addr(),
+            process,
         }
-        let _ = child.kill();
-        let _ = child.wait();
-        panic!("the server did not start");
     }
 
     async fn channel(url: &str) -> Option<tonic::transport::Channel> {
@@ -1345,10 +1315,8 @@ print(log_loss(y, p), brier_score_loss(y, p), roc_auc_score(y, h))\n";
             std::thread::sleep(Duration::from_millis(50));
         }
         assert_eq!(logged, 20);
-        let port = server.url.rsplit(':').next().unwrap().to_string();
+        let log = server.process.log();
         drop(server);
-        let log =
-            std::fs::read_to_string(config.with_file_name(format!("replica-{port}.log"))).unwrap();
         assert!(
             log.contains("does not answer yet; trying again"),
             "the replica started before the database answered, so it must have waited: {log}"
