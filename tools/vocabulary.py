@@ -80,6 +80,7 @@ CONFIG = [
     ("store.directory", "SQLite: where predictions.db goes; both: the route history. Off without it (SQLite)."),
     ("store.postgres_url_file", "PostgreSQL: file holding the connection URL."),
     ("store.postgres_ca_file", "PostgreSQL: CA certificates for TLS to the database."),
+    ("store.postgres_start_wait", "PostgreSQL: how long a starting server waits for a database that does not answer."),
     ("store.durability", "SQLite: `normal` or `full`."),
     ("store.queue_size", "Predictions waiting for the writer."),
     ("store.batch_size", "Most predictions per transaction."),

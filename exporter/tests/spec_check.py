@@ -83,7 +83,8 @@ def check_tree(t, nodes, features):
             assert set(s) == {"feature", "op", "threshold", "missing"}, p
             assert f["type"] == "numeric", f"{p}: numeric split on a categorical feature"
             assert s["op"] in ("<", "<="), p
-            _finite(f"{p}.numeric.threshold", s["threshold"])
+            if s["threshold"] not in ("inf", "-inf"):
+                _finite(f"{p}.numeric.threshold", s["threshold"])
             _side(f"{p}.numeric.missing", s["missing"])
         else:
             assert kind == "categorical", p

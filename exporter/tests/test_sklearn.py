@@ -59,6 +59,22 @@ def test_hist_gradient_boosting_nan_and_categories(cancer):
     assert_reproduces(doc, xt, m.decision_function(xt), 0.0)
 
 
+def test_hist_gradient_boosting_split_of_missing_from_present(cancer):
+    """A feature recorded only when present (1.0, else missing) can only split missing from non-missing values:
+    scikit-learn writes that split with threshold +inf, which the file carries as the text "inf"."""
+    c = cancer
+    flag = np.where(c["x"][:, 7] > np.quantile(c["x"][:, 7], 0.6), 1.0, np.nan)
+    x = np.column_stack([np.delete(c["x_nan"], 7, axis=1), flag])  # the flag stands in for column 7
+    m = HistGradientBoostingClassifier(max_iter=30, max_depth=4, early_stopping=False, random_state=0)
+    m.fit(x[c["tr"]], c["y"][c["tr"]])
+    doc = probity_export.export(m, name="hgb", version="1", y=c["y"][c["tr"]])
+    splits = [n["numeric"] for t in doc["ensemble"]["trees"] for n in t["nodes"] if "numeric" in n]
+    assert any(s["threshold"] == "inf" for s in splits)
+    probity_export.dumps(doc)  # strict JSON (no bare Infinity): raises otherwise
+    xt = x[c["te"]]
+    assert_reproduces(doc, xt, m.decision_function(xt), 0.0)
+
+
 def test_hist_gradient_boosting_string_categories(cancer):
     """Categories given as strings through pandas keep their text as the category names."""
     c = cancer

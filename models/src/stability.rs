@@ -15,6 +15,10 @@ use crate::metrics::MetricsError;
 /// slots, a feature has at most `MAX_DISTRIBUTION_BINS + 2` slots.
 pub const MAX_DISTRIBUTION_BINS: usize = 32;
 
+/// Most features monitored per model version, live and in the prediction store: the first ones in file order that
+/// carry a training distribution (a bound on metric series and stored counts, whatever the file holds).
+pub const MAX_MONITORED_FEATURES: usize = 32;
+
 /// How far a training distribution's shares may sum from 1.
 pub const SHARE_SUM_TOLERANCE: f64 = 1e-6;
 

@@ -486,7 +486,7 @@ const BROKEN_FILES: &[(&str, &str, &str)] = &[
     (
         "wrong_type",
         "ensemble.trees[0].nodes[0].numeric.threshold",
-        "invalid type: string \"250\", expected f64",
+        "threshold \"250\": expected a number, \"inf\" or \"-inf\"",
     ),
 ];
 

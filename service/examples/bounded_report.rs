@@ -80,6 +80,7 @@ fn info() -> ModelVersionInfo {
             edges: vec![0.005, 0.01, 0.02, 0.05, 0.1, 0.2],
             fractions: vec![0.2, 0.2, 0.2, 0.2, 0.1, 0.05, 0.05],
         }),
+        features: Vec::new(),
     }
 }
 

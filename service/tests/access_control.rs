@@ -35,6 +35,9 @@ use rustls::pki_types::pem::PemObject;
 use rustls::pki_types::{CertificateDer, ServerName};
 use tonic::Code;
 
+#[path = "support/serve.rs"]
+mod serve;
+
 // ---------------------------------------------------------------------------------------------------------------
 // Certificates
 
@@ -578,14 +581,6 @@ fn refusals(text: &str, reason: &str, method: &str) -> f64 {
     )
 }
 
-fn free_port() -> u16 {
-    std::net::TcpListener::bind("127.0.0.1:0")
-        .unwrap()
-        .local_addr()
-        .unwrap()
-        .port()
-}
-
 // ---------------------------------------------------------------------------------------------------------------
 // Tests
 
@@ -943,39 +938,16 @@ async fn start_refuses_unusable_security_files() {
 /// certificate reload, and not one token (nor a near miss) in the log or in /metrics.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn tokens_never_reach_the_log_or_metrics() {
-    use std::io::Read as _;
-    use std::process::{Command, Stdio};
     let setup = Setup::new();
     let path = setup.path("probity.toml");
     std::fs::write(&path, setup.config(None, "")).unwrap();
-    let (grpc_port, metrics_port) = (free_port(), free_port());
-    let mut child = Command::new(env!("CARGO_BIN_EXE_probity"))
-        .args(["serve", "--config"])
-        .arg(&path)
-        .args(["--grpc-listen", &format!("127.0.0.1:{grpc_port}")])
-        .args(["--metrics-listen", &format!("127.0.0.1:{metrics_port}")])
-        .args(["--log-format", "json"])
-        .stdout(Stdio::null())
-        .stderr(Stdio::piped())
-        .spawn()
+    let server = serve::Spawned::start(&path, &[]);
+    let addr = server.grpc;
+    let admin = setup
+        .connect(addr, Some("t-admin"), None)
+        .connect()
+        .await
         .unwrap();
-    // Read the log as it comes, so a full pipe never blocks the server.
-    let mut stderr = child.stderr.take().unwrap();
-    let reader = std::thread::spawn(move || {
-        let mut log = String::new();
-        stderr.read_to_string(&mut log).unwrap();
-        log
-    });
-    let addr: SocketAddr = format!("127.0.0.1:{grpc_port}").parse().unwrap();
-    let mut conn = None;
-    for _ in 0..300 {
-        if let Ok(c) = setup.connect(addr, Some("t-admin"), None).connect().await {
-            conn = Some(c);
-            break;
-        }
-        tokio::time::sleep(Duration::from_millis(50)).await;
-    }
-    let admin = conn.expect("the server did not start");
     call(&admin, "/probity.v1.Models/Reload").await.unwrap();
     for (name, _, _) in TOKENS {
         let c = setup
@@ -1004,11 +976,7 @@ async fn tokens_never_reach_the_log_or_metrics() {
     let second = server_leaf(&setup.ca, 2);
     std::fs::write(&setup.server_cert, &second.cert_pem).unwrap();
     std::fs::write(&setup.server_key, &second.key_pem).unwrap();
-    let status = Command::new("kill")
-        .args(["-HUP", &child.id().to_string()])
-        .status()
-        .unwrap();
-    assert!(status.success());
+    server.signal("HUP");
     let mut reloaded = false;
     for _ in 0..200 {
         if served_certificate(addr, &setup.ca.pem).await == second.der {
@@ -1021,7 +989,7 @@ async fn tokens_never_reach_the_log_or_metrics() {
 
     let metrics = {
         use tokio::io::{AsyncReadExt, AsyncWriteExt};
-        let mut s = tokio::net::TcpStream::connect(("127.0.0.1", metrics_port))
+        let mut s = tokio::net::TcpStream::connect(server.metrics)
             .await
             .unwrap();
         s.write_all(b"GET /metrics HTTP/1.0\r\n\r\n").await.unwrap();
@@ -1029,13 +997,7 @@ async fn tokens_never_reach_the_log_or_metrics() {
         s.read_to_string(&mut text).await.unwrap();
         text
     };
-    let status = Command::new("kill")
-        .args(["-TERM", &child.id().to_string()])
-        .status()
-        .unwrap();
-    assert!(status.success());
-    child.wait().unwrap();
-    let log = reader.join().unwrap();
+    let (_, log) = server.stop();
 
     // The log did record what happened, with the callers' names.
     assert!(log.contains("call refused"), "{log}");

@@ -60,6 +60,7 @@ fn write_log(dir: &std::path::Path, labelled_from: usize) -> Value {
                 version: "1".into(),
                 base_rate: 0.5,
                 reference: None,
+                features: Vec::new(),
             })
             .unwrap();
     }

@@ -15,28 +15,16 @@
 
 use std::io::{ErrorKind, Read, Write};
 use std::net::TcpStream;
-use std::process::{Child, Command, Stdio};
 use std::time::{Duration, Instant};
 
-fn free_port() -> u16 {
-    std::net::TcpListener::bind("127.0.0.1:0")
-        .unwrap()
-        .local_addr()
-        .unwrap()
-        .port()
-}
+#[path = "support/serve.rs"]
+mod serve;
 
 struct Server {
-    child: Child,
+    /// Killed with SIGKILL when the handle drops.
+    _process: serve::Spawned,
     port: u16,
     _dir: tempfile::TempDir,
-}
-
-impl Drop for Server {
-    fn drop(&mut self) {
-        let _ = self.child.kill();
-        let _ = self.child.wait();
-    }
 }
 
 fn start(max_connection_age_ms: u64) -> Server {
@@ -53,13 +41,11 @@ fn start_with(max_connection_age_ms: u64, limits: &str) -> Server {
             "linear": {"intercept": 0.0, "terms": [{"numeric": {"feature": 0, "coefficient": 1.0}}]}}"#,
     )
     .unwrap();
-    let port = free_port();
     let config = dir.path().join("probity.toml");
     std::fs::write(
         &config,
         format!(
-            "[server]\nplaintext = \"loopback\"\ngrpc_listen = \"127.0.0.1:{port}\"\n\
-             metrics_listen = \"127.0.0.1:0\"\nshutdown_grace_ms = 500\n\
+            "[server]\nplaintext = \"loopback\"\nshutdown_grace_ms = 500\n\
              max_connection_age_ms = {max_connection_age_ms}\n\
              [limits]\n{limits}\n\
              [models]\ndirectory = {}\nwatch = false\n[routes.r]\nmodel = \"m\"\n",
@@ -67,25 +53,12 @@ fn start_with(max_connection_age_ms: u64, limits: &str) -> Server {
         ),
     )
     .unwrap();
-    let child = Command::new(env!("CARGO_BIN_EXE_probity"))
-        .args(["serve", "--config"])
-        .arg(&config)
-        .stdout(Stdio::null())
-        .stderr(Stdio::null())
-        .spawn()
-        .unwrap();
-    let server = Server {
-        child,
-        port,
+    let process = serve::Spawned::start(&config, &[]);
+    Server {
+        port: process.grpc.port(),
+        _process: process,
         _dir: dir,
-    };
-    for _ in 0..300 {
-        if TcpStream::connect(("127.0.0.1", port)).is_ok() {
-            return server;
-        }
-        std::thread::sleep(Duration::from_millis(50));
     }
-    panic!("the server did not start");
 }
 
 /// What the server sent on one HTTP/2 connection within `watch`: the time of its GOAWAY frame, if any, and

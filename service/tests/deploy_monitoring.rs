@@ -18,9 +18,8 @@
 
 use std::collections::HashSet;
 use std::collections::{BTreeMap, BTreeSet};
-use std::io::{Read, Write};
-use std::path::{Path, PathBuf};
-use std::process::{Child, Command, Stdio};
+use std::path::Path;
+use std::process::Command;
 use std::time::{Duration, Instant};
 
 use probity::client::ConnectArgs;
@@ -31,57 +30,11 @@ use rcgen::{
 };
 use serde_json::Value;
 
-fn repo() -> PathBuf {
-    Path::new(env!("CARGO_MANIFEST_DIR")).join("..")
-}
-
-fn free_port() -> u16 {
-    std::net::TcpListener::bind("127.0.0.1:0")
-        .unwrap()
-        .local_addr()
-        .unwrap()
-        .port()
-}
-
-fn tool(name: &str) -> PathBuf {
-    for dir in std::env::var("PATH").unwrap_or_default().split(':') {
-        let p = Path::new(dir).join(name);
-        if p.is_file() {
-            return p;
-        }
-    }
-    panic!(
-        "`{name}` is not on the PATH: install Debian's `prometheus` package (deploy/check.sh does)"
-    );
-}
-
-/// A plain HTTP/1.0 GET; returns (status, body).
-fn http_get(addr: &str, path: &str) -> std::io::Result<(u16, String)> {
-    let mut s = std::net::TcpStream::connect(addr)?;
-    s.set_read_timeout(Some(Duration::from_secs(10)))?;
-    write!(s, "GET {path} HTTP/1.0\r\nHost: {addr}\r\n\r\n")?;
-    let mut text = String::new();
-    s.read_to_string(&mut text)?;
-    let (head, body) = text.split_once("\r\n\r\n").unwrap_or((&text, ""));
-    let status = head
-        .split_whitespace()
-        .nth(1)
-        .and_then(|c| c.parse().ok())
-        .unwrap_or(0);
-    Ok((status, body.to_string()))
-}
-
-fn percent_encode(text: &str) -> String {
-    text.bytes()
-        .map(|b| {
-            if b.is_ascii_alphanumeric() || b"-_.~".contains(&b) {
-                (b as char).to_string()
-            } else {
-                format!("%{b:02X}")
-            }
-        })
-        .collect()
-}
+#[path = "support/prometheus.rs"]
+mod prom;
+#[path = "support/serve.rs"]
+mod serve;
+use prom::{close, http_get, repo, start_prometheus, tool};
 
 // ---------------------------------------------------------------------------------------------------------------
 // The metric names and queries of deploy/
@@ -125,17 +78,11 @@ fn exposed_names(exposition: &str) -> BTreeSet<String> {
 // The server
 
 struct Server {
-    child: Child,
+    /// Killed with SIGKILL when the handle drops.
+    _process: serve::Spawned,
     grpc_port: u16,
     metrics: String,
     dir: tempfile::TempDir,
-}
-
-impl Drop for Server {
-    fn drop(&mut self) {
-        let _ = self.child.kill();
-        let _ = self.child.wait();
-    }
 }
 
 fn model(name: &str, intercept: f64, coefficient: f64) -> String {
@@ -181,14 +128,11 @@ async fn start() -> Server {
     std::fs::write(dir.path().join("server.key"), leaf_key.serialize_pem()).unwrap();
     std::fs::write(dir.path().join("token"), "deploy-test-token-0123456789\n").unwrap();
 
-    let grpc_port = free_port();
-    let metrics = format!("127.0.0.1:{}", free_port());
     let config = dir.path().join("probity.toml");
     std::fs::write(
         &config,
         format!(
-            "[server]\ngrpc_listen = \"127.0.0.1:{grpc_port}\"\nmetrics_listen = \"{metrics}\"\n\
-             shutdown_grace_ms = 1000\nmax_connection_age_ms = 60000\n\
+            "[server]\nshutdown_grace_ms = 1000\nmax_connection_age_ms = 60000\n\
              [server.tls]\ncertificate_file = {}\nkey_file = {}\n\
              [[access.callers]]\nname = \"deploy-test\"\ntoken_file = {}\n\
              roles = [\"score\", \"outcome-write\", \"report-read\"]\n\
@@ -207,17 +151,11 @@ async fn start() -> Server {
         ),
     )
     .unwrap();
-    let child = Command::new(env!("CARGO_BIN_EXE_probity"))
-        .args(["serve", "--config"])
-        .arg(&config)
-        .stdout(Stdio::null())
-        .stderr(Stdio::null())
-        .spawn()
-        .unwrap();
+    let process = serve::Spawned::start(&config, &[]);
     let server = Server {
-        child,
-        grpc_port,
-        metrics,
+        grpc_port: process.grpc.port(),
+        metrics: process.metrics_addr(),
+        _process: process,
         dir,
     };
     for _ in 0..300 {
@@ -517,97 +455,11 @@ async fn every_query_parses_and_every_metric_name_is_on_a_running_server() {
 // ---------------------------------------------------------------------------------------------------------------
 // 2. A real Prometheus server records the server's own figures
 
-struct Prometheus {
-    child: Child,
-    addr: String,
-    _dir: tempfile::TempDir,
-}
-
-impl Drop for Prometheus {
-    fn drop(&mut self) {
-        let _ = self.child.kill();
-        let _ = self.child.wait();
-    }
-}
-
-fn start_prometheus(target: &str) -> Prometheus {
-    let dir = tempfile::tempdir().unwrap();
-    let rules = repo().join("deploy/prometheus");
-    let config = serde_json::json!({
-        "global": {"scrape_interval": "1s", "evaluation_interval": "1s"},
-        "rule_files": [rules.join("rules.yml"), rules.join("alerts.yml")],
-        "scrape_configs": [{"job_name": "probity", "static_configs": [{"targets": [target]}]}],
-    });
-    let file = dir.path().join("prometheus.yml");
-    std::fs::write(&file, config.to_string()).unwrap();
-    let addr = format!("127.0.0.1:{}", free_port());
-    let child = Command::new(tool("prometheus"))
-        .arg(format!("--config.file={}", file.display()))
-        .arg(format!(
-            "--storage.tsdb.path={}",
-            dir.path().join("data").display()
-        ))
-        .arg(format!("--web.listen-address={addr}"))
-        .arg("--log.level=warn")
-        .stdout(Stdio::null())
-        .stderr(Stdio::null())
-        .spawn()
-        .unwrap();
-    Prometheus {
-        child,
-        addr,
-        _dir: dir,
-    }
-}
-
-impl Prometheus {
-    /// The instant vector of `query`, as (labels, value).
-    fn query(&self, query: &str) -> Vec<(BTreeMap<String, String>, f64)> {
-        let Ok((200, body)) = http_get(
-            &self.addr,
-            &format!("/api/v1/query?query={}", percent_encode(query)),
-        ) else {
-            return Vec::new();
-        };
-        let v: Value = serde_json::from_str(&body).unwrap();
-        v["data"]["result"]
-            .as_array()
-            .unwrap()
-            .iter()
-            .map(|r| {
-                let labels = r["metric"]
-                    .as_object()
-                    .unwrap()
-                    .iter()
-                    .map(|(k, v)| (k.clone(), v.as_str().unwrap().to_string()))
-                    .collect();
-                (labels, r["value"][1].as_str().unwrap().parse().unwrap())
-            })
-            .collect()
-    }
-
-    /// The value of a recorded series with these labels, once present.
-    fn value(&self, record: &str, labels: &[(&str, &str)]) -> Option<f64> {
-        self.query(record)
-            .into_iter()
-            .find(|(l, _)| {
-                labels
-                    .iter()
-                    .all(|(k, v)| l.get(*k).map(String::as_str) == Some(*v))
-            })
-            .map(|(_, v)| v)
-    }
-}
-
-fn close(a: f64, b: f64) -> bool {
-    (a - b).abs() <= 1e-9 * b.abs().max(1.0)
-}
-
 #[tokio::test]
 async fn prometheus_records_the_servers_own_figures() {
     let server = start().await;
     let report = drive(&server).await;
-    let prometheus = start_prometheus(&server.metrics);
+    let prometheus = start_prometheus(&[&server.metrics]);
 
     let bin_labels = [
         "0.1", "0.2", "0.3", "0.4", "0.5", "0.6", "0.7", "0.8", "0.9", "1.0",
@@ -782,16 +634,8 @@ async fn prometheus_records_the_servers_own_figures() {
     assert_eq!(series(&report, "card-auth", "fleet-a")["corrected"], 20);
     assert_eq!(series(&report, "aged", "fleet-a")["with_outcome"], 40);
     assert!(checked >= 30, "{checked} figures compared");
-    // The rules are loaded and evaluated without error (Prometheus's rules API).
-    let (_, rules) = http_get(&prometheus.addr, "/api/v1/rules").unwrap();
-    let rules: Value = serde_json::from_str(&rules).unwrap();
-    let mut evaluated = 0;
-    for g in rules["data"]["groups"].as_array().unwrap() {
-        for r in g["rules"].as_array().unwrap() {
-            assert_eq!(r["health"], "ok", "rule {} in error: {r}", r["name"]);
-            evaluated += 1;
-        }
-    }
+    // The rules are loaded and evaluated without error.
+    let evaluated = prometheus.healthy_rules();
     assert!(evaluated >= 30, "{evaluated} rules loaded");
     println!("{checked} recorded figures equal the report; {evaluated} rules healthy");
 }

@@ -74,6 +74,7 @@ fn write_store(dir: &std::path::Path, rows: &Rows) {
             version: "1".into(),
             base_rate: 0.5,
             reference: None,
+            features: Vec::new(),
         })
         .unwrap();
     let record =

@@ -62,6 +62,7 @@ fn write_log(dir: &std::path::Path) -> (Vec<f64>, Vec<bool>) {
             version: "7".into(),
             base_rate: 0.5,
             reference: Some(reference),
+            features: Vec::new(),
         })
         .unwrap();
     let record = |i: usize, route: &str| PredictionRecord {
@@ -389,6 +390,7 @@ fn eventual_positive_rate_of_a_section_with_outcomes_still_arriving() {
             version: "1".into(),
             base_rate: 0.1,
             reference: None,
+            features: Vec::new(),
         })
         .unwrap();
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(20261203);
@@ -549,6 +551,7 @@ fn immature_window_estimates_beside_the_matured_figures() {
             version: "1".into(),
             base_rate: 0.1,
             reference: None,
+            features: Vec::new(),
         })
         .unwrap();
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(7);

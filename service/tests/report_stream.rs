@@ -38,6 +38,7 @@ fn fill(store: &mut dyn Store) {
                 edges: vec![0.01, 0.02, 0.05, 0.1, 0.2, 0.5],
                 fractions: vec![0.3, 0.2, 0.2, 0.1, 0.1, 0.05, 0.05],
             }),
+            features: Vec::new(),
         })
         .unwrap();
     let mut records = Vec::new();

@@ -26,6 +26,7 @@ impl ModelFacts for Facts {
             version: "v1".into(),
             base_rate: 0.1,
             reference: None,
+            features: Vec::new(),
         }
     }
 }
@@ -56,6 +57,7 @@ fn queued(r: PredictionRecord) -> Queued {
         record: r,
         prior: 0.1,
         facts: Arc::new(Facts),
+        features: None,
     }
 }
 
@@ -352,7 +354,12 @@ fn a_version_1_log_is_migrated_and_keeps_its_rows() {
     let version: i64 = conn
         .pragma_query_value(None, "user_version", |r| r.get(0))
         .unwrap();
-    assert_eq!(version, 3);
+    assert_eq!(version, 4);
+    // Version 4 added the per-feature counts by hour, empty in a migrated log.
+    let windows: i64 = conn
+        .query_row("SELECT COUNT(*) FROM feature_counts", [], |r| r.get(0))
+        .unwrap();
+    assert_eq!(windows, 0);
     let decision: String = conn
         .query_row(
             "SELECT decision FROM predictions WHERE prediction_id = 'new'",

@@ -26,6 +26,10 @@ use rand::{Rng, SeedableRng};
 
 #[path = "support/postgres.rs"]
 mod pg;
+#[path = "support/prometheus.rs"]
+mod prom;
+#[path = "support/serve.rs"]
+mod serve;
 use pg::TestDb;
 
 const DAY: i64 = 86_400_000;
@@ -262,11 +266,150 @@ fn a_database_at_a_newer_schema_is_refused() {
         .unwrap();
     match PgStore::open(ConnectionUrl::new(&db.url()).unwrap(), None, T0) {
         Err(StoreError::Schema { found, supported }) => {
-            assert_eq!((found, supported), (99, 3));
+            assert_eq!((found, supported), (99, 5));
         }
         Err(other) => panic!("wrong error: {other}"),
         Ok(_) => panic!("a newer schema was accepted"),
     }
+}
+
+/// Schema 5 keeps every prediction's key (id, route, model, role -> time) in a table of its own, so the duplicate
+/// check and the lookups by id read one day's partition instead of every day kept. A database logged under schema 4
+/// gets the keys of the predictions it holds when it migrates: the same ids sent again write nothing, their
+/// outcomes find them, and retention removes the keys with their days.
+#[test]
+fn schema_5_backfills_the_keys_of_a_database_logged_before_it() {
+    let Some(db) = TestDb::create("keys") else {
+        return;
+    };
+    let day = 86_400_000i64;
+    let mut pg = db.open(T0);
+    let first: Vec<PredictionRecord> = (0..40)
+        .map(|i| {
+            record(
+                &format!("k{i}"),
+                "fraud",
+                "champion",
+                T0 + i64::from(i) * day / 10,
+                0.4,
+            )
+        })
+        .collect();
+    assert!(pg.insert_predictions(&first).unwrap().0.iter().all(|w| *w));
+    drop(pg);
+    // Back to schema 4: no key table.
+    db.client()
+        .batch_execute(
+            "DROP TABLE prediction_keys, maturity_marks; DELETE FROM probity_schema WHERE version = 5",
+        )
+        .unwrap();
+    let mut pg = db.open(T0 + 4 * day);
+    let keys: i64 = db
+        .client()
+        .query_one("SELECT count(*) FROM prediction_keys", &[])
+        .unwrap()
+        .get(0);
+    assert_eq!(keys, 40, "every logged prediction's key backfilled");
+    // The same ids again, on other days: nothing written twice.
+    let again: Vec<PredictionRecord> = (0..40)
+        .map(|i| {
+            record(
+                &format!("k{i}"),
+                "fraud",
+                "champion",
+                T0 + 3 * day + i64::from(i),
+                0.9,
+            )
+        })
+        .collect();
+    let (written, _) = pg.insert_predictions(&again).unwrap();
+    assert!(written.iter().all(|w| !*w), "{written:?}");
+    assert_eq!(rows(&mut pg).len(), 40);
+    // Their outcomes find the predictions logged before the migration.
+    let outcomes: Vec<OutcomeInput> = (0..40)
+        .map(|i| outcome(&format!("k{i}"), i % 2 == 0, None))
+        .collect();
+    let (results, settled) = pg.record_outcomes(&outcomes, T0 + 4 * day).unwrap();
+    assert!(
+        results.iter().all(|r| r.status == OutcomeStatus::Matched),
+        "{results:?}"
+    );
+    assert_eq!(settled.len(), 40);
+    // Retention drops the first two whole days and their keys; the ids of later days stay known.
+    let removed = pg.remove_expired(2 * day, T0 + 4 * day).unwrap();
+    let keys_left: i64 = db
+        .client()
+        .query_one("SELECT count(*) FROM prediction_keys", &[])
+        .unwrap()
+        .get(0);
+    assert_eq!(keys_left, 40 - i64::try_from(removed).unwrap());
+    assert_eq!(usize::try_from(keys_left).unwrap(), rows(&mut pg).len());
+    assert!(
+        removed > 0 && keys_left > 0,
+        "removed {removed}, left {keys_left}"
+    );
+}
+
+/// The maturity sweep reads from a day before the route's mark (everything up to it is settled), not every day
+/// kept: a sweep that hits its limit does not move the mark, so the next one finishes; predictions logged later
+/// inside the day before the mark still mature; one logged more than a day behind the mark is left waiting
+/// (DEVELOPERS.md, "Partitions").
+#[test]
+fn maturity_sweeps_read_from_the_routes_mark() {
+    let Some(db) = TestDb::create("marks") else {
+        return;
+    };
+    let day = 86_400_000i64;
+    let mut pg = db.open(T0);
+    let first: Vec<PredictionRecord> = (0..30)
+        .map(|i| {
+            record(
+                &format!("m{i}"),
+                "fraud",
+                "champion",
+                T0 + i64::from(i) * 1_000,
+                0.3,
+            )
+        })
+        .collect();
+    pg.insert_predictions(&first).unwrap();
+    let maturity: BTreeMap<String, i64> = [("fraud".to_string(), day)].into();
+    let now = T0 + 5 * day;
+    // Limit 20: the first sweep settles 20 and leaves the mark unset; the second settles the other 10.
+    assert_eq!(pg.settle_matured(&maturity, now, 20).unwrap().len(), 20);
+    let mark = |db: &TestDb| -> Option<i64> {
+        db.client()
+            .query_opt(
+                "SELECT through_ms FROM maturity_marks WHERE route = 'fraud'",
+                &[],
+            )
+            .unwrap()
+            .map(|r| r.get(0))
+    };
+    assert_eq!(mark(&db), None);
+    assert_eq!(pg.settle_matured(&maturity, now, 20).unwrap().len(), 10);
+    assert_eq!(mark(&db), Some(now - day));
+    // Logged late: one 12 hours behind the mark (matures), one three days behind it (left waiting).
+    let late = [
+        record("late-near", "fraud", "champion", now - day - day / 2, 0.3),
+        record("late-far", "fraud", "champion", now - 4 * day, 0.3),
+    ];
+    pg.insert_predictions(&late).unwrap();
+    assert_eq!(
+        pg.settle_matured(&maturity, now + 1_000, 50).unwrap().len(),
+        1
+    );
+    let matured: Vec<String> = db
+        .client()
+        .query(
+            "SELECT prediction_id FROM outcomes WHERE prediction_id LIKE 'late-%' AND state = 'matched'",
+            &[],
+        )
+        .unwrap()
+        .iter()
+        .map(|r| r.get(0))
+        .collect();
+    assert_eq!(matured, ["late-near"]);
 }
 
 #[test]
@@ -390,6 +533,7 @@ fn measure_both_backends() {
                 version: "v1".into(),
                 base_rate: 0.1,
                 reference: None,
+                features: Vec::new(),
             }
         }
     }
@@ -420,6 +564,7 @@ fn measure_both_backends() {
                 record: r,
                 prior: 0.02,
                 facts: Arc::new(Facts),
+                features: None,
             });
         }
         log.flush().unwrap();
@@ -493,7 +638,7 @@ fn measure_both_backends() {
 /// from the same rows.
 mod fleet {
     use std::collections::HashMap;
-    use std::process::{Child, Command, Stdio};
+    use std::process::Command;
     use std::sync::{Arc, Mutex};
     use std::time::Duration;
 
@@ -513,48 +658,23 @@ mod fleet {
     }
 
     struct Server {
-        child: Child,
+        process: super::serve::Spawned,
         url: String,
-    }
-
-    impl Drop for Server {
-        /// SIGKILL and reap, also when an assertion fails first.
-        fn drop(&mut self) {
-            let _ = self.child.kill();
-            let _ = self.child.wait();
-        }
+        /// host:port of its `/metrics`.
+        metrics: String,
     }
 
     async fn start(config: &std::path::Path) -> Server {
-        let port = free_port();
-        let mut child = Command::new(env!("CARGO_BIN_EXE_probity"))
-            .args(["serve", "--config"])
-            .arg(config)
-            .args(["--grpc-listen", &format!("127.0.0.1:{port}")])
-            .args(["--metrics-listen", &format!("127.0.0.1:{}", free_port())])
-            .stdout(Stdio::null())
-            .stderr(
-                std::fs::File::create(config.with_file_name(format!("replica-{port}.log")))
-                    .map(Stdio::from)
-                    .unwrap_or_else(|_| Stdio::null()),
-            )
-            .spawn()
-            .unwrap();
-        let url = format!("http://127.0.0.1:{port}");
-        for _ in 0..400 {
-            if tonic::transport::Channel::from_shared(url.clone())
-                .unwrap()
-                .connect()
+        let config = config.to_path_buf();
+        let process =
+            tokio::task::spawn_blocking(move || super::serve::Spawned::start(&config, &[]))
                 .await
-                .is_ok()
-            {
-                return Server { child, url };
-            }
-            tokio::time::sleep(Duration::from_millis(50)).await;
+                .unwrap();
+        Server {
+            url: process.url(),
+            metrics: process.metrics_addr(),
+            process,
         }
-        let _ = child.kill();
-        let _ = child.wait();
-        panic!("the server did not start");
     }
 
     async fn channel(url: &str) -> Option<tonic::transport::Channel> {
@@ -1015,7 +1135,8 @@ print(log_loss(y, p), brier_score_loss(y, p), roc_auc_score(y, h))\n";
     }
 
     /// A replica whose database cannot be used does not start, and says why without the password: once with the URL
-    /// in the environment and a database that does not exist, once with a URL file naming a port nothing listens on.
+    /// in the environment and a database that does not exist (at once: waiting would not help), once with a URL file
+    /// naming a port nothing listens on (after trying again for `store.postgres_start_wait`, each try logged).
     #[test]
     fn a_replica_without_its_database_stops_with_an_error_that_hides_the_password() {
         let secret = "Pw-fleet-never-shown-4410";
@@ -1045,7 +1166,8 @@ print(log_loss(y, p), brier_score_loss(y, p), roc_auc_score(y, h))\n";
                 &config,
                 format!(
                 "[server]\nplaintext = \"loopback\"\n[models]\ndirectory = {:?}\nwatch = false\n\
-                 [store]\nbackend = \"postgres\"\n{file_line}[routes.r]\nmodel = \"linear\"\n",
+                 [store]\nbackend = \"postgres\"\npostgres_start_wait = \"1s\"\n{file_line}\
+                 [routes.r]\nmodel = \"linear\"\n",
                 models.path().display().to_string()
             ),
             )
@@ -1077,6 +1199,10 @@ print(log_loss(y, p), brier_score_loss(y, p), roc_auc_score(y, h))\n";
             text.contains("store.backend") && text.contains("127.0.0.1:1/fleet"),
             "{text}"
         );
+        assert!(
+            text.contains("does not answer yet; trying again") && text.contains("attempts over"),
+            "tried again for store.postgres_start_wait, and said so: {text}"
+        );
         // No URL at all: the error names both places it may come from.
         let text = serve(&write_config(false), None);
         assert!(
@@ -1093,6 +1219,262 @@ print(log_loss(y, p), brier_score_loss(y, p), roc_auc_score(y, h))\n";
             );
             assert!(!text.contains(secret), "{text}");
             assert!(text.contains("no_such_db_fleet"), "{text}");
+            assert!(
+                !text.contains("trying again"),
+                "a database that answers with an error is not waited for: {text}"
+            );
         }
+    }
+
+    /// Replicas and their database often start together: a replica started while nothing answers at the database's
+    /// address waits (`store.postgres_start_wait`), and serves once the database answers. The database "starts" here
+    /// as a TCP relay to the real one, opened 1.5 s after the replica.
+    #[test]
+    fn a_replica_waits_for_a_database_that_starts_after_it() {
+        let Some(db) = TestDb::create("late") else {
+            return;
+        };
+        let relay_port = free_port();
+        let real = db.url();
+        let late_url = real.replacen("127.0.0.1:5432", &format!("127.0.0.1:{relay_port}"), 1);
+        assert_ne!(
+            late_url, real,
+            "the test database is on 127.0.0.1:5432: {real}"
+        );
+        let models = tempfile::tempdir().unwrap();
+        std::fs::write(
+            models.path().join("linear.json"),
+            r#"{"format": "probity.model", "format_version": 1, "name": "linear", "version": "1",
+            "features": [{"name": "x", "type": "numeric"}], "margin_scale": "log_odds", "base_rate": 0.3,
+            "linear": {"intercept": -0.5, "terms": [{"numeric": {"feature": 0, "coefficient": 1.2}}]}}"#,
+        )
+        .unwrap();
+        let data = tempfile::tempdir().unwrap();
+        let url_file = data.path().join("db-url");
+        std::fs::write(&url_file, &late_url).unwrap();
+        let config = data.path().join("probity.toml");
+        std::fs::write(
+            &config,
+            format!(
+                "[server]\nplaintext = \"loopback\"\n[models]\ndirectory = {:?}\nwatch = false\n\
+                 [store]\nbackend = \"postgres\"\npostgres_url_file = {:?}\npostgres_start_wait = \"60s\"\n\
+                 flush_interval = \"10ms\"\n[routes.r]\nmodel = \"linear\"\n",
+                models.path().display().to_string(),
+                url_file.display().to_string()
+            ),
+        )
+        .unwrap();
+        let relay = std::thread::spawn(move || {
+            std::thread::sleep(Duration::from_millis(1500));
+            let listener = std::net::TcpListener::bind(("127.0.0.1", relay_port)).unwrap();
+            for client in listener.incoming() {
+                let Ok(client) = client else { continue };
+                let Ok(upstream) = std::net::TcpStream::connect("127.0.0.1:5432") else {
+                    continue;
+                };
+                for (mut from, mut to) in [
+                    (client.try_clone().unwrap(), upstream.try_clone().unwrap()),
+                    (upstream, client),
+                ] {
+                    std::thread::spawn(move || {
+                        let _ = std::io::copy(&mut from, &mut to);
+                        let _ = to.shutdown(std::net::Shutdown::Write);
+                    });
+                }
+            }
+        });
+        let rt = tokio::runtime::Builder::new_current_thread()
+            .enable_all()
+            .build()
+            .unwrap();
+        let server = rt.block_on(start(&config));
+        assert!(!relay.is_finished(), "the relay stopped");
+        // It serves, and its predictions reach the database through the relay.
+        rt.block_on(async {
+            let mut scoring =
+                pb::scoring_client::ScoringClient::new(channel(&server.url).await.unwrap());
+            scoring
+                .score_batch(pb::ScoreBatchRequest {
+                    route: "r".into(),
+                    rows: rows(0..20),
+                    ..Default::default()
+                })
+                .await
+                .unwrap();
+        });
+        let mut logged = 0;
+        for _ in 0..200 {
+            logged = db
+                .client()
+                .query_one("SELECT count(*) FROM predictions", &[])
+                .unwrap()
+                .get::<_, i64>(0);
+            if logged == 20 {
+                break;
+            }
+            std::thread::sleep(Duration::from_millis(50));
+        }
+        assert_eq!(logged, 20);
+        let log = server.process.log();
+        drop(server);
+        assert!(
+            log.contains("does not answer yet; trying again"),
+            "the replica started before the database answered, so it must have waited: {log}"
+        );
+    }
+
+    /// A real Prometheus server scrapes three replicas of one database with `deploy/prometheus/rules.yml` loaded:
+    /// each replica counts the outcomes it matched (the one that received the outcome, or the one that logged the
+    /// prediction when the outcome came first and was held), and the recorded fleet figures (sums over the
+    /// replicas, then ratios) equal the report any replica makes from the shared database: matched pairs, log-loss,
+    /// Brier, observed base rate, within 1e-9 relative. No replica restarts in the window.
+    #[test]
+    fn prometheus_adds_three_replicas_into_the_fleet_report() {
+        let Some(db) = TestDb::create("prom") else {
+            return;
+        };
+        let models = tempfile::tempdir().unwrap();
+        std::fs::write(
+            models.path().join("linear.json"),
+            r#"{"format": "probity.model", "format_version": 1, "name": "linear", "version": "1",
+            "features": [{"name": "x", "type": "numeric"}], "margin_scale": "log_odds", "base_rate": 0.3,
+            "linear": {"intercept": -0.5, "terms": [{"numeric": {"feature": 0, "coefficient": 1.2}}]}}"#,
+        )
+        .unwrap();
+        let data = tempfile::tempdir().unwrap();
+        let url_file = data.path().join("db-url");
+        std::fs::write(&url_file, db.url()).unwrap();
+        let config = data.path().join("probity.toml");
+        std::fs::write(
+            &config,
+            format!(
+                "[server]\nplaintext = \"loopback\"\n[models]\ndirectory = {:?}\nwatch = false\n\
+                 [store]\nbackend = \"postgres\"\npostgres_url_file = {:?}\nflush_interval = \"10ms\"\n\
+                 sweep_interval = \"1s\"\n[routes.r]\nmodel = \"linear\"\n",
+                models.path().display().to_string(),
+                url_file.display().to_string()
+            ),
+        )
+        .unwrap();
+        let rt = tokio::runtime::Builder::new_multi_thread()
+            .worker_threads(2)
+            .enable_all()
+            .build()
+            .unwrap();
+        const N: usize = 30;
+        let (servers, report) = rt.block_on(async {
+            let mut servers = Vec::new();
+            for _ in 0..3 {
+                servers.push(start(&config).await);
+            }
+            let mut channels = Vec::new();
+            for s in &servers {
+                channels.push(channel(&s.url).await.unwrap());
+            }
+            // Batch b is scored on replica b % 3; its outcomes go to replica (b + 1) % 3, every other batch before
+            // the prediction can have been written (held, then matched by the writer's replica).
+            for b in 0..N {
+                let scorer = b % 3;
+                let receiver = (b + 1) % 3;
+                let mut scoring = pb::scoring_client::ScoringClient::new(channels[scorer].clone());
+                let mut outcomes =
+                    pb::outcomes_client::OutcomesClient::new(channels[receiver].clone());
+                let send = pb::RecordOutcomesRequest {
+                    outcomes: (b * PER_BATCH..(b + 1) * PER_BATCH)
+                        .map(|i| pb::Outcome {
+                            prediction_id: format!("f-{i}"),
+                            label: label(i),
+                            outcome_time_unix_ms: 0,
+                        })
+                        .collect(),
+                };
+                let score = pb::ScoreBatchRequest {
+                    route: "r".into(),
+                    rows: rows(b * PER_BATCH..(b + 1) * PER_BATCH),
+                    ..Default::default()
+                };
+                if b % 2 == 0 {
+                    outcomes.record_outcomes(send).await.unwrap();
+                    scoring.score_batch(score).await.unwrap();
+                } else {
+                    scoring.score_batch(score).await.unwrap();
+                    outcomes.record_outcomes(send).await.unwrap();
+                }
+            }
+            // Every outcome matched (held ones too, once their predictions are written).
+            let mut report = Value::Null;
+            for _ in 0..400 {
+                let mut o = pb::outcomes_client::OutcomesClient::new(channels[2].clone());
+                let r = o
+                    .report(pb::ReportRequest::default())
+                    .await
+                    .unwrap()
+                    .into_inner();
+                report = serde_json::from_str(&r.json).unwrap();
+                if report["series"][0]["with_outcome"].as_u64() == Some((N * PER_BATCH) as u64) {
+                    break;
+                }
+                tokio::time::sleep(Duration::from_millis(50)).await;
+            }
+            (servers, report)
+        });
+        let s = &report["series"][0];
+        assert_eq!(
+            s["with_outcome"].as_u64(),
+            Some((N * PER_BATCH) as u64),
+            "{report}"
+        );
+        let targets: Vec<&str> = servers.iter().map(|s| s.metrics.as_str()).collect();
+        let prometheus = super::prom::start_prometheus(&targets);
+        let labels = [("route", "r"), ("model", "linear"), ("version", "1")];
+        let deadline = std::time::Instant::now() + Duration::from_secs(60);
+        // Each replica matched some of the outcomes: the sum is over replicas, not one replica's own figures.
+        loop {
+            let per_replica = prometheus
+                .query(r#"sum by (instance) (probity_outcome_log_loss_count{entry="add"})"#);
+            if per_replica.len() == 3 {
+                assert!(per_replica.iter().all(|(_, v)| *v > 0.0), "{per_replica:?}");
+                break;
+            }
+            assert!(
+                std::time::Instant::now() < deadline,
+                "three replicas never scraped: {per_replica:?}"
+            );
+            std::thread::sleep(Duration::from_millis(200));
+        }
+        for (record, want) in [
+            (
+                "route_model_version:probity_outcomes_matched:net",
+                s["with_outcome"].as_f64().unwrap(),
+            ),
+            (
+                "route_model_version:probity_outcome_log_loss:mean",
+                s["log_loss"].as_f64().unwrap(),
+            ),
+            (
+                "route_model_version:probity_outcome_brier:mean",
+                s["brier"].as_f64().unwrap(),
+            ),
+            (
+                "route_model_version:probity_outcome_observed_base_rate:ratio",
+                s["observed_base_rate"].as_f64().unwrap(),
+            ),
+        ] {
+            let got = loop {
+                let got = prometheus.value(record, &labels);
+                if got.is_some_and(|v| super::prom::close(v, want))
+                    || std::time::Instant::now() >= deadline
+                {
+                    break got;
+                }
+                std::thread::sleep(Duration::from_millis(200));
+            };
+            println!("fleet {record}: recorded {got:?}, report {want}");
+            assert!(
+                got.is_some_and(|v| super::prom::close(v, want)),
+                "{record}: recorded {got:?}, report {want}"
+            );
+        }
+        assert!(prometheus.healthy_rules() >= 30);
     }
 }

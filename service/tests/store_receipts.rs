@@ -31,6 +31,7 @@ impl ModelFacts for Facts {
             version: "v1".into(),
             base_rate: 0.1,
             reference: None,
+            features: Vec::new(),
         }
     }
 }
@@ -56,6 +57,7 @@ fn queued(id: &str) -> Queued {
         },
         prior: 0.1,
         facts: Arc::new(Facts),
+        features: None,
     }
 }
 

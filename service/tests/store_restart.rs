@@ -16,7 +16,6 @@
 #![allow(clippy::unwrap_used)]
 
 use std::collections::{HashMap, HashSet};
-use std::process::{Child, Command, Stdio};
 use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
 use std::sync::{Arc, Mutex};
 use std::time::Duration;
@@ -25,51 +24,25 @@ use probity::serve::proto as pb;
 use serde_json::Value;
 use tokio_stream::StreamExt;
 
-fn free_port() -> u16 {
-    std::net::TcpListener::bind("127.0.0.1:0")
-        .unwrap()
-        .local_addr()
-        .unwrap()
-        .port()
-}
+#[path = "support/serve.rs"]
+mod serve;
 
 struct Server {
-    child: Child,
+    process: serve::Spawned,
     url: String,
     metrics: std::net::SocketAddr,
 }
 
 async fn start(config: &std::path::Path) -> Server {
-    let port = free_port();
-    let metrics: std::net::SocketAddr = format!("127.0.0.1:{}", free_port()).parse().unwrap();
-    let mut child = Command::new(env!("CARGO_BIN_EXE_probity"))
-        .args(["serve", "--config"])
-        .arg(config)
-        .args(["--grpc-listen", &format!("127.0.0.1:{port}")])
-        .args(["--metrics-listen", &metrics.to_string()])
-        .stdout(Stdio::null())
-        .stderr(Stdio::null())
-        .spawn()
+    let config = config.to_path_buf();
+    let process = tokio::task::spawn_blocking(move || serve::Spawned::start(&config, &[]))
+        .await
         .unwrap();
-    let url = format!("http://127.0.0.1:{port}");
-    for _ in 0..300 {
-        if tonic::transport::Channel::from_shared(url.clone())
-            .unwrap()
-            .connect()
-            .await
-            .is_ok()
-        {
-            return Server {
-                child,
-                url,
-                metrics,
-            };
-        }
-        tokio::time::sleep(Duration::from_millis(50)).await;
+    Server {
+        url: process.url(),
+        metrics: process.metrics,
+        process,
     }
-    child.kill().unwrap();
-    child.wait().unwrap();
-    panic!("the server did not start");
 }
 
 impl Server {
@@ -91,16 +64,8 @@ impl Server {
     }
 
     fn kill(self) {
-        // SIGKILL: no drain, no flush (Drop does it).
-        drop(self);
-    }
-}
-
-impl Drop for Server {
-    /// SIGKILL and reap, also when an assertion fails first: a failed test leaves no server running.
-    fn drop(&mut self) {
-        let _ = self.child.kill();
-        let _ = self.child.wait();
+        // SIGKILL: no drain, no flush.
+        self.process.kill();
     }
 }
 

@@ -237,6 +237,9 @@ fixture_cases! {
     // native categorical splits, unknown categories sent with the missing values.
     sklearn_hgb_nan_cat_breast_cancer => Tolerance { margin: 1e-9, probability: 1e-9 },
     sklearn_hgb_nan_breast_cancer => Tolerance { margin: 1e-9, probability: 1e-9 },
+    // A feature present or missing (1.0 or NaN): its splits send non-missing values left with threshold +inf,
+    // written "inf" in the file.
+    sklearn_hgb_present_flag_breast_cancer => Tolerance { margin: 1e-9, probability: 1e-9 },
     // scikit-learn 1.9.1 LogisticRegression.decision_function / predict_proba: a BLAS dot product in float64,
     // summed in another order than the engine's, so equal to rounding only.
     sklearn_logreg_spector => Tolerance { margin: 1e-9, probability: 1e-9 },

@@ -1,6 +1,8 @@
 """The Python client against a real `probity serve` (started here, stopped at the end), checked against the
 scikit-learn figures of tests/fixtures/evaluate/expected.json (scikit-learn 1.9.1 `log_loss`, `roc_auc_score`,
-computed by tests/fixtures/gen_evaluate.py on `load_breast_cancer`, Street, Wolberg and Mangasarian 1993)."""
+computed by tests/fixtures/gen_evaluate.py on `load_breast_cancer`, Street, Wolberg and Mangasarian 1993), and the
+per-feature stability against the NumPy reference of tests/fixtures/stability/reference.json (gen_stability.py:
+slot counts by `np.digitize(right=True)`, PSI sum (a - e) ln(a / e), Siddiqi 2006, shares floored at 1e-4)."""
 
 import csv
 import json
@@ -18,6 +20,7 @@ from probity_client import Client, Outcome
 
 ROOT = Path(__file__).resolve().parents[3]
 FIXTURE = ROOT / "tests" / "fixtures" / "evaluate"
+STABILITY = ROOT / "tests" / "fixtures" / "stability"
 
 
 def binary():
@@ -33,6 +36,7 @@ def server(tmp_path_factory):
     models = work / "models"
     models.mkdir()
     shutil.copy(FIXTURE / "champion.json", models / "champion.json")
+    shutil.copy(STABILITY / "model.json", models / "stability.json")
     config = work / "probity.toml"
     config.write_text(
         '[server]\nplaintext = "loopback"\ngrpc_listen = "127.0.0.1:0"\nmetrics_listen = "127.0.0.1:0"\n'
@@ -40,6 +44,7 @@ def server(tmp_path_factory):
         "[limits]\nmax_batch_rows = 1000\n"
         f'[store]\ndirectory = {json.dumps(str(work / "log"))}\nflush_interval = "5ms"\n'
         '[routes.bc]\nmodel = "breast_cancer_champion"\n[routes.bc.decision]\nthreshold = 0.3\n'
+        '[routes.stab]\nmodel = "stability"\nunknown_features = "ignore"\n'
     )
     proc = subprocess.Popen(
         [binary(), "serve", "--config", str(config), "--log-format", "json"], stderr=subprocess.PIPE, text=True
@@ -127,3 +132,34 @@ def test_score_outcomes_and_report_match_scikit_learn(server):
 def test_bad_feature_type_is_refused_before_sending(server):
     with Client(server) as c, pytest.raises(TypeError, match="mean_texture"):
         c.score("bc", {"mean_texture": [1.0]})
+
+
+def test_report_shows_each_features_stability(server):
+    model = json.loads((STABILITY / "model.json").read_text())
+    kinds = {f["name"]: f["type"] for f in model["features"]}
+    with open(STABILITY / "shifted.csv", newline="") as f:
+        rows = [
+            {n: (v if kinds[n] == "categorical" else float(v)) for n, v in r.items() if n in kinds and v != ""}
+            for r in csv.DictReader(f)
+        ]
+    reference = json.loads((STABILITY / "reference.json").read_text())["shifted"]
+    with Client(server) as c:
+        c.score_batch("stab", rows)
+        deadline = time.monotonic() + 30
+        while True:
+            series = [s for s in c.report(route="stab").series if s.route == "stab"]
+            if series and series[0].features and series[0].features[0].rows == len(rows):
+                break
+            assert time.monotonic() < deadline, "feature counts not in the store in time"
+            time.sleep(0.1)
+    features = {f.feature: f for f in series[0].features}
+    assert set(features) == set(reference)
+    for name, want in reference.items():
+        got = features[name]
+        assert list(got.counts) == want["counts"], name
+        assert abs(got.psi - want["psi"]) <= 1e-12, name
+        assert abs(got.missing_rate - want["missing_rate"]) <= 1e-15, name
+        if want["unknown_rate"] is None:
+            assert got.unknown_rate is None, name
+        else:
+            assert abs(got.unknown_rate - want["unknown_rate"]) <= 1e-15, name

@@ -67,6 +67,17 @@ def feature_names(given: Sequence[str] | None, from_model: Sequence[str] | None,
     return names
 
 
+def threshold(value: Any) -> float | str:
+    """A numeric split's threshold as the format writes it: a finite number as itself, an infinite one as the text
+    `"inf"` or `"-inf"` (JSON has no literal for it). NaN is refused."""
+    v = float(value)
+    if math.isnan(v):
+        raise ExportError(f"split threshold {value!r} is not a number")
+    if math.isinf(v):
+        return "inf" if v > 0 else "-inf"
+    return v
+
+
 def resolve_base_rate(base_rate: float | None, y: Iterable | None) -> float:
     """The model's base rate: given, or the positive share of the training labels `y` (0/1 or booleans)."""
     if base_rate is None:

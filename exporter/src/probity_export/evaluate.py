@@ -32,6 +32,13 @@ def _category_index(value: float, n: int) -> int | None:
     return None
 
 
+def _threshold(written: float | str) -> float:
+    """A written threshold: a number, or `"inf"` / `"-inf"` for an infinite one."""
+    if isinstance(written, str):
+        return {"inf": math.inf, "-inf": -math.inf}[written]
+    return written
+
+
 def _tree_value(nodes: list[dict], row: Sequence[float], features: list[dict], f32: bool) -> float:
     i = 0
     while True:
@@ -46,7 +53,8 @@ def _tree_value(nodes: list[dict], row: Sequence[float], features: list[dict], f
             else:
                 if f32:
                     x = float(np.float32(x))
-                holds = x < s["threshold"] if s["op"] == "<" else x <= s["threshold"]
+                t = _threshold(s["threshold"])
+                holds = x < t if s["op"] == "<" else x <= t
                 side = "left" if holds else "right"
         else:
             s = node["categorical"]

@@ -27,6 +27,7 @@ from .document import (
     flatten_tree,
     numeric_feature,
     resolve_base_rate,
+    threshold,
 )
 
 
@@ -199,7 +200,8 @@ def export_hist_gradient_boosting(
                     raise ExportError(f"tree split on feature {orig} names a category code the encoder does not know")
                 split = {"feature": orig, "left_categories": left_cats, "missing": side, "unknown": side}
                 return ("split", "categorical", split, int(node["left"]), int(node["right"]), float(node["count"]))
-            split = {"feature": orig, "op": "<=", "threshold": float(node["num_threshold"]), "missing": side}
+            # A split of missing from non-missing values has threshold +inf (scikit-learn's "split on nan").
+            split = {"feature": orig, "op": "<=", "threshold": threshold(node["num_threshold"]), "missing": side}
             return ("split", "numeric", split, int(node["left"]), int(node["right"]), float(node["count"]))
 
         trees.append({"nodes": flatten_tree(0, visit)})

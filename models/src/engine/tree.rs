@@ -284,8 +284,16 @@ impl EnsembleBuilder {
     /// Pushes a numeric split; its right child is set later with [`Self::set_right`].
     pub(crate) fn push_numeric(&mut self, feature: u32, le: bool, threshold: f64, missing: Side) {
         // See the module overview: `<` becomes `<=` on the previous f64, so the walk makes one comparison.
-        let threshold = if le { threshold } else { threshold.next_down() };
-        let threshold = if self.float32 {
+        // `x < -inf` holds for no `x`, not even -inf: stored as a NaN threshold, which `<=` never passes
+        // (`-inf.next_down()` is -inf itself, which -inf would pass).
+        let threshold = if le {
+            threshold
+        } else if threshold == f64::NEG_INFINITY {
+            f64::NAN
+        } else {
+            threshold.next_down()
+        };
+        let threshold = if self.float32 && !threshold.is_nan() {
             f32_equivalent(threshold)
         } else {
             threshold
@@ -1005,6 +1013,59 @@ mod tests {
                     assert_eq!(out, [want; LANES], "batch t={t} x={x} float32={float32}");
                 }
                 assert_eq!(e.margin(&[f64::NAN]), 1.0);
+            }
+        }
+    }
+
+    #[test]
+    fn infinite_thresholds_follow_the_comparison_as_written() {
+        // A file may write `"inf"` or `"-inf"` as a threshold (scikit-learn's HistGradientBoosting splits missing
+        // from non-missing with `x <= +inf`). Such splits leave the complete layout; every op, threshold, missing
+        // side and precision must still answer as `value op threshold` does on the value (rounded to f32 first in
+        // float32 mode), with NaN to the missing side.
+        for t in [f64::INFINITY, f64::NEG_INFINITY] {
+            for le in [true, false] {
+                for missing in [Side::Left, Side::Right] {
+                    for float32 in [false, true] {
+                        let mut b = EnsembleBuilder::new(0.0, float32, vec![0], 3);
+                        b.start_tree().unwrap();
+                        b.note_depth(1);
+                        b.push_numeric(0, le, t, missing);
+                        b.push_leaf(-1.0).unwrap();
+                        b.set_right(0, 2);
+                        b.push_leaf(1.0).unwrap();
+                        let e = b.finish();
+                        let xs = [
+                            0.0,
+                            -0.0,
+                            1.0e300,
+                            -1.0e300,
+                            f64::MAX,
+                            -f64::MAX,
+                            f64::INFINITY,
+                            f64::NEG_INFINITY,
+                            f64::NAN,
+                        ];
+                        for x in xs {
+                            let r = if float32 { x as f32 as f64 } else { x };
+                            let left = if x.is_nan() {
+                                missing == Side::Left
+                            } else if le {
+                                r <= t
+                            } else {
+                                r < t
+                            };
+                            let want = if left { -1.0 } else { 1.0 };
+                            let what = format!(
+                                "t={t} le={le} missing={missing:?} float32={float32} x={x}"
+                            );
+                            assert_eq!(e.margin(&[x]), want, "{what}");
+                            let mut out = [0.0; LANES];
+                            e.margins(&[x; LANES], 1, &mut out);
+                            assert_eq!(out, [want; LANES], "batch {what}");
+                        }
+                    }
+                }
             }
         }
     }

@@ -23,6 +23,7 @@
 //! [`text`] renders the terminal table, [`svg`] the pictures; the JSON is this module's types through serde.
 
 pub mod calibration_tests;
+pub mod features;
 pub mod immature;
 pub mod operating;
 pub mod stream;
@@ -140,6 +141,9 @@ pub struct SeriesReport {
     /// The operating points on the pairs with an outcome at each distinct decision rule the predictions were served
     /// under, in the order first served (see [`operating`]); empty when the route had no rule.
     pub operating_points: Vec<operating::ServedRule>,
+    /// Per-feature stability (PSI, missing and unknown-category rates) over the hour windows that overlap the
+    /// range, for the monitored features of the model file (see [`features`]); empty when none was counted.
+    pub features: Vec<features::FeatureReport>,
 }
 
 /// Murphy's decomposition with the two within-bin terms.
@@ -363,6 +367,7 @@ pub fn build_loaded(
             (bins, horizon),
         ));
     }
+    features::add(store, filter, &mut series)?;
     Ok(Report {
         from_ms: filter.from_ms,
         to_ms: filter.to_ms,
@@ -654,6 +659,7 @@ pub fn section(
         eventual_positive_rate,
         immature_window,
         operating_points,
+        features: Vec::new(),
     }
 }
 

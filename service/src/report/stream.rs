@@ -207,6 +207,7 @@ pub fn build(
         let section = section(store, &scan, reference.as_ref(), rates, (bins, horizon))?;
         series.push(section);
     }
+    super::features::add(store, filter, &mut series)?;
     Ok(Report {
         from_ms: filter.from_ms,
         to_ms: filter.to_ms,
@@ -784,6 +785,8 @@ pub fn section(
         eventual_positive_rate,
         immature_window,
         operating_points,
+        // Filled for the whole report from the store's hourly counts (`features::add`), as the loaded report does.
+        features: Vec::new(),
     })
 }
 

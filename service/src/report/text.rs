@@ -118,6 +118,7 @@ fn section(s: &mut String, r: &SeriesReport) {
     if let Some(p) = &r.psi {
         let _ = writeln!(s, "PSI {:.6} on {} ({})", p.value, p.on, p.rule);
     }
+    super::features::render(s, &r.features);
     for n in &r.notes {
         let _ = writeln!(s, "note: {n}");
     }

@@ -21,13 +21,14 @@
 use probity_models::stability::{Slot, TrainingDistribution, MAX_DISTRIBUTION_BINS};
 use probity_models::Model;
 
+use crate::store::features::RowFeatures;
+
 /// Rows counted per slot of a feature's training distribution, by route, model, version, feature and slot.
 pub const FEATURE_VALUES: &str = "probity_feature_values_total";
 /// The training share of each slot, by model, version, feature and slot (from the model file).
 pub const FEATURE_TRAINING_SHARE: &str = "probity_feature_training_share";
 
-/// Most features counted per (route, model version): the first ones in file order with a training distribution.
-pub const MAX_MONITORED_FEATURES: usize = 32;
+pub use probity_models::stability::MAX_MONITORED_FEATURES;
 
 /// The `bin` label of value bin `i` (at most [`MAX_DISTRIBUTION_BINS`]).
 const BIN_LABELS: [&str; MAX_DISTRIBUTION_BINS] = [
@@ -66,6 +67,8 @@ struct Monitored {
 /// The counters of one (route, model, version).
 pub struct FeatureCounters {
     features: Vec<Monitored>,
+    /// The monitored features' names, shared by every row's slots sent to the store.
+    names: std::sync::Arc<[String]>,
 }
 
 impl FeatureCounters {
@@ -73,6 +76,7 @@ impl FeatureCounters {
     /// `rate()`), and sets the training-share gauges. `None` when the model has no training distribution.
     pub fn new(route: &str, model: &Model) -> Option<FeatureCounters> {
         let mut features = Vec::new();
+        let mut names = Vec::new();
         for (column, distribution) in model.training_distributions().take(MAX_MONITORED_FEATURES) {
             let name = model
                 .schema()
@@ -96,23 +100,43 @@ impl FeatureCounters {
             for c in &counters {
                 c.increment(0);
             }
+            names.push(name);
             features.push(Monitored {
                 column,
                 distribution: distribution.clone(),
                 counters,
             });
         }
-        (!features.is_empty()).then_some(FeatureCounters { features })
+        (!features.is_empty()).then(|| FeatureCounters {
+            features,
+            names: names.into(),
+        })
     }
 
-    /// Counts one row (its dense values, in the model's feature order).
-    pub fn count(&self, row: &[f64]) {
-        for m in &self.features {
-            if let Some(&v) = row.get(m.column) {
-                if let Some(c) = m.counters.get(m.distribution.slot_of(v)) {
-                    c.increment(1);
-                }
+    /// Counts one row (its dense values, in the model's feature order); with `keep`, returns the slots found, one
+    /// per monitored feature, for the store (`None` if a row is shorter than the schema, which the scorer never
+    /// sends).
+    pub fn count(&self, row: &[f64], keep: bool) -> Option<RowFeatures> {
+        let mut slots = [0u8; MAX_MONITORED_FEATURES];
+        let mut whole = true;
+        for (m, kept) in self.features.iter().zip(slots.iter_mut()) {
+            let Some(&v) = row.get(m.column) else {
+                whole = false;
+                continue;
+            };
+            let slot = m.distribution.slot_of(v);
+            if let Some(c) = m.counters.get(slot) {
+                c.increment(1);
             }
+            // At most MAX_DISTRIBUTION_BINS + 2 = 34 slots: a byte.
+            *kept = u8::try_from(slot).unwrap_or(u8::MAX);
         }
+        if !(keep && whole) {
+            return None;
+        }
+        RowFeatures::new(
+            std::sync::Arc::clone(&self.names),
+            &slots[..self.features.len()],
+        )
     }
 }

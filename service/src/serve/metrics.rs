@@ -301,17 +301,22 @@ pub fn prediction_series(route: &str, model: &Model) -> Option<Arc<PredictionSer
     same(series).then(|| Arc::clone(series))
 }
 
-/// Records one scored row.
-pub fn prediction(route: &str, model: &Model, probability: f64, log_odds: f64, values: &[f64]) {
+/// Records one scored row. With `slots`, also returns the slot of each monitored feature's value, for the
+/// prediction store's hourly counts (`store::features`); `None` when the model has no training distribution.
+pub fn prediction(
+    route: &str,
+    model: &Model,
+    probability: f64,
+    log_odds: f64,
+    values: &[f64],
+    slots: bool,
+) -> Option<crate::store::features::RowFeatures> {
     if let Some(s) = prediction_series(route, model) {
         s.count.increment(1);
         s.probability.record(probability);
         s.log_odds.record(log_odds);
         // The row's feature values, into the slots of their training distributions (same series lookup).
-        if let Some(features) = &s.features {
-            features.count(values);
-        }
-        return;
+        return s.features.as_ref().and_then(|f| f.count(values, slots));
     }
     let labels = [
         ("route", route.to_string()),
@@ -321,6 +326,7 @@ pub fn prediction(route: &str, model: &Model, probability: f64, log_odds: f64, v
     metrics::counter!(PREDICTIONS, &labels).increment(1);
     metrics::histogram!(PROBABILITY, &labels).record(probability);
     metrics::histogram!(LOG_ODDS, &labels).record(log_odds);
+    None
 }
 
 /// Records one warning returned with a row.

@@ -34,18 +34,33 @@ impl ModelFacts for LoadedModel {
             version: self.model.version().to_string(),
             base_rate: self.model.base_rate(),
             reference: self.model.reference_distribution().map(Reference::of),
+            features: self
+                .model
+                .training_distributions()
+                .take(crate::serve::feature_metrics::MAX_MONITORED_FEATURES)
+                .map(|(column, d)| {
+                    let name = self
+                        .model
+                        .schema()
+                        .feature(column)
+                        .map(|f| f.name.as_str())
+                        .unwrap_or_default();
+                    crate::store::features::FeatureDistribution::of(name, d)
+                })
+                .collect(),
         }
     }
 }
 
 /// The log entry of a scored row (the subject key and tags are moved out of the row; the response does not carry
-/// them).
+/// them), with the slots of its monitored features when the scoring path found them.
 pub fn queued(
     route: &Route,
     loaded: &Arc<LoadedModel>,
     role: &str,
     row: &mut PreparedRow,
     scored: &probity_models::Scored,
+    features: Option<crate::store::features::RowFeatures>,
 ) -> Queued {
     let prior = route
         .output
@@ -77,6 +92,7 @@ pub fn queued(
         },
         prior,
         facts: Arc::clone(loaded) as Arc<dyn ModelFacts>,
+        features,
     }
 }
 
@@ -230,6 +246,18 @@ fn served_rule(r: &crate::report::operating::ServedRule) -> pb::ServedRule {
     }
 }
 
+/// A feature's stability in a report section as its wire message.
+fn feature_stability(f: &crate::report::features::FeatureReport) -> pb::FeatureStability {
+    pb::FeatureStability {
+        feature: f.feature.clone(),
+        rows: f.rows,
+        psi: f.psi,
+        missing_rate: f.missing_rate,
+        unknown_rate: f.unknown_rate,
+        counts: f.counts.clone(),
+    }
+}
+
 /// The report as its wire message.
 pub fn report_response(report: &Report) -> pb::ReportResponse {
     let series = report
@@ -242,6 +270,7 @@ pub fn report_response(report: &Report) -> pb::ReportResponse {
             role: s.role.clone(),
             predictions: s.predictions as u64,
             with_outcome: s.with_outcome as u64,
+            features: s.features.iter().map(feature_stability).collect(),
             immature: s.immature as u64,
             settled_by_maturity: s.settled_by_maturity as u64,
             corrected: s.corrected as u64,

@@ -429,20 +429,23 @@ impl Scorer {
         scored: probity_models::Scored,
         held: &mut Vec<Queued>,
     ) -> pb::ScoreResponse {
-        if let Some(log) = &self.log {
-            let queued = crate::serve::outcomes::queued(config, loaded, role, &mut row, &scored);
-            match config.record {
-                RecordMode::AfterAnswer => log.log(queued),
-                RecordMode::BeforeAnswer => held.push(queued),
-            }
-        }
-        metrics::prediction(
+        // The metrics find each monitored feature's slot; the same slots go with the prediction to the store.
+        let features = metrics::prediction(
             &config.name,
             &loaded.model,
             scored.probability,
             scored.adjusted_log_odds,
             &row.values,
+            self.log.is_some(),
         );
+        if let Some(log) = &self.log {
+            let queued =
+                crate::serve::outcomes::queued(config, loaded, role, &mut row, &scored, features);
+            match config.record {
+                RecordMode::AfterAnswer => log.log(queued),
+                RecordMode::BeforeAnswer => held.push(queued),
+            }
+        }
         for w in &row.warnings {
             metrics::warning(&config.name, w.kind.as_str());
         }

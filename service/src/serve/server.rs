@@ -28,7 +28,7 @@ use crate::serve::scoring::Scorer;
 use crate::serve::security::config::ClientCertificates;
 use crate::serve::security::layer::AccessLayer;
 use crate::serve::security::Security;
-use crate::store::{Clock, PredictionStore, SqliteStore, Store};
+use crate::store::{Clock, PredictionStore, SqliteStore, Store, StoreError};
 
 /// Why the server did not start.
 #[derive(Debug, thiserror::Error)]
@@ -243,8 +243,12 @@ impl RunningServer {
 }
 
 /// Opens the PostgreSQL prediction store on a thread of its own (the blocking client runs its own small runtime, which
-/// cannot start inside this one). An unreachable database stops the start with an error that says so: a server
-/// configured to keep a shared store does not serve without it, and the process supervisor restarts it.
+/// cannot start inside this one). A database that does not answer (refused, reset, timed out, shutting down) is tried
+/// again for `store.postgres_start_wait`, pausing 0.25 s and then twice as long each time up to 5 s, each failure
+/// logged as a warning: replicas and their database often start together. After that, or at once for any other
+/// failure (authentication, a missing database, a newer schema), the start stops with an error that says what was
+/// tried: a server configured to keep a shared store does not serve without it, and the process supervisor restarts
+/// it.
 async fn open_shared(
     config: &crate::store::StoreConfig,
 ) -> Result<crate::store::postgres::PgStore, StartError> {
@@ -253,11 +257,46 @@ async fn open_shared(
         .map_err(StartError::SharedStore)?;
     let target = url.describe();
     let ca = config.postgres_ca_file.clone();
-    let now = Clock::system().now_ms();
-    let store = tokio::task::spawn_blocking(move || PgStore::open(url, ca.as_deref(), now))
-        .await
-        .map_err(|e| StartError::SharedStore(format!("opening thread failed: {e}")))?
-        .map_err(|e| StartError::SharedStore(format!("{target}: {e}")))?;
+    let wait = config.postgres_start_wait;
+    let opening = target.clone();
+    let store = tokio::task::spawn_blocking(move || {
+        let started = std::time::Instant::now();
+        let mut pause = Duration::from_millis(250);
+        let mut attempts = 1u32;
+        loop {
+            let error = match PgStore::open(url.clone(), ca.as_deref(), Clock::system().now_ms()) {
+                Ok(store) => return Ok(store),
+                Err(error) => error,
+            };
+            let waited = started.elapsed();
+            let left = wait.saturating_sub(waited);
+            if !matches!(error, StoreError::Postgres { lost: true, .. }) || left.is_zero() {
+                return Err(if wait.is_zero() || attempts == 1 {
+                    format!("{opening}: {error}")
+                } else {
+                    format!(
+                        "{opening}: {error} (no answer in {attempts} attempts over {:.1} s; store.postgres_start_wait = {} s)",
+                        waited.as_secs_f64(),
+                        wait.as_secs_f64()
+                    )
+                });
+            }
+            let next = pause.min(left);
+            tracing::warn!(
+                database = %opening,
+                attempt = attempts,
+                retry_in_ms = next.as_millis() as u64,
+                error = %error,
+                "prediction store database does not answer yet; trying again"
+            );
+            std::thread::sleep(next);
+            pause = (pause * 2).min(Duration::from_secs(5));
+            attempts += 1;
+        }
+    })
+    .await
+    .map_err(|e| StartError::SharedStore(format!("opening thread failed: {e}")))?
+    .map_err(StartError::SharedStore)?;
     tracing::info!(database = %target, "prediction store open (PostgreSQL)");
     Ok(store)
 }

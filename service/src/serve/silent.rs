@@ -159,6 +159,8 @@ fn work(
                         model.role,
                         &mut prepared,
                         &scored,
+                        // The answered row's values are counted with the answer.
+                        None,
                     ));
                 }
                 let labels = [("route", job.route.clone()), ("model", label.clone())];

@@ -8,6 +8,7 @@
 //! postgres_url_file = "/run/secrets/probity-store-url"  # postgres: file holding the connection URL; without it
 //!                                  # the URL is read from PROBITY_STORE_POSTGRES_URL
 //! postgres_ca_file = "/etc/probity/db-ca.pem"  # postgres: CA certificates for TLS (`?sslmode=require`)
+//! postgres_start_wait = "30s"      # postgres: how long a starting server waits for a database that does not answer
 //! directory = "/var/lib/probity"   # sqlite: predictions.db goes here; both: the route history
 //! durability = "normal"            # or "full" (see DEVELOPERS.md, "Prediction store")
 //! queue_size = 65536               # predictions waiting for the writer; when full, new ones are dropped and counted
@@ -37,6 +38,7 @@ pub struct RawStore {
     backend: Backend,
     postgres_url_file: Option<PathBuf>,
     postgres_ca_file: Option<PathBuf>,
+    postgres_start_wait: String,
     directory: Option<PathBuf>,
     durability: String,
     queue_size: u64,
@@ -56,6 +58,7 @@ impl Default for RawStore {
             backend: Backend::Sqlite,
             postgres_url_file: None,
             postgres_ca_file: None,
+            postgres_start_wait: "30s".into(),
             directory: None,
             durability: "normal".into(),
             queue_size: 65_536,
@@ -91,6 +94,10 @@ pub struct StoreConfig {
     pub postgres_url_file: Option<PathBuf>,
     /// PostgreSQL: CA certificates for TLS to the database.
     pub postgres_ca_file: Option<PathBuf>,
+    /// PostgreSQL: how long a starting server tries again while the database does not answer (connection refused,
+    /// reset or timed out), pausing 0.25 s, then twice as long each time up to 5 s; zero stops at the first failure.
+    /// Other failures (authentication, a missing database, a newer schema) stop the start at once.
+    pub postgres_start_wait: Duration,
     /// The data directory; `None` turns the log off.
     pub directory: Option<PathBuf>,
     /// Disk flush policy.
@@ -122,6 +129,7 @@ impl Default for StoreConfig {
             backend: Backend::Sqlite,
             postgres_url_file: None,
             postgres_ca_file: None,
+            postgres_start_wait: Duration::from_secs(30),
             directory: None,
             durability: Durability::Normal,
             queue_size: 65_536,
@@ -193,6 +201,7 @@ impl StoreConfig {
             backend,
             postgres_url_file,
             postgres_ca_file,
+            postgres_start_wait,
             directory,
             durability,
             queue_size,
@@ -233,6 +242,11 @@ impl StoreConfig {
             backend,
             postgres_url_file,
             postgres_ca_file,
+            postgres_start_wait: duration(
+                "store.postgres_start_wait",
+                &postgres_start_wait,
+                Duration::ZERO,
+            )?,
             directory,
             durability,
             queue_size: range("store.queue_size", queue_size, 1, 100_000_000)?,

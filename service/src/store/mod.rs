@@ -22,6 +22,7 @@
 pub mod clock;
 pub mod config;
 pub mod faults;
+pub mod features;
 pub mod matching;
 pub mod postgres;
 pub mod running;
@@ -144,6 +145,10 @@ pub struct ModelVersionInfo {
     pub base_rate: f64,
     /// The reference score distribution of the model file, if it has one.
     pub reference: Option<Reference>,
+    /// The training distributions of the monitored features, in monitored order ([`features`]); empty when the
+    /// file states none (and in the facts of a version first registered by a build before they were kept).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub features: Vec<features::FeatureDistribution>,
 }
 
 /// A model file's reference distribution (`docs/model-format.md`).
@@ -465,7 +470,34 @@ pub trait Store: Send {
         records: &[PredictionRecord],
     ) -> Result<(Vec<bool>, Vec<Settled>), StoreError>;
 
-    /// Records a model version's facts (once; later calls for the same version change nothing).
+    /// [`Store::insert_predictions`], adding in the same transaction the feature slot counts of the records it
+    /// writes (`features[i]` belongs to `records[i]`; a record not written, already logged, adds nothing), to
+    /// their hour windows ([`features`]). Both backends implement it; the default, for a store that keeps no
+    /// feature counts (a test's wrapper), writes the predictions alone.
+    fn insert_predictions_counted(
+        &mut self,
+        records: &[PredictionRecord],
+        features: &[Option<&features::RowFeatures>],
+    ) -> Result<(Vec<bool>, Vec<Settled>), StoreError> {
+        let _ = features;
+        self.insert_predictions(records)
+    }
+
+    /// The feature slot counts of the windows that overlap the filter's time range (a window is included when its
+    /// hour holds any instant of `[from, to)`: the range widened to whole UTC hours), with its route, model and
+    /// version filters, summed over the windows: one row per (route, model, version, role, feature, slot), its
+    /// `window_ms` the first window's start.
+    /// Both backends implement it; the default (a store that keeps no feature counts) has none.
+    fn feature_counts(
+        &mut self,
+        filter: &ReportFilter,
+    ) -> Result<Vec<features::FeatureCount>, StoreError> {
+        let _ = filter;
+        Ok(Vec::new())
+    }
+
+    /// Records a model version's facts (once; later calls for the same version change nothing, but for adding
+    /// the training distributions to facts an earlier build recorded without them).
     fn register_model(&mut self, info: &ModelVersionInfo) -> Result<(), StoreError>;
 
     /// Applies outcomes in order; one result per input, and the pairs settled or re-labelled.

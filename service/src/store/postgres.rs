@@ -19,7 +19,9 @@
 //! - **Partitions**: predictions are range-partitioned by day of `time_ms` (`predictions_d<days since epoch>`),
 //!   created ahead (today and the next two days at start and at each sweep, and any day a batch needs); retention
 //!   drops whole partitions. Outcomes are one row per prediction id (the row the matching locks), not partitioned:
-//!   an outcome's prediction day is unknown while it is held.
+//!   an outcome's prediction day is unknown while it is held. A non-partitioned key table (`prediction_keys`: id,
+//!   route, model, role -> time) is the uniqueness check and tells the lookups by id which days to read, so that no
+//!   statement on the write or outcome path reads every day kept (DEVELOPERS.md, "Partitions").
 //! - **Migrations**: `probity_schema` records the versions applied; they run at start under an advisory lock, and
 //!   a database at a version newer than this build knows is refused ([`StoreError::Schema`]).
 //! - **Secrets**: the connection URL is read from a file or the environment, and no error, log line or metric
@@ -32,6 +34,7 @@ use postgres::binary_copy::BinaryCopyInWriter;
 use postgres::types::Type;
 use postgres::{Client, Transaction};
 
+use super::features::{counts_of, FeatureCount, RowFeatures};
 use super::matching::{self, Outcome, OutcomeState, Source};
 use super::scan::FETCH_ROWS;
 use super::{
@@ -43,7 +46,7 @@ use super::{
 };
 
 /// The newest schema version this build knows.
-pub const SCHEMA_VERSION: i32 = 3;
+pub const SCHEMA_VERSION: i32 = 5;
 
 const DAY_MS: i64 = 86_400_000;
 
@@ -113,6 +116,43 @@ ALTER TABLE predictions ADD COLUMN served_prior double precision,
         3,
         "
 ALTER TABLE predictions RENAME COLUMN entity_key TO subject_key;
+",
+    ),
+    (
+        4,
+        "
+CREATE TABLE feature_counts (
+    window_ms bigint NOT NULL,
+    route text NOT NULL,
+    model text NOT NULL,
+    version text NOT NULL,
+    role text NOT NULL,
+    feature text NOT NULL,
+    slot integer NOT NULL,
+    row_count bigint NOT NULL,
+    PRIMARY KEY (window_ms, route, model, version, role, feature, slot)
+);
+",
+    ),
+    (
+        5,
+        "
+CREATE TABLE prediction_keys (
+    prediction_id text NOT NULL,
+    route text NOT NULL,
+    model text NOT NULL,
+    role text NOT NULL,
+    time_ms bigint NOT NULL,
+    PRIMARY KEY (prediction_id, route, model, role)
+);
+CREATE INDEX prediction_keys_time ON prediction_keys (time_ms);
+INSERT INTO prediction_keys (prediction_id, route, model, role, time_ms)
+SELECT DISTINCT ON (prediction_id, route, model, role) prediction_id, route, model, role, time_ms
+FROM predictions ORDER BY prediction_id, route, model, role, time_ms;
+CREATE TABLE maturity_marks (
+    route text PRIMARY KEY,
+    through_ms bigint NOT NULL
+);
 ",
     ),
 ];
@@ -612,10 +652,20 @@ fn predictions_of(
     tx: &mut Transaction<'_>,
     ids: &[&str],
 ) -> Result<HashMap<String, Vec<Row>>, postgres::Error> {
+    // The key table first: the time span of these ids' predictions, so that the read below names it and
+    // PostgreSQL reads only those days' partitions (a lookup by id alone reads every day kept).
+    let span = tx.query_one(
+        "SELECT min(time_ms), max(time_ms) FROM prediction_keys WHERE prediction_id = ANY($1)",
+        &[&ids],
+    )?;
+    let (Some(first), Some(last)) = (span.get::<_, Option<i64>>(0), span.get::<_, Option<i64>>(1))
+    else {
+        return Ok(HashMap::new());
+    };
     let rows = tx.query(
         "SELECT prediction_id, route, model, version, time_ms, adjusted_log_odds, probability
-         FROM predictions WHERE prediction_id = ANY($1) ORDER BY seq",
-        &[&ids],
+         FROM predictions WHERE prediction_id = ANY($1) AND time_ms >= $2 AND time_ms <= $3 ORDER BY seq",
+        &[&ids, &first, &last],
     )?;
     let mut map: HashMap<String, Vec<Row>> = HashMap::new();
     for r in rows {
@@ -673,10 +723,86 @@ fn archive(tx: &mut Transaction<'_>, rows: &[(&str, Outcome)]) -> Result<(), pos
     Ok(())
 }
 
+/// Adds the feature slot counts of a batch's written rows (`super::features`); in the batch's transaction.
+fn add_feature_counts(
+    tx: &mut Transaction<'_>,
+    counts: &[FeatureCount],
+) -> Result<(), postgres::Error> {
+    if counts.is_empty() {
+        return Ok(());
+    }
+    let windows: Vec<i64> = counts.iter().map(|c| c.window_ms).collect();
+    let routes: Vec<&str> = counts.iter().map(|c| c.route.as_str()).collect();
+    let models: Vec<&str> = counts.iter().map(|c| c.model.as_str()).collect();
+    let versions: Vec<&str> = counts.iter().map(|c| c.version.as_str()).collect();
+    let roles: Vec<&str> = counts.iter().map(|c| c.role.as_str()).collect();
+    let features: Vec<&str> = counts.iter().map(|c| c.feature.as_str()).collect();
+    let slots: Vec<i32> = counts
+        .iter()
+        .map(|c| i32::try_from(c.slot).unwrap_or(i32::MAX))
+        .collect();
+    let rows: Vec<i64> = counts.iter().map(|c| c.rows).collect();
+    // One row per key in `counts` (they are summed per key), so the upsert never meets its own key twice.
+    tx.execute(
+        "INSERT INTO feature_counts (window_ms, route, model, version, role, feature, slot, row_count)
+         SELECT * FROM unnest($1::int8[], $2::text[], $3::text[], $4::text[], $5::text[], $6::text[], $7::int4[],
+           $8::int8[])
+         ON CONFLICT (window_ms, route, model, version, role, feature, slot)
+         DO UPDATE SET row_count = feature_counts.row_count + excluded.row_count",
+        &[
+            &windows, &routes, &models, &versions, &roles, &features, &slots, &rows,
+        ],
+    )?;
+    Ok(())
+}
+
 impl Store for PgStore {
     fn insert_predictions(
         &mut self,
         records: &[PredictionRecord],
+    ) -> Result<(Vec<bool>, Vec<Settled>), StoreError> {
+        self.insert_predictions_counted(records, &[])
+    }
+
+    fn feature_counts(&mut self, filter: &ReportFilter) -> Result<Vec<FeatureCount>, StoreError> {
+        self.transact("feature counts query", |tx, _| {
+            let rows = tx.query(
+                "SELECT min(window_ms), route, model, version, role, feature, slot, sum(row_count)::int8
+                 FROM feature_counts
+                 WHERE ($1::int8 IS NULL OR window_ms + $6 > $1) AND ($2::int8 IS NULL OR window_ms < $2)
+                   AND ($3::text IS NULL OR route = $3) AND ($4::text IS NULL OR model = $4)
+                   AND ($5::text IS NULL OR version = $5)
+                 GROUP BY route, model, version, role, feature, slot
+                 ORDER BY route, model, version, role, feature, slot",
+                &[
+                    &filter.from_ms,
+                    &filter.to_ms,
+                    &filter.route,
+                    &filter.model,
+                    &filter.version,
+                    &super::features::WINDOW_MS,
+                ],
+            )?;
+            Ok(rows
+                .iter()
+                .map(|r| FeatureCount {
+                    window_ms: r.get(0),
+                    route: r.get(1),
+                    model: r.get(2),
+                    version: r.get(3),
+                    role: r.get(4),
+                    feature: r.get(5),
+                    slot: i64::from(r.get::<_, i32>(6)),
+                    rows: r.get(7),
+                })
+                .collect())
+        })
+    }
+
+    fn insert_predictions_counted(
+        &mut self,
+        records: &[PredictionRecord],
+        features: &[Option<&RowFeatures>],
     ) -> Result<(Vec<bool>, Vec<Settled>), StoreError> {
         if records.is_empty() {
             return Ok((Vec::new(), Vec::new()));
@@ -720,17 +846,23 @@ impl Store for PgStore {
                 .collect();
             lock_ids(tx, &ids)?;
             // The first of each (id, route, model, role) in the batch, unless that is logged already (at any
-            // time: the unique key holds the time too, since a partitioned table's keys must).
+            // time). The key table answers that with one index probe: the partitioned table's unique key must hold
+            // the time, and a check on it without the time would read every day kept.
             let inserted = tx.query(
-                "INSERT INTO predictions (prediction_id, route, model, version, role, time_ms, margin, log_odds,
+                "WITH firsts AS (
+                   SELECT DISTINCT ON (prediction_id, route, model, role) * FROM staging_predictions
+                   ORDER BY prediction_id, route, model, role, ord),
+                 fresh AS (
+                   INSERT INTO prediction_keys (prediction_id, route, model, role, time_ms)
+                   SELECT prediction_id, route, model, role, time_ms FROM firsts
+                   ON CONFLICT DO NOTHING
+                   RETURNING prediction_id, route, model, role)
+                 INSERT INTO predictions (prediction_id, route, model, version, role, time_ms, margin, log_odds,
                    adjusted_log_odds, probability, subject_key, tags, served_prior, decision)
-                 SELECT prediction_id, route, model, version, role, time_ms, margin, log_odds, adjusted_log_odds,
-                   probability, subject_key, tags, served_prior, decision
-                 FROM (SELECT DISTINCT ON (prediction_id, route, model, role) * FROM staging_predictions
-                       ORDER BY prediction_id, route, model, role, ord) s
-                 WHERE NOT EXISTS (SELECT 1 FROM predictions p WHERE p.prediction_id = s.prediction_id
-                   AND p.route = s.route AND p.model = s.model AND p.role = s.role)
-                 ORDER BY ord
+                 SELECT s.prediction_id, s.route, s.model, s.version, s.role, s.time_ms, s.margin, s.log_odds,
+                   s.adjusted_log_odds, s.probability, s.subject_key, s.tags, s.served_prior, s.decision
+                 FROM firsts s JOIN fresh f USING (prediction_id, route, model, role)
+                 ORDER BY s.ord
                  ON CONFLICT DO NOTHING
                  RETURNING prediction_id, route, model, role",
                 &[],
@@ -785,6 +917,8 @@ impl Store for PgStore {
                 };
                 pairs.push(settled(&row, next.label, None, next.outcome_time_ms));
             }
+            // The feature slots of the rows this transaction wrote (a retried batch writes none twice).
+            add_feature_counts(tx, &counts_of(records, features, &written))?;
             Ok((written, pairs))
         })
     }
@@ -792,10 +926,25 @@ impl Store for PgStore {
     fn register_model(&mut self, info: &ModelVersionInfo) -> Result<(), StoreError> {
         let text = serde_json::to_string(info).unwrap_or_else(|_| "{}".into());
         self.transact("register model", |tx, _| {
-            tx.execute(
+            let added = tx.execute(
                 "INSERT INTO model_versions (model, version, info) VALUES ($1, $2, $3) ON CONFLICT DO NOTHING",
                 &[&info.model, &info.version, &text],
             )?;
+            if added == 0 && !info.features.is_empty() {
+                // Facts of an earlier build get the training distributions they lack (`super::features`).
+                let stored: String = tx
+                    .query_one(
+                        "SELECT info FROM model_versions WHERE model = $1 AND version = $2 FOR UPDATE",
+                        &[&info.model, &info.version],
+                    )?
+                    .get(0);
+                if let Some(text) = super::features::facts_with_distributions(&stored, info) {
+                    tx.execute(
+                        "UPDATE model_versions SET info = $3 WHERE model = $1 AND version = $2",
+                        &[&info.model, &info.version, &text],
+                    )?;
+                }
+            }
             Ok(())
         })
     }
@@ -880,22 +1029,42 @@ impl Store for PgStore {
                 if left == 0 {
                     break;
                 }
+                // Everything up to the route's mark is settled: read from a day before it (predictions reach the
+                // database seconds after they are scored; one written more than a day late into a range already
+                // matured is left waiting), so a sweep reads about a day, not every day kept.
+                let cutoff = now_ms - maturity;
+                let mark: Option<i64> = tx
+                    .query_opt(
+                        "SELECT through_ms FROM maturity_marks WHERE route = $1",
+                        &[route],
+                    )?
+                    .map(|r| r.get(0));
+                let from = mark.map_or(i64::MIN, |m| m.saturating_sub(DAY_MS));
                 let due: Vec<(String, i64)> = tx
                     .query(
                         "SELECT p.prediction_id, MIN(p.time_ms) FROM predictions p
-                         WHERE p.route = $1 AND p.time_ms <= $2 AND NOT EXISTS
+                         WHERE p.route = $1 AND p.time_ms <= $2 AND p.time_ms > $5 AND NOT EXISTS
                            (SELECT 1 FROM outcomes o WHERE o.prediction_id = p.prediction_id AND o.state = $4)
                          GROUP BY p.prediction_id LIMIT $3",
                         &[
                             route,
-                            &(now_ms - maturity),
+                            &cutoff,
                             &i64::try_from(left).unwrap_or(i64::MAX),
                             &OutcomeState::Matched.as_str(),
+                            &from,
                         ],
                     )?
                     .iter()
                     .map(|r| (r.get(0), r.get(1)))
                     .collect();
+                if due.len() < left {
+                    // Every due prediction is in this batch: once it commits, the route is settled to the cutoff.
+                    tx.execute(
+                        "INSERT INTO maturity_marks (route, through_ms) VALUES ($1, $2)
+                         ON CONFLICT (route) DO UPDATE SET through_ms = GREATEST(maturity_marks.through_ms, $2)",
+                        &[route, &cutoff],
+                    )?;
+                }
                 left = left.saturating_sub(due.len());
                 let ids: Vec<&str> = due.iter().map(|d| d.0.as_str()).collect();
                 lock_ids(tx, &ids)?;
@@ -958,14 +1127,24 @@ impl Store for PgStore {
                     removed += u64::try_from(n).unwrap_or(0);
                 }
             }
+            // The keys of the days dropped: every time before the first whole day kept.
+            tx.execute(
+                "DELETE FROM prediction_keys WHERE time_ms < $1",
+                &[&(cutoff.div_euclid(DAY_MS) * DAY_MS)],
+            )?;
             tx.execute(
                 "DELETE FROM outcomes WHERE state != $2 AND received_ms < $1 AND NOT EXISTS
-                 (SELECT 1 FROM predictions p WHERE p.prediction_id = outcomes.prediction_id)",
+                 (SELECT 1 FROM prediction_keys k WHERE k.prediction_id = outcomes.prediction_id)",
                 &[&cutoff, &OutcomeState::Pending.as_str()],
             )?;
             tx.execute(
                 "DELETE FROM outcome_history WHERE received_ms < $1",
                 &[&cutoff],
+            )?;
+            // Windows whose whole hour is older than the cutoff.
+            tx.execute(
+                "DELETE FROM feature_counts WHERE window_ms + $2 <= $1",
+                &[&cutoff, &super::features::WINDOW_MS],
             )?;
             Ok(removed)
         })?;

@@ -12,6 +12,7 @@ use std::path::Path;
 
 use rusqlite::{params, Connection, OptionalExtension};
 
+use super::features::{counts_of, FeatureCount, RowFeatures};
 use super::matching::{self, Outcome, OutcomeState, Source};
 use super::{
     FollowUpGroup, PairRanks, PairRow, PairScan, ScanOrder, ScanRow, SeriesName, SeriesScan,
@@ -23,8 +24,9 @@ use super::{
 
 /// The table layout this build writes; kept in `PRAGMA user_version`. Version 2 added what each prediction was
 /// served under (`served_prior`, `decision`); a version 1 file gets the columns at open ([`MIGRATE_1_2`]). Version 3
-/// renamed the key of the card, account or customer a row is about to `subject_key` ([`MIGRATE_2_3`]).
-const SCHEMA_VERSION: i64 = 3;
+/// renamed the key of the card, account or customer a row is about to `subject_key` ([`MIGRATE_2_3`]). Version 4
+/// added the per-feature slot counts by hour ([`MIGRATE_3_4`], `super::features`).
+const SCHEMA_VERSION: i64 = 4;
 
 /// From version 1: the served-under columns (NULL prior and no decision in the rows already there).
 const MIGRATE_1_2: &str = "
@@ -34,6 +36,22 @@ ALTER TABLE predictions ADD COLUMN decision TEXT NOT NULL DEFAULT '';
 
 /// From version 2: the key column's new name.
 const MIGRATE_2_3: &str = "ALTER TABLE predictions RENAME COLUMN entity_key TO subject_key;";
+
+/// From version 3 (and in a new file): the per-feature slot counts, one row per (hour window, route, model,
+/// version, role, feature, slot).
+const MIGRATE_3_4: &str = "
+CREATE TABLE IF NOT EXISTS feature_counts (
+    window_ms INTEGER NOT NULL,
+    route TEXT NOT NULL,
+    model TEXT NOT NULL,
+    version TEXT NOT NULL,
+    role TEXT NOT NULL,
+    feature TEXT NOT NULL,
+    slot INTEGER NOT NULL,
+    row_count INTEGER NOT NULL,
+    PRIMARY KEY (window_ms, route, model, version, role, feature, slot)
+);
+";
 
 /// The database file name inside the data directory.
 pub const FILE_NAME: &str = "predictions.db";
@@ -177,6 +195,10 @@ impl SqliteStore {
                 .map_err(db("schema migration 2 to 3"))?;
         }
         conn.execute_batch(SCHEMA).map_err(db("create tables"))?;
+        if found < 4 {
+            conn.execute_batch(MIGRATE_3_4)
+                .map_err(db("schema migration 3 to 4"))?;
+        }
         if found != SCHEMA_VERSION {
             // Written only when it changes, so an existing log opens without a write (on a full disk too).
             conn.pragma_update(None, "user_version", SCHEMA_VERSION)
@@ -355,8 +377,59 @@ impl Store for SqliteStore {
         &mut self,
         records: &[PredictionRecord],
     ) -> Result<(Vec<bool>, Vec<Settled>), StoreError> {
-        let r = self.insert_predictions_inner(records);
+        let r = self.insert_predictions_inner(records, &[]);
         r.map_err(|e| self.diagnosed(e))
+    }
+
+    fn insert_predictions_counted(
+        &mut self,
+        records: &[PredictionRecord],
+        features: &[Option<&RowFeatures>],
+    ) -> Result<(Vec<bool>, Vec<Settled>), StoreError> {
+        let r = self.insert_predictions_inner(records, features);
+        r.map_err(|e| self.diagnosed(e))
+    }
+
+    fn feature_counts(&mut self, filter: &ReportFilter) -> Result<Vec<FeatureCount>, StoreError> {
+        let mut stmt = self
+            .conn
+            .prepare_cached(
+                "SELECT MIN(window_ms), route, model, version, role, feature, slot, SUM(row_count)
+                 FROM feature_counts
+                 WHERE (?1 IS NULL OR window_ms + ?6 > ?1) AND (?2 IS NULL OR window_ms < ?2)
+                   AND (?3 IS NULL OR route = ?3) AND (?4 IS NULL OR model = ?4)
+                   AND (?5 IS NULL OR version = ?5)
+                 GROUP BY route, model, version, role, feature, slot
+                 ORDER BY route, model, version, role, feature, slot",
+            )
+            .map_err(db("feature counts query"))?;
+        let rows = stmt
+            .query_map(
+                params![
+                    filter.from_ms,
+                    filter.to_ms,
+                    filter.route,
+                    filter.model,
+                    filter.version,
+                    super::features::WINDOW_MS
+                ],
+                |r| {
+                    Ok(FeatureCount {
+                        window_ms: r.get(0)?,
+                        route: r.get(1)?,
+                        model: r.get(2)?,
+                        version: r.get(3)?,
+                        role: r.get(4)?,
+                        feature: r.get(5)?,
+                        slot: r.get(6)?,
+                        rows: r.get(7)?,
+                    })
+                },
+            )
+            .map_err(db("feature counts query"))?
+            .collect::<Result<Vec<_>, _>>()
+            .map_err(db("feature counts query"))?;
+        Ok(rows)
     }
 
     fn register_model(&mut self, info: &ModelVersionInfo) -> Result<(), StoreError> {
@@ -494,6 +567,7 @@ impl SqliteStore {
     fn insert_predictions_inner(
         &mut self,
         records: &[PredictionRecord],
+        features: &[Option<&RowFeatures>],
     ) -> Result<(Vec<bool>, Vec<Settled>), StoreError> {
         let tx = self.conn.transaction().map_err(db("begin"))?;
         let mut written = Vec::with_capacity(records.len());
@@ -548,18 +622,61 @@ impl SqliteStore {
                 }
             }
         }
+        // The feature slots of the rows written, in the same transaction (`super::features`).
+        if !features.is_empty() {
+            let mut add = tx
+                .prepare_cached(
+                    "INSERT INTO feature_counts (window_ms, route, model, version, role, feature, slot, row_count)
+                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8)
+                     ON CONFLICT (window_ms, route, model, version, role, feature, slot)
+                     DO UPDATE SET row_count = row_count + excluded.row_count",
+                )
+                .map_err(db("add feature counts"))?;
+            for c in counts_of(records, features, &written) {
+                add.execute(params![
+                    c.window_ms,
+                    c.route,
+                    c.model,
+                    c.version,
+                    c.role,
+                    c.feature,
+                    c.slot,
+                    c.rows
+                ])
+                .map_err(db("add feature counts"))?;
+            }
+        }
         tx.commit().map_err(db("commit predictions"))?;
         Ok((written, pairs))
     }
 
     fn register_model_inner(&mut self, info: &ModelVersionInfo) -> Result<(), StoreError> {
         let text = serde_json::to_string(info).unwrap_or_else(|_| "{}".into());
-        self.conn
+        let tx = self.conn.transaction().map_err(db("begin"))?;
+        let added = tx
             .execute(
                 "INSERT OR IGNORE INTO model_versions (model, version, info) VALUES (?1, ?2, ?3)",
                 params![info.model, info.version, text],
             )
             .map_err(db("register model"))?;
+        if added == 0 && !info.features.is_empty() {
+            // Facts of an earlier build get the training distributions they lack (`super::features`).
+            let stored: String = tx
+                .query_row(
+                    "SELECT info FROM model_versions WHERE model = ?1 AND version = ?2",
+                    params![info.model, info.version],
+                    |r| r.get(0),
+                )
+                .map_err(db("register model"))?;
+            if let Some(text) = super::features::facts_with_distributions(&stored, info) {
+                tx.execute(
+                    "UPDATE model_versions SET info = ?3 WHERE model = ?1 AND version = ?2",
+                    params![info.model, info.version, text],
+                )
+                .map_err(db("register model"))?;
+            }
+        }
+        tx.commit().map_err(db("commit model version"))?;
         Ok(())
     }
 
@@ -695,6 +812,12 @@ impl SqliteStore {
             [cutoff],
         )
         .map_err(db("remove history"))?;
+        // Windows whose whole hour is older than the cutoff.
+        tx.execute(
+            "DELETE FROM feature_counts WHERE window_ms + ?2 <= ?1",
+            params![cutoff, super::features::WINDOW_MS],
+        )
+        .map_err(db("remove feature counts"))?;
         tx.commit().map_err(db("commit retention"))?;
         Ok(n as u64)
     }

@@ -53,6 +53,9 @@ pub struct Queued {
     pub prior: f64,
     /// The model that scored it.
     pub facts: Arc<dyn ModelFacts>,
+    /// The slots of its monitored features' values, counted by hour with it ([`super::features`]); `None` when
+    /// the model file has no training distribution or the row is a silent challenger's.
+    pub features: Option<super::features::RowFeatures>,
 }
 
 /// A call run on the log's thread for calls.
@@ -526,7 +529,15 @@ impl Writer {
             }
         }
         let records: Vec<PredictionRecord> = batch.iter().map(|q| q.record.clone()).collect();
-        let result = match store.insert_predictions(&records) {
+        let features: Vec<Option<&super::features::RowFeatures>> =
+            batch.iter().map(|q| q.features.as_ref()).collect();
+        let inserted = if features.iter().any(Option::is_some) {
+            store.insert_predictions_counted(&records, &features)
+        } else {
+            store.insert_predictions(&records)
+        };
+        drop(features);
+        let result = match inserted {
             Ok((written, pairs)) => {
                 drop(store);
                 self.failures.succeeded(Operation::Predictions);

@@ -11,6 +11,7 @@ Stubs are generated from the repository's proto/ when the package is built (see 
 
 from probity_client.client import (
     Client,
+    FeatureStability,
     OperatingPoint,
     Outcome,
     OutcomeResult,
@@ -24,6 +25,7 @@ from probity_client.client import (
 
 __all__ = [
     "Client",
+    "FeatureStability",
     "OperatingPoint",
     "Outcome",
     "OutcomeResult",

@@ -115,6 +115,20 @@ class ServedRule:
 
 
 @dataclass(frozen=True)
+class FeatureStability:
+    """One monitored feature over a report's range (one-hour windows aligned to UTC hours, the range widened to
+    whole hours), against its training distribution in the model file: PSI (shares floored at 1e-4), missing rate
+    and unknown-category rate (None for a numeric feature), and the rows per slot (value bins, missing, unknown)."""
+
+    feature: str
+    rows: int
+    psi: Optional[float]
+    missing_rate: Optional[float]
+    unknown_rate: Optional[float]
+    counts: tuple[int, ...]
+
+
+@dataclass(frozen=True)
 class ReportSeries:
     """The headline figures of one route, model, version and role (None where the report could not compute one)."""
 
@@ -134,6 +148,8 @@ class ReportSeries:
     predicted_base_rate: Optional[float]
     # One entry per decision rule the series' predictions were served under, in the order first served.
     operating_points: tuple[ServedRule, ...] = ()
+    # Per-feature stability of the model file's monitored features, in its order; empty when none was counted.
+    features: tuple[FeatureStability, ...] = ()
 
 
 @dataclass(frozen=True)
@@ -329,6 +345,17 @@ class Client:
                     observed_base_rate=_opt(s, "observed_base_rate"),
                     predicted_base_rate=_opt(s, "predicted_base_rate"),
                     operating_points=tuple(_served_rule(r) for r in s.operating_points),
+                    features=tuple(
+                        FeatureStability(
+                            feature=f.feature,
+                            rows=f.rows,
+                            psi=_opt(f, "psi"),
+                            missing_rate=_opt(f, "missing_rate"),
+                            unknown_rate=_opt(f, "unknown_rate"),
+                            counts=tuple(f.counts),
+                        )
+                        for f in s.features
+                    ),
                 )
                 for s in r.series
             ),

@@ -119,8 +119,36 @@ pub(crate) enum RawSide {
 pub(crate) struct RawNumericSplit {
     pub feature: u32,
     pub op: RawOp,
-    pub threshold: f64,
+    pub threshold: RawThreshold,
     pub missing: RawSide,
+}
+
+/// A numeric split's threshold: a JSON number, or the text `"inf"` or `"-inf"` for an infinite one (JSON has no
+/// literal for it; scikit-learn's HistGradientBoosting writes `+inf` for a split that sends every non-missing
+/// value left and missing values right).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub(crate) struct RawThreshold(pub f64);
+
+impl<'de> Deserialize<'de> for RawThreshold {
+    fn deserialize<D: serde::Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        #[derive(Deserialize)]
+        #[serde(untagged)]
+        enum Form {
+            Number(f64),
+            Text(String),
+        }
+        match Form::deserialize(d) {
+            Ok(Form::Number(x)) => Ok(RawThreshold(x)),
+            Ok(Form::Text(t)) if t == "inf" => Ok(RawThreshold(f64::INFINITY)),
+            Ok(Form::Text(t)) if t == "-inf" => Ok(RawThreshold(f64::NEG_INFINITY)),
+            Ok(Form::Text(t)) => Err(serde::de::Error::custom(format!(
+                "threshold {t:?}: expected a number, \"inf\" or \"-inf\""
+            ))),
+            Err(_) => Err(serde::de::Error::custom(
+                "threshold: expected a number, \"inf\" or \"-inf\"",
+            )),
+        }
+    }
 }
 
 #[derive(Debug, Deserialize)]

@@ -180,7 +180,7 @@ fn check_node(
                 ),
             ));
         }
-        finite(s.threshold, || path(i, ".numeric.threshold"))?;
+        // Any threshold is valid: a JSON number is finite, and `"inf"` / `"-inf"` are the infinite ones.
     }
     if let Some(s) = &node.categorical {
         let feature = feature_index(s.feature, schema, || path(i, ".categorical.feature"))?;
@@ -310,7 +310,7 @@ impl Walk {
                 continue;
             }
             if let Some(s) = &node.numeric {
-                b.push_numeric(s.feature, s.op == RawOp::Le, s.threshold, side(s.missing));
+                b.push_numeric(s.feature, s.op == RawOp::Le, s.threshold.0, side(s.missing));
             } else if let Some(s) = &node.categorical {
                 b.push_categorical(
                     s.feature,
