@@ -159,6 +159,32 @@ pub fn operating_point(
     threshold: f64,
     costs: Option<Costs>,
 ) -> Result<OperatingPoint, MetricsError> {
+    check_point(threshold, costs)?;
+    let counts = confusion_at_threshold(probabilities, y, threshold)?;
+    Ok(point_from_counts(threshold, counts, costs))
+}
+
+/// [`operating_point`] from the four counts at `threshold` (declined = above it), counted by the caller over cases
+/// it does not hold (a pass over a database cursor): the same figures from the same counts.
+///
+/// Errors: a threshold outside [0, 1], costs not finite and non-negative, no case counted.
+pub fn operating_point_from_counts(
+    threshold: f64,
+    counts: ConfusionCounts,
+    costs: Option<Costs>,
+) -> Result<OperatingPoint, MetricsError> {
+    check_point(threshold, costs)?;
+    if counts.true_positive + counts.false_positive + counts.true_negative + counts.false_negative
+        == 0
+    {
+        return Err(MetricsError::Empty {
+            what: "probabilities",
+        });
+    }
+    Ok(point_from_counts(threshold, counts, costs))
+}
+
+fn check_point(threshold: f64, costs: Option<Costs>) -> Result<(), MetricsError> {
     if !(0.0..=1.0).contains(&threshold) {
         return Err(MetricsError::BadParameter {
             name: "threshold",
@@ -180,22 +206,7 @@ pub fn operating_point(
             }
         }
     }
-    let counts = confusion_at_threshold(probabilities, y, threshold)?;
-    let n = y.len() as f64;
-    let declined = (counts.true_positive + counts.false_positive) as f64;
-    Ok(OperatingPoint {
-        threshold,
-        counts,
-        approval_rate: 1.0 - declined / n,
-        decline_rate: declined / n,
-        precision: counts.precision(),
-        recall: counts.recall(),
-        expected_cost: costs.map(|c| {
-            (c.false_positive * counts.false_positive as f64
-                + c.false_negative * counts.false_negative as f64)
-                / n
-        }),
-    })
+    Ok(())
 }
 
 /// One score band: its cases, and the operating point of declining it and every band above.

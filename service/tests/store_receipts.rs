@@ -18,6 +18,9 @@ use probity::store::{
     OutcomeResult, PredictionRecord, PredictionStore, ReportFilter, Settled, SqliteStore, Store,
     StoreConfig, StoreError, WriteFailure,
 };
+use probity::store::{
+    FollowUpGroup, PairRanks, PairRow, PairScan, ScanOrder, ScanRow, SeriesName, SeriesScan,
+};
 
 struct Facts;
 
@@ -118,6 +121,45 @@ impl Store for Watched {
     }
     fn outcome_counts(&mut self) -> Result<OutcomeCounts, StoreError> {
         self.inner.outcome_counts()
+    }
+    fn series(&mut self, filter: &ReportFilter) -> Result<Vec<SeriesName>, StoreError> {
+        self.inner.series(filter)
+    }
+    fn scan(
+        &mut self,
+        series: &SeriesScan<'_>,
+        order: ScanOrder,
+        labelled_only: bool,
+        each: &mut dyn FnMut(&ScanRow) -> Result<(), StoreError>,
+    ) -> Result<(), StoreError> {
+        self.inner.scan(series, order, labelled_only, each)
+    }
+    fn nth_oldest(&mut self, series: &SeriesScan<'_>, k: u64) -> Result<Option<i64>, StoreError> {
+        self.inner.nth_oldest(series, k)
+    }
+    fn follow_up(
+        &mut self,
+        series: &SeriesScan<'_>,
+        now_ms: i64,
+        horizon_ms: i64,
+        each: &mut dyn FnMut(&FollowUpGroup) -> Result<(), StoreError>,
+    ) -> Result<(), StoreError> {
+        self.inner.follow_up(series, now_ms, horizon_ms, each)
+    }
+    fn role_models(
+        &mut self,
+        filter: &ReportFilter,
+        role: &str,
+    ) -> Result<Vec<(String, String, u64)>, StoreError> {
+        self.inner.role_models(filter, role)
+    }
+    fn scan_pairs(
+        &mut self,
+        pairs: &PairScan<'_>,
+        ranks: PairRanks,
+        each: &mut dyn FnMut(&PairRow) -> Result<(), StoreError>,
+    ) -> Result<(), StoreError> {
+        self.inner.scan_pairs(pairs, ranks, each)
     }
     fn labelled_pairs(&mut self, route: &str) -> Result<LabelledPairs, StoreError> {
         self.inner.labelled_pairs(route)

@@ -22,6 +22,7 @@ pub mod paired_loss;
 pub mod share;
 pub mod verdict;
 
+pub use self::z_and_p as normal_z_and_p;
 pub use agreement::{agreement, spearman, Agreement, AgreementOptions, Flips};
 pub use delong::{delong_test, midranks, DeLongTest};
 pub use outcomes::{compare_outcomes, ModelScores, OutcomeComparison, OutcomeOptions};
@@ -132,7 +133,7 @@ pub fn normal_two_sided_p(z: f64) -> f64 {
 
 /// A test statistic with its normal-approximation p-value, or neither when the standard error is zero (for instance
 /// two identical models), where the statistic is undefined.
-pub(crate) fn z_and_p(estimate: f64, standard_error: f64) -> (Option<f64>, Option<f64>) {
+pub fn z_and_p(estimate: f64, standard_error: f64) -> (Option<f64>, Option<f64>) {
     if standard_error > 0.0 && standard_error.is_finite() {
         let z = estimate / standard_error;
         (Some(z), Some(normal_two_sided_p(z)))

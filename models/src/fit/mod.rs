@@ -35,7 +35,7 @@ pub mod temperature;
 
 use crate::calibration::Calibration;
 
-pub use prior_em::{estimate_prior, EmOptions, PriorEstimate};
+pub use prior_em::{estimate_prior, estimate_prior_by, EmOptions, PriorEstimate};
 pub use sampling::{king_zeng_intercept, shift_calibration, BaseRateCorrection, Sampling};
 pub use select::{
     auto_select, cross_validate, fit_report, FitReport, Folds, MethodScore, Scores, Selection,

@@ -34,43 +34,66 @@ pub fn fit_logistic(
     start: f64,
 ) -> Result<Vec<f64>, NewtonFailure> {
     let k = columns.len();
+    let mut x = vec![0.0; k];
+    fit_logistic_by(k, start, |each| {
+        for (i, &t) in targets.iter().enumerate() {
+            for (j, col) in columns.iter().enumerate() {
+                x[j] = col[i];
+            }
+            each(&x, t);
+        }
+    })
+}
+
+/// What a pass over the rows calls for each row: its columns and its target.
+pub type RowVisitor<'a> = &'a mut dyn FnMut(&[f64], f64);
+
+/// [`fit_logistic`] over rows it does not hold: `pass(each)` calls `each(columns, target)` for every row (`k`
+/// columns, unscaled), in the same order at every call (a pass over a file or a database cursor). The arithmetic
+/// is [`fit_logistic`]'s, which uses it, so the result is the same on the same rows in that order. The rows are
+/// read once for the scales, once per loss evaluation and once per Newton step.
+pub fn fit_logistic_by(
+    k: usize,
+    start: f64,
+    mut pass: impl FnMut(&mut dyn FnMut(&[f64], f64)),
+) -> Result<Vec<f64>, NewtonFailure> {
     let d = k + 1;
-    let scales: Vec<f64> = columns
-        .iter()
-        .map(|c| c.iter().fold(0.0f64, |m, v| m.max(v.abs())))
+    let mut largest = vec![0.0f64; k];
+    pass(&mut |row: &[f64], _| {
+        for (m, v) in largest.iter_mut().zip(row) {
+            *m = m.max(v.abs());
+        }
+    });
+    let scales: Vec<f64> = largest
+        .into_iter()
         .map(|m| if m > 0.0 { m } else { 1.0 })
         .collect();
-    let scaled: Vec<Vec<f64>> = columns
-        .iter()
-        .zip(&scales)
-        .map(|(c, s)| c.iter().map(|v| v / s).collect())
-        .collect();
-    let row = |i: usize, out: &mut [f64]| {
-        for (j, col) in scaled.iter().enumerate() {
-            out[j] = col[i];
+    let scaled_row = |row: &[f64], out: &mut [f64]| {
+        for j in 0..k {
+            out[j] = row[j] / scales[j];
         }
         out[k] = 1.0;
     };
-    let loss = |w: &[f64]| -> f64 {
-        let mut x = vec![0.0; d];
+    let mut x = vec![0.0; d];
+    let mut loss = |pass: &mut dyn FnMut(RowVisitor<'_>), w: &[f64]| -> f64 {
         let mut total = 0.0;
-        for (i, &t) in targets.iter().enumerate() {
-            row(i, &mut x);
+        pass(&mut |row: &[f64], t: f64| {
+            scaled_row(row, &mut x);
             let z = dot(&x, w);
             total += t * softplus(-z) + (1.0 - t) * softplus(z);
-        }
+        });
         total
     };
 
     let mut w = vec![0.0; d];
     w[k] = start;
-    let mut current = loss(&w);
+    let mut current = loss(&mut pass, &w);
     let mut x = vec![0.0; d];
     for _ in 0..MAX_ITERATIONS {
         let mut grad = vec![0.0; d];
         let mut hess = vec![0.0; d * d];
-        for (i, &t) in targets.iter().enumerate() {
-            row(i, &mut x);
+        pass(&mut |row: &[f64], t: f64| {
+            scaled_row(row, &mut x);
             let p = sigmoid(dot(&x, &w));
             let r = p - t;
             let v = p * (1.0 - p);
@@ -80,7 +103,7 @@ pub fn fit_logistic(
                     hess[a * d + b] += v * x[a] * x[b];
                 }
             }
-        }
+        });
         let step = solve(&mut hess, &grad, d).ok_or(NewtonFailure::Singular)?;
         // Backtracking line search: halve the step until the loss does not rise.
         let mut alpha = 1.0;
@@ -90,7 +113,7 @@ pub fn fit_logistic(
             for a in 0..d {
                 trial[a] = w[a] - alpha * step[a];
             }
-            let value = loss(&trial);
+            let value = loss(&mut pass, &trial);
             // Near the minimum the loss changes by less than its own rounding, so a full Newton step that leaves
             // it equal to within rounding is taken: there the step, not the loss, measures progress.
             let rounding = 64.0 * f64::EPSILON * current.abs().max(1.0);

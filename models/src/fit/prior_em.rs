@@ -68,6 +68,21 @@ pub fn estimate_prior(
             rule: "probabilities must lie in [0, 1]",
         });
     }
+    let h: Vec<f64> = p.iter().map(|&v| logit(v)).collect();
+    estimate_prior_by(training_prior, options, |shift| {
+        h.iter().map(|&hi| sigmoid(hi + shift)).sum::<f64>() / h.len() as f64
+    })
+}
+
+/// The EM of [`estimate_prior`] over scores it does not hold: `mean_posterior(shift)` returns the mean of
+/// `sigmoid(logit(p_i) + shift)` over the scores, summed in one fixed order (a pass over a file or a database
+/// cursor), so that the result equals [`estimate_prior`]'s on the same scores in that order. The scores must have
+/// been checked to lie in [0, 1] and be non-empty.
+pub fn estimate_prior_by(
+    training_prior: f64,
+    options: EmOptions,
+    mut mean_posterior: impl FnMut(f64) -> f64,
+) -> Result<PriorEstimate, FitError> {
     let unit = |name: &'static str, v: f64| {
         if v > 0.0 && v < 1.0 {
             Ok(v)
@@ -88,11 +103,10 @@ pub fn estimate_prior(
             rule: "must be positive",
         });
     }
-    let h: Vec<f64> = p.iter().map(|&v| logit(v)).collect();
     let base = logit(pi_t);
     for iteration in 1..=options.max_iterations {
         let shift = logit(pi) - base;
-        let next = h.iter().map(|&hi| sigmoid(hi + shift)).sum::<f64>() / h.len() as f64;
+        let next = mean_posterior(shift);
         let moved = (next - pi).abs();
         // Every posterior 0 (or 1) drives the mean to the boundary, where logit is infinite; stop there.
         if !(next > 0.0 && next < 1.0) {

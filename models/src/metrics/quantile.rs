@@ -10,20 +10,40 @@
 /// The interpolation `a + (b - a) g` is evaluated as `b - (b - a)(1 - g)` when `g >= 0.5`, as NumPy does, so the
 /// result is exact at both ends and monotone in `q`.
 pub fn quantile_sorted(sorted: &[f64], q: f64) -> f64 {
-    let n = sorted.len();
+    quantile_by(sorted.len(), q, |i| sorted[i])
+}
+
+/// The order statistics [`quantile_sorted`] reads for level `q` of a sorted sample of `n` values (one or two
+/// positions), so that a caller streaming the sample in order can keep only those.
+pub fn quantile_positions(n: usize, q: f64) -> [usize; 2] {
     let last = n.saturating_sub(1);
     let virtual_index = (last as f64) * q;
     if virtual_index >= last as f64 {
-        return sorted[last];
+        return [last, last];
     }
     if virtual_index <= 0.0 {
-        return sorted[0];
+        return [0, 0];
+    }
+    let i = virtual_index.floor() as usize;
+    [i, i + 1]
+}
+
+/// [`quantile_sorted`] of a sorted sample of `n` values read through `at(index)`; only the positions
+/// [`quantile_positions`] names are read.
+pub fn quantile_by(n: usize, q: f64, at: impl Fn(usize) -> f64) -> f64 {
+    let last = n.saturating_sub(1);
+    let virtual_index = (last as f64) * q;
+    if virtual_index >= last as f64 {
+        return at(last);
+    }
+    if virtual_index <= 0.0 {
+        return at(0);
     }
     let below = virtual_index.floor();
     // `below` is in [0, n - 2] here, so the cast is exact and the index in range.
     let i = below as usize;
     let gamma = virtual_index - below;
-    let (a, b) = (sorted[i], sorted[i + 1]);
+    let (a, b) = (at(i), at(i + 1));
     let diff = b - a;
     if gamma >= 0.5 {
         b - diff * (1.0 - gamma)

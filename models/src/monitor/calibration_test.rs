@@ -17,7 +17,7 @@
 
 use super::{normal_upper_point, MonitorError};
 use crate::compare::normal_two_sided_p;
-use crate::fit::newton::{fit_logistic, NewtonFailure};
+use crate::fit::newton::{fit_logistic_by, NewtonFailure};
 use crate::link::sigmoid;
 use crate::metrics::{chi2_sf, log_loss_term_pm1, Labels, MetricsError};
 
@@ -59,20 +59,45 @@ pub fn spiegelhalter_z<L: Labels + ?Sized>(
         }
         .into());
     }
-    if let Some(index) = probabilities.iter().position(|p| !(0.0..=1.0).contains(p)) {
-        return Err(MetricsError::NotProbability {
-            what: "probabilities",
-            index,
-            value: probabilities[index],
+    let y: &[bool] = &y;
+    spiegelhalter_z_by(|each| {
+        for (&p, &yi) in probabilities.iter().zip(y) {
+            each(p, yi);
         }
-        .into());
-    }
+    })
+}
+
+/// [`spiegelhalter_z`] over pairs it does not hold: `pass(each)` calls `each(probability, label)` for every pair
+/// (read once). The arithmetic is [`spiegelhalter_z`]'s, which uses it.
+pub fn spiegelhalter_z_by(
+    pass: impl FnOnce(&mut dyn FnMut(f64, bool)),
+) -> Result<Spiegelhalter, MonitorError> {
     let (mut numerator, mut variance) = (0.0, 0.0);
-    for (&p, &yi) in probabilities.iter().zip(y.iter()) {
+    let mut cases = 0usize;
+    let mut outside: Option<(usize, f64)> = None;
+    pass(&mut |p, yi| {
+        if !(0.0..=1.0).contains(&p) {
+            outside.get_or_insert((cases, p));
+        }
         let t = f64::from(u8::from(yi));
         let w = 1.0 - 2.0 * p;
         numerator += (t - p) * w;
         variance += w * w * p * (1.0 - p);
+        cases += 1;
+    });
+    if cases == 0 {
+        return Err(MetricsError::Empty {
+            what: "probabilities",
+        }
+        .into());
+    }
+    if let Some((index, value)) = outside {
+        return Err(MetricsError::NotProbability {
+            what: "probabilities",
+            index,
+            value,
+        }
+        .into());
     }
     let (z, p_value) = if variance > 0.0 {
         let z = numerator / variance.sqrt();
@@ -81,7 +106,7 @@ pub fn spiegelhalter_z<L: Labels + ?Sized>(
         (None, None)
     };
     Ok(Spiegelhalter {
-        cases: probabilities.len(),
+        cases,
         numerator,
         variance,
         z,
@@ -193,26 +218,79 @@ pub fn logistic_recalibration<L: Labels + ?Sized>(
         }
         .into());
     }
-    let positives = y.iter().filter(|&&b| b).count();
-    if positives == 0 || positives == y.len() {
+    let y: &[bool] = &y;
+    logistic_recalibration_by(level, |each| {
+        for (&h, &yi) in log_odds.iter().zip(y) {
+            each(h, yi);
+        }
+    })
+}
+
+/// [`logistic_recalibration`] over pairs it does not hold: `pass(each)` calls `each(log_odds, label)` for every
+/// pair, in the same order at every call (a pass over a file or a database cursor). The arithmetic is
+/// [`logistic_recalibration`]'s, which uses it. The pairs are read a bounded number of times per Newton step of
+/// each fit (about 2 to 4 passes per step, a few dozen in all), never held.
+///
+/// Errors: as [`logistic_recalibration`] (no cases, non-finite log-odds, one class, constant log-odds, `level`,
+/// separation).
+pub fn logistic_recalibration_by(
+    level: f64,
+    mut pass: impl FnMut(&mut dyn FnMut(f64, bool)),
+) -> Result<Recalibration, MonitorError> {
+    if !(level > 0.0 && level < 1.0) {
+        return Err(MonitorError::BadOption {
+            name: "confidence level",
+            value: level,
+            reason: "must lie strictly between 0 and 1",
+        });
+    }
+    let (mut cases, mut positives) = (0usize, 0usize);
+    let mut non_finite: Option<(usize, f64)> = None;
+    let mut first: Option<f64> = None;
+    let mut constant = true;
+    pass(&mut |h, yi| {
+        if non_finite.is_none() && !h.is_finite() {
+            non_finite = Some((cases, h));
+        }
+        match first {
+            None => first = Some(h),
+            Some(f) => constant &= h == f,
+        }
+        cases += 1;
+        positives += usize::from(yi);
+    });
+    if cases == 0 {
+        return Err(MetricsError::Empty { what: "log_odds" }.into());
+    }
+    if let Some((index, value)) = non_finite {
+        return Err(MetricsError::NonFinite {
+            what: "log_odds",
+            index,
+            value,
+        }
+        .into());
+    }
+    if positives == 0 || positives == cases {
         return Err(MetricsError::OneClass {
             statistic: STATISTIC,
             present: u8::from(positives > 0),
         }
         .into());
     }
-    if log_odds.iter().all(|&h| h == log_odds[0]) {
+    if constant {
         return Err(MonitorError::NoFit {
             statistic: STATISTIC,
             reason: "every log-odds is the same, so no slope can be fitted",
         });
     }
     let z_level = normal_upper_point((1.0 - level) / 2.0)?;
-    let targets: Vec<f64> = y.iter().map(|&b| f64::from(u8::from(b))).collect();
 
     // Two-parameter fit, then its Fisher information [[sum w h^2, sum w h], [sum w h, sum w]].
-    let start = (positives as f64 / (y.len() - positives) as f64).ln();
-    let w = fit_logistic(&[log_odds], &targets, start).map_err(|e| MonitorError::NoFit {
+    let start = (positives as f64 / (cases - positives) as f64).ln();
+    let w = fit_logistic_by(1, start, |each| {
+        pass(&mut |h, yi| each(&[h], f64::from(u8::from(yi))))
+    })
+    .map_err(|e| MonitorError::NoFit {
         statistic: STATISTIC,
         reason: match e {
             NewtonFailure::Singular => "the information matrix is singular",
@@ -223,13 +301,13 @@ pub fn logistic_recalibration<L: Labels + ?Sized>(
     })?;
     let (b, a) = (w[0], w[1]);
     let (mut shh, mut sh, mut s1) = (0.0, 0.0, 0.0);
-    for &h in log_odds {
+    pass(&mut |h, _| {
         let p = sigmoid(a + b * h);
         let v = p * (1.0 - p);
         shh += v * h * h;
         sh += v * h;
         s1 += v;
-    }
+    });
     let det = shh * s1 - sh * sh;
     if !(det > 0.0 && det.is_finite()) {
         return Err(MonitorError::NoFit {
@@ -240,23 +318,19 @@ pub fn logistic_recalibration<L: Labels + ?Sized>(
     let slope = Coefficient::new(b, (s1 / det).sqrt(), 1.0, z_level);
     let intercept = Coefficient::new(a, (shh / det).sqrt(), 0.0, z_level);
 
-    let large = offset_intercept(log_odds, &y)?;
-    let info: f64 = log_odds
-        .iter()
-        .map(|&h| {
-            let p = sigmoid(large + h);
-            p * (1.0 - p)
-        })
-        .sum();
+    let large = offset_intercept(&mut pass)?;
+    let mut info = 0.0f64;
+    pass(&mut |h, _| {
+        let p = sigmoid(large + h);
+        info += p * (1.0 - p);
+    });
     let in_the_large = Coefficient::new(large, 1.0 / info.sqrt(), 0.0, z_level);
 
     // Log-likelihood at (a, b) and at (0, 1); -log-loss per case, summed.
-    let loglik = |a: f64, b: f64| -> f64 {
-        -log_odds
-            .iter()
-            .zip(y.iter())
-            .map(|(&h, &yi)| log_loss_term_pm1(a + b * h, yi))
-            .sum::<f64>()
+    let mut loglik = |a: f64, b: f64| -> f64 {
+        let mut total = 0.0f64;
+        pass(&mut |h, yi| total += log_loss_term_pm1(a + b * h, yi));
+        -total
     };
     let statistic = (2.0 * (loglik(a, b) - loglik(0.0, 1.0))).max(0.0);
     let joint = LikelihoodRatioTest {
@@ -265,7 +339,7 @@ pub fn logistic_recalibration<L: Labels + ?Sized>(
         p_value: chi2_sf(statistic, 2.0)?,
     };
     Ok(Recalibration {
-        cases: y.len(),
+        cases,
         positives,
         level,
         in_the_large,
@@ -278,14 +352,14 @@ pub fn logistic_recalibration<L: Labels + ?Sized>(
 /// The maximum-likelihood `a` of `logit P(y = 1) = a + h`: the root of the score `g(a) = sum (y_i - sigmoid(a +
 /// h_i))`, which falls strictly from `#positives` to `-#negatives`, so with both classes present it has exactly one
 /// root. Newton steps inside a bracket, falling back to bisection when a step leaves it.
-fn offset_intercept(h: &[f64], y: &[bool]) -> Result<f64, MonitorError> {
-    let score = |a: f64| -> (f64, f64) {
+fn offset_intercept(pass: &mut impl FnMut(&mut dyn FnMut(f64, bool))) -> Result<f64, MonitorError> {
+    let mut score = |a: f64| -> (f64, f64) {
         let (mut g, mut info) = (0.0, 0.0);
-        for (&hi, &yi) in h.iter().zip(y) {
+        pass(&mut |hi, yi| {
             let p = sigmoid(a + hi);
             g += f64::from(u8::from(yi)) - p;
             info += p * (1.0 - p);
-        }
+        });
         (g, info)
     };
     let (mut lo, mut hi) = (-1.0f64, 1.0f64);

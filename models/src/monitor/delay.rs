@@ -166,43 +166,79 @@ pub fn kaplan_meier(
     }
     // Events before censorings at the same time: a prediction censored at t was still at risk at t.
     follow.sort_by(|a, b| a.0.total_cmp(&b.0).then(b.1.cmp(&a.1)));
-    let mut km = KaplanMeier {
-        cases: follow.len(),
-        positives: follow.iter().filter(|f| f.1).count(),
-        horizon,
-        times: Vec::new(),
-        at_risk: Vec::new(),
-        events: Vec::new(),
-        survival: Vec::new(),
-        greenwood: Vec::new(),
-    };
-    let (mut s, mut v) = (1.0f64, 0.0f64);
+    let mut km = KaplanMeierSteps::new(follow.len(), horizon);
     let mut i = 0;
     while i < follow.len() {
         let t = follow[i].0;
-        let at_risk = follow.len() - i;
         let mut d = 0;
         let mut j = i;
         while j < follow.len() && follow[j].0 == t {
             d += usize::from(follow[j].1);
             j += 1;
         }
+        km.push(t, d, j - i);
+        i = j;
+    }
+    Ok(km.finish())
+}
+
+/// [`kaplan_meier`] fed with follow-up times already grouped and sorted (as a database returns them, so that the
+/// cases never have to be held): per distinct time, ascending, the number of cases whose follow-up ends there and
+/// how many of those end with the event. The arithmetic is [`kaplan_meier`]'s, which uses it.
+#[derive(Debug, Clone)]
+pub struct KaplanMeierSteps {
+    km: KaplanMeier,
+    seen: usize,
+    survival: f64,
+    variance: f64,
+}
+
+impl KaplanMeierSteps {
+    /// Steps over `cases` cases, each followed up to at most `horizon`.
+    pub fn new(cases: usize, horizon: f64) -> KaplanMeierSteps {
+        KaplanMeierSteps {
+            km: KaplanMeier {
+                cases,
+                positives: 0,
+                horizon,
+                times: Vec::new(),
+                at_risk: Vec::new(),
+                events: Vec::new(),
+                survival: Vec::new(),
+                greenwood: Vec::new(),
+            },
+            seen: 0,
+            survival: 1.0,
+            variance: 0.0,
+        }
+    }
+
+    /// The `count` cases whose follow-up ends at `t` (later than every earlier call's), `events` of them with the
+    /// event.
+    pub fn push(&mut self, t: f64, events: usize, count: usize) {
+        let at_risk = self.km.cases.saturating_sub(self.seen);
+        let d = events;
         if d > 0 {
-            s *= 1.0 - d as f64 / at_risk as f64;
-            v += if d < at_risk {
+            self.survival *= 1.0 - d as f64 / at_risk as f64;
+            self.variance += if d < at_risk {
                 d as f64 / (at_risk as f64 * (at_risk - d) as f64)
             } else {
                 f64::INFINITY
             };
-            km.times.push(t);
-            km.at_risk.push(at_risk);
-            km.events.push(d);
-            km.survival.push(s);
-            km.greenwood.push(v);
+            self.km.times.push(t);
+            self.km.at_risk.push(at_risk);
+            self.km.events.push(d);
+            self.km.survival.push(self.survival);
+            self.km.greenwood.push(self.variance);
         }
-        i = j;
+        self.km.positives += d;
+        self.seen += count;
     }
-    Ok(km)
+
+    /// The estimate.
+    pub fn finish(self) -> KaplanMeier {
+        self.km
+    }
 }
 
 fn bad_row(what: &'static str, index: usize, value: f64) -> MonitorError {

@@ -447,6 +447,263 @@ fn bad_row(what: &'static str, index: usize, value: f64) -> MonitorError {
     MonitorError::Metric(MetricsError::NonFinite { what, index, value })
 }
 
+/// [`eventual_figures`] over a window it does not hold: `pass(each)` calls `each(case)` for every prediction of the
+/// window (read once; a pass over a database cursor). What is kept is per calibration bin and per step of `km`
+/// (each distinct delay of a positive in the reference): counts and sums, never the cases. The figures are
+/// [`eventual_figures`]'s; sums over a bin's cases are added per bin and step before they are added together, so
+/// they agree with it to rounding (not to the last bit), and the Greenwood variance's terms at one step are added
+/// before they are weighed (`(sum e)^2` for `sum e_i (e_i + 2 after_i)`, equal in exact arithmetic).
+///
+/// Errors: as [`eventual_figures`].
+pub fn eventual_figures_by(
+    km: &KaplanMeier,
+    edges: &[f64],
+    level: f64,
+    pass: impl FnOnce(&mut dyn FnMut(ScoredCase)),
+) -> Result<EventualFigures, MonitorError> {
+    if !(level > 0.0 && level < 1.0) {
+        return Err(MonitorError::BadOption {
+            name: "confidence level",
+            value: level,
+            reason: "must lie strictly between 0 and 1",
+        });
+    }
+    if edges.len() < 2 {
+        return Err(MonitorError::BadOption {
+            name: "number of bin edges",
+            value: edges.len() as f64,
+            reason: "must be at least 2",
+        });
+    }
+    if let Some(i) = edges.iter().position(|e| !e.is_finite()) {
+        return Err(bad_row("bin edges", i, edges[i]));
+    }
+    if let Some(i) = (1..edges.len()).find(|&i| edges[i] < edges[i - 1]) {
+        return Err(MonitorError::BadOption {
+            name: "bin edge",
+            value: edges[i],
+            reason: "edges must not decrease",
+        });
+    }
+    let g_h = km.eventual_share();
+    let inner = &edges[1..edges.len() - 1];
+    let bins = edges.len() - 1;
+    let steps = km.times.len() + 1;
+    // Per bin: count, positives, expected arrivals, sum of p; over its positives the sums of g and g^2 for the
+    // three figures (rate: g = 1; log-loss; Brier). Per (step, bin): count.
+    let mut count = vec![0usize; bins];
+    let mut positives = vec![0usize; bins];
+    let mut expected = vec![0.0f64; bins];
+    let mut sum_p = vec![0.0f64; bins];
+    let mut sums = vec![[0.0f64; 6]; bins];
+    let mut at_step = vec![0usize; steps * bins];
+    let (mut ll_base, mut br_base) = (0.0f64, 0.0f64);
+    let mut cases = 0usize;
+    let mut bad: Option<MonitorError> = None;
+    pass(&mut |c: ScoredCase| {
+        if bad.is_some() {
+            return;
+        }
+        let row = cases;
+        if !(c.age.is_finite() && c.age >= 0.0) {
+            bad = Some(bad_row("age", row, c.age));
+            return;
+        }
+        if !c.log_odds.is_finite() {
+            bad = Some(bad_row("log_odds", row, c.log_odds));
+            return;
+        }
+        if !(0.0..=1.0).contains(&c.probability) {
+            bad = Some(bad_row("probability", row, c.probability));
+            return;
+        }
+        cases += 1;
+        let bin = right_closed_bin(inner, c.probability);
+        let step = km.step_of(c.age);
+        count[bin] += 1;
+        positives[bin] += usize::from(c.positive);
+        if g_h > 0.0 {
+            expected[bin] += (1.0 - km.survival_on_step(step)) / g_h;
+        }
+        sum_p[bin] += c.probability;
+        at_step[step * bins + bin] += 1;
+        ll_base += softplus(c.log_odds);
+        br_base += c.probability * c.probability;
+        if c.positive {
+            let s = &mut sums[bin];
+            let gl = softplus(-c.log_odds) - softplus(c.log_odds);
+            let gb = 1.0 - 2.0 * c.probability;
+            s[0] += 1.0;
+            s[1] += 1.0;
+            s[2] += gl;
+            s[3] += gl * gl;
+            s[4] += gb;
+            s[5] += gb * gb;
+        }
+    });
+    if let Some(e) = bad {
+        return Err(e);
+    }
+    if cases == 0 {
+        return Err(MetricsError::Empty { what: "window" }.into());
+    }
+    if g_h <= 0.0 {
+        return Err(MonitorError::NoFit {
+            statistic: "eventual figures",
+            reason: "the delay reference holds no positive outcome",
+        });
+    }
+    let n = cases as f64;
+    let usable: Vec<usize> = (0..bins).filter(|&b| expected[b] > 0.0).collect();
+    if usable.is_empty() {
+        return Err(MonitorError::NoFit {
+            statistic: "eventual figures",
+            reason: "the window's predictions are all younger than the first delay in the reference, so none of \
+                     their positives is expected yet",
+        });
+    }
+    let stratum: Vec<usize> = (0..bins)
+        .map(|b| {
+            *usable
+                .iter()
+                .min_by_key(|&&u| (u.abs_diff(b), u > b))
+                .unwrap_or(&b)
+        })
+        .collect();
+    let z = normal_upper_point((1.0 - level) / 2.0)?;
+    let alpha = 1.0 - level;
+    let k_total: usize = positives.iter().sum();
+    let expected_total: f64 = expected.iter().sum();
+    // The strata: every bin's sums moved to its stratum.
+    let mut merged_count = vec![0usize; bins];
+    let mut merged_expected = vec![0.0f64; bins];
+    let mut merged_sums = vec![[0.0f64; 6]; bins];
+    let mut merged_at_step = vec![0usize; steps * bins];
+    for b in 0..bins {
+        let s = stratum[b];
+        merged_count[s] += count[b];
+        merged_expected[s] += expected[b];
+        for k in 0..6 {
+            merged_sums[s][k] += sums[b][k];
+        }
+        for g in 0..steps {
+            merged_at_step[g * bins + s] += at_step[g * bins + b];
+        }
+    }
+    let weights: Vec<f64> = merged_count.iter().map(|&c| c as f64 / n).collect();
+    let strata: Vec<usize> = (0..bins).filter(|&b| merged_count[b] > 0).collect();
+    let whole = Tallied {
+        km,
+        g_h,
+        bins,
+        count: &merged_count,
+        expected: &merged_expected,
+        sums: &merged_sums,
+        at_step: &merged_at_step,
+    };
+    let (rate, rate_var) = whole.figure(&strata, &weights, 0);
+    let positive_rate = rate_interval(rate, rate_var, k_total, expected_total, z, alpha);
+    let (ll, ll_var) = whole.figure(&strata, &weights, 1);
+    let log_loss = linear_interval(ll_base / n + ll, ll_var, k_total, z, f64::INFINITY);
+    let (br, br_var) = whole.figure(&strata, &weights, 2);
+    let brier = linear_interval(br_base / n + br, br_var, k_total, z, 1.0);
+    let each = Tallied {
+        km,
+        g_h,
+        bins,
+        count: &count,
+        expected: &expected,
+        sums: &sums,
+        at_step: &at_step,
+    };
+    let mut table = Vec::new();
+    for b in (0..bins).filter(|&b| count[b] > 0) {
+        let rate = (expected[b] > 0.0).then(|| {
+            let mut w = vec![0.0; bins];
+            w[b] = 1.0;
+            let (r, var) = each.figure(&[b], &w, 0);
+            rate_interval(r, var, positives[b], expected[b], z, alpha)
+        });
+        table.push(EventualBin {
+            index: b,
+            lower: edges[b],
+            upper: edges[b + 1],
+            count: count[b],
+            positives_so_far: positives[b],
+            mean_predicted: sum_p[b] / count[b] as f64,
+            arrived_share: expected[b] / count[b] as f64,
+            rate,
+        });
+    }
+    Ok(EventualFigures {
+        cases,
+        positives_so_far: k_total,
+        arrived_share: expected_total / n,
+        eventual_positives: rate * n,
+        level,
+        positive_rate,
+        log_loss,
+        brier,
+        bins: table,
+    })
+}
+
+/// [`Ratio`] from per-bin sums and per-(step, bin) counts.
+struct Tallied<'a> {
+    km: &'a KaplanMeier,
+    g_h: f64,
+    bins: usize,
+    count: &'a [usize],
+    expected: &'a [f64],
+    /// Per bin, over its positives: sum and sum of squares of g for figure 0, 1, 2.
+    sums: &'a [[f64; 6]],
+    at_step: &'a [usize],
+}
+
+impl Tallied<'_> {
+    /// As [`Ratio::figure`], `figure` naming the g.
+    fn figure(&self, bins: &[usize], w: &[f64], figure: usize) -> (f64, f64) {
+        let nb = self.bins;
+        let mut theta = 0.0;
+        let mut var_window = 0.0;
+        let mut slope = vec![0.0f64; nb];
+        let mut inside = vec![false; nb];
+        for &b in bins {
+            inside[b] = true;
+            let (sum, sum_sq) = (self.sums[b][2 * figure], self.sums[b][2 * figure + 1]);
+            let d = self.expected[b];
+            let theta_b = w[b] * sum / d;
+            theta += theta_b;
+            let var_u = (sum_sq - sum * sum / self.count[b] as f64).max(0.0);
+            var_window += (w[b] / d) * (w[b] / d) * var_u;
+            slope[b] = theta_b / (d * self.g_h);
+        }
+        // The reference's part, the terms of one step added together, steps from the last down.
+        let horizon_step = self.km.step_of(self.km.horizon);
+        let steps = self.at_step.len() / nb.max(1);
+        let mut after = 0.0;
+        let mut var = 0.0;
+        for g in (0..steps.max(horizon_step + 1)).rev() {
+            let mut c = 0.0;
+            if g < steps {
+                for b in (0..nb).filter(|&b| inside[b]) {
+                    c += self.at_step[g * nb + b] as f64 * slope[b];
+                }
+            }
+            if g == horizon_step {
+                c += -theta / self.g_h;
+            }
+            let e = c * self.km.survival_on_step(g);
+            let v = self.km.greenwood_on_step(g);
+            if e != 0.0 && v != 0.0 {
+                var += v * e * (e + 2.0 * after);
+            }
+            after += e;
+        }
+        (theta, var_window + var)
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::super::delay::{eventual_rate, kaplan_meier, DelayObservation, WindowCase};
@@ -491,6 +748,68 @@ mod tests {
             case(8.0, 0.4, false),
             case(9.0, 0.9, true),
         ]
+    }
+
+    #[test]
+    fn figures_from_a_pass_equal_the_figures_of_the_held_window() {
+        // `eventual_figures_by` keeps per-bin and per-step sums instead of the cases; on the same window it gives
+        // `eventual_figures`'s figures to rounding, with a merged bin (0.1 is younger than the first delay), several
+        // bins and cases on the same step.
+        let km = reference();
+        let mut w = window();
+        w.extend([
+            case(1.2, 0.25, false),
+            case(4.2, 0.65, true),
+            case(9.5, 0.95, false),
+        ]);
+        for edges in [vec![0.0, 1.0], vec![0.0, 0.15, 0.5, 0.75, 1.0]] {
+            let held = eventual_figures(&km, &w, &edges, 0.9).unwrap();
+            let passed = eventual_figures_by(&km, &edges, 0.9, |each| {
+                for c in &w {
+                    each(*c);
+                }
+            })
+            .unwrap();
+            let close = |a: f64, b: f64| (a - b).abs() <= 1e-12 * a.abs().max(b.abs()).max(1e-300);
+            let same = |a: &Estimate, b: &Estimate| {
+                close(a.estimate, b.estimate)
+                    && a.standard_error
+                        .zip(b.standard_error)
+                        .is_none_or(|(x, y)| close(x, y))
+                    && a.lower.zip(b.lower).is_none_or(|(x, y)| close(x, y))
+                    && a.upper.zip(b.upper).is_none_or(|(x, y)| close(x, y))
+                    && a.standard_error.is_some() == b.standard_error.is_some()
+            };
+            assert_eq!(
+                (held.cases, held.positives_so_far),
+                (passed.cases, passed.positives_so_far)
+            );
+            assert!(close(held.arrived_share, passed.arrived_share));
+            assert!(close(held.eventual_positives, passed.eventual_positives));
+            assert!(
+                same(&held.positive_rate, &passed.positive_rate),
+                "{held:?}\n{passed:?}"
+            );
+            assert!(same(&held.log_loss, &passed.log_loss));
+            assert!(same(&held.brier, &passed.brier));
+            assert_eq!(held.bins.len(), passed.bins.len());
+            for (a, b) in held.bins.iter().zip(&passed.bins) {
+                assert_eq!(
+                    (a.index, a.count, a.positives_so_far),
+                    (b.index, b.count, b.positives_so_far)
+                );
+                assert!(
+                    close(a.mean_predicted, b.mean_predicted)
+                        && close(a.arrived_share, b.arrived_share)
+                );
+                assert_eq!(a.rate.is_some(), b.rate.is_some());
+                if let (Some(x), Some(y)) = (&a.rate, &b.rate) {
+                    assert!(same(x, y), "{x:?} {y:?}");
+                }
+            }
+        }
+        // Refusals alike: an empty window.
+        assert!(eventual_figures_by(&km, &[0.0, 1.0], 0.9, |_| {}).is_err());
     }
 
     #[test]

@@ -19,13 +19,16 @@ pub mod eventual;
 pub mod sequential;
 
 pub use calibration_test::{
-    logistic_recalibration, spiegelhalter_z, Coefficient, LikelihoodRatioTest, Recalibration,
-    Spiegelhalter,
+    logistic_recalibration, logistic_recalibration_by, spiegelhalter_z, spiegelhalter_z_by,
+    Coefficient, LikelihoodRatioTest, Recalibration, Spiegelhalter,
 };
 pub use delay::{
-    eventual_rate, kaplan_meier, DelayObservation, EventualRate, KaplanMeier, WindowCase,
+    eventual_rate, kaplan_meier, DelayObservation, EventualRate, KaplanMeier, KaplanMeierSteps,
+    WindowCase,
 };
-pub use eventual::{eventual_figures, Estimate, EventualBin, EventualFigures, ScoredCase};
+pub use eventual::{
+    eventual_figures, eventual_figures_by, Estimate, EventualBin, EventualFigures, ScoredCase,
+};
 pub use sequential::{
     always_valid_verdict, auc_sequence, loss_sequence, normal_mixture, ConfidenceSequence,
     SequentialOptions,

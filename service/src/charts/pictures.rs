@@ -256,24 +256,68 @@ pub fn gains(title: &str, points: &[(f64, f64)]) -> String {
 
 /// A histogram of paired differences in `bars` equal bins spanning the data and zero, with a line at zero.
 pub fn differences_plot(differences: &[f64], bars: usize, x_name: &str) -> Plot {
-    let lo = differences
-        .iter()
-        .copied()
-        .fold(f64::INFINITY, f64::min)
-        .min(0.0);
-    let hi = differences
-        .iter()
-        .copied()
-        .fold(f64::NEG_INFINITY, f64::max)
-        .max(0.0);
-    let (lo, hi) = if hi > lo { (lo, hi) } else { (-1.0, 1.0) };
-    let span = hi - lo;
-    let mut counts = vec![0usize; bars.max(1)];
-    for &v in differences {
-        let k = (((v - lo) / span) * counts.len() as f64).floor() as usize;
-        let last = counts.len() - 1;
-        counts[k.min(last)] += 1;
+    histogram_plot(&DifferencesHistogram::of(differences, bars), x_name)
+}
+
+/// The bars of [`differences_plot`]: `counts.len()` equal bins over `[lo, hi]`, a range that always holds 0.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct DifferencesHistogram {
+    /// Left end.
+    pub lo: f64,
+    /// Right end.
+    pub hi: f64,
+    /// Cases per bar (the last bar takes its right end).
+    pub counts: Vec<usize>,
+}
+
+impl DifferencesHistogram {
+    /// The range of a sample whose smallest and largest values are `min` and `max` (infinite when empty).
+    pub fn range(min: f64, max: f64) -> (f64, f64) {
+        let (lo, hi) = (min.min(0.0), max.max(0.0));
+        if hi > lo {
+            (lo, hi)
+        } else {
+            (-1.0, 1.0)
+        }
     }
+
+    /// An empty histogram of `bars` bars over `[lo, hi]`.
+    pub fn new(lo: f64, hi: f64, bars: usize) -> DifferencesHistogram {
+        DifferencesHistogram {
+            lo,
+            hi,
+            counts: vec![0; bars.max(1)],
+        }
+    }
+
+    /// Counts one value.
+    pub fn add(&mut self, v: f64) {
+        let span = self.hi - self.lo;
+        let k = (((v - self.lo) / span) * self.counts.len() as f64).floor() as usize;
+        let last = self.counts.len() - 1;
+        self.counts[k.min(last)] += 1;
+    }
+
+    /// The histogram of a sample.
+    pub fn of(differences: &[f64], bars: usize) -> DifferencesHistogram {
+        let min = differences.iter().copied().fold(f64::INFINITY, f64::min);
+        let max = differences
+            .iter()
+            .copied()
+            .fold(f64::NEG_INFINITY, f64::max);
+        let (lo, hi) = DifferencesHistogram::range(min, max);
+        let mut h = DifferencesHistogram::new(lo, hi, bars);
+        for &v in differences {
+            h.add(v);
+        }
+        h
+    }
+}
+
+/// The picture of a [`DifferencesHistogram`].
+pub fn histogram_plot(histogram: &DifferencesHistogram, x_name: &str) -> Plot {
+    let (lo, hi, counts) = (histogram.lo, histogram.hi, &histogram.counts);
+    let span = hi - lo;
     let top = counts.iter().copied().max().unwrap_or(1).max(1) as f64;
     let mut plot = Plot::new(
         Scale::Range { lo, hi },
@@ -281,7 +325,7 @@ pub fn differences_plot(differences: &[f64], bars: usize, x_name: &str) -> Plot 
         x_name,
         "paired cases",
     );
-    if differences.is_empty() {
+    if counts.iter().all(|&c| c == 0) {
         plot.empty_note("no paired cases yet");
         return plot;
     }

@@ -12,6 +12,7 @@
 //! the report itself serializes to JSON.
 
 pub mod always_valid;
+pub mod stream;
 pub mod svg;
 pub mod text;
 
@@ -26,8 +27,12 @@ use probity_models::metrics::{calibration_table, BinStrategy, CalibrationTable};
 use serde::Serialize;
 use serde_json::{json, Value};
 
+use crate::charts::pictures::DifferencesHistogram;
 use crate::serve::model_ref::ModelRef;
 use crate::store::{LoggedPrediction, ReportFilter, Store, StoreError};
+
+/// Bars of the differences histogram.
+pub const DIFFERENCE_BARS: usize = 30;
 
 /// Why a comparison could not be built.
 #[derive(Debug, thiserror::Error)]
@@ -88,10 +93,10 @@ pub struct CompareReport {
     /// Both models' reliability tables on the paired cases with outcomes (ten equal-width bins).
     #[serde(skip)]
     pub reliability: Option<(CalibrationTable, CalibrationTable)>,
-    /// Per-case differences for the distribution picture: log-loss (challenger minus champion) when outcomes are
-    /// known, else adjusted log-odds differences.
+    /// The distribution of the per-case differences for the picture ([`DIFFERENCE_BARS`] bars): log-loss
+    /// (challenger minus champion) when outcomes are known, else adjusted log-odds differences.
     #[serde(skip)]
-    pub differences: Vec<f64>,
+    pub differences: DifferencesHistogram,
     /// What `differences` holds.
     pub differences_kind: String,
     /// The always-valid figures the verdict is based on.
@@ -164,8 +169,18 @@ fn outcomes_json(c: &OutcomeComparison) -> Value {
     })
 }
 
-/// Builds the comparison of one route's champion and challenger from the store.
+/// Builds the comparison of one route's champion and challenger from the store, in bounded memory
+/// ([`stream::build`]).
 pub fn build(
+    store: &mut dyn Store,
+    request: &CompareRequest,
+) -> Result<CompareReport, CompareReportError> {
+    stream::build(store, request)
+}
+
+/// [`build`] from the whole window loaded at once ([`Store::load`]): the plain form of every figure, which the
+/// streamed comparison is checked against (`tests/report_stream.rs`).
+pub fn build_loaded(
     store: &mut dyn Store,
     request: &CompareRequest,
 ) -> Result<CompareReport, CompareReportError> {
@@ -333,7 +348,7 @@ pub fn build(
     };
     let (differences, differences_kind) = if y.is_empty() {
         (
-            a.iter().zip(&b).map(|(x, z)| z - x).collect(),
+            a.iter().zip(&b).map(|(x, z)| z - x).collect::<Vec<f64>>(),
             "adjusted log-odds, challenger minus champion",
         )
     } else {
@@ -355,7 +370,7 @@ pub fn build(
         verdict_code: verdict.code().to_string(),
         verdict: format!("{verdict} (always-valid p-values)"),
         reliability,
-        differences,
+        differences: DifferencesHistogram::of(&differences, DIFFERENCE_BARS),
         differences_kind: differences_kind.to_string(),
         always_valid,
         fixed_sample_verdict_code: outcomes.verdict.code().to_string(),

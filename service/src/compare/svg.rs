@@ -9,9 +9,6 @@ use crate::charts::{palette, Picture};
 
 use super::CompareReport;
 
-/// Bars of the differences histogram.
-const BARS: usize = 30;
-
 /// Renders the picture.
 pub fn render(r: &CompareReport) -> String {
     let mut picture = Picture::new(&format!(
@@ -40,9 +37,8 @@ pub fn render(r: &CompareReport) -> String {
         left.empty_note("no outcomes yet");
     }
     picture.plot(left);
-    picture.plot(pictures::differences_plot(
+    picture.plot(pictures::histogram_plot(
         &r.differences,
-        BARS,
         &format!("{} per paired case", r.differences_kind),
     ));
     for c in &curves {

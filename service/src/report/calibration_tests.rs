@@ -4,7 +4,10 @@
 
 use std::fmt::Write;
 
-use probity_models::monitor::{logistic_recalibration, spiegelhalter_z, Coefficient};
+use probity_models::monitor::{
+    logistic_recalibration, logistic_recalibration_by, spiegelhalter_z, spiegelhalter_z_by,
+    Coefficient,
+};
 use serde::Serialize;
 
 /// Confidence level of the recalibration intervals.
@@ -81,7 +84,44 @@ pub fn compute(p: &[f64], h: &[f64], y: &[bool], notes: &mut Vec<String>) -> Cal
     if y.is_empty() {
         return CalibrationTests::default();
     }
-    let spiegelhalter = match spiegelhalter_z(p, y) {
+    let spiegelhalter = spiegelhalter_of(spiegelhalter_z(p, y), notes);
+    let recalibration = recalibration_of(logistic_recalibration(h, y, LEVEL), notes);
+    CalibrationTests {
+        spiegelhalter,
+        recalibration,
+    }
+}
+
+/// [`compute`] over `n` pairs it does not hold: `pass(each)` calls `each(probability, log_odds, label)` for every
+/// pair, in the same order at every call. Spiegelhalter's z reads them once; the recalibration's Newton fits a few
+/// dozen times (`monitor::logistic_recalibration_by`).
+pub fn compute_by(
+    n: usize,
+    mut pass: impl FnMut(&mut dyn FnMut(f64, f64, bool)),
+    notes: &mut Vec<String>,
+) -> CalibrationTests {
+    if n == 0 {
+        return CalibrationTests::default();
+    }
+    let spiegelhalter = spiegelhalter_of(
+        spiegelhalter_z_by(|each| pass(&mut |p, _, y| each(p, y))),
+        notes,
+    );
+    let recalibration = recalibration_of(
+        logistic_recalibration_by(LEVEL, |each| pass(&mut |_, h, y| each(h, y))),
+        notes,
+    );
+    CalibrationTests {
+        spiegelhalter,
+        recalibration,
+    }
+}
+
+fn spiegelhalter_of(
+    result: Result<probity_models::monitor::Spiegelhalter, probity_models::monitor::MonitorError>,
+    notes: &mut Vec<String>,
+) -> Option<Spiegelhalter> {
+    match result {
         Ok(s) => match (s.z, s.p_value) {
             (Some(z), Some(p_value)) => Some(Spiegelhalter { z, p_value }),
             _ => {
@@ -93,8 +133,14 @@ pub fn compute(p: &[f64], h: &[f64], y: &[bool], notes: &mut Vec<String>) -> Cal
             notes.push(format!("Spiegelhalter z: {e}"));
             None
         }
-    };
-    let recalibration = match logistic_recalibration(h, y, LEVEL) {
+    }
+}
+
+fn recalibration_of(
+    result: Result<probity_models::monitor::Recalibration, probity_models::monitor::MonitorError>,
+    notes: &mut Vec<String>,
+) -> Option<Recalibration> {
+    match result {
         Ok(r) => Some(Recalibration {
             level: r.level,
             in_the_large: r.in_the_large.into(),
@@ -107,10 +153,6 @@ pub fn compute(p: &[f64], h: &[f64], y: &[bool], notes: &mut Vec<String>) -> Cal
             notes.push(format!("recalibration: {e}"));
             None
         }
-    };
-    CalibrationTests {
-        spiegelhalter,
-        recalibration,
     }
 }
 

@@ -102,7 +102,23 @@ pub fn compute(rows: &[LoggedPrediction], notes: &mut Vec<String>) -> Option<Eve
             },
         })
         .collect();
-    let result = kaplan_meier(&observations, horizon_ms as f64).and_then(|km| {
+    of_fit(
+        kaplan_meier(&observations, horizon_ms as f64),
+        now_ms,
+        horizon_ms,
+        notes,
+    )
+}
+
+/// The estimate from a Kaplan-Meier fit (from the rows, or from follow-up grouped by the store), or `None` with
+/// the reason noted.
+pub fn of_fit(
+    fit: Result<probity_models::monitor::KaplanMeier, probity_models::monitor::MonitorError>,
+    now_ms: i64,
+    horizon_ms: i64,
+    notes: &mut Vec<String>,
+) -> Option<EventualRate> {
+    let result = fit.and_then(|km| {
         let (estimate, lower, upper) = km.eventual_share_interval(LEVEL)?;
         let median_delay_ms = km
             .times
@@ -383,11 +399,98 @@ pub fn window(
             quantile_edges_sorted(&p, n)
         }
     };
-    let figures = match eventual_figures(&km, &cases, &edges, LEVEL) {
+    let figures = eventual_figures(&km, &cases, &edges, LEVEL);
+    // Matured figures, with the label "positive within the horizon".
+    let matured_label = |r: &LoggedPrediction| delay(r).is_some_and(|d| d <= horizon_ms);
+    let mut sums = WindowSums::new(&edges);
+    for r in &old {
+        sums.matured(r.probability, r.adjusted_log_odds, matured_label(r));
+    }
+    for (r, c) in young.iter().zip(&cases) {
+        sums.young(r.adjusted_log_odds, c.probability, c.positive);
+    }
+    assemble(
+        (now_ms, horizon_ms, horizon_from),
+        figures,
+        cases.len(),
+        &sums,
+    )
+}
+
+/// What the immature window adds up besides the eventual figures, over the matured predictions (label: positive
+/// within the horizon) and the window's (label: positive so far), in the order written: a streamed report adds the
+/// same terms in the same order.
+#[derive(Debug, Clone)]
+pub struct WindowSums {
+    inner: Vec<f64>,
+    matured: usize,
+    matured_positives: usize,
+    matured_loss: f64,
+    matured_squares: f64,
+    mc: Vec<u64>,
+    mp: Vec<u64>,
+    msum: Vec<f64>,
+    young_loss: f64,
+    young_squares: f64,
+}
+
+impl WindowSums {
+    /// Empty sums for calibration bins cut at `edges` (all of them).
+    pub fn new(edges: &[f64]) -> WindowSums {
+        let nb = edges.len().saturating_sub(1);
+        WindowSums {
+            inner: edges[1..edges.len().saturating_sub(1).max(1)].to_vec(),
+            matured: 0,
+            matured_positives: 0,
+            matured_loss: 0.0,
+            matured_squares: 0.0,
+            mc: vec![0; nb],
+            mp: vec![0; nb],
+            msum: vec![0.0; nb],
+            young_loss: 0.0,
+            young_squares: 0.0,
+        }
+    }
+
+    /// A matured prediction.
+    pub fn matured(&mut self, p: f64, h: f64, y: bool) {
+        self.matured += 1;
+        self.matured_positives += usize::from(y);
+        let s = if y { -1.0 } else { 1.0 };
+        self.matured_loss += probity_models::link::softplus(s * h);
+        self.matured_squares += (p - f64::from(u8::from(y))).powi(2);
+        let b = probity_models::metrics::quantile::right_closed_bin(&self.inner, p);
+        if b < self.mc.len() {
+            self.mc[b] += 1;
+            self.mp[b] += u64::from(y);
+            self.msum[b] += p;
+        }
+    }
+
+    /// A prediction of the window.
+    pub fn young(&mut self, h: f64, p: f64, y: bool) {
+        let s = if y { -1.0 } else { 1.0 };
+        self.young_loss += probity_models::link::softplus(s * h);
+        self.young_squares += (p - f64::from(u8::from(y))).powi(2);
+    }
+}
+
+/// The window from its eventual figures over `cases` predictions and the sums beside them.
+pub fn assemble(
+    (now_ms, horizon_ms, horizon_from): (i64, i64, String),
+    figures: Result<
+        probity_models::monitor::EventualFigures,
+        probity_models::monitor::MonitorError,
+    >,
+    cases: usize,
+    sums: &WindowSums,
+) -> ImmatureWindow {
+    let unknown = |reason: String| ImmatureWindow::Unknown { reason };
+    let figures = match figures {
         Ok(f) => f,
         Err(e) => return unknown(e.to_string()),
     };
-    if figures.eventual_positives > cases.len() as f64
+    if figures.eventual_positives > cases as f64
         || figures.log_loss.estimate < 0.0
         || figures.brier.estimate < 0.0
     {
@@ -396,7 +499,7 @@ pub fn window(
              eventual ones by now: the window's outcomes arrive faster than the matured predictions' did (outcomes \
              sent in a batch, or a changed delay), so one delay distribution does not fit both",
             figures.positives_so_far,
-            cases.len(),
+            cases,
             100.0 * figures.arrived_share
         ));
     }
@@ -413,34 +516,15 @@ pub fn window(
             figures.positives_so_far
         ));
     }
-    // Matured figures, with the label "positive within the horizon".
-    let matured_label = |r: &LoggedPrediction| delay(r).is_some_and(|d| d <= horizon_ms);
-    let m = old.len() as f64;
-    let matured_positives = old.iter().filter(|r| matured_label(r)).count();
-    let loss = |r: &LoggedPrediction, y: bool| {
-        let s = if y { -1.0 } else { 1.0 };
-        probity_models::link::softplus(s * r.adjusted_log_odds)
-    };
+    let m = sums.matured as f64;
     let matured = Matured {
-        predictions: old.len(),
-        positives: matured_positives,
-        positive_rate: matured_positives as f64 / m,
-        log_loss: old.iter().map(|r| loss(r, matured_label(r))).sum::<f64>() / m,
-        brier: old
-            .iter()
-            .map(|r| (r.probability - f64::from(u8::from(matured_label(r)))).powi(2))
-            .sum::<f64>()
-            / m,
+        predictions: sums.matured,
+        positives: sums.matured_positives,
+        positive_rate: sums.matured_positives as f64 / m,
+        log_loss: sums.matured_loss / m,
+        brier: sums.matured_squares / m,
     };
-    let inner = &edges[1..edges.len() - 1];
-    let nb = edges.len() - 1;
-    let (mut mc, mut mp, mut msum) = (vec![0u64; nb], vec![0u64; nb], vec![0.0f64; nb]);
-    for r in &old {
-        let b = probity_models::metrics::quantile::right_closed_bin(inner, r.probability);
-        mc[b] += 1;
-        mp[b] += u64::from(matured_label(r));
-        msum[b] += r.probability;
-    }
+    let (mc, mp, msum) = (&sums.mc, &sums.mp, &sums.msum);
     let mut table = Vec::new();
     for b in &figures.bins {
         if b.rate.is_none() {
@@ -481,26 +565,17 @@ pub fn window(
             matured_upper: wilson.map(|w| w.1),
         });
     }
-    let n = cases.len() as f64;
+    let n = cases as f64;
     let so_far = SoFar {
         positive_rate: figures.positives_so_far as f64 / n,
-        log_loss: young
-            .iter()
-            .zip(&cases)
-            .map(|(r, c)| loss(r, c.positive))
-            .sum::<f64>()
-            / n,
-        brier: cases
-            .iter()
-            .map(|c| (c.probability - f64::from(u8::from(c.positive))).powi(2))
-            .sum::<f64>()
-            / n,
+        log_loss: sums.young_loss / n,
+        brier: sums.young_squares / n,
     };
     ImmatureWindow::Estimated(Box::new(Window {
         now_ms,
         horizon_ms,
         horizon_from,
-        predictions: cases.len(),
+        predictions: cases,
         positives_so_far: figures.positives_so_far,
         arrived_share: figures.arrived_share,
         level: figures.level,

@@ -26,6 +26,7 @@ pub mod calibration_tests;
 pub mod features;
 pub mod immature;
 pub mod operating;
+pub mod stream;
 pub mod svg;
 pub mod text;
 
@@ -288,6 +289,46 @@ pub fn build_full(
     bins: BinStrategy,
     horizons: &Horizons,
 ) -> Result<Report, StoreError> {
+    // A range of at most `LOADED_UP_TO` predictions per series is loaded at once (about 1 KB a prediction, so a
+    // few MB): one query instead of the streamed passes' eight or so per series, which on a store whose planner
+    // has no statistics yet (a fresh PostgreSQL table) cost more than the rows. The figures are the same either
+    // way (tests/report_stream.rs).
+    let names = store.series(filter)?;
+    let mut small = names.len() <= 8;
+    for (route, model, version, role) in &names {
+        if !small {
+            break;
+        }
+        let scan = crate::store::SeriesScan {
+            from_ms: filter.from_ms,
+            to_ms: filter.to_ms,
+            route,
+            model,
+            version,
+            role,
+        };
+        small = store.nth_oldest(&scan, LOADED_UP_TO as u64)?.is_none();
+    }
+    if small {
+        build_loaded(store, filter, configured, bins, horizons)
+    } else {
+        stream::build(store, filter, configured, bins, horizons)
+    }
+}
+
+/// The most predictions per series a report loads at once instead of streaming (see [`build_binned`]).
+pub const LOADED_UP_TO: usize = 4096;
+
+/// [`build_binned`] computed from the whole range loaded at once ([`Store::load`], about 1 KB a prediction
+/// while it runs): the plain form of every figure, which the streamed report is checked against
+/// (`tests/report_stream.rs`).
+pub fn build_loaded(
+    store: &mut dyn Store,
+    filter: &ReportFilter,
+    configured: &BTreeMap<String, f64>,
+    bins: BinStrategy,
+    horizons: &Horizons,
+) -> Result<Report, StoreError> {
     let rows = store.load(filter)?;
     // A handful of series, found by a scan, so that no row's names are copied: four more strings per row were
     // most of a report's memory.
@@ -398,20 +439,31 @@ fn on_one_prior(
         })
         .collect();
     if moved > 0 {
-        notes.push(format!(
-            "base-rate estimate: {moved} of {} predictions were served under another base rate than the latest              ({common}); their probabilities were shifted to it first",
-            rows.len()
-        ));
+        notes.push(moved_note(moved, rows.len(), common));
     }
+    (
+        p,
+        rates_on(rates, rows.last().and_then(|r| r.served_prior), common),
+    )
+}
+
+/// The note of [`on_one_prior`] when `moved` of `rows` predictions were shifted to `common`.
+fn moved_note(moved: usize, rows: usize, common: f64) -> String {
+    format!(
+        "base-rate estimate: {moved} of {rows} predictions were served under another base rate than the latest              ({common}); their probabilities were shifted to it first"
+    )
+}
+
+/// The rates with `common` as the served prior, given the prior the latest prediction was served under.
+fn rates_on(rates: BaseRates, latest: Option<f64>, common: f64) -> BaseRates {
     let rates = BaseRates {
         configured: rates.configured.or_else(|| {
             // The target the store says the latest prediction was served under, when it is not the model's own.
-            (rows.last().and_then(|r| r.served_prior).is_some() && Some(common) != rates.model)
-                .then_some(common)
+            (latest.is_some() && Some(common) != rates.model).then_some(common)
         }),
         model: rates.model,
     };
-    (p, rates.with_served(common))
+    rates.with_served(common)
 }
 
 impl BaseRates {

@@ -13,7 +13,10 @@
 
 use std::fmt::Write as _;
 
-use probity_models::evaluate::{band_points, operating_point, Costs, OperatingPoint};
+use probity_models::evaluate::{
+    band_points, operating_point, operating_point_from_counts, Costs, OperatingPoint,
+};
+use probity_models::metrics::ConfusionCounts;
 use probity_models::DecisionRule;
 use serde::Serialize;
 
@@ -213,6 +216,199 @@ pub fn compute(rows: &[LoggedPrediction], notes: &mut Vec<String>) -> Vec<Served
         out.push(entry);
     }
     out
+}
+
+/// The operating points of a series accumulated over its rows one at a time (a streamed report), without holding
+/// them: per distinct rule (a handful per series), counts of the pairs above the threshold, or per band. The
+/// figures are [`compute`]'s on the same rows, from the same counts (`evaluate::operating_point_from_counts`).
+#[derive(Debug, Default)]
+pub struct Tally {
+    groups: Vec<Group>,
+    without: usize,
+}
+
+#[derive(Debug)]
+struct Group {
+    words: String,
+    rule: Option<DecisionRule>,
+    predictions: usize,
+    with_outcome: usize,
+    positives: usize,
+    first_ms: i64,
+    last_ms: i64,
+    /// Threshold or cost rule: positives and negatives declined (above the threshold).
+    declined: (usize, usize),
+    /// Bands rule: cases and positives per band.
+    bands: Vec<(usize, usize)>,
+}
+
+impl Tally {
+    /// Counts one prediction (in the order written) served under `words`, with probability `p` and its label if
+    /// known.
+    pub fn add(&mut self, words: &str, time_ms: i64, p: f64, label: Option<bool>) {
+        if words.is_empty() {
+            self.without += 1;
+            return;
+        }
+        let at = match self.groups.iter().position(|g| g.words == words) {
+            Some(at) => at,
+            None => {
+                let rule = parse_decision_words(words);
+                let bands = match &rule {
+                    Some(DecisionRule::Bands { labels, .. }) => vec![(0, 0); labels.len()],
+                    _ => Vec::new(),
+                };
+                self.groups.push(Group {
+                    words: words.to_string(),
+                    rule,
+                    predictions: 0,
+                    with_outcome: 0,
+                    positives: 0,
+                    first_ms: time_ms,
+                    last_ms: time_ms,
+                    declined: (0, 0),
+                    bands,
+                });
+                self.groups.len() - 1
+            }
+        };
+        let g = &mut self.groups[at];
+        g.predictions += 1;
+        g.first_ms = g.first_ms.min(time_ms);
+        g.last_ms = g.last_ms.max(time_ms);
+        let Some(y) = label else { return };
+        g.with_outcome += 1;
+        g.positives += usize::from(y);
+        match &g.rule {
+            Some(DecisionRule::Bands { edges, .. }) => {
+                let i = edges.partition_point(|&e| e < p);
+                if let Some(b) = g.bands.get_mut(i) {
+                    b.0 += 1;
+                    b.1 += usize::from(y);
+                }
+            }
+            Some(rule) if p > rule.threshold().unwrap_or(0.5) => {
+                if y {
+                    g.declined.0 += 1;
+                } else {
+                    g.declined.1 += 1;
+                }
+            }
+            _ => {}
+        }
+    }
+
+    /// The entries and notes [`compute`] gives on the same rows.
+    pub fn finish(self, notes: &mut Vec<String>) -> Vec<ServedRule> {
+        if self.without > 0 && !self.groups.is_empty() {
+            notes.push(format!(
+                "operating points: predictions served without a decision rule, left out: {}",
+                self.without
+            ));
+        }
+        let mut out = Vec::new();
+        for g in self.groups {
+            let words = g.words.as_str();
+            let Some(rule) = g.rule else {
+                notes.push(format!(
+                    "operating points: the stored decision rule `{words}` is not readable ({} predictions left out)",
+                    g.predictions
+                ));
+                continue;
+            };
+            let costs = match rule {
+                DecisionRule::Costs {
+                    false_positive,
+                    false_negative,
+                } => Some(Costs {
+                    false_positive,
+                    false_negative,
+                }),
+                _ => None,
+            };
+            let mut entry = ServedRule {
+                rule: words.to_string(),
+                predictions: g.predictions,
+                with_outcome: g.with_outcome,
+                positives: g.positives,
+                first_ms: g.first_ms,
+                last_ms: g.last_ms,
+                costs: costs.map(|c| RuleCosts {
+                    false_positive: c.false_positive,
+                    false_negative: c.false_negative,
+                }),
+                point: None,
+                bands: Vec::new(),
+            };
+            if g.with_outcome == 0 {
+                notes.push(format!(
+                    "operating points ({words}): no outcome yet among its predictions ({})",
+                    g.predictions
+                ));
+                out.push(entry);
+                continue;
+            }
+            let negatives = g.with_outcome - g.positives;
+            let at = |threshold: f64, tp: usize, fp: usize| {
+                operating_point_from_counts(
+                    threshold,
+                    ConfusionCounts {
+                        true_positive: tp,
+                        false_positive: fp,
+                        true_negative: negatives - fp,
+                        false_negative: g.positives - tp,
+                    },
+                    costs,
+                )
+            };
+            match &rule {
+                DecisionRule::Bands { edges, labels } => {
+                    let mut bands = Vec::new();
+                    let mut failed = None;
+                    for (i, label) in labels.iter().enumerate() {
+                        let lower = if i == 0 { 0.0 } else { edges[i - 1] };
+                        let upper = edges.get(i).copied().unwrap_or(1.0);
+                        // Declining this band and every band above it: the cases of bands i and up.
+                        let (tp, fp) = g.bands[i..]
+                            .iter()
+                            .fold((0, 0), |(tp, fp), &(c, k)| (tp + k, fp + c - k));
+                        match at(lower, tp, fp) {
+                            Ok(point) => {
+                                let (count, positives) = g.bands[i];
+                                bands.push(Band {
+                                    label: label.clone(),
+                                    lower,
+                                    upper,
+                                    count,
+                                    positives,
+                                    positive_rate: (count > 0)
+                                        .then(|| positives as f64 / count as f64),
+                                    declining_from_here: Point::from(&point),
+                                });
+                            }
+                            Err(e) => {
+                                failed = Some(e);
+                                break;
+                            }
+                        }
+                    }
+                    match failed {
+                        None => entry.bands = bands,
+                        Some(e) => notes.push(format!("operating points ({words}): {e}")),
+                    }
+                }
+                _ => {
+                    let threshold = rule.threshold().unwrap_or(0.5);
+                    match at(threshold, g.declined.0, g.declined.1) {
+                        Ok(point) => entry.point = Some(Point::from(&point)),
+                        Err(e) => notes.push(format!("operating points ({words}): {e}")),
+                    }
+                }
+            }
+            out.push(entry);
+        }
+        out
+    }
 }
 
 fn opt(v: Option<f64>) -> String {

@@ -140,6 +140,8 @@ fn log_code(error: &crate::store::StoreError) -> Code {
             supported: _,
         } => Code::Internal,
         StoreError::Corrupt { what: _ } => Code::Internal,
+        // The report's working file: a full disk is retryable once there is room.
+        StoreError::Spill(_) => by_failure(error),
         StoreError::Postgres {
             what: _,
             message: _,

@@ -26,6 +26,7 @@ pub mod features;
 pub mod matching;
 pub mod postgres;
 pub mod running;
+pub mod scan;
 pub mod sqlite;
 pub mod writer;
 
@@ -33,6 +34,7 @@ use std::collections::BTreeMap;
 
 pub use clock::Clock;
 pub use config::StoreConfig;
+pub use scan::{FollowUpGroup, PairRanks, PairRow, PairScan, ScanOrder, ScanRow, SeriesScan};
 pub use sqlite::SqliteStore;
 pub use writer::PredictionStore;
 
@@ -367,6 +369,9 @@ pub enum StoreError {
         /// Whether the connection was lost (or never made): the operation may work once the database is back.
         lost: bool,
     },
+    /// A report's working file (a spill of values a statistic passes over more than once) failed.
+    #[error("report working file: {0}")]
+    Spill(std::io::Error),
     /// A stored row holds a value no build writes.
     #[error("prediction store holds an unreadable row: {what}")]
     Corrupt {
@@ -449,6 +454,7 @@ impl StoreError {
                 _ => WriteFailure::Other,
             },
             StoreError::Closed => WriteFailure::Other,
+            StoreError::Spill(source) => WriteFailure::of_io(source),
         }
     }
 }
@@ -530,6 +536,48 @@ pub trait Store: Send {
     /// Pending and unmatched outcome counts.
     fn outcome_counts(&mut self) -> Result<OutcomeCounts, StoreError>;
 
+    /// The series (route, model, version, role) with predictions in `filter`, sorted.
+    fn series(&mut self, filter: &ReportFilter) -> Result<Vec<SeriesName>, StoreError>;
+
+    /// Streams the predictions of one series in `order` (only those with an outcome when `labelled_only`), one at
+    /// a time: the store holds at most one fetch batch, whatever the size of the range. An error from `each`
+    /// stops the scan and is returned.
+    fn scan(
+        &mut self,
+        series: &SeriesScan<'_>,
+        order: ScanOrder,
+        labelled_only: bool,
+        each: &mut dyn FnMut(&ScanRow) -> Result<(), StoreError>,
+    ) -> Result<(), StoreError>;
+
+    /// The prediction time of the series' `k`-th oldest prediction (from 0; ties in any order).
+    fn nth_oldest(&mut self, series: &SeriesScan<'_>, k: u64) -> Result<Option<i64>, StoreError>;
+
+    /// The series' follow-up grouped by time, ascending (see [`FollowUpGroup`]).
+    fn follow_up(
+        &mut self,
+        series: &SeriesScan<'_>,
+        now_ms: i64,
+        horizon_ms: i64,
+        each: &mut dyn FnMut(&FollowUpGroup) -> Result<(), StoreError>,
+    ) -> Result<(), StoreError>;
+
+    /// The models logged with `role` on `filter`'s route in its window, with their prediction counts, by name and version.
+    fn role_models(
+        &mut self,
+        filter: &ReportFilter,
+        role: &str,
+    ) -> Result<Vec<(String, String, u64)>, StoreError>;
+
+    /// Streams the champion-challenger pairs in the challenger's written order, with the ranks asked for
+    /// ([`PairRanks`]); the database computes them by window functions, so no pair is held here.
+    fn scan_pairs(
+        &mut self,
+        pairs: &PairScan<'_>,
+        ranks: PairRanks,
+        each: &mut dyn FnMut(&PairRow) -> Result<(), StoreError>,
+    ) -> Result<(), StoreError>;
+
     /// Whether this replica runs the sweeps now. A store of one process always does; a shared store lets one
     /// replica at a time (the one holding its lock), and another takes over when that one is gone.
     fn lead_sweeps(&mut self) -> Result<bool, StoreError> {
@@ -559,6 +607,9 @@ pub trait Store: Send {
         Ok(out)
     }
 }
+
+/// Route, model, version and role of a series.
+pub type SeriesName = (String, String, String, String);
 
 /// Why an outcome is refused, or `None`.
 pub(crate) fn invalid_outcome(o: &OutcomeInput) -> Option<String> {

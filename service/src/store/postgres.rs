@@ -36,6 +36,10 @@ use postgres::{Client, Transaction};
 
 use super::features::{counts_of, FeatureCount, RowFeatures};
 use super::matching::{self, Outcome, OutcomeState, Source};
+use super::scan::FETCH_ROWS;
+use super::{
+    FollowUpGroup, PairRanks, PairRow, PairScan, ScanOrder, ScanRow, SeriesName, SeriesScan,
+};
 use super::{
     LoggedPrediction, ModelVersionInfo, OutcomeCounts, OutcomeInput, OutcomeResult, OutcomeStatus,
     PredictionRecord, ReportFilter, Settled, Store, StoreError,
@@ -273,6 +277,22 @@ impl std::fmt::Debug for ConnectionUrl {
 /// The environment variable that holds the connection URL when `store.postgres_url_file` is not given.
 pub const ENV_URL: &str = "PROBITY_STORE_POSTGRES_URL";
 
+/// The rows of one series (parameters 1 to 6: from, to, route, model, version, role).
+const SERIES_WHERE: &str =
+    "($1::int8 IS NULL OR p.time_ms >= $1) AND ($2::int8 IS NULL OR p.time_ms < $2)
+    AND p.route = $3 AND p.model = $4 AND p.version = $5 AND p.role = $6";
+
+/// The champion-challenger pairs as in the SQLite store's `PAIRS_CTE` (parameters 1 to 7: from, to, route,
+/// champion, challenger, champion version, challenger version), the label as 0/1.
+const PAIRS_CTE: &str = "WITH pr AS (
+    SELECT d.seq AS seq, c.adjusted_log_odds AS a, d.adjusted_log_odds AS b, o.label::int AS l
+    FROM predictions d
+    JOIN predictions c ON c.prediction_id = d.prediction_id AND c.route = d.route AND c.role = 'champion'
+        AND c.model = $4 AND ($6::text IS NULL OR c.version = $6) AND ($1::int8 IS NULL OR c.time_ms >= $1) AND ($2::int8 IS NULL OR c.time_ms < $2)
+    LEFT JOIN outcomes o ON o.prediction_id = d.prediction_id AND o.state = 'matched'
+    WHERE d.route = $3 AND d.role = 'challenger' AND d.model = $5 AND ($7::text IS NULL OR d.version = $7)
+        AND ($1::int8 IS NULL OR d.time_ms >= $1) AND ($2::int8 IS NULL OR d.time_ms < $2))";
+
 /// The shared prediction store.
 pub struct PgStore {
     url: ConnectionUrl,
@@ -430,6 +450,47 @@ impl PgStore {
     /// Runs `f` in a transaction; a deadlock or serialization failure runs it again (up to 5 times); a lost
     /// connection is opened again and the operation run once more, and if that fails too the client is dropped so
     /// that the next call connects again.
+    /// Runs a read-only query through a portal, `FETCH_ROWS` rows at a time, handing each row to `each`: at most one
+    /// batch is held, whatever the result's size. Not retried (`each` has seen the rows already); a lost connection
+    /// is dropped so that the next call connects again.
+    fn stream(
+        &mut self,
+        what: &'static str,
+        sql: &str,
+        params: &[&(dyn postgres::types::ToSql + Sync)],
+        each: &mut dyn FnMut(&postgres::Row) -> Result<(), StoreError>,
+    ) -> Result<(), StoreError> {
+        let client = self.client()?;
+        let result = (|| -> Result<Result<(), StoreError>, postgres::Error> {
+            let mut tx = client.transaction()?;
+            let portal = tx.bind(sql, params)?;
+            loop {
+                let rows = tx.query_portal(&portal, FETCH_ROWS)?;
+                if rows.is_empty() {
+                    break;
+                }
+                for r in &rows {
+                    if let Err(e) = each(r) {
+                        return Ok(Err(e));
+                    }
+                }
+            }
+            tx.commit()?;
+            Ok(Ok(()))
+        })();
+        match result {
+            Ok(inner) => inner,
+            Err(e) => {
+                let error = self.error(what)(e);
+                if matches!(error, StoreError::Postgres { lost: true, .. }) {
+                    self.client = None;
+                    self.leading = false;
+                }
+                Err(error)
+            }
+        }
+    }
+
     fn transact<T>(
         &mut self,
         what: &'static str,
@@ -1170,6 +1231,191 @@ impl Store for PgStore {
             pending: u64::try_from(pending).unwrap_or(0),
             unmatched: u64::try_from(unmatched).unwrap_or(0),
         })
+    }
+
+    fn series(&mut self, filter: &ReportFilter) -> Result<Vec<SeriesName>, StoreError> {
+        let mut out: Vec<SeriesName> = self.transact("series query", |tx, _| {
+            Ok(tx
+                .query(
+                    "SELECT DISTINCT p.route, p.model, p.version, p.role FROM predictions p
+                     WHERE ($1::int8 IS NULL OR p.time_ms >= $1) AND ($2::int8 IS NULL OR p.time_ms < $2)
+                       AND ($3::text IS NULL OR p.route = $3) AND ($4::text IS NULL OR p.model = $4)
+                       AND ($5::text IS NULL OR p.version = $5)",
+                    &[
+                        &filter.from_ms,
+                        &filter.to_ms,
+                        &filter.route,
+                        &filter.model,
+                        &filter.version,
+                    ],
+                )?
+                .iter()
+                .map(|r| (r.get(0), r.get(1), r.get(2), r.get(3)))
+                .collect())
+        })?;
+        out.sort();
+        Ok(out)
+    }
+
+    fn scan(
+        &mut self,
+        s: &SeriesScan<'_>,
+        order: ScanOrder,
+        labelled_only: bool,
+        each: &mut dyn FnMut(&ScanRow) -> Result<(), StoreError>,
+    ) -> Result<(), StoreError> {
+        let sql = format!(
+            "SELECT p.time_ms, p.adjusted_log_odds, p.probability, o.label, o.source, o.revision,
+                    p.served_prior, o.received_ms, p.decision
+             FROM predictions p
+             LEFT JOIN outcomes o ON o.prediction_id = p.prediction_id AND o.state = 'matched'
+             WHERE {SERIES_WHERE}{}
+             ORDER BY {}",
+            if labelled_only {
+                " AND o.label IS NOT NULL"
+            } else {
+                ""
+            },
+            super::sqlite::scan_order(order)
+        );
+        self.stream(
+            "report scan",
+            &sql,
+            &[
+                &s.from_ms, &s.to_ms, &s.route, &s.model, &s.version, &s.role,
+            ],
+            &mut |r| {
+                let source: Option<&str> = r.get(4);
+                let revision: Option<i64> = r.get(5);
+                each(&ScanRow {
+                    time_ms: r.get(0),
+                    adjusted_log_odds: r.get(1),
+                    probability: r.get(2),
+                    label: r.get(3),
+                    by_maturity: source.and_then(Source::parse) == Some(Source::Maturity),
+                    corrected: revision.unwrap_or(0) > 0,
+                    served_prior: r.get(6),
+                    outcome_received_ms: r.get(7),
+                    served_decision: r.get(8),
+                })
+            },
+        )
+    }
+
+    fn nth_oldest(&mut self, s: &SeriesScan<'_>, k: u64) -> Result<Option<i64>, StoreError> {
+        let sql = format!(
+            "SELECT p.time_ms FROM predictions p WHERE {SERIES_WHERE} ORDER BY p.time_ms LIMIT 1 OFFSET $7"
+        );
+        let k = i64::try_from(k).unwrap_or(i64::MAX);
+        self.transact("report follow-up", |tx, _| {
+            Ok(tx
+                .query_opt(
+                    &sql,
+                    &[
+                        &s.from_ms, &s.to_ms, &s.route, &s.model, &s.version, &s.role, &k,
+                    ],
+                )?
+                .map(|r| r.get(0)))
+        })
+    }
+
+    fn follow_up(
+        &mut self,
+        s: &SeriesScan<'_>,
+        now_ms: i64,
+        horizon_ms: i64,
+        each: &mut dyn FnMut(&FollowUpGroup) -> Result<(), StoreError>,
+    ) -> Result<(), StoreError> {
+        let sql = format!(
+            "SELECT t, COUNT(*), SUM(ev)::int8 FROM (
+                SELECT CASE WHEN ev = 1 THEN d ELSE LEAST($7::int8 - time_ms, $8::int8) END AS t, ev FROM (
+                    SELECT p.time_ms AS time_ms, GREATEST(o.received_ms - p.time_ms, 0) AS d,
+                           CASE WHEN o.label AND GREATEST(o.received_ms - p.time_ms, 0) <= $8::int8 THEN 1
+                                ELSE 0 END AS ev
+                    FROM predictions p
+                    LEFT JOIN outcomes o ON o.prediction_id = p.prediction_id AND o.state = 'matched'
+                    WHERE {SERIES_WHERE}) f) g
+             GROUP BY t ORDER BY t"
+        );
+        self.stream(
+            "report follow-up",
+            &sql,
+            &[
+                &s.from_ms,
+                &s.to_ms,
+                &s.route,
+                &s.model,
+                &s.version,
+                &s.role,
+                &now_ms,
+                &horizon_ms,
+            ],
+            &mut |r| {
+                each(&FollowUpGroup {
+                    time_ms: r.get(0),
+                    count: r.get(1),
+                    events: r.get(2),
+                })
+            },
+        )
+    }
+
+    fn role_models(
+        &mut self,
+        filter: &ReportFilter,
+        role: &str,
+    ) -> Result<Vec<(String, String, u64)>, StoreError> {
+        self.transact("comparison models", |tx, _| {
+            Ok(tx
+                .query(
+                    "SELECT p.model, p.version, COUNT(*) FROM predictions p
+                     WHERE ($1::int8 IS NULL OR p.time_ms >= $1) AND ($2::int8 IS NULL OR p.time_ms < $2)
+                       AND p.route = $3 AND p.role = $4
+                     GROUP BY p.model, p.version ORDER BY p.model, p.version",
+                    &[&filter.from_ms, &filter.to_ms, &filter.route, &role],
+                )?
+                .iter()
+                .map(|r| {
+                    (
+                        r.get(0),
+                        r.get(1),
+                        u64::try_from(r.get::<_, i64>(2)).unwrap_or(0),
+                    )
+                })
+                .collect())
+        })
+    }
+
+    fn scan_pairs(
+        &mut self,
+        q: &PairScan<'_>,
+        ranks: PairRanks,
+        each: &mut dyn FnMut(&PairRow) -> Result<(), StoreError>,
+    ) -> Result<(), StoreError> {
+        let sql = format!("{PAIRS_CTE}\n{}", super::sqlite::pair_select(ranks));
+        self.stream(
+            "comparison scan",
+            &sql,
+            &[
+                &q.from_ms,
+                &q.to_ms,
+                &q.route,
+                &q.champion,
+                &q.challenger,
+                &q.champion_version,
+                &q.challenger_version,
+            ],
+            &mut |r| {
+                let label: Option<i32> = r.get(2);
+                each(&PairRow {
+                    champion: r.get(0),
+                    challenger: r.get(1),
+                    label: label.map(|l| l != 0),
+                    champion_twice: r.get(3),
+                    challenger_twice: r.get(4),
+                })
+            },
+        )
     }
 
     fn lead_sweeps(&mut self) -> Result<bool, StoreError> {

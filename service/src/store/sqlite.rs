@@ -15,6 +15,9 @@ use rusqlite::{params, Connection, OptionalExtension};
 use super::features::{counts_of, FeatureCount, RowFeatures};
 use super::matching::{self, Outcome, OutcomeState, Source};
 use super::{
+    FollowUpGroup, PairRanks, PairRow, PairScan, ScanOrder, ScanRow, SeriesName, SeriesScan,
+};
+use super::{
     LoggedPrediction, ModelVersionInfo, OutcomeCounts, OutcomeInput, OutcomeResult, OutcomeStatus,
     PredictionRecord, ReportFilter, Settled, Store, StoreError,
 };
@@ -512,6 +515,51 @@ impl Store for SqliteStore {
     fn outcome_counts(&mut self) -> Result<OutcomeCounts, StoreError> {
         self.outcome_counts_inner()
     }
+
+    fn series(&mut self, filter: &ReportFilter) -> Result<Vec<SeriesName>, StoreError> {
+        self.series_inner(filter)
+    }
+
+    fn scan(
+        &mut self,
+        series: &SeriesScan<'_>,
+        order: ScanOrder,
+        labelled_only: bool,
+        each: &mut dyn FnMut(&ScanRow) -> Result<(), StoreError>,
+    ) -> Result<(), StoreError> {
+        self.scan_inner(series, order, labelled_only, each)
+    }
+
+    fn nth_oldest(&mut self, series: &SeriesScan<'_>, k: u64) -> Result<Option<i64>, StoreError> {
+        self.nth_oldest_inner(series, k)
+    }
+
+    fn follow_up(
+        &mut self,
+        series: &SeriesScan<'_>,
+        now_ms: i64,
+        horizon_ms: i64,
+        each: &mut dyn FnMut(&FollowUpGroup) -> Result<(), StoreError>,
+    ) -> Result<(), StoreError> {
+        self.follow_up_inner(series, now_ms, horizon_ms, each)
+    }
+
+    fn role_models(
+        &mut self,
+        filter: &ReportFilter,
+        role: &str,
+    ) -> Result<Vec<(String, String, u64)>, StoreError> {
+        self.role_models_inner(filter, role)
+    }
+
+    fn scan_pairs(
+        &mut self,
+        pairs: &PairScan<'_>,
+        ranks: PairRanks,
+        each: &mut dyn FnMut(&PairRow) -> Result<(), StoreError>,
+    ) -> Result<(), StoreError> {
+        self.scan_pairs_inner(pairs, ranks, each)
+    }
 }
 
 /// The operations, before [`SqliteStore::diagnosed`] looks at their errors.
@@ -861,5 +909,253 @@ impl SqliteStore {
             pending: count(OutcomeState::Pending.as_str())?,
             unmatched: count(OutcomeState::Unmatched.as_str())?,
         })
+    }
+}
+
+/// The rows of one series (parameters 1 to 6: from, to, route, model, version, role).
+const SERIES_WHERE: &str = "(?1 IS NULL OR p.time_ms >= ?1) AND (?2 IS NULL OR p.time_ms < ?2)
+    AND p.route = ?3 AND p.model = ?4 AND p.version = ?5 AND p.role = ?6";
+
+/// The champion-challenger pairs (parameters 1 to 7: from, to, route, champion, challenger, champion version,
+/// challenger version, a version NULL for any), in a CTE `pr` with
+/// the challenger's `seq`, the log-odds `a` (champion) and `b` (challenger), and the label `l` (NULL without one).
+const PAIRS_CTE: &str = "WITH pr AS (
+    SELECT d.seq AS seq, c.adjusted_log_odds AS a, d.adjusted_log_odds AS b, o.label AS l
+    FROM predictions d
+    JOIN predictions c ON c.prediction_id = d.prediction_id AND c.route = d.route AND c.role = 'champion'
+        AND c.model = ?4 AND (?6 IS NULL OR c.version = ?6) AND (?1 IS NULL OR c.time_ms >= ?1) AND (?2 IS NULL OR c.time_ms < ?2)
+    LEFT JOIN outcomes o ON o.prediction_id = d.prediction_id AND o.state = 'matched'
+    WHERE d.route = ?3 AND d.role = 'challenger' AND d.model = ?5 AND (?7 IS NULL OR d.version = ?7)
+        AND (?1 IS NULL OR d.time_ms >= ?1) AND (?2 IS NULL OR d.time_ms < ?2))";
+
+/// The select over `pr` for each [`PairRanks`] (see [`super::PairRow`]).
+pub(crate) fn pair_select(ranks: PairRanks) -> &'static str {
+    match ranks {
+        PairRanks::None => "SELECT a, b, l, CAST(0 AS BIGINT), CAST(0 AS BIGINT) FROM pr ORDER BY seq",
+        PairRanks::Midranks => {
+            "SELECT a, b, l,
+                2 * RANK() OVER (ORDER BY a) + COUNT(*) OVER (PARTITION BY a) - 1,
+                2 * RANK() OVER (ORDER BY b) + COUNT(*) OVER (PARTITION BY b) - 1
+             FROM pr ORDER BY seq"
+        }
+        PairRanks::Placements => {
+            "SELECT a, b, l,
+                CASE WHEN l = 1 THEN 2 * SUM(1 - l) OVER wa - SUM(1 - l) OVER pa
+                     ELSE 2 * (SUM(l) OVER () - SUM(l) OVER wa) + SUM(l) OVER pa END,
+                CASE WHEN l = 1 THEN 2 * SUM(1 - l) OVER wb - SUM(1 - l) OVER pb
+                     ELSE 2 * (SUM(l) OVER () - SUM(l) OVER wb) + SUM(l) OVER pb END
+             FROM pr WHERE l IS NOT NULL
+             WINDOW wa AS (ORDER BY a), pa AS (PARTITION BY a), wb AS (ORDER BY b), pb AS (PARTITION BY b)
+             ORDER BY seq"
+        }
+        PairRanks::ChampionAscending => "SELECT a, b, l, CAST(0 AS BIGINT), CAST(0 AS BIGINT) FROM pr ORDER BY a",
+    }
+}
+
+/// The ORDER BY of each [`ScanOrder`].
+pub(crate) fn scan_order(order: ScanOrder) -> &'static str {
+    match order {
+        ScanOrder::Written => "p.seq",
+        ScanOrder::LogOdds => "p.adjusted_log_odds ASC, p.seq DESC",
+        ScanOrder::Probability => "p.probability ASC, p.seq ASC",
+    }
+}
+
+/// The streamed reads of reports and comparisons.
+impl SqliteStore {
+    fn series_inner(&mut self, filter: &ReportFilter) -> Result<Vec<SeriesName>, StoreError> {
+        let mut stmt = self
+            .conn
+            .prepare(
+                "SELECT DISTINCT p.route, p.model, p.version, p.role FROM predictions p
+                 WHERE (?1 IS NULL OR p.time_ms >= ?1) AND (?2 IS NULL OR p.time_ms < ?2)
+                   AND (?3 IS NULL OR p.route = ?3) AND (?4 IS NULL OR p.model = ?4)
+                   AND (?5 IS NULL OR p.version = ?5)",
+            )
+            .map_err(db("series query"))?;
+        let mut out = stmt
+            .query_map(
+                params![
+                    filter.from_ms,
+                    filter.to_ms,
+                    filter.route,
+                    filter.model,
+                    filter.version
+                ],
+                |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?)),
+            )
+            .map_err(db("series query"))?
+            .collect::<Result<Vec<SeriesName>, _>>()
+            .map_err(db("series query"))?;
+        out.sort();
+        Ok(out)
+    }
+
+    fn scan_inner(
+        &mut self,
+        s: &SeriesScan<'_>,
+        order: ScanOrder,
+        labelled_only: bool,
+        each: &mut dyn FnMut(&ScanRow) -> Result<(), StoreError>,
+    ) -> Result<(), StoreError> {
+        let sql = format!(
+            "SELECT p.time_ms, p.adjusted_log_odds, p.probability, o.label, o.source, o.revision,
+                    p.served_prior, o.received_ms, p.decision
+             FROM predictions p
+             LEFT JOIN outcomes o ON o.prediction_id = p.prediction_id AND o.state = 'matched'
+             WHERE {SERIES_WHERE}{}
+             ORDER BY {}",
+            if labelled_only {
+                " AND o.label IS NOT NULL"
+            } else {
+                ""
+            },
+            scan_order(order)
+        );
+        let mut stmt = self.conn.prepare(&sql).map_err(db("report scan"))?;
+        let mut rows = stmt
+            .query(params![
+                s.from_ms, s.to_ms, s.route, s.model, s.version, s.role
+            ])
+            .map_err(db("report scan"))?;
+        while let Some(r) = rows.next().map_err(db("report scan"))? {
+            let label: Option<i64> = r.get(3).map_err(db("report scan"))?;
+            let source: Option<String> = r.get(4).map_err(db("report scan"))?;
+            let revision: Option<i64> = r.get(5).map_err(db("report scan"))?;
+            each(&ScanRow {
+                time_ms: r.get(0).map_err(db("report scan"))?,
+                adjusted_log_odds: r.get(1).map_err(db("report scan"))?,
+                probability: r.get(2).map_err(db("report scan"))?,
+                label: label.map(|l| l != 0),
+                by_maturity: source.as_deref().and_then(Source::parse) == Some(Source::Maturity),
+                corrected: revision.unwrap_or(0) > 0,
+                served_prior: r.get(6).map_err(db("report scan"))?,
+                outcome_received_ms: r.get(7).map_err(db("report scan"))?,
+                served_decision: r.get(8).map_err(db("report scan"))?,
+            })?;
+        }
+        Ok(())
+    }
+
+    fn nth_oldest_inner(&mut self, s: &SeriesScan<'_>, k: u64) -> Result<Option<i64>, StoreError> {
+        let sql = format!(
+            "SELECT p.time_ms FROM predictions p WHERE {SERIES_WHERE} ORDER BY p.time_ms LIMIT 1 OFFSET ?7"
+        );
+        self.conn
+            .query_row(
+                &sql,
+                params![
+                    s.from_ms,
+                    s.to_ms,
+                    s.route,
+                    s.model,
+                    s.version,
+                    s.role,
+                    i64::try_from(k).unwrap_or(i64::MAX)
+                ],
+                |r| r.get(0),
+            )
+            .optional()
+            .map_err(db("report follow-up"))
+    }
+
+    fn follow_up_inner(
+        &mut self,
+        s: &SeriesScan<'_>,
+        now_ms: i64,
+        horizon_ms: i64,
+        each: &mut dyn FnMut(&FollowUpGroup) -> Result<(), StoreError>,
+    ) -> Result<(), StoreError> {
+        let sql = format!(
+            "SELECT t, COUNT(*), SUM(ev) FROM (
+                SELECT CASE WHEN ev = 1 THEN d ELSE MIN(?7 - time_ms, ?8) END AS t, ev FROM (
+                    SELECT p.time_ms AS time_ms, MAX(o.received_ms - p.time_ms, 0) AS d,
+                           CASE WHEN o.label = 1 AND MAX(o.received_ms - p.time_ms, 0) <= ?8 THEN 1 ELSE 0 END
+                               AS ev
+                    FROM predictions p
+                    LEFT JOIN outcomes o ON o.prediction_id = p.prediction_id AND o.state = 'matched'
+                    WHERE {SERIES_WHERE}))
+             GROUP BY t ORDER BY t"
+        );
+        let mut stmt = self.conn.prepare(&sql).map_err(db("report follow-up"))?;
+        let mut rows = stmt
+            .query(params![
+                s.from_ms, s.to_ms, s.route, s.model, s.version, s.role, now_ms, horizon_ms
+            ])
+            .map_err(db("report follow-up"))?;
+        while let Some(r) = rows.next().map_err(db("report follow-up"))? {
+            each(&FollowUpGroup {
+                time_ms: r.get(0).map_err(db("report follow-up"))?,
+                count: r.get(1).map_err(db("report follow-up"))?,
+                events: r.get(2).map_err(db("report follow-up"))?,
+            })?;
+        }
+        Ok(())
+    }
+
+    fn role_models_inner(
+        &mut self,
+        filter: &ReportFilter,
+        role: &str,
+    ) -> Result<Vec<(String, String, u64)>, StoreError> {
+        let mut stmt = self
+            .conn
+            .prepare(
+                "SELECT p.model, p.version, COUNT(*) FROM predictions p
+                 WHERE (?1 IS NULL OR p.time_ms >= ?1) AND (?2 IS NULL OR p.time_ms < ?2)
+                   AND p.route = ?3 AND p.role = ?4
+                 GROUP BY p.model, p.version ORDER BY p.model, p.version",
+            )
+            .map_err(db("comparison models"))?;
+        let out = stmt
+            .query_map(
+                params![filter.from_ms, filter.to_ms, filter.route, role],
+                |r| {
+                    Ok((
+                        r.get::<_, String>(0)?,
+                        r.get::<_, String>(1)?,
+                        r.get::<_, i64>(2)?,
+                    ))
+                },
+            )
+            .map_err(db("comparison models"))?
+            .collect::<Result<Vec<_>, _>>()
+            .map_err(db("comparison models"))?;
+        Ok(out
+            .into_iter()
+            .map(|(m, v, c)| (m, v, u64::try_from(c).unwrap_or(0)))
+            .collect())
+    }
+
+    fn scan_pairs_inner(
+        &mut self,
+        q: &PairScan<'_>,
+        ranks: PairRanks,
+        each: &mut dyn FnMut(&PairRow) -> Result<(), StoreError>,
+    ) -> Result<(), StoreError> {
+        let sql = format!("{PAIRS_CTE}\n{}", pair_select(ranks));
+        let mut stmt = self.conn.prepare(&sql).map_err(db("comparison scan"))?;
+        let mut rows = stmt
+            .query(params![
+                q.from_ms,
+                q.to_ms,
+                q.route,
+                q.champion,
+                q.challenger,
+                q.champion_version,
+                q.challenger_version
+            ])
+            .map_err(db("comparison scan"))?;
+        while let Some(r) = rows.next().map_err(db("comparison scan"))? {
+            let label: Option<i64> = r.get(2).map_err(db("comparison scan"))?;
+            each(&PairRow {
+                champion: r.get(0).map_err(db("comparison scan"))?,
+                challenger: r.get(1).map_err(db("comparison scan"))?,
+                label: label.map(|l| l != 0),
+                champion_twice: r.get(3).map_err(db("comparison scan"))?,
+                challenger_twice: r.get(4).map_err(db("comparison scan"))?,
+            })?;
+        }
+        Ok(())
     }
 }

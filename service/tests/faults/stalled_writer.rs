@@ -13,6 +13,9 @@ use std::time::Duration;
 use probity::serve::config::{Config, Sources};
 use probity::serve::proto as pb;
 use probity::store::{
+    FollowUpGroup, PairRanks, PairRow, PairScan, ScanOrder, ScanRow, SeriesName, SeriesScan,
+};
+use probity::store::{
     LoggedPrediction, ModelVersionInfo, OutcomeCounts, OutcomeInput, OutcomeResult,
     PredictionRecord, ReportFilter, Settled, SqliteStore, Store, StoreError,
 };
@@ -90,6 +93,45 @@ impl Store for Gated {
     }
     fn outcome_counts(&mut self) -> Result<OutcomeCounts, StoreError> {
         self.inner.outcome_counts()
+    }
+    fn series(&mut self, filter: &ReportFilter) -> Result<Vec<SeriesName>, StoreError> {
+        self.inner.series(filter)
+    }
+    fn scan(
+        &mut self,
+        series: &SeriesScan<'_>,
+        order: ScanOrder,
+        labelled_only: bool,
+        each: &mut dyn FnMut(&ScanRow) -> Result<(), StoreError>,
+    ) -> Result<(), StoreError> {
+        self.inner.scan(series, order, labelled_only, each)
+    }
+    fn nth_oldest(&mut self, series: &SeriesScan<'_>, k: u64) -> Result<Option<i64>, StoreError> {
+        self.inner.nth_oldest(series, k)
+    }
+    fn follow_up(
+        &mut self,
+        series: &SeriesScan<'_>,
+        now_ms: i64,
+        horizon_ms: i64,
+        each: &mut dyn FnMut(&FollowUpGroup) -> Result<(), StoreError>,
+    ) -> Result<(), StoreError> {
+        self.inner.follow_up(series, now_ms, horizon_ms, each)
+    }
+    fn role_models(
+        &mut self,
+        filter: &ReportFilter,
+        role: &str,
+    ) -> Result<Vec<(String, String, u64)>, StoreError> {
+        self.inner.role_models(filter, role)
+    }
+    fn scan_pairs(
+        &mut self,
+        pairs: &PairScan<'_>,
+        ranks: PairRanks,
+        each: &mut dyn FnMut(&PairRow) -> Result<(), StoreError>,
+    ) -> Result<(), StoreError> {
+        self.inner.scan_pairs(pairs, ranks, each)
     }
 }
 
