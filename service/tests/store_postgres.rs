@@ -728,33 +728,56 @@ mod fleet {
         check(&rt, &db, loaded);
     }
 
-    /// Starts the replicas and runs the load; returns the replicas and the acknowledged outcomes.
-    async fn load(db: &TestDb) -> Loaded {
+    /// A replica's files: a model directory with one linear model, `linear`, and a data directory with the
+    /// database URL in a file and `probity.toml`: route `r`, `store.backend = "postgres"`, a 10 ms flush and the
+    /// further `[store]` lines `store`.
+    struct Fleet {
+        models: tempfile::TempDir,
+        data: tempfile::TempDir,
+        config: std::path::PathBuf,
+    }
+
+    fn fleet_files(url: &str, store: &str) -> Fleet {
         let models = tempfile::tempdir().unwrap();
         std::fs::write(
-        models.path().join("linear.json"),
-        r#"{"format": "probity.model", "format_version": 1, "name": "linear", "version": "1",
+            models.path().join("linear.json"),
+            r#"{"format": "probity.model", "format_version": 1, "name": "linear", "version": "1",
             "features": [{"name": "x", "type": "numeric"}], "margin_scale": "log_odds", "base_rate": 0.3,
             "linear": {"intercept": -0.5, "terms": [{"numeric": {"feature": 0, "coefficient": 1.2}}]}}"#,
-    )
-    .unwrap();
+        )
+        .unwrap();
         let data = tempfile::tempdir().unwrap();
         let url_file = data.path().join("db-url");
-        std::fs::write(&url_file, db.url()).unwrap();
+        std::fs::write(&url_file, url).unwrap();
         let config = data.path().join("probity.toml");
         std::fs::write(
             &config,
             format!(
-                "[server]\nplaintext = \"loopback\"\n\
-             [models]\ndirectory = {:?}\nwatch = false\n\
-             [store]\nbackend = \"postgres\"\npostgres_url_file = {:?}\nflush_interval = \"10ms\"\n\
-             outcome_hold = \"1h\"\nsweep_interval = \"1s\"\n\
-             [routes.r]\nmodel = \"linear\"\n",
+                "[server]\nplaintext = \"loopback\"\n[models]\ndirectory = {:?}\nwatch = false\n\
+                 [store]\nbackend = \"postgres\"\npostgres_url_file = {:?}\nflush_interval = \"10ms\"\n{store}\
+                 [routes.r]\nmodel = \"linear\"\n",
                 models.path().display().to_string(),
                 url_file.display().to_string()
             ),
         )
         .unwrap();
+        Fleet {
+            models,
+            data,
+            config,
+        }
+    }
+
+    /// Starts the replicas and runs the load; returns the replicas and the acknowledged outcomes.
+    async fn load(db: &TestDb) -> Loaded {
+        let Fleet {
+            models,
+            data,
+            config,
+        } = fleet_files(
+            &db.url(),
+            "outcome_hold = \"1h\"\nsweep_interval = \"1s\"\n",
+        );
 
         let mut servers = Vec::new();
         for _ in 0..3 {
@@ -1241,29 +1264,11 @@ print(log_loss(y, p), brier_score_loss(y, p), roc_auc_score(y, h))\n";
             late_url, real,
             "the test database is on 127.0.0.1:5432: {real}"
         );
-        let models = tempfile::tempdir().unwrap();
-        std::fs::write(
-            models.path().join("linear.json"),
-            r#"{"format": "probity.model", "format_version": 1, "name": "linear", "version": "1",
-            "features": [{"name": "x", "type": "numeric"}], "margin_scale": "log_odds", "base_rate": 0.3,
-            "linear": {"intercept": -0.5, "terms": [{"numeric": {"feature": 0, "coefficient": 1.2}}]}}"#,
-        )
-        .unwrap();
-        let data = tempfile::tempdir().unwrap();
-        let url_file = data.path().join("db-url");
-        std::fs::write(&url_file, &late_url).unwrap();
-        let config = data.path().join("probity.toml");
-        std::fs::write(
-            &config,
-            format!(
-                "[server]\nplaintext = \"loopback\"\n[models]\ndirectory = {:?}\nwatch = false\n\
-                 [store]\nbackend = \"postgres\"\npostgres_url_file = {:?}\npostgres_start_wait = \"60s\"\n\
-                 flush_interval = \"10ms\"\n[routes.r]\nmodel = \"linear\"\n",
-                models.path().display().to_string(),
-                url_file.display().to_string()
-            ),
-        )
-        .unwrap();
+        let Fleet {
+            config,
+            models: _models,
+            data: _data,
+        } = fleet_files(&late_url, "postgres_start_wait = \"60s\"\n");
         let relay = std::thread::spawn(move || {
             std::thread::sleep(Duration::from_millis(1500));
             let listener = std::net::TcpListener::bind(("127.0.0.1", relay_port)).unwrap();
@@ -1333,29 +1338,11 @@ print(log_loss(y, p), brier_score_loss(y, p), roc_auc_score(y, h))\n";
         let Some(db) = TestDb::create("prom") else {
             return;
         };
-        let models = tempfile::tempdir().unwrap();
-        std::fs::write(
-            models.path().join("linear.json"),
-            r#"{"format": "probity.model", "format_version": 1, "name": "linear", "version": "1",
-            "features": [{"name": "x", "type": "numeric"}], "margin_scale": "log_odds", "base_rate": 0.3,
-            "linear": {"intercept": -0.5, "terms": [{"numeric": {"feature": 0, "coefficient": 1.2}}]}}"#,
-        )
-        .unwrap();
-        let data = tempfile::tempdir().unwrap();
-        let url_file = data.path().join("db-url");
-        std::fs::write(&url_file, db.url()).unwrap();
-        let config = data.path().join("probity.toml");
-        std::fs::write(
-            &config,
-            format!(
-                "[server]\nplaintext = \"loopback\"\n[models]\ndirectory = {:?}\nwatch = false\n\
-                 [store]\nbackend = \"postgres\"\npostgres_url_file = {:?}\nflush_interval = \"10ms\"\n\
-                 sweep_interval = \"1s\"\n[routes.r]\nmodel = \"linear\"\n",
-                models.path().display().to_string(),
-                url_file.display().to_string()
-            ),
-        )
-        .unwrap();
+        let Fleet {
+            config,
+            models: _models,
+            data: _data,
+        } = fleet_files(&db.url(), "sweep_interval = \"1s\"\n");
         let rt = tokio::runtime::Builder::new_multi_thread()
             .worker_threads(2)
             .enable_all()
