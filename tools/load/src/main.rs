@@ -25,7 +25,7 @@ mod soak;
 static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
 
 use std::collections::HashMap;
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
@@ -61,6 +61,22 @@ enum Command {
     Run(RunArgs),
     /// Starts a server and runs a sustained mixed load against it (scoring, outcome streams, reloads, reports).
     Soak(soak::SoakArgs),
+    /// Writes one Score request as a gRPC message frame (a zero compression byte, the length as 4 big-endian bytes,
+    /// the protobuf bytes): the request body another HTTP/2 load tool (h2load) sends to `/probity.v1.Scoring/Score`.
+    Frame {
+        /// The model file, for its feature names and categories.
+        #[arg(long)]
+        model: PathBuf,
+        /// Rows: little-endian float64, row-major, one value per model feature; the first row is framed.
+        #[arg(long)]
+        rows: PathBuf,
+        /// Route to call.
+        #[arg(long, default_value = "bench")]
+        route: String,
+        /// Where the frame goes.
+        #[arg(long)]
+        out: PathBuf,
+    },
 }
 
 #[derive(clap::Args)]
@@ -130,6 +146,23 @@ fn main() -> Result<std::process::ExitCode> {
         .build()?;
     match args.command {
         Command::Bare { listen } => runtime.block_on(bare(listen))?,
+        Command::Frame {
+            model,
+            rows,
+            route,
+            out,
+        } => {
+            let request = requests(&model, &rows, &route)?
+                .into_iter()
+                .next()
+                .context("no rows")?;
+            let body = prost::Message::encode_to_vec(&request);
+            let mut frame = Vec::with_capacity(5 + body.len());
+            frame.push(0);
+            frame.extend_from_slice(&u32::try_from(body.len())?.to_be_bytes());
+            frame.extend_from_slice(&body);
+            std::fs::write(&out, frame).with_context(|| format!("writing {}", out.display()))?;
+        }
         Command::Run(run_args) => runtime.block_on(run(run_args))?,
         Command::Soak(soak_args) => {
             if !runtime.block_on(soak::soak(soak_args))? {
@@ -211,12 +244,12 @@ async fn bare(listen: std::net::SocketAddr) -> Result<()> {
 // --------------------------------------------------------------------------------------------- load generator
 
 /// Requests with features by name, one per row.
-fn requests(args: &RunArgs) -> Result<Vec<pb::ScoreRequest>> {
-    let text = std::fs::read_to_string(&args.model)
-        .with_context(|| format!("reading {}", args.model.display()))?;
-    let model = Model::from_json_str(&text).with_context(|| args.model.display().to_string())?;
-    let bytes =
-        std::fs::read(&args.rows).with_context(|| format!("reading {}", args.rows.display()))?;
+fn requests(model: &Path, rows: &Path, route: &str) -> Result<Vec<pb::ScoreRequest>> {
+    let text =
+        std::fs::read_to_string(model).with_context(|| format!("reading {}", model.display()))?;
+    let model_path = model;
+    let model = Model::from_json_str(&text).with_context(|| model_path.display().to_string())?;
+    let bytes = std::fs::read(rows).with_context(|| format!("reading {}", rows.display()))?;
     let width = model.schema().len();
     let values: Vec<f64> = bytes
         .chunks_exact(8)
@@ -225,7 +258,7 @@ fn requests(args: &RunArgs) -> Result<Vec<pb::ScoreRequest>> {
     if width == 0 || values.is_empty() || !values.len().is_multiple_of(width) {
         bail!(
             "{}: {} values are not rows of {width}",
-            args.rows.display(),
+            rows.display(),
             values.len()
         );
     }
@@ -247,7 +280,7 @@ fn requests(args: &RunArgs) -> Result<Vec<pb::ScoreRequest>> {
         }
         out.push(pb::ScoreRequest {
             explain: 0,
-            route: args.route.clone(),
+            route: route.to_string(),
             row: Some(pb::Row {
                 features: Some(pb::row::Features::Named(pb::NamedFeatures {
                     values: named,
@@ -345,7 +378,7 @@ fn percentile(sorted: &[u32], p: f64) -> f64 {
 }
 
 async fn run(args: RunArgs) -> Result<()> {
-    let requests = Arc::new(requests(&args)?);
+    let requests = Arc::new(requests(&args.model, &args.rows, &args.route)?);
     let concurrency = args.concurrency.max(1);
     let connections = args.connections.clamp(1, concurrency);
     let scheme = if args.ca_file.is_some() {
