@@ -71,7 +71,10 @@ fuzz_target!(|data: &[u8]| {
                         live += share;
                     }
                 }
-                assert!(live <= 1.0 + 1e-12, "route {name}: live shares add to {live}");
+                assert!(
+                    live <= 1.0 + 1e-12,
+                    "route {name}: live shares add to {live}"
+                );
             }
         }
         Err(error) => {

@@ -121,8 +121,14 @@ fn explained(model: &Model, row: &[f64], m: f64) {
         Ok(c) => c,
         Err(e) => panic!("a row that scores must explain: {e} (row {row:?})"),
     };
-    assert_eq!(c.log_odds.to_bits(), model.margin_scale().to_log_odds(m).to_bits());
-    let magnitude = c.features.iter().fold(c.bias.abs() + c.log_odds.abs(), |a, x| a + x.abs());
+    assert_eq!(
+        c.log_odds.to_bits(),
+        model.margin_scale().to_log_odds(m).to_bits()
+    );
+    let magnitude = c
+        .features
+        .iter()
+        .fold(c.bias.abs() + c.log_odds.abs(), |a, x| a + x.abs());
     if magnitude.is_finite() {
         let gap = (c.total() - c.log_odds).abs();
         assert!(
@@ -132,10 +138,15 @@ fn explained(model: &Model, row: &[f64], m: f64) {
             c.log_odds
         );
     }
-    for adverse in [probity_models::Adverse::Higher, probity_models::Adverse::Lower] {
+    for adverse in [
+        probity_models::Adverse::Higher,
+        probity_models::Adverse::Lower,
+    ] {
         let reasons = model.reasons(&c, &probity_models::ReasonRequest { limit: 4, adverse });
         assert!(reasons.len() <= 4);
-        assert!(reasons.iter().all(|r| r.weight > 0.0 && !r.features.is_empty()));
+        assert!(reasons
+            .iter()
+            .all(|r| r.weight > 0.0 && !r.features.is_empty()));
         assert!(reasons.windows(2).all(|w| w[0].weight >= w[1].weight));
     }
 }

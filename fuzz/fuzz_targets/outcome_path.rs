@@ -42,6 +42,7 @@ impl ModelFacts for Facts {
             version: "1".into(),
             base_rate: 0.05,
             reference: None,
+            features: Vec::new(),
         }
     }
 }
@@ -70,7 +71,8 @@ impl Fixture {
             maturity: [("fraud".to_string(), Duration::from_millis(7 * 86_400_000))].into(),
             ..StoreConfig::default()
         };
-        let log = PredictionStore::start(Box::new(store), config, Clock::manual(Arc::clone(&clock)));
+        let log =
+            PredictionStore::start(Box::new(store), config, Clock::manual(Arc::clone(&clock)));
         for i in 0..LOGGED + 2 {
             // p0 and p1 are logged a second time on the other route (the same id on two routes): one outcome
             // settles both. (The same id on the same route, model and role is a retried call, stored once.)
@@ -80,7 +82,12 @@ impl Fixture {
             log.log(Queued {
                 record: PredictionRecord {
                     prediction_id: id,
-                    route: if first_route == (i < LOGGED) { "fraud" } else { "credit" }.into(),
+                    route: if first_route == (i < LOGGED) {
+                        "fraud"
+                    } else {
+                        "credit"
+                    }
+                    .into(),
                     model: "fuzz-model".into(),
                     version: "1".into(),
                     role: "champion".into(),
@@ -95,6 +102,7 @@ impl Fixture {
                 },
                 prior: 0.05,
                 facts: Arc::new(Facts),
+                features: None,
             });
         }
         log.flush().expect("predictions written");
@@ -150,16 +158,32 @@ fn check_outcomes(request: &pb::RecordOutcomesRequest, response: &pb::RecordOutc
         match status {
             pb::OutcomeStatus::Invalid => assert!(!r.message.is_empty(), "a refusal says why"),
             pb::OutcomeStatus::Pending => {
-                assert!(!logged(&o.prediction_id), "{} is logged but held", o.prediction_id);
+                assert!(
+                    !logged(&o.prediction_id),
+                    "{} is logged but held",
+                    o.prediction_id
+                );
                 assert_eq!(r.predictions_matched, 0);
             }
             pb::OutcomeStatus::Matched | pb::OutcomeStatus::Corrected => {
-                assert!(logged(&o.prediction_id), "{} matched but never logged", o.prediction_id);
-                let copies = if o.prediction_id == "p0" || o.prediction_id == "p1" { 2 } else { 1 };
+                assert!(
+                    logged(&o.prediction_id),
+                    "{} matched but never logged",
+                    o.prediction_id
+                );
+                let copies = if o.prediction_id == "p0" || o.prediction_id == "p1" {
+                    2
+                } else {
+                    1
+                };
                 assert_eq!(r.predictions_matched, copies, "{}", o.prediction_id);
             }
             pb::OutcomeStatus::Duplicate => {
-                assert!(logged(&o.prediction_id), "{} duplicate but never logged", o.prediction_id);
+                assert!(
+                    logged(&o.prediction_id),
+                    "{} duplicate but never logged",
+                    o.prediction_id
+                );
                 assert_eq!(r.predictions_matched, 0);
             }
             pb::OutcomeStatus::Unspecified => panic!("no status"),
@@ -196,7 +220,10 @@ fuzz_target!(|data: &[u8]| {
                 let Ok(request) = pb::ReportRequest::decode(message) else {
                     return;
                 };
-                match f.runtime.block_on(f.api.report(tonic::Request::new(request))) {
+                match f
+                    .runtime
+                    .block_on(f.api.report(tonic::Request::new(request)))
+                {
                     Ok(response) => {
                         for s in &response.get_ref().series {
                             assert!(s.with_outcome <= s.predictions, "{s:?}");

@@ -143,7 +143,9 @@ fn check_response(response: &pb::ScoreResponse) {
             let magnitude = e
                 .contributions
                 .iter()
-                .fold(e.bias.abs() + response.log_odds.abs(), |a, c| a + c.log_odds.abs());
+                .fold(e.bias.abs() + response.log_odds.abs(), |a, c| {
+                    a + c.log_odds.abs()
+                });
             assert!(
                 (total - response.log_odds).abs() <= 1e-9 * magnitude.max(1.0),
                 "contributions sum to {total}, log-odds {}",
