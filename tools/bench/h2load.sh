@@ -70,9 +70,9 @@ h2() { # $1 port, $2 frame, rest: h2load options
 
 $BIN/probity-load frame --model $M/lightgbm_500_d6.json --rows $M/trees_rows.f64 --out "$WORK/trees.frame"
 $BIN/probity-load frame --model $M/linear_200.json --rows $M/linear_rows.f64 --out "$WORK/linear.frame"
-start_serve lightgbm_500_d6 50270 9670; TREES=$STARTED
-start_serve linear_200 50271 9671; LINEAR=$STARTED
-taskset -c 0 $BIN/probity-load bare --listen 127.0.0.1:50279 2>/dev/null & BARE=$!; PIDS+=($BARE); wait_port 50279
+start_serve lightgbm_500_d6 50370 9770; TREES=$STARTED
+start_serve linear_200 50371 9771; LINEAR=$STARTED
+taskset -c 0 $BIN/probity-load bare --listen 127.0.0.1:50379 2>/dev/null & BARE=$!; PIDS+=($BARE); wait_port 50379
 TCK=$(getconf CLK_TCK)
 RESULTS="$WORK/results.tsv"; : > "$RESULTS"
 
@@ -98,12 +98,12 @@ half() { # $1 port, $2 frame, $3 calls/s in total
 }
 
 LOAD_BEFORE=$(cut -d' ' -f1-3 /proc/loadavg)
-closed bare 50279 $BARE "$WORK/trees.frame" -
-closed "probity 500 trees" 50270 $TREES "$WORK/trees.frame" 9670
-closed "bare (linear rows)" 50279 $BARE "$WORK/linear.frame" -
-closed "probity linear 200" 50271 $LINEAR "$WORK/linear.frame" 9671
+closed bare 50379 $BARE "$WORK/trees.frame" -
+closed "probity 500 trees" 50370 $TREES "$WORK/trees.frame" 9770
+closed "bare (linear rows)" 50379 $BARE "$WORK/linear.frame" -
+closed "probity linear 200" 50371 $LINEAR "$WORK/linear.frame" 9771
 rate() { awk -F'\t' -v l="$1" '$1 == l {printf "%d\n", $2 / ($4 - $3)}' "$RESULTS"; }
-for spec in "50279 trees bare" "50270 trees probity 500 trees" "50279 linear bare (linear rows)" "50271 linear probity linear 200"; do
+for spec in "50379 trees bare" "50370 trees probity 500 trees" "50379 linear bare (linear rows)" "50371 linear probity linear 200"; do
   set -- $spec; port=$1; frame=$2; shift 2; label="$*"
   half "$port" "$WORK/$frame.frame" "$(( $(rate "$label") / 2 ))"
   mv "$WORK/half-$port.log" "$WORK/half-$(echo "$label" | tr ' ()' '___').log"
