@@ -145,20 +145,9 @@ struct Case {
     probability: f64,
 }
 
-/// Estimates the eventual figures of `window` from the delay reference `km`, with calibration bins cut at `edges`
-/// (all of them, from the lowest to the highest, bins `(e_{k-1}, e_k]`, the first open below and the last open
-/// above, as `calibration_table` cuts them), intervals at `level`. See the module overview for the method.
-///
-/// Errors: a bad level, fewer than two edges or edges not finite and non-decreasing, an empty window, an age
-/// negative or not finite, log-odds not finite, a probability outside [0, 1] (row named), a reference without a
-/// positive outcome, a bin whose predictions are all younger than the reference's first delay (nothing is
-/// expected to have arrived there, so nothing can be scaled up).
-pub fn eventual_figures(
-    km: &KaplanMeier,
-    window: &[ScoredCase],
-    edges: &[f64],
-    level: f64,
-) -> Result<EventualFigures, MonitorError> {
+/// The options both forms of [`eventual_figures`] check first: a level strictly inside (0, 1), at least two bin
+/// edges, finite and non-decreasing.
+fn check_level_and_edges(level: f64, edges: &[f64]) -> Result<(), MonitorError> {
     if !(level > 0.0 && level < 1.0) {
         return Err(MonitorError::BadOption {
             name: "confidence level",
@@ -183,6 +172,24 @@ pub fn eventual_figures(
             reason: "edges must not decrease",
         });
     }
+    Ok(())
+}
+
+/// Estimates the eventual figures of `window` from the delay reference `km`, with calibration bins cut at `edges`
+/// (all of them, from the lowest to the highest, bins `(e_{k-1}, e_k]`, the first open below and the last open
+/// above, as `calibration_table` cuts them), intervals at `level`. See the module overview for the method.
+///
+/// Errors: a bad level, fewer than two edges or edges not finite and non-decreasing, an empty window, an age
+/// negative or not finite, log-odds not finite, a probability outside [0, 1] (row named), a reference without a
+/// positive outcome, a bin whose predictions are all younger than the reference's first delay (nothing is
+/// expected to have arrived there, so nothing can be scaled up).
+pub fn eventual_figures(
+    km: &KaplanMeier,
+    window: &[ScoredCase],
+    edges: &[f64],
+    level: f64,
+) -> Result<EventualFigures, MonitorError> {
+    check_level_and_edges(level, edges)?;
     if window.is_empty() {
         return Err(MetricsError::Empty { what: "window" }.into());
     }
@@ -461,30 +468,7 @@ pub fn eventual_figures_by(
     level: f64,
     pass: impl FnOnce(&mut dyn FnMut(ScoredCase)),
 ) -> Result<EventualFigures, MonitorError> {
-    if !(level > 0.0 && level < 1.0) {
-        return Err(MonitorError::BadOption {
-            name: "confidence level",
-            value: level,
-            reason: "must lie strictly between 0 and 1",
-        });
-    }
-    if edges.len() < 2 {
-        return Err(MonitorError::BadOption {
-            name: "number of bin edges",
-            value: edges.len() as f64,
-            reason: "must be at least 2",
-        });
-    }
-    if let Some(i) = edges.iter().position(|e| !e.is_finite()) {
-        return Err(bad_row("bin edges", i, edges[i]));
-    }
-    if let Some(i) = (1..edges.len()).find(|&i| edges[i] < edges[i - 1]) {
-        return Err(MonitorError::BadOption {
-            name: "bin edge",
-            value: edges[i],
-            reason: "edges must not decrease",
-        });
-    }
+    check_level_and_edges(level, edges)?;
     let g_h = km.eventual_share();
     let inner = &edges[1..edges.len() - 1];
     let bins = edges.len() - 1;
